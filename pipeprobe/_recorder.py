@@ -1,0 +1,428 @@
+"""The per-process recorder: hot-path span buffers, flushing and process hooks.
+
+One :class:`_Recorder` exists per process (``RECORDER``). It owns one
+preallocated buffer per thread; a span writes six integers into its
+thread's buffer and bumps a counter, with no lock. A background thread
+copies finished records to disk every ``flush_interval_s``; a buffer that
+fills up before then is written by its own thread. The per-buffer lock is
+only taken by those two copies, never per span.
+
+This module never imports the analysis side.
+"""
+
+from __future__ import annotations
+
+import atexit
+import json
+import os
+import signal
+import socket
+import sys
+import threading
+import warnings
+from array import array
+from pathlib import Path
+from time import monotonic_ns, thread_time_ns, time_ns
+from typing import Any
+
+import numpy as np
+
+from . import tracefile as tf
+
+ENV_RUN_DIR = "PIPEPROBE_RUN_DIR"
+ENV_OPTIONS = "PIPEPROBE_OPTIONS"
+RESERVED_STAGES = ("wait", "step")
+_FIELDS = 6  # start, end, cpu, sample, batch, code
+_MAX_STAGES = 65535
+
+
+def detect_rank() -> tuple[int, int]:
+    """Return ``(rank, world_size)`` from the usual launcher environment variables."""
+    env = os.environ
+    rank = world = None
+    for key in ("RANK", "PMI_RANK", "OMPI_COMM_WORLD_RANK", "SLURM_PROCID"):
+        if env.get(key, "").strip().isdigit():
+            rank = int(env[key])
+            break
+    for key in ("WORLD_SIZE", "PMI_SIZE", "OMPI_COMM_WORLD_SIZE", "SLURM_NTASKS"):
+        if env.get(key, "").strip().isdigit():
+            world = int(env[key])
+            break
+    return (rank or 0), (world or 1)
+
+
+class _Buffer:
+    """Records of one thread: a flat int64 array, ``n`` used, ``done`` flushed."""
+
+    __slots__ = ("data", "n", "done", "cap", "tid", "ctx", "lock")
+
+    def __init__(self, cap: int) -> None:
+        self.data = array("q", bytes(8 * _FIELDS * cap))
+        self.n = 0
+        self.done = 0
+        self.cap = cap
+        self.tid = threading.get_native_id()
+        self.ctx = -1  # batch the consumer thread is fetching or working on
+        self.lock = threading.Lock()
+
+
+class _Recorder:
+    """State of recording in this process. See the module docstring."""
+
+    def __init__(self) -> None:
+        self.on = False
+        self.checked_env = False
+        self.cpu_time = True
+        self.run_dir: Path | None = None
+        self.rank = 0
+        self.world_size = 1
+        self.role = "main"
+        self.pid = os.getpid()
+        self.flush_interval_s = 1.0
+        self.buffer_spans = 8192
+        self.stage_names: list[str] = []
+        self.stage_ids: dict[str, int] = {}
+        self.epoch = -1
+        self.next_batch = 0
+        self.failed = False
+        self._reset_process_state()
+
+    # -- set-up ---------------------------------------------------------
+    def _reset_process_state(self) -> None:
+        self.tls = threading.local()
+        self.buffers: list[_Buffer] = []
+        self.meta_lock = threading.Lock()
+        self.io_lock = threading.Lock()
+        self.flusher: threading.Thread | None = None
+        self.stop_event = threading.Event()
+        self.span_file = None
+        self.header_stages_written = -1
+        self.extra_writers: list[Any] = []  # callables flushed with the spans
+
+    def start(
+        self,
+        run_dir: Path,
+        *,
+        role: str,
+        cpu_time: bool,
+        flush_interval_s: float,
+        buffer_spans: int,
+        rank: int,
+        world_size: int,
+        stages: list[str] | None = None,
+    ) -> None:
+        self._reset_process_state()
+        self.run_dir = run_dir
+        self.role = role
+        self.cpu_time = cpu_time
+        self.flush_interval_s = flush_interval_s
+        self.buffer_spans = buffer_spans
+        self.rank = rank
+        self.world_size = world_size
+        self.pid = os.getpid()
+        self.failed = False
+        self.stage_names = []
+        self.stage_ids = {}
+        for name in RESERVED_STAGES + tuple(stages or ()):
+            self.stage_id(name)
+        self.anchor_mono_ns = monotonic_ns()
+        self.anchor_wall_ns = time_ns()
+        self.on = True
+        install_signal_hooks()
+
+    def stage_id(self, name: str) -> int:
+        sid = self.stage_ids.get(name)
+        if sid is not None:
+            return sid
+        with self.meta_lock:
+            sid = self.stage_ids.get(name)
+            if sid is None:
+                if len(self.stage_names) >= _MAX_STAGES:
+                    raise ValueError(f"more than {_MAX_STAGES} distinct stage names in one process")
+                sid = len(self.stage_names)
+                self.stage_names.append(name)
+                self.stage_ids[name] = sid
+        return sid
+
+    def buffer(self) -> _Buffer:
+        """This thread's buffer, made on first use."""
+        try:
+            return self.tls.buf
+        except AttributeError:
+            buf = _Buffer(self.buffer_spans)
+            self.tls.buf = buf
+            with self.meta_lock:
+                self.buffers.append(buf)
+                if self.flusher is None and self.on:
+                    self._start_flusher()
+            return buf
+
+    def _start_flusher(self) -> None:
+        self.stop_event = threading.Event()
+        t = threading.Thread(target=self._flush_loop, name="pipeprobe-flush", daemon=True)
+        self.flusher = t
+        t.start()
+
+    def _flush_loop(self) -> None:
+        stop = self.stop_event
+        while not stop.wait(self.flush_interval_s):
+            self.flush()
+
+    # -- writing -----------------------------------------------------------
+    def record(self, start: int, end: int, cpu: int, sample: int, batch: int, code: int) -> None:
+        """Append one record to this thread's buffer (used off the hot path)."""
+        buf = self.buffer()
+        i = buf.n
+        if i == buf.cap:
+            i = self.spill(buf)
+        j = i * _FIELDS
+        d = buf.data
+        d[j] = start
+        d[j + 1] = end
+        d[j + 2] = cpu
+        d[j + 3] = sample
+        d[j + 4] = batch
+        d[j + 5] = code
+        buf.n = i + 1
+
+    def spill(self, buf: _Buffer) -> int:
+        """Write a full buffer from its own thread; return the next free index."""
+        with buf.lock:
+            chunk = self._take(buf)
+            buf.n = 0
+            buf.done = 0
+        self._write([chunk])
+        return 0
+
+    @staticmethod
+    def _take(buf: _Buffer) -> np.ndarray:
+        """Copy records [done, n) of ``buf`` into a structured array (lock held)."""
+        n, done = buf.n, buf.done
+        raw = np.frombuffer(buf.data, dtype=np.int64, count=(n - done) * _FIELDS, offset=done * _FIELDS * 8)
+        raw = raw.reshape(-1, _FIELDS)
+        out = np.empty(len(raw), dtype=tf.SPAN_RECORD)
+        out["start_ns"] = raw[:, 0]
+        out["end_ns"] = raw[:, 1]
+        out["cpu_ns"] = raw[:, 2]
+        out["sample_id"] = raw[:, 3]
+        out["batch_id"] = raw[:, 4]
+        code = raw[:, 5]
+        out["stage"] = code & 0xFFFF
+        out["kind"] = (code >> 16) & 0xFF
+        out["flags"] = (code >> 24) & 0xFF
+        out["epoch"] = (code >> 32) - 1
+        out["tid"] = buf.tid
+        buf.done = n
+        return out
+
+    def flush(self, lock_timeout_s: float = -1) -> None:
+        """Write every thread's finished records and the extra writers' data."""
+        if not self.on:
+            return
+        chunks = []
+        for buf in list(self.buffers):
+            if not buf.lock.acquire(timeout=lock_timeout_s):
+                continue
+            try:
+                if buf.n > buf.done:
+                    chunks.append(self._take(buf))
+            finally:
+                buf.lock.release()
+        self._write(chunks)
+        for writer in list(self.extra_writers):
+            try:
+                writer()
+            except Exception as exc:  # noqa: BLE001 - never take training down
+                self.fail(exc)
+
+    def _write(self, chunks: list[np.ndarray]) -> None:
+        if not self.on:
+            return
+        try:
+            with self.io_lock:
+                if self.span_file is None:
+                    if not chunks and self.header_stages_written >= 0:
+                        return
+                    self._open_files()
+                if len(self.stage_names) != self.header_stages_written:
+                    self._write_process_header()
+                for chunk in chunks:
+                    if len(chunk):
+                        self.span_file.write(chunk.tobytes())
+                self.span_file.flush()
+        except Exception as exc:  # noqa: BLE001 - never take training down
+            self.fail(exc)
+
+    def file_stem(self) -> str:
+        return f"spans-r{self.rank}-p{self.pid}"
+
+    def _open_files(self) -> None:
+        path = self.run_dir / (self.file_stem() + ".bin")
+        fh = open(path, "ab", buffering=0)
+        if fh.tell() == 0:
+            fh.write(tf.preamble(tf.CONTENT_SPANS))
+        self.span_file = fh
+
+    def _write_process_header(self) -> None:
+        names = list(self.stage_names)
+        header = {
+            "format": "pipeprobe-process",
+            "format_version": tf.FORMAT_VERSION,
+            "pid": self.pid,
+            "ppid": os.getppid(),
+            "rank": self.rank,
+            "world_size": self.world_size,
+            "role": self.role,
+            "host": socket.gethostname(),
+            "anchor_mono_ns": self.anchor_mono_ns,
+            "anchor_wall_ns": self.anchor_wall_ns,
+            "cpu_time": self.cpu_time,
+            "stages": names,
+        }
+        tf.write_json_atomic(self.run_dir / (self.file_stem() + ".json"), header)
+        self.header_stages_written = len(names)
+
+    def fail(self, exc: BaseException) -> None:
+        """Switch recording off after pipeprobe's own failure, warning once."""
+        was_on = self.on
+        self.on = False
+        if was_on and not self.failed:
+            self.failed = True
+            warnings.warn(
+                f"pipeprobe stopped recording after an internal failure: {type(exc).__name__}: {exc}. "
+                "Training continues; what was written so far stays readable.",
+                RuntimeWarning,
+                stacklevel=2,
+            )
+
+    def stop(self) -> None:
+        """Flush everything and stop the flusher; recording is off afterwards."""
+        if self.flusher is not None:
+            self.stop_event.set()
+            if self.flusher is not threading.current_thread():
+                self.flusher.join(timeout=5)
+        self.flush()
+        self.on = False
+        with self.io_lock:
+            if self.span_file is not None:
+                try:
+                    self.span_file.close()
+                except OSError:
+                    pass
+                self.span_file = None
+
+    # -- process hooks -----------------------------------------------------
+    def after_fork_in_child(self) -> None:
+        """A forked child gets its own files and drops the parent's unflushed records."""
+        was_on = self.on
+        self._reset_process_state()
+        self.pid = os.getpid()
+        self.checked_env = True
+        self.next_batch = 0
+        if was_on:
+            self.role = "worker"
+            self.on = True
+            _register_worker_exit()
+
+
+RECORDER = _Recorder()
+
+
+def attach_from_env() -> bool:
+    """In a worker process, join the run named by the environment, if any."""
+    rec = RECORDER
+    rec.checked_env = True
+    run_dir = os.environ.get(ENV_RUN_DIR)
+    if not run_dir or rec.on:
+        return rec.on
+    try:
+        options = json.loads(os.environ.get(ENV_OPTIONS, "{}"))
+        rec.start(
+            Path(run_dir),
+            role="worker",
+            cpu_time=bool(options.get("cpu_time", True)),
+            flush_interval_s=float(options.get("flush_interval_s", 1.0)),
+            buffer_spans=int(options.get("buffer_spans", 8192)),
+            rank=int(options.get("rank", 0)),
+            world_size=int(options.get("world_size", 1)),
+            stages=[str(s) for s in options.get("stages", [])],
+        )
+        _register_worker_exit()
+    except Exception as exc:  # noqa: BLE001 - never take training down
+        rec.fail(exc)
+    return rec.on
+
+
+def _register_worker_exit() -> None:
+    # multiprocessing children leave through os._exit, which skips atexit;
+    # its own finalizers still run on a normal exit.
+    try:
+        import multiprocessing.util as mpu
+
+        mpu.Finalize(None, RECORDER.stop, exitpriority=100)
+    except Exception:  # noqa: BLE001
+        pass
+    atexit.register(RECORDER.stop)
+
+
+os.register_at_fork(after_in_child=RECORDER.after_fork_in_child)
+
+
+# -- signals ------------------------------------------------------------------
+_PREVIOUS_HANDLERS: dict[int, Any] = {}
+
+
+def _on_signal(signum: int, frame: Any) -> None:
+    rec = RECORDER
+    try:
+        rec.flush(lock_timeout_s=0.2)
+        for hook in list(_SIGNAL_CLOSERS):
+            hook()
+    except Exception:  # noqa: BLE001 - the signal must still be delivered
+        pass
+    previous = _PREVIOUS_HANDLERS.get(signum, signal.SIG_DFL)
+    if callable(previous):
+        previous(signum, frame)
+    elif previous == signal.SIG_IGN:
+        return
+    else:
+        rec.stop()
+        signal.signal(signum, signal.SIG_DFL)
+        os.kill(os.getpid(), signum)
+
+
+_SIGNAL_CLOSERS: list[Any] = []
+
+
+def install_signal_hooks() -> None:
+    """Flush on SIGTERM and SIGINT, then hand the signal to what was there before."""
+    if threading.current_thread() is not threading.main_thread():
+        return
+    for signum in (signal.SIGTERM, signal.SIGINT):
+        try:
+            current = signal.getsignal(signum)
+            if current is _on_signal:
+                continue
+            if current is None:  # installed from C; leave it alone
+                continue
+            _PREVIOUS_HANDLERS[signum] = current
+            signal.signal(signum, _on_signal)
+        except (ValueError, OSError):
+            pass
+
+
+def restore_signal_hooks() -> None:
+    """Put back the handlers that were there before :func:`install_signal_hooks`."""
+    if threading.current_thread() is not threading.main_thread():
+        return
+    for signum, previous in list(_PREVIOUS_HANDLERS.items()):
+        try:
+            if signal.getsignal(signum) is _on_signal:
+                signal.signal(signum, previous)
+        except (ValueError, OSError):
+            pass
+    _PREVIOUS_HANDLERS.clear()
+
+
+def python_version() -> str:
+    return sys.version.split()[0]

@@ -1,0 +1,120 @@
+"""The ``pipeprobe`` command line.
+
+Exit codes: 0 success; 1 a gate failed (``compare`` found a regression);
+2 bad input (wrong arguments, missing or corrupt run) with a one-line error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from typing import Sequence
+
+from .errors import PipeprobeError
+
+EXIT_OK = 0
+EXIT_GATE = 1
+EXIT_BAD_INPUT = 2
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str) -> None:  # one line, exit 2
+        self.exit(EXIT_BAD_INPUT, f"pipeprobe: error: {message} (see 'pipeprobe {self._sub} --help')\n")
+
+    _sub = ""
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a number >= 1, got {value}")
+    return value
+
+
+def _non_negative_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected a number >= 0, got {value}")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="pipeprobe", description="Find what holds back a training run's input pipeline.")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.required = True
+
+    demo = sub.add_parser("demo", help="record the bundled parts-inspection training demo and print its report")
+    demo._sub = "demo"
+    demo.add_argument("--out", metavar="DIR", help="run folder (default: a new folder under ./pipeprobe-runs)")
+    demo.add_argument("--batches", type=_positive_int, default=60, metavar="N", help="batches to train on (60)")
+    demo.add_argument("--workers", type=_non_negative_int, default=2, metavar="N",
+                      help="loader worker processes; 0 loads in the training process (2)")
+    demo.add_argument("--prefetch", type=_positive_int, default=4, metavar="N",
+                      help="batches in flight across all workers (4)")
+    demo.add_argument("--image-size", type=_positive_int, default=96, metavar="PX", help="training image side (96)")
+    demo.add_argument("--augment", default="crop,flip,rotate,jitter", metavar="LIST",
+                      help="comma-separated augmentations, from crop,flip,rotate,jitter; '' for none")
+    demo.add_argument("--width", type=_positive_int, default=256, metavar="N", help="hidden units of the model (256)")
+    demo.add_argument("--batch-size", type=_positive_int, default=16, metavar="N", help="samples per batch (16)")
+    demo.add_argument("--seed", type=int, default=0, help="random seed (0)")
+
+    report = sub.add_parser("report", help="print the stall report of a recorded run")
+    report._sub = "report"
+    report.add_argument("run_dir", metavar="RUN_DIR")
+    return parser
+
+
+def _cmd_demo(args: argparse.Namespace) -> int:
+    from .demo import run_demo
+
+    augment = tuple(a.strip() for a in args.augment.split(",") if a.strip())
+    known = {"crop", "flip", "rotate", "jitter"}
+    unknown = sorted(set(augment) - known)
+    if unknown:
+        raise _UsageError(f"unknown augmentation {', '.join(unknown)}; choose from {', '.join(sorted(known))}")
+    result = run_demo(
+        out=args.out,
+        batches=args.batches,
+        workers=args.workers,
+        prefetch=args.prefetch,
+        image_size=args.image_size,
+        augment=augment,
+        width=args.width,
+        batch_size=args.batch_size,
+        seed=args.seed,
+    )
+    print(f"run folder: {result.run_dir}")
+    return EXIT_OK
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from .report import print_close_report
+
+    print_close_report(args.run_dir)
+    return EXIT_OK
+
+
+class _UsageError(Exception):
+    pass
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; return the exit code."""
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    handlers = {"demo": _cmd_demo, "report": _cmd_report}
+    try:
+        return handlers[args.command](args)
+    except (PipeprobeError, _UsageError, FileNotFoundError, NotADirectoryError, PermissionError) as exc:
+        print(f"pipeprobe: error: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+
+
+if __name__ == "__main__":
+    sys.exit(main())
