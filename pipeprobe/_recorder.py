@@ -319,6 +319,7 @@ class _Recorder:
         self.pid = os.getpid()
         self.checked_env = True
         self.next_batch = 0
+        _SIGNAL_CLOSERS.clear()  # the parent's probe is not ours to close
         if was_on:
             self.role = "worker"
             self.on = True
@@ -366,6 +367,21 @@ def _register_worker_exit() -> None:
 
 
 os.register_at_fork(after_in_child=RECORDER.after_fork_in_child)
+
+
+def _after_mp_bootstrap(rec: _Recorder) -> None:
+    # multiprocessing clears its finalizers in a new child after our fork hook
+    # ran; register the exit flush again once it has.
+    if rec.on:
+        _register_worker_exit()
+
+
+try:
+    import multiprocessing.util as _mpu
+
+    _mpu.register_after_fork(RECORDER, _after_mp_bootstrap)
+except Exception:  # noqa: BLE001
+    pass
 
 
 # -- signals ------------------------------------------------------------------
