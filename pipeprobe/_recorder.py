@@ -51,19 +51,27 @@ def detect_rank() -> tuple[int, int]:
     return (rank or 0), (world or 1)
 
 
-class _Buffer:
-    """Records of one thread: a flat int64 array, ``n`` used, ``done`` flushed."""
+class _Buffer(list):
+    """Records of one thread, six ints each, appended by one ``extend``.
 
-    __slots__ = ("data", "n", "done", "cap", "tid", "ctx", "lock")
+    The owning thread only ever appends; a flush copies and deletes a prefix
+    under ``lock``. Under the GIL each ``extend``, copy and delete is atomic,
+    so the hot path needs no lock.
+    """
 
-    def __init__(self, cap: int) -> None:
-        self.data = array("q", bytes(8 * _FIELDS * cap))
-        self.n = 0
-        self.done = 0
-        self.cap = cap
+    __slots__ = ("ctx", "tid", "limit", "lock")
+
+    def __init__(self, limit: int) -> None:
+        super().__init__()
         self.tid = threading.get_native_id()
         self.ctx = -1  # batch the consumer thread is fetching or working on
+        self.limit = limit
         self.lock = threading.Lock()
+
+
+#: One thread-local for the life of the process; a forked child keeps the
+#: forking thread's entry and empties it.
+TLS = threading.local()
 
 
 class _Recorder:
@@ -82,6 +90,7 @@ class _Recorder:
         self.buffer_spans = 8192
         self.stage_names: list[str] = []
         self.stage_ids: dict[str, int] = {}
+        self.user_codes: dict[str, int] = {}  # validated user stage names -> code
         self.epoch = -1
         self.next_batch = 0
         self.failed = False
@@ -89,7 +98,6 @@ class _Recorder:
 
     # -- set-up ---------------------------------------------------------
     def _reset_process_state(self) -> None:
-        self.tls = threading.local()
         self.buffers: list[_Buffer] = []
         self.meta_lock = threading.Lock()
         self.io_lock = threading.Lock()
@@ -121,8 +129,15 @@ class _Recorder:
         self.world_size = world_size
         self.pid = os.getpid()
         self.failed = False
-        self.stage_names = []
-        self.stage_ids = {}
+        self.stage_names.clear()
+        self.stage_ids.clear()
+        self.user_codes.clear()
+        mine = getattr(TLS, "buf", None)
+        if mine is not None:  # left over from an earlier probe in this thread
+            mine.clear()
+            mine.limit = _FIELDS * buffer_spans
+            mine.ctx = -1
+            self.buffers.append(mine)
         for name in RESERVED_STAGES + tuple(stages or ()):
             self.stage_id(name)
         self.anchor_mono_ns = monotonic_ns()
@@ -147,10 +162,10 @@ class _Recorder:
     def buffer(self) -> _Buffer:
         """This thread's buffer, made on first use."""
         try:
-            return self.tls.buf
+            return TLS.buf
         except AttributeError:
-            buf = _Buffer(self.buffer_spans)
-            self.tls.buf = buf
+            buf = _Buffer(_FIELDS * self.buffer_spans)
+            TLS.buf = buf
             with self.meta_lock:
                 self.buffers.append(buf)
                 if self.flusher is None and self.on:
@@ -172,34 +187,22 @@ class _Recorder:
     def record(self, start: int, end: int, cpu: int, sample: int, batch: int, code: int) -> None:
         """Append one record to this thread's buffer (used off the hot path)."""
         buf = self.buffer()
-        i = buf.n
-        if i == buf.cap:
-            i = self.spill(buf)
-        j = i * _FIELDS
-        d = buf.data
-        d[j] = start
-        d[j + 1] = end
-        d[j + 2] = cpu
-        d[j + 3] = sample
-        d[j + 4] = batch
-        d[j + 5] = code
-        buf.n = i + 1
+        buf.extend((start, end, cpu, sample, batch, code))
+        if len(buf) >= buf.limit:
+            self.spill(buf)
 
-    def spill(self, buf: _Buffer) -> int:
-        """Write a full buffer from its own thread; return the next free index."""
+    def spill(self, buf: _Buffer) -> None:
+        """Write a full buffer from its own thread."""
         with buf.lock:
             chunk = self._take(buf)
-            buf.n = 0
-            buf.done = 0
         self._write([chunk])
-        return 0
 
     @staticmethod
     def _take(buf: _Buffer) -> np.ndarray:
-        """Copy records [done, n) of ``buf`` into a structured array (lock held)."""
-        n, done = buf.n, buf.done
-        raw = np.frombuffer(buf.data, dtype=np.int64, count=(n - done) * _FIELDS, offset=done * _FIELDS * 8)
-        raw = raw.reshape(-1, _FIELDS)
+        """Move the finished records out of ``buf`` into a structured array (lock held)."""
+        k = len(buf)
+        raw = np.array(buf[:k], dtype=np.int64).reshape(-1, _FIELDS)
+        del buf[:k]
         out = np.empty(len(raw), dtype=tf.SPAN_RECORD)
         out["start_ns"] = raw[:, 0]
         out["end_ns"] = raw[:, 1]
@@ -212,7 +215,6 @@ class _Recorder:
         out["flags"] = (code >> 24) & 0xFF
         out["epoch"] = (code >> 32) - 1
         out["tid"] = buf.tid
-        buf.done = n
         return out
 
     def flush(self, lock_timeout_s: float = -1) -> None:
@@ -224,7 +226,7 @@ class _Recorder:
             if not buf.lock.acquire(timeout=lock_timeout_s):
                 continue
             try:
-                if buf.n > buf.done:
+                if len(buf):
                     chunks.append(self._take(buf))
             finally:
                 buf.lock.release()
@@ -316,6 +318,13 @@ class _Recorder:
         """A forked child gets its own files and drops the parent's unflushed records."""
         was_on = self.on
         self._reset_process_state()
+        mine = getattr(TLS, "buf", None)
+        if mine is not None:  # the parent flushes these records, not us
+            mine.clear()
+            mine.tid = threading.get_native_id()
+            mine.ctx = -1
+            mine.lock = threading.Lock()
+            self.buffers.append(mine)
         self.pid = os.getpid()
         self.checked_env = True
         self.next_batch = 0

@@ -350,7 +350,7 @@ def _concat_spans(frames: list[pd.DataFrame]) -> pd.DataFrame:
 
 
 def _batches(spans: pd.DataFrame, samples: pd.DataFrame) -> pd.DataFrame:
-    waits = spans[spans["stage"] == "wait"]
+    waits = spans[(spans["stage"] == "wait") & ~spans["error"]]  # a failed wait delivered nothing
     b = pd.DataFrame(
         {
             "rank": waits["rank"].to_numpy(np.int64),

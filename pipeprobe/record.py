@@ -22,13 +22,12 @@ from typing import Any, Callable, Iterable, Iterator, TypeVar
 from . import __version__
 from . import _recorder as _r
 from . import tracefile as tf
-from ._recorder import RECORDER
+from ._recorder import RECORDER, TLS
 from .errors import ProbeStateError
 
 __all__ = ["Probe", "stage"]
 
 T = TypeVar("T")
-_STAGE_CODE = tf.KIND_STAGE << 16
 _STEP_CODE = tf.KIND_STEP << 16
 _ERROR_BITS = tf.FLAG_ERROR << 24
 
@@ -57,52 +56,62 @@ def _check_id(value: Any, what: str) -> int:
 class _Span:
     """A timed block; also a decorator. Made by :func:`stage` and :meth:`Probe.step`."""
 
-    __slots__ = ("_name", "_code", "_sample", "_batch", "_t0", "_c0")
+    __slots__ = ("_code", "_sample", "_batch", "_t0")
 
-    def __init__(self, name: str, code: int, sample: int, batch: int) -> None:
-        self._name = name
+    def __init__(self, code: int, sample: int, batch: int) -> None:
         self._code = code
         self._sample = sample
         self._batch = batch
 
     def __enter__(self) -> _Span:
-        rec = RECORDER
-        if rec.on:
-            self._c0 = thread_time_ns() if rec.cpu_time else -1
-            self._t0 = monotonic_ns()
-        else:
-            self._t0 = -1
+        self._t0 = monotonic_ns()
         return self
 
     def __exit__(self, et: Any, ev: Any, tb: Any) -> bool:
         t1 = monotonic_ns()
-        rec = RECORDER
-        if self._t0 < 0 or not rec.on:
-            return False
-        c0 = self._c0
-        cpu = thread_time_ns() - c0 if c0 >= 0 else -1
         try:
-            buf = rec.tls.buf
+            buf = TLS.buf
         except AttributeError:
-            buf = rec.buffer()
-        i = buf.n
-        if i == buf.cap:
-            i = rec.spill(buf)
-        j = i * 6
-        d = buf.data
-        d[j] = self._t0
-        d[j + 1] = t1
-        d[j + 2] = cpu
-        d[j + 3] = self._sample
+            buf = RECORDER.buffer()
         b = self._batch
-        d[j + 4] = b if b >= 0 else buf.ctx
-        d[j + 5] = self._code | _ERROR_BITS if et is not None else self._code
-        buf.n = i + 1
+        buf.extend(
+            (self._t0, t1, -1, self._sample, b if b >= 0 else buf.ctx,
+             self._code if et is None else self._code | _ERROR_BITS)
+        )
+        if len(buf) >= buf.limit:
+            RECORDER.spill(buf)
         return False
 
     def __call__(self, fn: Callable[..., T]) -> Callable[..., T]:
         """Use as a decorator: time every call of ``fn`` under this stage name."""
-        return _timed(fn, self._name)
+        return _timed(fn, RECORDER.stage_names[self._code & 0xFFFF])
+
+
+class _CpuSpan(_Span):
+    """A :class:`_Span` that also takes the thread's CPU time."""
+
+    __slots__ = ("_c0",)
+
+    def __enter__(self) -> _CpuSpan:
+        self._c0 = thread_time_ns()
+        self._t0 = monotonic_ns()
+        return self
+
+    def __exit__(self, et: Any, ev: Any, tb: Any) -> bool:
+        t1 = monotonic_ns()
+        cpu = thread_time_ns() - self._c0
+        try:
+            buf = TLS.buf
+        except AttributeError:
+            buf = RECORDER.buffer()
+        b = self._batch
+        buf.extend(
+            (self._t0, t1, cpu, self._sample, b if b >= 0 else buf.ctx,
+             self._code if et is None else self._code | _ERROR_BITS)
+        )
+        if len(buf) >= buf.limit:
+            RECORDER.spill(buf)
+        return False
 
 
 def _timed(fn: Callable[..., T], name: str) -> Callable[..., T]:
@@ -111,7 +120,7 @@ def _timed(fn: Callable[..., T], name: str) -> Callable[..., T]:
     except (TypeError, ValueError):
         params = []
     pos = 1 if params and params[0] in ("self", "cls") else 0
-    cache: list[Any] = [None, -1]  # (recorder stage table, stage code)
+    codes = RECORDER.user_codes
 
     @functools.wraps(fn)
     def wrapper(*args: Any, **kwargs: Any) -> T:
@@ -119,13 +128,12 @@ def _timed(fn: Callable[..., T], name: str) -> Callable[..., T]:
         if not rec.on:
             if rec.checked_env or not _r.attach_from_env():
                 return fn(*args, **kwargs)
-        if cache[0] is not rec.stage_ids:
-            cache[1] = _STAGE_CODE | rec.stage_id(name)
-            cache[0] = rec.stage_ids
+        code = codes.get(name)
+        if code is None:
+            code = codes[name] = rec.stage_id(name)
         sample = args[pos] if len(args) > pos and type(args[pos]) is int else -1
         c0 = thread_time_ns() if rec.cpu_time else -1
         t0 = monotonic_ns()
-        code = cache[1]
         try:
             return fn(*args, **kwargs)
         except BaseException:
@@ -133,24 +141,13 @@ def _timed(fn: Callable[..., T], name: str) -> Callable[..., T]:
             raise
         finally:
             t1 = monotonic_ns()
-            if rec.on:
-                cpu = thread_time_ns() - c0 if c0 >= 0 else -1
-                try:
-                    buf = rec.tls.buf
-                except AttributeError:
-                    buf = rec.buffer()
-                i = buf.n
-                if i == buf.cap:
-                    i = rec.spill(buf)
-                j = i * 6
-                d = buf.data
-                d[j] = t0
-                d[j + 1] = t1
-                d[j + 2] = cpu
-                d[j + 3] = sample
-                d[j + 4] = buf.ctx
-                d[j + 5] = code
-                buf.n = i + 1
+            try:
+                buf = TLS.buf
+            except AttributeError:
+                buf = rec.buffer()
+            buf.extend((t0, t1, thread_time_ns() - c0 if c0 >= 0 else -1, sample, buf.ctx, code))
+            if len(buf) >= buf.limit:
+                rec.spill(buf)
 
     wrapper.__pipeprobe_stage__ = name  # type: ignore[attr-defined]
     return wrapper
@@ -174,7 +171,10 @@ class _Noop:
         return _timed(fn, self._name)
 
 
-def stage(name: str, *, sample: int | None = None, batch: int | None = None) -> Any:
+_CODES = RECORDER.user_codes  # cleared in place when a probe starts
+
+
+def stage(name: str, *, sample: int | None = -1, batch: int | None = -1) -> Any:
     """Time a stage: ``with stage("decode", sample=i): ...`` or ``@stage("decode")``.
 
     Records into the probe active in this process. In loader worker
@@ -186,8 +186,9 @@ def stage(name: str, *, sample: int | None = None, batch: int | None = None) -> 
     name : str
         Stage name, e.g. ``"decode"``. ``"step"`` and ``"wait"`` are reserved.
     sample : int, optional
-        Sample id the work belongs to. The decorator form takes the first
-        positional ``int`` argument (after ``self``) as the sample id.
+        Sample id the work belongs to (-1 or None: unknown). The decorator
+        form takes the first positional ``int`` argument (after ``self``)
+        as the sample id.
     batch : int, optional
         Batch id, in the consumer's numbering (0, 1, ... in the order the
         training loop receives batches). By default, spans in the thread
@@ -199,19 +200,42 @@ def stage(name: str, *, sample: int | None = None, batch: int | None = None) -> 
     -------
     context manager and decorator
 
+    Raises
+    ------
+    ValueError
+        ``name`` is not a non-empty str, is reserved, or an id is not an int.
+
     Examples
     --------
     >>> import pipeprobe
     >>> with pipeprobe.stage("decode", sample=3):
     ...     pass
     """
+    rec = RECORDER
+    try:
+        code = _CODES[name]
+    except (KeyError, TypeError):
+        return _stage_slow(name, sample, batch)
+    if type(sample) is not int or type(batch) is not int:
+        return _stage_slow(name, sample, batch)
+    if rec.on:
+        return _CpuSpan(code, sample, batch) if rec.cpu_time else _Span(code, sample, batch)
+    if rec.checked_env or not _r.attach_from_env():
+        return _Noop(name)
+    return _stage_slow(name, sample, batch)
+
+
+def _stage_slow(name: Any, sample: Any, batch: Any) -> Any:
     _check_stage_name(name)
     sample_i = _check_id(sample, "sample")
     batch_i = _check_id(batch, "batch")
     rec = RECORDER
     if not rec.on and (rec.checked_env or not _r.attach_from_env()):
         return _Noop(name)
-    return _Span(name, _STAGE_CODE | rec.stage_id(name), sample_i, batch_i)
+    code = _CODES.get(name)
+    if code is None:
+        code = _CODES[name] = rec.stage_id(name)
+    return _CpuSpan(code, sample_i, batch_i) if rec.cpu_time else _Span(code, sample_i, batch_i)
 
 
 def _sample_ids_from(item: Any, samples: Callable[[Any], Iterable[int]] | None) -> list[int] | None:
@@ -420,9 +444,11 @@ class Probe:
 
     def step(self) -> Any:
         """Time the training step of the current batch: ``with probe.step(): ...``."""
-        if not RECORDER.on:
+        rec = RECORDER
+        if not rec.on:
             return _Noop("step")
-        return _Span("step", _STEP_CODE | 1, -1, -1)
+        code = _STEP_CODE | rec.stage_ids["step"]
+        return _CpuSpan(code, -1, -1) if rec.cpu_time else _Span(code, -1, -1)
 
     def watch(
         self,

@@ -1,0 +1,385 @@
+"""Recording: stage timers, the loader watch, the step timer, and process handling."""
+
+from __future__ import annotations
+
+import multiprocessing as mp
+import sys
+import threading
+import time
+import traceback
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import pipeprobe
+from pipeprobe import stage
+from pipeprobe.errors import ProbeStateError
+
+
+@stage("decode")
+def _decode(sample_id: int) -> int:
+    time.sleep(0.001)
+    return sample_id * 2
+
+
+def _pool_batch(sample_ids: list[int]) -> list[int]:
+    """A loader task run in a pool worker: decode + augment each sample."""
+    out = []
+    for sid in sample_ids:
+        out.append(_decode(sid))
+        with stage("augment", sample=sid):
+            time.sleep(0.0005)
+    return out
+
+
+def _user_spans(run: pipeprobe.Run, name: str):
+    return run.spans[run.spans["stage"] == name]
+
+
+class TestStageForms:
+    def test_block_form_records_sample_and_duration(self, tmp_path: Path) -> None:
+        """A `with stage(...)` block is recorded with its sample id and a duration that covers the body."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            with stage("augment", sample=7):
+                time.sleep(0.01)
+        spans = _user_spans(pipeprobe.load(tmp_path / "r"), "augment")
+        assert [7] == spans["sample_id"].tolist()
+        assert 0.01 <= spans["dur_s"].iloc[0] < 0.5
+
+    def test_decorator_takes_first_int_argument_as_sample(self, tmp_path: Path) -> None:
+        """A decorated function called with an int first argument records it as the sample id."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            results = [_decode(i) for i in (3, 4, 5)]
+        assert [6, 8, 10] == results
+        spans = _user_spans(pipeprobe.load(tmp_path / "r"), "decode")
+        assert [3, 4, 5] == spans["sample_id"].tolist()
+
+    def test_decorated_method_skips_self(self, tmp_path: Path) -> None:
+        """On a method, the int after `self` is the sample id (e.g. a dataset's __getitem__)."""
+
+        class Parts:
+            @stage("fetch")
+            def __getitem__(self, index: int) -> int:
+                return index
+
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            Parts()[11]
+        assert [11] == _user_spans(pipeprobe.load(tmp_path / "r"), "fetch")["sample_id"].tolist()
+
+    def test_probe_stage_method_is_the_same_timer(self, tmp_path: Path) -> None:
+        """`probe.stage` and `pipeprobe.stage` record into the same run."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+            with probe.stage("read", sample=1, batch=0):
+                pass
+        spans = _user_spans(pipeprobe.load(tmp_path / "r"), "read")
+        assert [(1, 0)] == list(zip(spans["sample_id"], spans["batch_id"]))
+
+    def test_nested_spans_are_both_recorded_and_contained(self, tmp_path: Path) -> None:
+        """Nested stages each get a span, the inner one inside the outer one."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            with stage("load", sample=1):
+                with stage("decode", sample=1):
+                    time.sleep(0.002)
+        spans = pipeprobe.load(tmp_path / "r").spans.set_index("stage")
+        assert spans.loc["load", "start_s"] <= spans.loc["decode", "start_s"]
+        assert spans.loc["decode", "end_s"] <= spans.loc["load", "end_s"]
+
+    def test_cpu_time_is_recorded_and_can_be_switched_off(self, tmp_path: Path) -> None:
+        """Busy work shows CPU time close to its wall time; cpu_time=False records none."""
+
+        def busy(seconds: float) -> None:
+            end = time.perf_counter() + seconds
+            while time.perf_counter() < end:
+                pass
+
+        with pipeprobe.Probe(tmp_path / "on", report=False, sample_interval_s=0):
+            with stage("busy"):
+                busy(0.05)
+            with stage("idle"):
+                time.sleep(0.05)
+        s = pipeprobe.load(tmp_path / "on").spans.set_index("stage")
+        assert s.loc["busy", "cpu_s"] > 0.5 * s.loc["busy", "dur_s"]
+        assert s.loc["idle", "cpu_s"] < 0.2 * s.loc["idle", "dur_s"]
+        with pipeprobe.Probe(tmp_path / "off", report=False, sample_interval_s=0, cpu_time=False):
+            with stage("busy"):
+                busy(0.01)
+        assert pipeprobe.load(tmp_path / "off").spans["cpu_s"].isna().all()
+
+    def test_stage_is_free_and_silent_without_a_probe(self, tmp_path: Path) -> None:
+        """With no probe active, stage timers run the body and record nothing."""
+        with stage("decode", sample=1):
+            value = 5
+        assert 5 == value
+        assert 6 == _decode(3)
+
+
+class TestErrors:
+    def test_user_exception_passes_through_unchanged(self, tmp_path: Path) -> None:
+        """An exception in a stage reaches the caller with its type, value and frames, and is flagged."""
+
+        def inner() -> None:
+            raise KeyError("missing part photo")
+
+        @stage("decode")
+        def decode(sample_id: int) -> None:
+            inner()
+
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            with pytest.raises(KeyError) as block_info:
+                with stage("augment", sample=1):
+                    inner()
+            with pytest.raises(KeyError) as deco_info:
+                decode(2)
+        for info in (block_info, deco_info):
+            assert "'missing part photo'" == str(info.value)
+            assert "inner" == traceback.extract_tb(info.value.__traceback__)[-1].name
+        spans = pipeprobe.load(tmp_path / "r").spans.set_index("stage")
+        assert bool(spans.loc["augment", "error"]) and bool(spans.loc["decode", "error"])
+
+    @pytest.mark.parametrize("name", [3, None, "", "step", "wait", b"decode"])
+    def test_bad_stage_name_is_a_value_error_at_once(self, tmp_path: Path, name: object) -> None:
+        """A non-string, empty or reserved stage name raises ValueError immediately."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            with pytest.raises(ValueError):
+                stage(name)  # type: ignore[arg-type]
+
+    def test_bad_ids_are_value_errors(self, tmp_path: Path) -> None:
+        """A sample or batch id that is not an int raises ValueError."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            with pytest.raises(ValueError):
+                stage("decode", sample="7")  # type: ignore[arg-type]
+            with pytest.raises(ValueError):
+                stage("decode", batch=1.5)  # type: ignore[arg-type]
+
+    def test_out_dir_that_is_a_file_is_rejected(self, tmp_path: Path) -> None:
+        """Giving a file as out_dir raises ValueError before anything runs."""
+        target = tmp_path / "file.txt"
+        target.write_text("not a folder")
+        with pytest.raises(ValueError, match="is a file"):
+            pipeprobe.Probe(target)
+
+    def test_folder_with_a_run_is_not_overwritten(self, tmp_path: Path) -> None:
+        """A folder that already holds a run is refused, so nothing recorded is lost."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            pass
+        with pytest.raises(ValueError, match="already holds"):
+            pipeprobe.Probe(tmp_path / "r")
+
+    def test_two_probes_at_once_are_refused(self, tmp_path: Path) -> None:
+        """A second probe in the same process raises ProbeStateError; the first keeps recording."""
+        with pipeprobe.Probe(tmp_path / "a", report=False, sample_interval_s=0):
+            with pytest.raises(ProbeStateError):
+                pipeprobe.Probe(tmp_path / "b")
+            with stage("decode", sample=1):
+                pass
+        assert 1 == len(_user_spans(pipeprobe.load(tmp_path / "a"), "decode"))
+
+
+def _batches(n: int, size: int):
+    for b in range(n):
+        ids = list(range(b * size, (b + 1) * size))
+        for sid in ids:
+            _decode(sid)
+        yield ids
+
+
+class TestWatch:
+    def test_in_process_generator_links_spans_to_batches_and_steps(self, tmp_path: Path) -> None:
+        """Samples made by a plain generator belong to the batch it yields, and each batch to its step."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+            for batch in probe.watch(_batches(4, 3)):
+                with probe.step():
+                    time.sleep(0.002)
+        run = pipeprobe.load(tmp_path / "r")
+        decode = _user_spans(run, "decode")
+        assert (decode["sample_id"] // 3).tolist() == decode["batch_id"].tolist()
+        steps = _user_spans(run, "step")
+        assert [0, 1, 2, 3] == steps["batch_id"].tolist()
+        assert [0, 1, 2, 3] == run.batches["batch_id"].tolist()
+
+    def test_wait_is_the_time_the_consumer_waited(self, tmp_path: Path) -> None:
+        """The recorded stall of a batch covers the loader's production time for it."""
+
+        def slow():
+            for b in range(3):
+                time.sleep(0.02)
+                yield b
+
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+            for _ in probe.watch(slow()):
+                pass
+        waits = pipeprobe.load(tmp_path / "r").batches["wait_s"]
+        assert (waits >= 0.02).all() and (waits < 0.5).all()
+
+    def test_batch_ids_run_across_epochs(self, tmp_path: Path) -> None:
+        """Every iteration of a watched loader is an epoch; batch ids keep counting."""
+        data = [[0, 1], [2, 3], [4, 5]]
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+            watched = probe.watch(data, samples=lambda b: b)
+            for _ in range(2):
+                for batch in watched:
+                    with probe.step():
+                        pass
+        b = pipeprobe.load(tmp_path / "r").batches
+        assert list(range(6)) == b["batch_id"].tolist()
+        assert [0, 0, 0, 1, 1, 1] == b["epoch"].tolist()
+        assert [2] * 6 == b["samples"].tolist()
+
+    def test_explicit_epoch_and_batch(self, tmp_path: Path) -> None:
+        """An explicit epoch and an explicit batch on a stage use the consumer numbering."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+            for _ in probe.watch([1, 2], epoch=5):
+                pass
+            with stage("log", batch=1):
+                pass
+        run = pipeprobe.load(tmp_path / "r")
+        assert [5, 5] == run.batches["epoch"].tolist()
+        log = _user_spans(run, "log")
+        assert (1, 5) == (int(log["batch_id"].iloc[0]), int(log["epoch"].iloc[0]))
+
+    def test_loader_exception_passes_through(self, tmp_path: Path) -> None:
+        """An exception raised by the loader reaches the training loop unchanged."""
+
+        def broken():
+            yield 1
+            raise OSError("camera disconnected")
+
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+            with pytest.raises(OSError, match="camera disconnected"):
+                for _ in probe.watch(broken()):
+                    pass
+        assert 1 == len(pipeprobe.load(tmp_path / "r").batches)
+
+    def test_consumer_side_stage_belongs_to_current_batch(self, tmp_path: Path) -> None:
+        """A stage in the training loop after delivery (e.g. a host-to-device copy) gets that batch."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+            for _ in probe.watch(["a", "b"]):
+                with stage("to_device"):
+                    pass
+        assert [0, 1] == _user_spans(pipeprobe.load(tmp_path / "r"), "to_device")["batch_id"].tolist()
+
+
+def _run_pool(method: str, out: Path) -> pipeprobe.Run:
+    ctx = mp.get_context(method)
+    chunks = [list(range(b * 4, b * 4 + 4)) for b in range(5)]
+    with pipeprobe.Probe(out, report=False, sample_interval_s=0) as probe:
+        with ctx.Pool(2) as pool:
+            for _ in range(2):
+                for batch in probe.watch(pool.imap(_pool_batch, chunks), samples=lambda b: [x // 2 for x in b]):
+                    with probe.step():
+                        time.sleep(0.002)
+            pool.close()
+            pool.join()
+    return pipeprobe.load(out)
+
+
+class TestProcesses:
+    @pytest.mark.parametrize("method", ["fork", "spawn"])
+    def test_pool_worker_spans_link_to_batch_and_step(self, tmp_path: Path, method: str) -> None:
+        """Spans recorded in pool workers are each linked to the batch, epoch and step that consumed them."""
+        run = _run_pool(method, tmp_path / method)
+        worker = run.spans[run.spans["role"] == "worker"]
+        assert 2 * 5 * 4 * 2 == len(worker)  # epochs x batches x samples x (decode, augment)
+        assert 2 == worker["pid"].nunique() or 1 == worker["pid"].nunique()
+        assert (worker["sample_id"] // 4 + 5 * worker["epoch"]).tolist() == worker["batch_id"].tolist()
+        steps = run.spans[run.spans["stage"] == "step"].set_index("batch_id")
+        linked = worker.join(steps[["start_s"]].rename(columns={"start_s": "step_start_s"}), on="batch_id")
+        assert (linked["end_s"] <= linked["step_start_s"]).all()
+
+    def test_threads_record_their_own_lanes(self, tmp_path: Path) -> None:
+        """Spans from several threads keep their own thread ids and are all kept."""
+
+        def work(base: int) -> None:
+            for i in range(50):
+                with stage("decode", sample=base + i):
+                    pass
+
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            threads = [threading.Thread(target=work, args=(k * 100,)) for k in range(3)]
+            for t in threads:
+                t.start()
+            for t in threads:
+                t.join()
+        decode = _user_spans(pipeprobe.load(tmp_path / "r"), "decode")
+        assert 150 == len(decode)
+        assert 3 == decode["tid"].nunique()
+        assert sorted(k * 100 + i for k in range(3) for i in range(50)) == sorted(decode["sample_id"])
+
+    def test_full_buffers_spill_without_losing_spans(self, tmp_path: Path) -> None:
+        """With a tiny buffer, every span still reaches the file exactly once."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0, buffer_spans=16):
+            for i in range(1000):
+                with stage("decode", sample=i):
+                    pass
+        decode = _user_spans(pipeprobe.load(tmp_path / "r"), "decode")
+        assert list(range(1000)) == sorted(decode["sample_id"])
+
+    def test_resource_sampler_sees_main_process_and_cores(self, tmp_path: Path) -> None:
+        """The sampler records CPU and RSS of the main process and per-core CPU."""
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0.05):
+            time.sleep(0.3)
+        res = pipeprobe.load(tmp_path / "r").resources
+        main = res[res["core"] == -1]
+        assert (main["rss_bytes"] > 0).all() and len(main) >= 3
+        assert set(range(len(res[res["pid"] == 0]["core"].unique()))) == set(res[res["pid"] == 0]["core"])
+
+    def test_probe_survives_pickling_into_a_spawned_worker(self, tmp_path: Path) -> None:
+        """A probe passed to a spawned worker records there into the same run."""
+        ctx = mp.get_context("spawn")
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+            p = ctx.Process(target=_probe_child, args=(probe,))
+            p.start()
+            p.join(60)
+        spans = _user_spans(pipeprobe.load(tmp_path / "r"), "child")
+        assert [42] == spans["sample_id"].tolist()
+        assert ["worker"] == spans["role"].astype(str).tolist()
+
+
+def _probe_child(probe) -> None:
+    with probe.stage("child", sample=42):
+        pass
+
+
+class TestTorchDataLoader:
+    @pytest.mark.parametrize("workers", [0, 2])
+    def test_dataloader_batches_know_their_samples(self, tmp_path: Path, workers: int) -> None:
+        """Wrapping a torch DataLoader records which sample ids formed each batch and links dataset spans."""
+        torch = pytest.importorskip("torch")
+        from torch.utils.data import DataLoader, Dataset
+
+        class Parts(Dataset):
+            def __len__(self) -> int:
+                return 24
+
+            @stage("decode")
+            def __getitem__(self, index: int):
+                return torch.tensor([index])
+
+        loader = DataLoader(Parts(), batch_size=4, shuffle=True, num_workers=workers)
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+            delivered = []
+            for _ in range(2):
+                for batch in probe.watch(loader):
+                    delivered.append(sorted(batch.flatten().tolist()))
+                    with probe.step():
+                        pass
+        run = pipeprobe.load(tmp_path / "r")
+        recorded = run.samples.groupby("batch_id")["sample_id"].apply(sorted).tolist()
+        assert delivered == recorded
+        decode = _user_spans(run, "decode")
+        assert 48 == len(decode)
+        membership = set(zip(run.samples["batch_id"], run.samples["sample_id"]))
+        assert all((b, s) in membership for b, s in zip(decode["batch_id"], decode["sample_id"]))
+
+
+def test_recorded_file_is_48_bytes_per_span(tmp_path: Path) -> None:
+    """A span costs 48 bytes on disk (the issue's limit), plus fixed headers."""
+    with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+        for i in range(500):
+            with stage("decode", sample=i):
+                pass
+    (bin_file,) = (tmp_path / "r").glob("spans-*.bin")
+    assert 16 + 48 * 500 == bin_file.stat().st_size
+    assert np.dtype(pipeprobe.tracefile.SPAN_RECORD).itemsize == 48
+    assert sys.byteorder in ("little", "big")
