@@ -113,7 +113,7 @@ def _draw_bracket(draw: ImageDraw.ImageDraw, place: dict, rng: np.random.Generat
                (0.42, 0.42 - arm), (0.42, 0.42), (-0.42, 0.42)]
     draw.polygon(_transform(outline, **place), fill=255)
     for hole in ((-0.42 + arm / 2, -0.2), (0.2, 0.42 - arm / 2)):
-        (hx, hy), = _transform([hole], **place)
+        [(hx, hy)] = _transform([hole], **place)
         draw.ellipse(_circle((hx, hy), 0.3 * arm * place["scale"]), fill=0)
 
 
@@ -126,7 +126,7 @@ def _draw_hinge(draw: ImageDraw.ImageDraw, place: dict, rng: np.random.Generator
         leaf = [(x0, -0.4), (x1, -0.4), (x1, 0.4), (x0, 0.4)]
         draw.polygon(_transform(leaf, **place), fill=255)
         for hy in (-0.22, 0.0, 0.22):
-            (hx, hy2), = _transform([(side * 0.26, hy)], **place)
+            [(hx, hy2)] = _transform([(side * 0.26, hy)], **place)
             draw.ellipse(_circle((hx, hy2), 0.04 * place["scale"]), fill=0)
     height = 0.8 / knuckles
     for k in range(knuckles):

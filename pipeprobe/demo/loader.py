@@ -56,8 +56,9 @@ class PartsLoader:
 
     With ``workers=0`` the batches are loaded in the calling thread, when
     they are asked for, and ``prefetch`` is unused.  Otherwise a process pool
-    is started on the first ``iter()`` and kept until :meth:`close`; use the
-    loader as a context manager so the pool is shut down.
+    is started on the first ``iter()`` (so workers started inside an open
+    probe record into it) and kept until :meth:`close`; use the loader as a
+    context manager so the pool is shut down.
 
     Parameters
     ----------

@@ -344,7 +344,7 @@ def load_batch(task: BatchTask) -> Batch:
     """
     samples = [
         load_sample(sample_id, path, task.image_size, task.augment, task.seed, task.epoch)
-        for sample_id, path in zip(task.sample_ids, task.paths)
+        for sample_id, path in zip(task.sample_ids, task.paths, strict=True)
     ]
     with pipeprobe.stage("collate", batch=task.batch_id):
         images = collate(samples)
