@@ -72,12 +72,12 @@ def build_parser() -> argparse.ArgumentParser:
 
 def _cmd_demo(args: argparse.Namespace) -> int:
     from .demo import run_demo
+    from .demo.pipeline import AUGMENTS
 
     augment = tuple(a.strip() for a in args.augment.split(",") if a.strip())
-    known = {"crop", "flip", "rotate", "jitter"}
-    unknown = sorted(set(augment) - known)
+    unknown = sorted(set(augment) - set(AUGMENTS))
     if unknown:
-        raise _UsageError(f"unknown augmentation {', '.join(unknown)}; choose from {', '.join(sorted(known))}")
+        raise _UsageError(f"unknown augmentation {', '.join(unknown)}; choose from {', '.join(AUGMENTS)}")
     result = run_demo(
         out=args.out,
         batches=args.batches,
