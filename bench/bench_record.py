@@ -50,7 +50,7 @@ def loop_clock(n: int) -> None:
 
 
 def loop_bare_cm(n: int) -> None:
-    for i in range(n):
+    for _ in range(n):
         with _Bare("decode"):
             pass
 

@@ -188,7 +188,7 @@ class TestWatch:
     def test_in_process_generator_links_spans_to_batches_and_steps(self, tmp_path: Path) -> None:
         """Samples made by a plain generator belong to the batch it yields, and each batch to its step."""
         with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
-            for batch in probe.watch(_batches(4, 3)):
+            for _batch in probe.watch(_batches(4, 3)):
                 with probe.step():
                     time.sleep(0.002)
         run = pipeprobe.load(tmp_path / "r")
@@ -218,7 +218,7 @@ class TestWatch:
         with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
             watched = probe.watch(data, samples=lambda b: b)
             for _ in range(2):
-                for batch in watched:
+                for _batch in watched:
                     with probe.step():
                         pass
         b = pipeprobe.load(tmp_path / "r").batches
@@ -266,7 +266,7 @@ def _run_pool(method: str, out: Path) -> pipeprobe.Run:
     with pipeprobe.Probe(out, report=False, sample_interval_s=0) as probe:
         with ctx.Pool(2) as pool:
             for _ in range(2):
-                for batch in probe.watch(pool.imap(_pool_batch, chunks), samples=lambda b: [x // 2 for x in b]):
+                for _batch in probe.watch(pool.imap(_pool_batch, chunks), samples=lambda b: [x // 2 for x in b]):
                     with probe.step():
                         time.sleep(0.002)
             pool.close()
