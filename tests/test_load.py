@@ -6,13 +6,12 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from _synth import write_run
 
 import pipeprobe
 from pipeprobe import tracefile as tf
 from pipeprobe.errors import RunNotFoundError, TraceFormatError
 from pipeprobe.load import BATCH_COLUMNS, SPAN_COLUMNS
-
-from _synth import write_run
 
 
 def _two_epoch_worker_run(root: Path) -> Path:
