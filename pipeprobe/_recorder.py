@@ -13,6 +13,7 @@ This module never imports the analysis side.
 from __future__ import annotations
 
 import atexit
+import errno
 import json
 import os
 import signal
@@ -20,9 +21,8 @@ import socket
 import sys
 import threading
 import warnings
-from array import array
 from pathlib import Path
-from time import monotonic_ns, thread_time_ns, time_ns
+from time import monotonic_ns, sleep, time_ns
 from typing import Any
 
 import numpy as np
@@ -94,6 +94,7 @@ class _Recorder:
         self.epoch = -1
         self.next_batch = 0
         self.failed = False
+        self.run_id = ""
         self._reset_process_state()
 
     # -- set-up ---------------------------------------------------------
@@ -118,6 +119,7 @@ class _Recorder:
         rank: int,
         world_size: int,
         stages: list[str] | None = None,
+        run_id: str = "",
     ) -> None:
         self._reset_process_state()
         self.run_dir = run_dir
@@ -127,8 +129,13 @@ class _Recorder:
         self.buffer_spans = buffer_spans
         self.rank = rank
         self.world_size = world_size
+        self.run_id = run_id
         self.pid = os.getpid()
         self.failed = False
+        # This process is set up now: after a failure, a stage() call must not
+        # join the run again from the environment (a second warning, a
+        # main process recording as a worker).
+        self.checked_env = True
         self.stage_names.clear()
         self.stage_ids.clear()
         self.user_codes.clear()
@@ -180,8 +187,28 @@ class _Recorder:
 
     def _flush_loop(self) -> None:
         stop = self.stop_event
-        while not stop.wait(self.flush_interval_s):
-            self.flush()
+        if self.role != "worker" or self.run_dir is None:
+            while not stop.wait(self.flush_interval_s):
+                self.flush()
+            return
+        # A worker can outlive the probe (persistent loader workers, an open
+        # pool): between flushes, look for the parent's close request (one
+        # stat per tick); answer it by flushing, acknowledging and stopping.
+        request = self.run_dir / close_request_name(self.rank)
+        tick_ns = int(min(CLOSE_POLL_S, self.flush_interval_s) * 1e9)
+        period_ns = int(self.flush_interval_s * 1e9)
+        due = monotonic_ns() + period_ns
+        while not stop.wait(tick_ns / 1e9):
+            if os.path.exists(request):
+                self.stop()
+                _touch(self.run_dir / close_ack_name(self.rank, self.pid))
+                return
+            now = monotonic_ns()
+            # Flush early once to write the process header: that registers
+            # this worker with the parent's close.
+            if now >= due or (self.header_stages_written < 0 and any(len(b) for b in list(self.buffers))):
+                self.flush()
+                due = now + period_ns
 
     # -- writing -----------------------------------------------------------
     def record(self, start: int, end: int, cpu: int, sample: int, batch: int, code: int) -> None:
@@ -218,19 +245,30 @@ class _Recorder:
         return out
 
     def flush(self, lock_timeout_s: float = -1) -> None:
-        """Write every thread's finished records and the extra writers' data."""
+        """Write every thread's finished records and the extra writers' data.
+
+        ``lock_timeout_s >= 0`` is for signal handlers: the thread a signal
+        interrupted may hold a lock, so give up instead of waiting forever.
+        """
         if not self.on:
             return
-        chunks = []
-        for buf in list(self.buffers):
-            if not buf.lock.acquire(timeout=lock_timeout_s):
-                continue
-            try:
-                if len(buf):
-                    chunks.append(self._take(buf))
-            finally:
-                buf.lock.release()
-        self._write(chunks)
+        # Take the file lock before any records, so records are never taken
+        # out of a buffer and then dropped because the file is busy.
+        if not self.io_lock.acquire(timeout=lock_timeout_s):
+            return
+        try:
+            chunks = []
+            for buf in list(self.buffers):
+                if not buf.lock.acquire(timeout=lock_timeout_s):
+                    continue
+                try:
+                    if len(buf):
+                        chunks.append(self._take(buf))
+                finally:
+                    buf.lock.release()
+            self._write_locked(chunks)
+        finally:
+            self.io_lock.release()
         for writer in list(self.extra_writers):
             try:
                 writer()
@@ -238,20 +276,27 @@ class _Recorder:
                 self.fail(exc)
 
     def _write(self, chunks: list[np.ndarray]) -> None:
+        with self.io_lock:
+            self._write_locked(chunks)
+
+    def _write_locked(self, chunks: list[np.ndarray]) -> None:
         if not self.on:
             return
         try:
-            with self.io_lock:
-                if self.span_file is None:
-                    if not chunks and self.header_stages_written >= 0:
-                        return
-                    self._open_files()
-                if len(self.stage_names) != self.header_stages_written:
-                    self._write_process_header()
-                for chunk in chunks:
-                    if len(chunk):
-                        self.span_file.write(chunk.tobytes())
-                self.span_file.flush()
+            if self.span_file is None:
+                if not chunks and self.header_stages_written >= 0:
+                    return
+                self._open_files()
+            if len(self.stage_names) != self.header_stages_written:
+                self._write_process_header()
+            for chunk in chunks:
+                if len(chunk):
+                    data = chunk.tobytes()
+                    written = self.span_file.write(data)
+                    if written != len(data):  # a full disk or file-size limit writes part
+                        raise OSError(errno.ENOSPC, f"short write, {written} of {len(data)} bytes (disk full?)")
+            if os.fstat(self.span_file.fileno()).st_nlink == 0:
+                raise FileNotFoundError(errno.ENOENT, f"{self.run_dir} was removed while recording")
         except Exception as exc:  # noqa: BLE001 - never take training down
             self.fail(exc)
 
@@ -280,6 +325,7 @@ class _Recorder:
             "anchor_wall_ns": self.anchor_wall_ns,
             "cpu_time": self.cpu_time,
             "stages": names,
+            "run_id": self.run_id,
         }
         tf.write_json_atomic(self.run_dir / (self.file_stem() + ".json"), header)
         self.header_stages_written = len(names)
@@ -297,21 +343,25 @@ class _Recorder:
                 stacklevel=2,
             )
 
-    def stop(self) -> None:
+    def stop(self, lock_timeout_s: float = -1) -> None:
         """Flush everything and stop the flusher; recording is off afterwards."""
         if self.flusher is not None:
             self.stop_event.set()
             if self.flusher is not threading.current_thread():
-                self.flusher.join(timeout=5)
-        self.flush()
+                self.flusher.join(timeout=5 if lock_timeout_s < 0 else lock_timeout_s)
+        self.flush(lock_timeout_s)
         self.on = False
-        with self.io_lock:
+        if not self.io_lock.acquire(timeout=lock_timeout_s):
+            return
+        try:
             if self.span_file is not None:
                 try:
                     self.span_file.close()
                 except OSError:
                     pass
                 self.span_file = None
+        finally:
+            self.io_lock.release()
 
     # -- process hooks -----------------------------------------------------
     def after_fork_in_child(self) -> None:
@@ -333,9 +383,98 @@ class _Recorder:
             self.role = "worker"
             self.on = True
             _register_worker_exit()
+            # The forking thread's buffer came along, so buffer() would never
+            # start a flusher here: start it now.
+            self._start_flusher()
 
 
 RECORDER = _Recorder()
+
+
+# -- closing worker processes that outlive the probe ---------------------------
+CLOSE_POLL_S = 0.05
+
+
+def close_request_name(rank: int) -> str:
+    return f"close-r{rank}.request"
+
+
+def close_ack_name(rank: int, pid: int) -> str:
+    return f"close-r{rank}-p{pid}.done"
+
+
+def _touch(path: Path) -> None:
+    try:
+        with open(path, "ab"):
+            pass
+    except OSError:
+        pass
+
+
+def _live_worker_pids(run_dir: Path, rank: int, me: int) -> tuple[set[int], set[int]]:
+    """``(registered, unregistered)`` live child processes that may hold records of this rank."""
+    import multiprocessing
+
+    import psutil
+
+    prefix = f"spans-r{rank}-p"
+    registered = set()
+    for name in os.listdir(run_dir):
+        if name.startswith(prefix) and name.endswith(".json") and name[len(prefix):-5].isdigit():
+            pid = int(name[len(prefix):-5])
+            if pid != me:
+                registered.add(pid)
+    children = {p.pid for p in multiprocessing.active_children() if p.pid is not None}
+
+    def alive(pid: int) -> bool:
+        try:
+            proc = psutil.Process(pid)
+            return proc.status() != psutil.STATUS_ZOMBIE and (pid in children or proc.ppid() == me)
+        except (psutil.Error, OSError):
+            return False
+
+    live = {pid for pid in registered | children if alive(pid)}
+    return live & registered, live - registered
+
+
+def close_workers(run_dir: Path, rank: int, timeout_s: float = 3.0) -> list[int]:
+    """Ask this rank's live worker processes to flush and stop; wait for their answers.
+
+    Worker processes that outlive the probe (persistent loader workers, a
+    pool still open) otherwise write their last records only at their next
+    flush or on exit. Returns the pids that did not answer within
+    ``timeout_s``.
+    """
+    me = os.getpid()
+    registered, unregistered = _live_worker_pids(run_dir, rank, me)
+    if not registered and not unregistered:
+        return []
+    _touch(run_dir / close_request_name(rank))
+
+    def answered(pid: int) -> bool:
+        return (run_dir / close_ack_name(rank, pid)).exists()
+
+    start = monotonic_ns()
+    deadline = start + int(timeout_s * 1e9)
+    # A child that recorded its first spans in the last tick registers itself
+    # (writes its process header) within one more tick.
+    settle = start + int(3 * CLOSE_POLL_S * 1e9)
+    while True:
+        pending = {p for p in registered if not answered(p)}
+        now = monotonic_ns()
+        if (not pending and (not unregistered or now >= settle)) or now >= deadline:
+            break
+        sleep(0.01)
+        # Re-scan: children that registered meanwhile join, dead ones (they
+        # flushed on exit, or were killed) leave.
+        live, unregistered = _live_worker_pids(run_dir, rank, me)
+        registered = {p for p in registered | live if p in live or answered(p)}
+    for pid in registered:
+        try:
+            os.unlink(run_dir / close_ack_name(rank, pid))
+        except OSError:
+            pass
+    return sorted(pending)
 
 
 def attach_from_env() -> bool:
@@ -355,6 +494,7 @@ def attach_from_env() -> bool:
             buffer_spans=int(options.get("buffer_spans", 8192)),
             rank=int(options.get("rank", 0)),
             world_size=int(options.get("world_size", 1)),
+            run_id=str(options.get("run_id", "")),
             stages=[str(s) for s in options.get("stages", [])],
         )
         _register_worker_exit()
@@ -411,7 +551,7 @@ def _on_signal(signum: int, frame: Any) -> None:
     elif previous == signal.SIG_IGN:
         return
     else:
-        rec.stop()
+        rec.stop(lock_timeout_s=0.2)
         signal.signal(signum, signal.SIG_DFL)
         os.kill(os.getpid(), signum)
 

@@ -19,7 +19,8 @@ EXIT_BAD_INPUT = 2
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> None:  # one line, exit 2
-        self.exit(EXIT_BAD_INPUT, f"pipeprobe: error: {message} (see 'pipeprobe {self._sub} --help')\n")
+        where = f"pipeprobe {self._sub}" if self._sub else "pipeprobe"
+        self.exit(EXIT_BAD_INPUT, f"pipeprobe: error: {message} (see '{where} --help')\n")
 
     _sub = ""
 
@@ -41,6 +42,16 @@ def _non_negative_int(text: str) -> int:
         raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
     if value < 0:
         raise argparse.ArgumentTypeError(f"expected a number >= 0, got {value}")
+    return value
+
+
+def _non_negative_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not value >= 0 or value == float("inf"):
+        raise argparse.ArgumentTypeError(f"expected a finite number >= 0, got {text!r}")
     return value
 
 
@@ -67,6 +78,27 @@ def build_parser() -> argparse.ArgumentParser:
     report = sub.add_parser("report", help="print the stall report of a recorded run")
     report._sub = "report"
     report.add_argument("run_dir", metavar="RUN_DIR")
+    report.add_argument("--json", action="store_true", help="print one JSON object (schema: pipeprobe.report)")
+    report.add_argument("--html", metavar="FILE",
+                        help="also write the report with its pictures as one self-contained HTML file")
+
+    compare = sub.add_parser("compare", help="show what changed from RUN_A to RUN_B; gate on limits (exit 1)")
+    compare._sub = "compare"
+    compare.add_argument("run_a", metavar="RUN_A", help="baseline run folder")
+    compare.add_argument("run_b", metavar="RUN_B", help="new run folder")
+    compare.add_argument("--max-stall-increase", type=_non_negative_float, metavar="F",
+                         help="fail when the stall fraction rises more than F (0.05 = 5 points)")
+    compare.add_argument("--max-wall-increase", type=_non_negative_float, metavar="F",
+                         help="fail when wall time per batch rises more than F (0.1 = 10 %%)")
+    compare.add_argument("--max-stage-increase", type=_non_negative_float, metavar="F",
+                         help="fail when any stage's mean time rises more than F (0.1 = 10 %%)")
+    compare.add_argument("--json", action="store_true", help="print one JSON object")
+
+    from .whatif import add_arguments as _whatif_arguments
+
+    whatif = sub.add_parser("whatif", help="predict the wall time of RUN_DIR with faster stages, more workers...")
+    whatif._sub = "whatif"
+    _whatif_arguments(whatif)
     return parser
 
 
@@ -96,8 +128,39 @@ def _cmd_demo(args: argparse.Namespace) -> int:
 def _cmd_report(args: argparse.Namespace) -> int:
     from .report import print_close_report
 
-    print_close_report(args.run_dir)
+    if args.html:
+        from .html import write_report
+
+        path = write_report(args.run_dir, args.html)
+        print(f"pipeprobe: wrote {path}", file=sys.stderr)
+    print_close_report(args.run_dir, as_json=args.json)
     return EXIT_OK
+
+
+def _cmd_compare(args: argparse.Namespace) -> int:
+    import json
+
+    from .analysis import analyze
+    from .compare import compare, comparison_dict, format_comparison
+
+    result = compare(
+        analyze(args.run_a),
+        analyze(args.run_b),
+        max_stall_increase=args.max_stall_increase,
+        max_wall_increase=args.max_wall_increase,
+        max_stage_increase=args.max_stage_increase,
+    )
+    if args.json:
+        print(json.dumps(comparison_dict(result), allow_nan=False))
+    else:
+        print(format_comparison(result))
+    return EXIT_GATE if result.regressed else EXIT_OK
+
+
+def _cmd_whatif(args: argparse.Namespace) -> int:
+    from .whatif import run_command
+
+    return run_command(args)
 
 
 class _UsageError(Exception):
@@ -108,7 +171,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; return the exit code."""
     parser = build_parser()
     args = parser.parse_args(argv)
-    handlers = {"demo": _cmd_demo, "report": _cmd_report}
+    handlers = {"demo": _cmd_demo, "report": _cmd_report, "compare": _cmd_compare, "whatif": _cmd_whatif}
     try:
         return handlers[args.command](args)
     except (PipeprobeError, _UsageError, FileNotFoundError, NotADirectoryError, PermissionError) as exc:

@@ -11,24 +11,33 @@ right one).
 
 from __future__ import annotations
 
+import hashlib
 import os
 import re
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Iterable
 
 import numpy as np
 import pandas as pd
 
 from . import tracefile as tf
+from ._clocksync import check_ranks, check_step_alignment, plan_alignment
 from .errors import RunNotFoundError, TraceFormatError
 
 __all__ = ["Run", "load", "SPAN_COLUMNS", "BATCH_COLUMNS"]
 
-_SPAN_FILE = re.compile(r"^spans-r(\d{1,6})-p(\d{1,10})\.bin$")
-_RUN_HEADER = re.compile(r"^run-r(\d{1,6})\.json$")
-_RES_FILE = re.compile(r"^res-r(\d{1,6})\.bin$")
+# Names pipeprobe writes: no leading zeros, so one rank or pid has one name.
+_SPAN_FILE = re.compile(r"^spans-r(0|[1-9]\d{0,5})-p([1-9]\d{0,9})\.bin$")
+_RUN_HEADER = re.compile(r"^run-r(0|[1-9]\d{0,5})\.json$")
+_RES_FILE = re.compile(r"^res-r(0|[1-9]\d{0,5})\.bin$")
+_PROC_HEADER = re.compile(r"^spans-r(0|[1-9]\d{0,5})-p([1-9]\d{0,9})\.json$")
+_LOOKS_OURS = re.compile(r"^(spans|run|res)-r\d")
+_NS_MAX = 2**62  # clock readings and anchors are int64 nanoseconds
+_MAX_STAGES = 65536  # stage ids are uint16
+_LEAD_S = 60.0  # spans may start this long before the run start (wall-anchor skew)
+_LAG_S = 3600.0  # ... or end this long after the run's files were last written
 
 #: Columns of :attr:`Run.spans`, one row per timed span.
 SPAN_COLUMNS = {
@@ -130,6 +139,57 @@ def _problem(problems: list[str], message: str) -> None:
     warnings.warn(message, stacklevel=3)
 
 
+def _short(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+def _int_field(path: Path, h: dict[str, Any], key: str, lo: int, hi: int, required: bool = False) -> int | None:
+    """Return header field ``key`` after checking it is a whole number in ``[lo, hi]``."""
+    value = h.get(key)
+    if value is None:
+        if required:
+            raise TraceFormatError(f"{path}: header field {key!r} is missing; the header is damaged, re-record the run")
+        return None
+    if isinstance(value, bool) or not isinstance(value, int) or not lo <= value <= hi:
+        raise TraceFormatError(
+            f"{path}: header field {key!r} is {_short(value)}, expected a whole number from {lo} to {hi}; "
+            "the header is damaged, re-record the run"
+        )
+    return value
+
+
+def _check_run_header(path: Path, h: dict[str, Any]) -> None:
+    for key in ("anchor_mono_ns", "anchor_wall_ns"):
+        _int_field(path, h, key, 0, _NS_MAX, required=True)
+    _int_field(path, h, "end_mono_ns", 0, _NS_MAX)
+    _int_field(path, h, "cores", 1, 1 << 20)
+    _int_field(path, h, "batches", 0, 2**31 - 1)
+    for key in ("sample_interval_s", "flush_interval_s"):
+        value = h.get(key)
+        if value is not None and (
+            isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 <= value <= 86400
+        ):
+            raise TraceFormatError(
+                f"{path}: header field {key!r} is {_short(value)}, expected seconds from 0 to 86400; "
+                "the header is damaged, re-record the run"
+            )
+
+
+def _check_process_header(path: Path, h: dict[str, Any]) -> list[str]:
+    """Check a process header; return its stage table."""
+    for key in ("anchor_mono_ns", "anchor_wall_ns"):
+        _int_field(path, h, key, 0, _NS_MAX)
+    _int_field(path, h, "ppid", -1, 2**32)
+    stages = h.get("stages", [])
+    if not isinstance(stages, list) or len(stages) > _MAX_STAGES or not all(isinstance(s, str) for s in stages):
+        raise TraceFormatError(
+            f"{path}: header field 'stages' must be a list of at most {_MAX_STAGES} names, "
+            f"got {_short(stages)}; the header is damaged"
+        )
+    return stages
+
+
 def _empty_spans() -> pd.DataFrame:
     return pd.DataFrame(
         {
@@ -150,13 +210,16 @@ def _empty_spans() -> pd.DataFrame:
     )
 
 
-def load(run_dir: str | os.PathLike) -> Run:
+def load(run_dir: str | os.PathLike, *, ranks: Iterable[int] | None = None) -> Run:
     """Load a run directory written by :class:`pipeprobe.Probe`.
 
     Parameters
     ----------
     run_dir : path-like
         The folder given to ``Probe(out_dir)``.
+    ranks : iterable of int, optional
+        Read the span files of these ranks only (all by default). The time
+        axis is still that of the whole run.
 
     Returns
     -------
@@ -183,6 +246,8 @@ def load(run_dir: str | os.PathLike) -> Run:
     2
     """
     root = Path(run_dir)
+    if root.exists() and not root.is_dir():
+        raise RunNotFoundError(f"{str(root)!r} is a file, not a run directory; pass the folder given to Probe(out_dir)")
     if not root.is_dir():
         raise RunNotFoundError(f"run directory {str(root)!r} does not exist; pass the folder given to Probe(out_dir)")
     names = sorted(os.listdir(root))
@@ -190,12 +255,19 @@ def load(run_dir: str | os.PathLike) -> Run:
     for name in names:
         m = _RUN_HEADER.match(name)
         if m:
-            headers[int(m.group(1))] = tf.read_json(root / name)
+            h = tf.read_json(root / name)
+            _check_run_header(root / name, h)
+            headers[int(m.group(1))] = h
     if not headers:
         raise RunNotFoundError(
             f"{str(root)!r} holds no pipeprobe run (no run-r<rank>.json); pass a folder written by pipeprobe.Probe"
         )
     problems: list[str] = []
+    for name in names:
+        if _LOOKS_OURS.match(name) and not name.endswith(".tmp") and not (
+            _SPAN_FILE.match(name) or _RUN_HEADER.match(name) or _RES_FILE.match(name) or _PROC_HEADER.match(name)
+        ):
+            _problem(problems, f"{root / name}: not a file name pipeprobe writes; ignored it")
     for rank, h in sorted(headers.items()):
         if not h.get("closed"):
             _problem(
@@ -203,30 +275,42 @@ def load(run_dir: str | os.PathLike) -> Run:
                 f"{root / f'run-r{rank}.json'}: the run did not close cleanly (killed or still running); "
                 "up to one flush interval of spans may be missing",
             )
-    hosts = {str(h.get("host")) for h in headers.values()}
-    if len(hosts) <= 1:
-        clock = {"method": "shared-monotonic", "uncertainty_s": 0.0}
-    else:
-        clock = {"method": "wall-anchor", "uncertainty_s": float("nan")}
-        _problem(
-            problems,
-            f"{root}: ranks ran on {len(hosts)} hosts; their clocks were aligned by wall-clock anchors, "
-            "whose agreement is unknown (NTP-level, typically milliseconds)",
-        )
+    # Several ranks: one job? all there? how do their clocks line up?
+    for message in check_ranks(root, headers):
+        _problem(problems, message)
+    clock, offsets, notes = plan_alignment(root, headers)
+    for message in notes:
+        _problem(problems, message)
     first = headers[min(headers)]
+    wanted = None if ranks is None else {int(r) for r in ranks}
 
     def to_axis(mono_ns: np.ndarray, h: dict[str, Any]) -> np.ndarray:
         if clock["method"] == "shared-monotonic":
             return mono_ns
+        if clock["method"] == "measured-offsets":
+            r = h.get("rank")
+            return mono_ns - offsets.get(r if isinstance(r, int) else -1, 0)
         return mono_ns - int(h["anchor_mono_ns"]) + int(h["anchor_wall_ns"])
 
     starts = [int(to_axis(np.array([int(h["anchor_mono_ns"])]), h)[0]) for h in headers.values()]
     t0 = min(starts)
+    # No record can end after its file was last written: bound the time axis
+    # by the newest file time, so a flipped bit cannot make a 100-year span.
+    newest_wall_ns = max(os.stat(root / n).st_mtime_ns for n in names if _LOOKS_OURS.match(n))
+    lo_ns = -int(_LEAD_S * 1e9)
+    hi_ns = max(newest_wall_ns - int(h["anchor_wall_ns"]) + s - t0 for h, s in zip(headers.values(), starts, strict=True))
+    hi_ns += int(_LAG_S * 1e9)
+    end = first.get("end_mono_ns")
+    if end is not None and not lo_ns <= int(to_axis(np.array([end]), first)[0]) - t0 <= hi_ns:
+        _problem(problems, f"{root / f'run-r{min(headers)}.json'}: its end time is outside the run; ignored it")
+        first = {**first, "end_mono_ns": None}
 
     frames: list[pd.DataFrame] = []
     members: list[pd.DataFrame] = []
     procs: list[dict[str, Any]] = []
     seen_json = set()
+    seen_bodies: dict[bytes, str] = {}
+    mains: dict[int, list[str]] = {}
     for name in names:
         m = _SPAN_FILE.match(name)
         if not m:
@@ -235,23 +319,58 @@ def load(run_dir: str | os.PathLike) -> Run:
         bin_path = root / name
         json_path = bin_path.with_suffix(".json")
         seen_json.add(json_path.name)
+        if wanted is not None and rank not in wanted:
+            continue
+        if rank not in headers:
+            _problem(
+                problems,
+                f"{bin_path}: there is no run header run-r{rank}.json for its rank (a file of another run?); "
+                "skipped this process",
+            )
+            continue
         if not json_path.exists():
             _problem(problems, f"{bin_path}: its process header {json_path.name} is missing; skipped this process")
             continue
         try:
             ph = tf.read_json(json_path)
+            stages = _check_process_header(json_path, ph)
+            if clock["method"] != "shared-monotonic":
+                for key in ("anchor_mono_ns", "anchor_wall_ns"):
+                    _int_field(json_path, ph, key, 0, _NS_MAX, required=True)
             recs = tf.read_records(bin_path, tf.CONTENT_SPANS)
         except (TraceFormatError, OSError) as exc:
             _problem(problems, f"{exc}; skipped this process")
             continue
-        stages = [str(s) for s in ph.get("stages", [])]
-        bad = recs["stage"] >= len(stages)
+        run_id = headers[rank].get("run_id")
+        if ph.get("run_id") and run_id and ph.get("run_id") != run_id:
+            _problem(
+                problems,
+                f"{json_path}: belongs to run {_short(ph.get('run_id'))}, but run-r{rank}.json to run "
+                f"{_short(run_id)} (files of two runs mixed in one folder); skipped this process",
+            )
+            continue
+        if len(recs):
+            digest = hashlib.blake2b(recs.tobytes(), digest_size=16).digest()
+            if digest in seen_bodies:
+                _problem(problems, f"{bin_path}: same records as {seen_bodies[digest]} (a copied file); skipped it")
+                continue
+            seen_bodies[digest] = name
+        bad = (recs["stage"] >= len(stages)) | (recs["kind"] > tf.KIND_MEMBER)
         if bad.any():
-            _problem(problems, f"{bin_path}: {int(bad.sum())} records name unknown stages; dropped them")
+            _problem(problems, f"{bin_path}: {int(bad.sum())} records name unknown stages or kinds; dropped them")
             recs = recs[~bad]
         # Each process's own anchor pair maps its monotonic clock to the wall clock.
         start_ns = to_axis(recs["start_ns"], ph) - t0
         end_ns = to_axis(recs["end_ns"], ph) - t0
+        outside = (start_ns < lo_ns) | (end_ns > hi_ns)
+        if outside.any():
+            _problem(
+                problems,
+                f"{bin_path}: {int(outside.sum())} records have times outside the run "
+                "(before it started or after its files were last written); dropped them",
+            )
+            keep = ~outside
+            recs, start_ns, end_ns = recs[keep], start_ns[keep], end_ns[keep]
         reversed_ = end_ns < start_ns
         if reversed_.any():
             _problem(problems, f"{bin_path}: {int(reversed_.sum())} spans end before they start; dropped them")
@@ -296,10 +415,12 @@ def load(run_dir: str | os.PathLike) -> Run:
                 }
             )
         )
+        if ph.get("role") == "main":
+            mains.setdefault(rank, []).append(name)
         procs.append(
             {
                 "pid": pid,
-                "ppid": int(ph.get("ppid", -1)),
+                "ppid": -1 if ph.get("ppid") is None else int(ph["ppid"]),
                 "rank": rank,
                 "role": str(ph.get("role", "worker")),
                 "host": str(ph.get("host", "")),
@@ -307,8 +428,11 @@ def load(run_dir: str | os.PathLike) -> Run:
                 "file": name,
             }
         )
+    for rank, files in sorted(mains.items()):
+        if len(files) > 1:
+            _problem(problems, f"{root}: {', '.join(files)} all claim to be the main process of rank {rank}")
     for name in names:
-        if name.startswith("spans-") and name.endswith(".json") and name not in seen_json:
+        if _PROC_HEADER.match(name) and name not in seen_json:
             _problem(problems, f"{root / name}: span file {name[:-5]}.bin is missing; that process recorded nothing")
 
     spans = _empty_spans() if not frames else _concat_spans(frames)
@@ -320,10 +444,14 @@ def load(run_dir: str | os.PathLike) -> Run:
         )
     )
     batches = _batches(spans, samples)
+    for message in check_step_alignment(root, batches, clock):
+        _problem(problems, message)
     spans = _link(spans, samples, batches)
     spans["dur_s"] = spans["end_s"] - spans["start_s"]
     spans = spans[list(SPAN_COLUMNS)].sort_values(["start_s", "end_s"], kind="stable").reset_index(drop=True)
     resources = _resources(root, names, headers, to_axis, t0, problems)
+    if wanted is not None:
+        resources = resources[resources["rank"].isin(wanted)].reset_index(drop=True)
     processes = pd.DataFrame(procs, columns=["pid", "ppid", "rank", "role", "host", "spans", "file"])
     return Run(
         run_dir=root,

@@ -16,10 +16,10 @@ import socket
 import warnings
 from collections import deque
 from pathlib import Path
-from time import monotonic_ns, thread_time_ns, time_ns
+from time import monotonic_ns, thread_time_ns
 from typing import Any, Callable, Iterable, Iterator, TypeVar
 
-from . import __version__
+from . import __version__, _clocksync
 from . import _recorder as _r
 from . import tracefile as tf
 from ._recorder import RECORDER, TLS
@@ -333,6 +333,10 @@ class Probe:
         Print the end-of-run stall report on :meth:`close`.
     buffer_spans : int, default 8192
         Spans each thread buffers between flushes (48 bytes each).
+    sync_clocks : bool, default True
+        When ``torch.distributed`` is initialised, measure the clock offsets
+        between ranks at start (a few collective rounds; every rank must
+        create its probe at the same point) and agree on one run id.
 
     Raises
     ------
@@ -359,6 +363,7 @@ class Probe:
         flush_interval_s: float = 1.0,
         report: bool = True,
         buffer_spans: int = 8192,
+        sync_clocks: bool = True,
     ) -> None:
         if not isinstance(out_dir, (str, os.PathLike)):
             raise ValueError(f"out_dir must be a path, got {type(out_dir).__name__}")
@@ -378,6 +383,14 @@ class Probe:
         self.report = report
         self.closed = False
         self.rank, self.world_size = _r.detect_rank()
+        run_id, run_id_source = _clocksync.local_run_id(self.world_size)
+        clock_sync = None
+        dist = _clocksync.distributed() if sync_clocks else None
+        if dist is not None:  # before any check one rank alone could fail
+            self.rank, self.world_size = int(dist.get_rank()), int(dist.get_world_size())
+            agreed = _clocksync.measure(dist, _clocksync.local_run_id(1)[0])  # rank 0's, unique
+            if agreed is not None:
+                run_id, run_id_source, clock_sync = agreed["run_id"], "exchange", agreed["clock_sync"]
         header_path = out / f"run-r{self.rank}.json"
         if header_path.exists():
             raise ValueError(f"{str(out)!r} already holds a recorded run (rank {self.rank}); give a new folder")
@@ -389,6 +402,7 @@ class Probe:
             "buffer_spans": int(buffer_spans),
             "rank": self.rank,
             "world_size": self.world_size,
+            "run_id": run_id,
         }
         rec.next_batch = 0
         rec.epoch = -1
@@ -400,11 +414,14 @@ class Probe:
             buffer_spans=int(buffer_spans),
             rank=self.rank,
             world_size=self.world_size,
+            run_id=run_id,
         )
         self._header = {
             "format": "pipeprobe-run",
             "format_version": tf.FORMAT_VERSION,
-            "run_id": f"{socket.gethostname()}-{os.getpid()}-{time_ns()}",
+            "run_id": run_id,
+            "run_id_source": run_id_source,
+            "clock_sync": clock_sync,
             "host": socket.gethostname(),
             "cores": os.cpu_count() or 1,
             "anchor_wall_ns": rec.anchor_wall_ns,
@@ -504,6 +521,18 @@ class Probe:
         if self._sampler is not None:
             self._sampler.stop()
         ok = rec.on
+        if ok:
+            try:  # worker processes that outlive the probe flush now
+                late = _r.close_workers(self.run_dir.resolve(), self.rank)
+                if late:
+                    warnings.warn(
+                        f"pipeprobe: worker processes {late} did not flush within 3 s of close; "
+                        "their last spans may be missing from the run",
+                        RuntimeWarning,
+                        stacklevel=2,
+                    )
+            except Exception as exc:  # noqa: BLE001 - never take training down
+                warnings.warn(f"pipeprobe could not flush worker processes: {exc}", RuntimeWarning, stacklevel=2)
         rec.stop()
         _r.restore_signal_hooks()
         try:

@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import json
 import os
+import stat
 import struct
 import warnings
 from pathlib import Path
@@ -130,6 +131,7 @@ def read_records(path: str | os.PathLike, content: int) -> np.ndarray:
     """
     path = Path(path)
     dtype = _RECORDS[content]
+    _check_regular_file(path)
     with open(path, "rb") as fh:
         head = fh.read(PREAMBLE_BYTES)
         if len(head) == 0:
@@ -161,6 +163,17 @@ def read_records(path: str | os.PathLike, content: int) -> np.ndarray:
     return np.frombuffer(body, dtype=dtype, count=whole).copy()
 
 
+def _check_regular_file(path: Path) -> int:
+    """Return the size of ``path``; refuse links, pipes and devices (a read could hang or never end)."""
+    st = os.lstat(path)
+    if not stat.S_ISREG(st.st_mode):
+        raise TraceFormatError(
+            f"{path}: not a regular file (a link, pipe or device); "
+            "a run folder holds only files pipeprobe wrote, so remove it"
+        )
+    return st.st_size
+
+
 def read_json(path: str | os.PathLike) -> dict[str, Any]:
     """Read a JSON header safely (size-capped, must be an object).
 
@@ -171,7 +184,7 @@ def read_json(path: str | os.PathLike) -> dict[str, Any]:
         unknown format version.
     """
     path = Path(path)
-    size = path.stat().st_size
+    size = _check_regular_file(path)
     if size > MAX_JSON_BYTES:
         raise TraceFormatError(
             f"{path}: header is {size} bytes, more than the {MAX_JSON_BYTES} allowed; "
@@ -179,8 +192,11 @@ def read_json(path: str | os.PathLike) -> dict[str, Any]:
         )
     try:
         data = json.loads(path.read_text(encoding="utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise TraceFormatError(f"{path}: header is not valid JSON ({exc}); re-record the run") from None
+    except (UnicodeDecodeError, ValueError, RecursionError) as exc:
+        # ValueError covers JSONDecodeError and over-long integer literals;
+        # RecursionError a deeply nested document.
+        reason = str(exc).splitlines()[0][:200] if str(exc) else type(exc).__name__
+        raise TraceFormatError(f"{path}: header is not valid JSON ({reason}); re-record the run") from None
     if not isinstance(data, dict):
         raise TraceFormatError(f"{path}: header must be a JSON object")
     version = data.get("format_version")

@@ -18,3 +18,64 @@ from _synth import simple_pipeline, write_run  # noqa: E402
 def simple_run_dir(tmp_path: Path) -> Path:
     """3 batches x 2 samples x (3 ms decode + 1 ms augment) in the wait, then a 10 ms step."""
     return write_run(tmp_path / "simple", simple_pipeline())
+
+
+def _analysis_load_batch(b: int) -> list[int]:
+    """Pool task of the recorded analysis fixture: 4 samples x (3 ms decode + 1 ms augment), 1 ms collate."""
+    import time
+
+    import pipeprobe
+
+    ids = list(range(4 * b, 4 * b + 4))
+    for i in ids:
+        with pipeprobe.stage("decode", sample=i):
+            time.sleep(0.003)
+        with pipeprobe.stage("augment", sample=i):
+            time.sleep(0.001)
+    with pipeprobe.stage("collate", batch=b):
+        time.sleep(0.001)
+    return ids
+
+
+@pytest.fixture(scope="session")
+def analysis_pool_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """Recorded run: a 2-worker fork Pool loader (linked by samples=), a 1 ms to_device, a 4 ms step."""
+    import multiprocessing as mp
+    import time
+
+    import pipeprobe
+
+    d = tmp_path_factory.mktemp("analysis_pool") / "run"
+    with pipeprobe.Probe(d, report=False, sample_interval_s=0.02) as probe:
+        with mp.get_context("fork").Pool(2) as pool:
+            for _ in probe.watch(pool.imap(_analysis_load_batch, range(10)), samples=lambda ids: ids):
+                with probe.stage("to_device"):
+                    time.sleep(0.001)
+                with probe.step():
+                    time.sleep(0.004)
+    return d
+
+
+@pytest.fixture(scope="session")
+def analysis_sleep_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """Recorded run: one producer (a generator in the training thread), per batch 4 samples x
+    (6 ms decode + 2 ms augment), then a 20 ms step; 6 batches."""
+    import time
+
+    import pipeprobe
+
+    def batches():
+        for b in range(6):
+            for i in range(4 * b, 4 * b + 4):
+                with pipeprobe.stage("decode", sample=i):
+                    time.sleep(0.006)
+                with pipeprobe.stage("augment", sample=i):
+                    time.sleep(0.002)
+            yield b
+
+    d = tmp_path_factory.mktemp("analysis_sleep") / "run"
+    with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
+        for _ in probe.watch(batches()):
+            with probe.step():
+                time.sleep(0.020)
+    return d

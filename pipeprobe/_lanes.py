@@ -1,0 +1,285 @@
+"""Timeline layout: lanes, exact rectangles and merged pixel columns, as numbers.
+
+The numpy/pandas half of :func:`pipeprobe.plot.draw_timeline`, kept apart
+from matplotlib so it can be tested and reused without drawing. Public
+names are re-exported by :mod:`pipeprobe.plot`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .load import Run
+
+__all__ = ["TimelineLane", "TimelineLayout", "layout_timeline", "thread_lanes"]
+
+
+@dataclass(frozen=True)
+class TimelineLane:
+    """One lane of the timeline: a thread that recorded spans.
+
+    Attributes
+    ----------
+    label : str
+        What the lane shows, e.g. ``"worker 1 (pid 4113)"``.
+    rank, pid, tid : int
+        Which thread.
+    is_consumer : bool
+        True for the thread that waited for batches and ran steps.
+    spans : int
+        Spans of this lane inside the window (``wait`` spans excluded: they
+        are drawn as the stall band).
+    exact : int
+        Of those, drawn as their own rectangle (at least one pixel wide).
+    merged : int
+        Of those, folded into per-pixel-column stage occupancy.
+    """
+
+    label: str
+    rank: int
+    pid: int
+    tid: int
+    is_consumer: bool
+    spans: int
+    exact: int
+    merged: int
+
+
+@dataclass(frozen=True)
+class TimelineLayout:
+    """What :func:`draw_timeline` draws, as numbers (no matplotlib objects).
+
+    Attributes
+    ----------
+    window_s : (float, float)
+        Start and end of the window, seconds from the run start.
+    pixel_s : float
+        Seconds per pixel column; spans shorter than this are merged.
+    lanes : list of TimelineLane
+        Top to bottom.
+    stages : list of str
+        Stage of each stage code used below.
+    bars : DataFrame
+        Exact rectangles: ``lane, stage, start_s, end_s`` (clipped to the window).
+    columns : DataFrame
+        Merged spans: ``lane, column, stage, share``, where ``share`` is the
+        fraction of the column's time the lane spent in that stage (the
+        shares of one column add up to at most 1).
+    stalls : DataFrame
+        Stall intervals (consumer waits) at least one column wide:
+        ``lane, start_s, end_s`` (clipped to the window).
+    stall_columns : DataFrame
+        Shorter stall intervals, merged: ``lane, column, share`` (share of
+        the column's time the consumer waited).
+    """
+
+    window_s: tuple[float, float]
+    pixel_s: float
+    lanes: list[TimelineLane]
+    stages: list[str]
+    bars: pd.DataFrame
+    columns: pd.DataFrame
+    stalls: pd.DataFrame
+    stall_columns: pd.DataFrame
+
+    @property
+    def stall_s(self) -> float:
+        """Total stall time shaded in the window, seconds."""
+        wide = float((self.stalls["end_s"] - self.stalls["start_s"]).sum())
+        return wide + float(self.stall_columns["share"].sum()) * self.pixel_s
+
+
+def thread_lanes(sp: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray]:
+    """Lanes in display order and each span's lane.
+
+    Per rank: the consumer thread(s) (which waited for batches or ran
+    steps) named ``main``, other threads of the training process ``main
+    thread k``, then loader workers ``worker k`` in the order they first
+    started work (``worker k thread t`` for extra threads), the names
+    :mod:`pipeprobe.timeline` gives its lanes.
+    """
+    cols = ["rank", "pid", "tid", "consumer", "name"]
+    if not len(sp):
+        return pd.DataFrame({c: [] for c in cols}), np.zeros(0, np.int64)
+    grouped = sp.groupby(["rank", "pid", "tid"], sort=True, observed=True)
+    codes = grouped.ngroup().to_numpy(np.int64)
+    keys = grouped.size().index
+    n = len(keys)
+    stage = sp["stage"]
+    cons = np.bincount(codes[stage.isin(["wait", "step"]).to_numpy()], minlength=n) > 0
+    first = grouped["start_s"].min().to_numpy(np.float64)
+    worker = (sp["role"] == "worker").to_numpy()
+    is_worker = np.bincount(codes[worker], minlength=n) > 0
+    th = pd.DataFrame({
+        "code": np.arange(n), "rank": keys.get_level_values(0).to_numpy(np.int64),
+        "pid": keys.get_level_values(1).to_numpy(np.int64), "tid": keys.get_level_values(2).to_numpy(np.int64),
+        "consumer": cons, "first_s": first, "worker": is_worker & ~cons,
+    })
+    pid_first = th.groupby(["rank", "pid"])["first_s"].transform("min")
+    th = th.assign(pid_first=pid_first, group=np.where(th["consumer"], 0, np.where(th["worker"], 2, 1)))
+    th = th.sort_values(["rank", "group", "pid_first", "pid", "first_s", "tid"], kind="stable").reset_index(drop=True)
+    names = []
+    multi_rank = th["rank"].nunique() > 1
+    for rank, part in th.groupby("rank", sort=False):
+        prefix = f"rank {rank} " if multi_rank or rank else ""
+        k_main = 0
+        worker_no: dict[int, int] = {}
+        thread_no: dict[int, int] = {}
+        for worker, pid in zip(part["worker"], part["pid"], strict=True):
+            if not worker:
+                k_main += 1
+                names.append(prefix + ("main" if k_main == 1 else f"main thread {k_main}"))
+                continue
+            worker_no.setdefault(pid, len(worker_no) + 1)
+            thread_no[pid] = thread_no.get(pid, 0) + 1
+            t = thread_no[pid]
+            names.append(prefix + f"worker {worker_no[pid]}" + (f" thread {t}" if t > 1 else ""))
+    th["name"] = names
+    lane_of_code = np.empty(n, np.int64)
+    lane_of_code[th["code"].to_numpy()] = np.arange(n)
+    return th[cols], lane_of_code[codes]
+
+
+def _column_time(lane: np.ndarray, code: np.ndarray, s: np.ndarray, e: np.ndarray, lo: float, pixel_s: float,
+                 n_cols: int, n_lanes: int, n_codes: int) -> np.ndarray:
+    """Seconds each (lane, column, code) spends in intervals shorter than a column.
+
+    An interval crossing a column edge is split between the two columns it
+    touches, so the seconds add up exactly to the intervals' total.
+    """
+    c0 = np.clip(np.floor((s - lo) / pixel_s).astype(np.int64), 0, n_cols - 1)
+    c1 = np.clip(np.floor((e - lo) / pixel_s).astype(np.int64), 0, n_cols - 1)
+    edge = lo + (c0 + 1) * pixel_s
+    split = c1 > c0
+    first = np.where(split, np.minimum(e, edge) - s, e - s)
+    second = np.where(split, e - edge, 0.0)
+    size = n_lanes * n_cols * n_codes
+    out = np.bincount((lane * n_cols + c0) * n_codes + code, weights=first, minlength=size)[:size].astype(np.float64)
+    out += np.bincount((lane * n_cols + c1) * n_codes + code, weights=second, minlength=size)[:size]
+    return out.reshape(n_lanes, n_cols, n_codes)
+
+
+def layout_timeline(
+    run: Run,
+    window_s: tuple[float, float] | None = None,
+    resolution_px: int = 1200,
+) -> TimelineLayout:
+    """Compute the timeline's lanes, rectangles, merged columns and stall band.
+
+    Spans are grouped into lanes by thread ``(rank, pid, tid)``. Per rank,
+    the consumer thread (the one that waited for batches and ran steps) is
+    named ``main`` and comes first, then other threads of the training
+    process, then loader workers ``worker 1, 2, ...`` in the order they
+    first started work, the lane names of :mod:`pipeprobe.timeline`.
+    A span at least one pixel column wide (``pixel_s = window / resolution_px``)
+    becomes its own rectangle. Shorter spans cannot be told apart at this
+    zoom, so their time is added, per lane and stage, to the pixel columns
+    they cover (a span crossing a column edge is split between the two);
+    each column then shows one stacked bar whose stage heights are the
+    shares of that column's time. The number of rectangles drawn is thus
+    bounded by lanes x columns x (1 + stages), whatever the span count.
+
+    Parameters
+    ----------
+    run : Run
+        A loaded run.
+    window_s : (float, float), optional
+        Time window in seconds from the run start; the whole run by default.
+    resolution_px : int
+        Pixel columns across the window (the drawing width in pixels).
+
+    Returns
+    -------
+    TimelineLayout
+
+    Raises
+    ------
+    ValueError
+        The window is empty or reversed, or ``resolution_px < 1``.
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile
+    >>> d = tempfile.mkdtemp()
+    >>> with pipeprobe.Probe(d, report=False) as probe:
+    ...     for batch in probe.watch([[0], [1]]):
+    ...         with probe.step():
+    ...             pass
+    >>> from pipeprobe.plot import layout_timeline
+    >>> lay = layout_timeline(pipeprobe.load(d))
+    >>> [lane.is_consumer for lane in lay.lanes]
+    [True]
+    """
+    if resolution_px < 1:
+        raise ValueError(f"resolution_px must be >= 1, got {resolution_px}")
+    sp = run.spans
+    if window_s is None:
+        hi = max(run.wall_s, float(sp["end_s"].max()) if len(sp) else 0.0)
+        lo = min(0.0, float(sp["start_s"].min()) if len(sp) else 0.0)
+        if hi <= lo:
+            hi = lo + 1e-3
+    else:
+        lo, hi = float(window_s[0]), float(window_s[1])
+        if not hi > lo:
+            raise ValueError(f"window_s must be (start, end) with end > start, got {window_s!r}")
+    pixel_s = (hi - lo) / resolution_px
+
+    threads, lane = thread_lanes(sp)
+    stage_arr = sp["stage"].astype(str).to_numpy() if len(sp) else np.zeros(0, object)
+    is_wait = stage_arr == "wait"
+
+    stages = run.stages + ["step"]
+    start = sp["start_s"].to_numpy(np.float64) if len(sp) else np.zeros(0)
+    end = sp["end_s"].to_numpy(np.float64) if len(sp) else np.zeros(0)
+    inside = (end >= lo) & (start <= hi)
+    s_clip = np.clip(start, lo, hi)
+    e_clip = np.clip(end, lo, hi)
+
+    # stall band: consumer waits; those narrower than a column become per-column shares
+    w = inside & is_wait & (e_clip > s_clip)
+    w_wide = w & ((e_clip - s_clip) >= pixel_s)
+    w_narrow = w & ~w_wide
+    stalls = pd.DataFrame({"lane": lane[w_wide], "start_s": s_clip[w_wide], "end_s": e_clip[w_wide]})
+    stalls = stalls.sort_values(["lane", "start_s"], kind="stable").reset_index(drop=True)
+    n_lanes_all = len(threads)
+    socc = _column_time(lane[w_narrow], np.zeros(int(w_narrow.sum()), np.int64), s_clip[w_narrow], e_clip[w_narrow],
+                        lo, pixel_s, resolution_px, n_lanes_all, 1)[:, :, 0] / pixel_s
+    sl, sc = np.nonzero(socc > 0)
+    stall_columns = pd.DataFrame({"lane": sl, "column": sc, "share": np.minimum(socc[sl, sc], 1.0)})
+
+    d = inside & ~is_wait
+    # every non-wait stage is in run.stages or is "step", so no code is -1
+    st = pd.Categorical(stage_arr[d], categories=stages).codes.astype(np.int64)
+    ln, s0, e0 = lane[d], s_clip[d], e_clip[d]
+    wide = (e0 - s0) >= pixel_s
+    bars = pd.DataFrame({"lane": ln[wide], "stage": st[wide], "start_s": s0[wide], "end_s": e0[wide]})
+    # long spans first within a lane so nested, shorter ones are drawn on top
+    bars = bars.assign(_d=bars["end_s"] - bars["start_s"]).sort_values(
+        ["lane", "start_s", "_d"], ascending=[True, True, False], kind="stable"
+    ).drop(columns="_d").reset_index(drop=True)
+
+    narrow = ~wide
+    n_lanes, n_st = len(threads), len(stages)
+    occ = _column_time(ln[narrow], st[narrow], s0[narrow], e0[narrow], lo, pixel_s, resolution_px, n_lanes, n_st)
+    occ /= pixel_s
+    # nested spans can fill a column more than once; scale such columns down to 1
+    occ /= np.maximum(occ.sum(axis=2, keepdims=True), 1.0)
+    li, ci, si = np.nonzero(occ > 0)
+    columns = pd.DataFrame({"lane": li, "column": ci, "stage": si, "share": occ[li, ci, si]})
+
+    n_in = np.bincount(ln, minlength=n_lanes)
+    n_exact = np.bincount(ln[wide], minlength=n_lanes)
+    lanes = [
+        TimelineLane(
+            label=f"{name} (pid {p})", rank=int(r), pid=int(p), tid=int(t), is_consumer=bool(c),
+            spans=int(n_in[i]), exact=int(n_exact[i]), merged=int(n_in[i] - n_exact[i]),
+        )
+        for i, (r, p, t, c, name) in enumerate(threads.itertuples(index=False))
+    ]
+    return TimelineLayout(
+        window_s=(lo, hi), pixel_s=pixel_s, lanes=lanes, stages=stages,
+        bars=bars, columns=columns, stalls=stalls, stall_columns=stall_columns,
+    )

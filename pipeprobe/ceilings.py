@@ -1,0 +1,334 @@
+"""Speed-up ceilings per stage: Amdahl's formula next to the replay, and the worker count that hides input.
+
+For every stage of a run, :func:`ceilings` gives
+
+* its share ``p`` of the observed critical path and Amdahl's ceiling
+  ``1 / (1 - p)`` (what making the stage free could give if nothing else
+  changed);
+* the replayed speed-up if the stage cost nothing, and if it got 2x and 4x
+  faster (:mod:`pipeprobe.replay`);
+* the stage that leads the replayed critical path once this one is free
+  (the path shifts);
+
+plus the smallest number of loader workers that hides the input pipeline
+behind the training step, and whether this machine has the cores for it.
+:func:`format_ceilings` writes the report section, with a note on why the
+formula and the replay differ.
+
+References
+----------
+.. [1] G. M. Amdahl, AFIPS 1967 (the ceiling).
+.. [2] P. J. Denning and J. P. Buzen, ACM Computing Surveys, 1978 (CPU
+   demand per batch and the cores it needs: the bottleneck law).
+.. [3] J. E. Kelley and M. R. Walker, 1959 (critical path method).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, replace
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+
+from .amdahl import amdahl_ceiling
+from .replay import PSEUDO_STAGES, ReplayPlan, _Work, build_plan, replay
+
+if TYPE_CHECKING:  # pragma: no cover
+    from .analysis import Analysis
+    from .load import Run
+
+__all__ = ["StageCeiling", "Ceilings", "ceilings", "format_ceilings", "section_lines", "section_data", "HIDE_TOLERANCE"]
+
+#: The input pipeline counts as hidden when the replayed wall time is within
+#: this share of the wall time with as many workers as could help (our choice).
+HIDE_TOLERANCE = 0.05
+_MAX_WORKERS = 64
+
+
+@dataclass(frozen=True)
+class StageCeiling:
+    """Ceilings of one stage.
+
+    Attributes
+    ----------
+    stage : str
+    share : float
+        Share ``p`` of the recorded run's critical path.
+    amdahl_ceiling : float
+        ``1 / (1 - p)``.
+    free_speedup, speedup_2x, speedup_4x : float
+        Replayed speed-up of the whole run with the stage free, 2x and 4x faster.
+    next_critical : str
+        Stage leading the replayed critical path once this one is free.
+    """
+
+    stage: str
+    share: float
+    amdahl_ceiling: float
+    free_speedup: float
+    speedup_2x: float
+    speedup_4x: float
+    next_critical: str
+
+
+@dataclass(frozen=True)
+class Ceilings:
+    """Ceilings of every stage and the worker advice.
+
+    Attributes
+    ----------
+    stages : list of StageCeiling
+        Largest share first.
+    baseline_replay_wall_s, measured_wall_s : float
+    workers : int
+        Recorded loader workers (0: loading in the training loop).
+    workers_to_hide : int or None
+        Smallest worker count whose replay (cores unlimited, prefetch at
+        least the worker count) is within :data:`HIDE_TOLERANCE` of the
+        replay with 64 workers: more workers than that no longer help.
+    hidden_wall_s : float
+        Replayed wall time with 64 workers and unlimited cores.
+    cores : int
+        Cores of the recorded machine.
+    has_cores : bool or None
+        The replay with ``workers_to_hide`` workers on this machine's cores
+        also hides the input.
+    cores_needed : float
+        CPU seconds per batch (loader and consumer) divided by the step-bound
+        time per batch: cores kept busy when the input is hidden.
+    stall_left : float
+        Stall fraction left with ``workers_to_hide`` workers (batches a
+        worker starts only when an epoch starts, which no worker count hides).
+    """
+
+    stages: list[StageCeiling]
+    baseline_replay_wall_s: float
+    measured_wall_s: float
+    workers: int
+    workers_to_hide: int | None
+    hidden_wall_s: float
+    cores: int
+    has_cores: bool | None
+    cores_needed: float
+    stall_left: float = 0.0
+
+    def to_dict(self) -> dict[str, Any]:
+        """JSON-ready dict (infinities as the string "inf")."""
+        from .whatif import _jsonable
+
+        return _jsonable(asdict(self))
+
+
+def _leader(cp: dict[str, float], skip: str) -> str:
+    real = {k: v for k, v in cp.items() if k not in PSEUDO_STAGES and k != skip and not k.endswith("(offloaded)")}
+    return max(real, key=real.__getitem__) if real else ""
+
+
+def ceilings(run: Run | ReplayPlan, *, analysis: Analysis | None = None,
+             shares: dict[str, float] | None = None) -> Ceilings:
+    """Amdahl ceilings and replayed speed-ups of every stage, and the workers that hide input.
+
+    Parameters
+    ----------
+    run : Run or ReplayPlan
+    analysis : Analysis, optional
+        Its observed critical-path shares give ``p``; without it (and
+        without ``shares``) the replay's own critical path of the recorded
+        configuration does.
+    shares : dict, optional
+        Critical-path share per stage, to use instead.
+
+    Returns
+    -------
+    Ceilings
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile, time
+    >>> from pipeprobe.ceilings import ceilings
+    >>> d = tempfile.mkdtemp()
+    >>> def batches():
+    ...     for i in range(4):
+    ...         with pipeprobe.stage("decode", sample=i):
+    ...             time.sleep(0.004)
+    ...         yield [i]
+    >>> with pipeprobe.Probe(d, report=False) as probe:
+    ...     for batch in probe.watch(batches()):
+    ...         with probe.step():
+    ...             time.sleep(0.002)
+    >>> c = ceilings(pipeprobe.load(d))
+    >>> c.stages[0].stage, c.stages[0].free_speedup <= c.stages[0].amdahl_ceiling * 1.05
+    ('decode', True)
+
+    References
+    ----------
+    .. [1] G. M. Amdahl, AFIPS 1967.
+    .. [2] P. J. Denning and J. P. Buzen, ACM Computing Surveys, 1978.
+    """
+    plan = run if isinstance(run, ReplayPlan) else build_plan(run)
+    base = replay(plan)
+    if shares is None and analysis is not None:
+        shares = analysis.stage_shares()
+    if shares is None:
+        shares = base.critical_path_shares
+    names = list(dict.fromkeys(plan.loader_stages + plan.consumer_stages))
+    rows = []
+    for stage in names:
+        p = min(1.0, max(0.0, float(shares.get(stage, 0.0))))
+        free = replay(plan, faster={stage: math.inf})
+        x2 = replay(plan, faster={stage: 2.0})
+        x4 = replay(plan, faster={stage: 4.0})
+        rows.append(StageCeiling(
+            stage=stage,
+            share=p,
+            amdahl_ceiling=amdahl_ceiling(p),
+            free_speedup=base.wall_s / free.wall_s if free.wall_s > 0 else math.inf,
+            speedup_2x=base.wall_s / x2.wall_s if x2.wall_s > 0 else math.inf,
+            speedup_4x=base.wall_s / x4.wall_s if x4.wall_s > 0 else math.inf,
+            next_critical=_leader(free.critical_path, stage),
+        ))
+    rows.sort(key=lambda r: (-r.share, -r.free_speedup))
+    # the worker count that hides the input: more workers than that no longer help
+    best = replay(plan, workers=_MAX_WORKERS, prefetch=max(plan.prefetch, _MAX_WORKERS), cores=math.inf)
+    limit = best.wall_s * (1.0 + HIDE_TOLERANCE)
+    # more workers never slow the replay down at unlimited cores: bisect for the smallest that is enough
+    need: int | None = None
+    stall_left = best.stall_fraction
+    lo, hi = 1, _MAX_WORKERS
+    if best.wall_s <= limit:
+        while lo < hi:
+            mid = (lo + hi) // 2
+            if replay(plan, workers=mid, prefetch=max(plan.prefetch, mid), cores=math.inf).wall_s <= limit:
+                hi = mid
+            else:
+                lo = mid + 1
+        need = lo
+        stall_left = replay(plan, workers=need, prefetch=max(plan.prefetch, need), cores=math.inf).stall_fraction
+    has: bool | None = None
+    if need is not None:
+        here = replay(plan, workers=need, prefetch=max(plan.prefetch, need))
+        has = here.wall_s <= limit
+    hidden = best
+    cpu_per_batch = float(plan.loader.cpu_s.sum() + plan.consumer.cpu_s.sum()) / max(1, plan.batches)
+    step_per_batch = hidden.wall_s / max(1, plan.batches)
+    return Ceilings(
+        stages=rows,
+        baseline_replay_wall_s=base.wall_s,
+        measured_wall_s=plan.measured_wall_s,
+        workers=plan.workers,
+        workers_to_hide=need,
+        hidden_wall_s=hidden.wall_s,
+        cores=plan.cores,
+        has_cores=has,
+        cores_needed=cpu_per_batch / step_per_batch if step_per_batch > 0 else math.inf,
+        stall_left=stall_left,
+    )
+
+
+def _wrap(text: str, width: int) -> list[str]:
+    out, cur = [], " "
+    for w in text.split():
+        if len(cur) + 1 + len(w) > width and cur.strip():
+            out.append(cur)
+            cur = "   "
+        cur += " " + w
+    if cur.strip():
+        out.append(cur)
+    return out
+
+
+def _x(v: float) -> str:
+    if math.isinf(v):
+        return "   inf"
+    return " >999x" if v >= 999.5 else (f"{v:5.1f}x" if v >= 99.995 else f"{v:5.2f}x")
+
+
+def format_ceilings(c: Ceilings, width: int = 100) -> list[str]:
+    """The report section: one line per stage, the worker advice, and how formula and replay differ.
+
+    Examples
+    --------
+    >>> c = Ceilings([StageCeiling("decode", 0.5, 2.0, 1.6, 1.3, 1.45, "step")], 1.0, 1.0, 2, 3, 0.6, 2, True, 1.2)
+    >>> print(format_ceilings(c)[2])
+      decode                50.0 %   2.00x    1.60x    1.30x    1.45x   step
+    """
+    lines = [
+        "Speed-up ceilings (Amdahl's formula from the critical-path share; replay of the recorded pipeline)",
+        f"  {'stage':<20} {'share':>7} {'formula':>7} {'replay free':>11} {'2x':>6} {'4x':>8}   then critical",
+    ]
+    for r in c.stages:
+        lines.append(
+            f"  {r.stage[:20]:<20} {100 * r.share:5.1f} % {_x(r.amdahl_ceiling):>7}  {_x(r.free_speedup):>7}  "
+            f"{_x(r.speedup_2x):>7}  {_x(r.speedup_4x):>7}   {r.next_critical or '-'}"
+        )
+    if c.workers_to_hide is None:
+        advice = f"No worker count up to {_MAX_WORKERS} hides the input pipeline behind the step."
+    else:
+        where = ("this machine has the cores for it" if c.has_cores else
+                 f"this machine's {c.cores} cores are not enough for it")
+        advice = (
+            f"Workers to hide the input behind the step: {c.workers_to_hide} (recorded {c.workers}), "
+            f"leaving {100 * c.stall_left:.1f} % stall; {where} (it keeps about {c.cores_needed:.1f} cores busy)."
+        )
+    note = (
+        "Why they differ: the formula assumes the stage's share of the critical path shrinks and nothing "
+        "else moves. The replay re-runs the pipeline: once a stage is cheaper another one (or the step) sets "
+        "the pace, work that overlapped the step gains nothing, and workers share the cores. So the replay "
+        "is at most the formula when the stage lies on the path, and it can show gains the formula misses "
+        "when a stage off the path frees cores for the ones on it."
+    )
+    lines += _wrap(advice, width) + _wrap(note, width)
+    return [ln[:width] for ln in lines]
+
+
+def _none_if_inf(x: Any) -> Any:
+    if isinstance(x, float) and not math.isfinite(x):
+        return None
+    return x
+
+
+#: The report replays at most this many batches (the first ones) to keep closing a probe quick.
+REPORT_MAX_BATCHES = 5000
+_last: list[Any] = [None, None]  # the analysis the report asked about last, and its ceilings
+
+
+def _head(plan: ReplayPlan, n: int) -> ReplayPlan:
+    """The plan of the first ``n`` batches."""
+    if plan.batches <= n:
+        return plan
+    epochs = int(np.r_[True, plan.epoch[1:n] != plan.epoch[: n - 1]].sum())
+    cut = {f: getattr(plan, f)[:n] for f in ("batch_id", "epoch")}
+    notes = plan.notes + [f"ceilings replay the first {n} of {plan.batches} batches"]
+    return replace(
+        plan, **cut, loader=_Work(plan.loader.names, plan.loader.io_s[:n], plan.loader.cpu_s[:n]),
+        consumer=_Work(plan.consumer.names, plan.consumer.io_s[:n], plan.consumer.cpu_s[:n]),
+        epoch_dispatch_s=plan.epoch_dispatch_s[:epochs], notes=notes,
+    )
+
+
+def _report_ceilings(analysis: Analysis) -> Ceilings:
+    if _last[0] is not analysis:
+        plan = _head(build_plan(analysis.run), REPORT_MAX_BATCHES)
+        _last[:] = [analysis, ceilings(plan, analysis=analysis)]
+    return _last[1]
+
+
+def section_lines(analysis: Analysis) -> list[str]:
+    """Lines of the ceilings section of the stall report (none for a run without batches)."""
+    if analysis.batches == 0:
+        return []
+    lines = format_ceilings(_report_ceilings(analysis))
+    if analysis.batches > REPORT_MAX_BATCHES:
+        lines.insert(1, f"  (replayed on the first {REPORT_MAX_BATCHES} of {analysis.batches} batches)")
+    return lines
+
+
+def section_data(analysis: Analysis) -> dict[str, Any]:
+    """``{"ceilings": {...}}`` for the JSON report: :meth:`Ceilings` fields, infinities as None."""
+    if analysis.batches == 0:
+        return {"ceilings": None}
+    c = _report_ceilings(analysis)
+    d = asdict(c)
+    d["stages"] = [{k: _none_if_inf(v) for k, v in row.items()} for row in d["stages"]]
+    return {"ceilings": {k: _none_if_inf(v) for k, v in d.items()}}

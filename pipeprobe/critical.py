@@ -1,0 +1,256 @@
+"""The critical path of an observed run and where its wall time went.
+
+:func:`critical_path` walks back from the end of the last training step
+along each node's last-arriving dependency (see :mod:`pipeprobe.timeline`)
+to the start of the run. The walk visits a chain of nodes that touch end
+to start in time; between two of them lies either nothing recorded (an
+``'unexplained gap'``) or, before a delivery node, the time a finished
+batch spent being handed to the consumer (``'delivery'``). Together with
+the time after the last step, these pieces tile the run from its start to
+its end, so the attribution adds up to the wall time exactly.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .timeline import Timeline, sink_node
+
+__all__ = ["CriticalPath", "critical_path", "critical_path_length", "GAP", "DELIVERY", "SEGMENT_COLUMNS",
+           "SHARE_COLUMNS"]
+
+#: Label of critical-path time when nothing recorded ran.
+GAP = "unexplained gap"
+#: Label of critical-path time a finished batch spent reaching the consumer.
+DELIVERY = "delivery"
+
+#: Columns of :attr:`CriticalPath.segments`: pieces tiling the run's wall time.
+SEGMENT_COLUMNS = {
+    "start_s": "piece start",
+    "end_s": "piece end",
+    "seconds": "end_s - start_s",
+    "label": "stage name, 'step', 'delivery' or 'unexplained gap'",
+    "kind": "'stage', 'step', 'delivery' or 'gap'",
+    "side": "'input', 'consumer', 'delivery' or 'gap'",
+    "node": "timeline node the piece belongs to (-1 for the time after the last step)",
+    "lane": "thread that ran it ('' for gaps)",
+    "batch_id": "batch of the node (-1 unknown)",
+    "sample_id": "sample of the node (-1 unknown)",
+}
+
+#: Columns of :attr:`CriticalPath.shares`: one row per label, largest first.
+SHARE_COLUMNS = {
+    "label": "stage name, 'step', 'delivery' or 'unexplained gap'",
+    "kind": "'stage', 'step', 'delivery' or 'gap'",
+    "side": "'input', 'consumer', 'delivery' or 'gap'",
+    "seconds": "critical-path time with this label",
+    "share": "seconds / wall time",
+}
+
+
+@dataclass(frozen=True)
+class CriticalPath:
+    """The observed critical path and its attribution.
+
+    Attributes
+    ----------
+    path : DataFrame
+        The timeline nodes on the path, earliest first (columns of
+        :data:`pipeprobe.timeline.NODE_COLUMNS`): which batches, samples
+        and threads (``lane``, ``pid``, ``tid``) set the pace.
+    segments : DataFrame
+        See :data:`SEGMENT_COLUMNS`; the pieces tile ``[origin_s, end_s]``.
+    shares : DataFrame
+        See :data:`SHARE_COLUMNS`; ``seconds`` sums to :attr:`wall_s`.
+    lanes : DataFrame
+        ``lane, seconds, share``: critical-path time per thread (gaps excluded).
+    origin_s, end_s : float
+        The run's time axis (from the timeline).
+    """
+
+    path: pd.DataFrame
+    segments: pd.DataFrame
+    shares: pd.DataFrame
+    lanes: pd.DataFrame
+    origin_s: float
+    end_s: float
+
+    @property
+    def wall_s(self) -> float:
+        """Wall time the attribution covers."""
+        return self.end_s - self.origin_s
+
+    @property
+    def length_s(self) -> float:
+        """Length of the path itself: from the origin to the end of its last node."""
+        if self.path.empty:
+            return 0.0
+        return float(self.path["end_s"].iloc[-1]) - self.origin_s
+
+    @property
+    def batches(self) -> list[int]:
+        """Batch ids with at least one node on the path, in order."""
+        b = self.path["batch_id"].to_numpy()
+        return [int(x) for x in np.unique(b[b >= 0])]
+
+    @property
+    def head_s(self) -> float:
+        """Unexplained gap before the first node of the path (start-up)."""
+        return float(self.path["start_s"].iloc[0]) - self.origin_s if len(self.path) else 0.0
+
+    @property
+    def tail_s(self) -> float:
+        """Time from the end of the last step to the end of the run (shut-down), counted as gap."""
+        return self.end_s - self.origin_s - self.length_s if len(self.path) else self.wall_s
+
+    def share_of(self, label: str) -> float:
+        """Share of wall time attributed to ``label`` (0 when absent)."""
+        hit = self.shares.loc[self.shares["label"] == label, "share"]
+        return float(hit.sum())
+
+
+def _walk(pred: np.ndarray, sink: int) -> np.ndarray:
+    """Node ids from the first node to ``sink`` following ``pred`` back."""
+    out = []
+    v = sink
+    p = pred.tolist()  # list indexing is several times faster than numpy scalars
+    while v >= 0:
+        out.append(v)
+        v = p[v]
+    return np.array(out[::-1], dtype=np.int64)
+
+
+def critical_path(timeline: Timeline) -> CriticalPath:
+    """Find the critical path of the observed run and attribute its wall time.
+
+    Walks back from the end of the last step (the last node when no step was
+    timed) along the last-arriving dependency of each node. Every second of
+    ``[origin_s, end_s]`` is given one label: the stage of the node running
+    on the path, ``'delivery'`` for a finished batch on its way to the
+    consumer, or ``'unexplained gap'`` when nothing recorded ran (including
+    the time after the last step).
+
+    Parameters
+    ----------
+    timeline : Timeline
+        From :func:`pipeprobe.timeline.build_timeline`.
+
+    Returns
+    -------
+    CriticalPath
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile, time
+    >>> from pipeprobe.timeline import build_timeline
+    >>> d = tempfile.mkdtemp()
+    >>> def batches():
+    ...     for b in range(3):
+    ...         with pipeprobe.stage("decode", sample=b):
+    ...             time.sleep(0.004)
+    ...         yield [b]
+    >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
+    ...     for batch in probe.watch(batches()):
+    ...         with probe.step():
+    ...             time.sleep(0.004)
+    >>> cp = critical_path(build_timeline(pipeprobe.load(d)))
+    >>> bool(abs(cp.shares["seconds"].sum() - cp.wall_s) < 1e-9)
+    True
+    >>> cp.share_of("decode") > 0.3
+    True
+
+    References
+    ----------
+    Kelley, J. E. and Walker, M. R. (1959). Critical-path planning and
+    scheduling. Proc. Eastern Joint Computer Conference, 160-173.
+    """
+    nodes = timeline.nodes
+    origin, end = timeline.origin_s, timeline.end_s
+    sink = sink_node(timeline)
+    ids = _walk(nodes["pred"].to_numpy(np.int64), sink) if sink >= 0 else np.zeros(0, np.int64)
+    path = nodes.iloc[ids].reset_index(drop=True)
+
+    k = len(path)
+    ready = path["ready_s"].to_numpy(np.float64)
+    start = path["start_s"].to_numpy(np.float64)
+    stop = path["end_s"].to_numpy(np.float64)
+    kind = path["kind"].astype(str).to_numpy(object)
+    stage = path["stage"].astype(str).to_numpy(object)
+    side = path["side"].astype(str).to_numpy(object)
+    lane = path["lane"].astype(str).to_numpy(object)
+    is_deliv = kind == "delivery"
+    tail_start = float(stop[-1]) if k else origin
+    # per node: the wait before it (gap or delivery), then the node itself; then the tail
+    seg_start = np.concatenate([np.ravel(np.column_stack([ready, start])), [tail_start]])
+    seg_end = np.concatenate([np.ravel(np.column_stack([start, stop])), [end]])
+    label = np.concatenate([np.ravel(np.column_stack([np.where(is_deliv, DELIVERY, GAP), stage])), [GAP]])
+    skind = np.concatenate([np.ravel(np.column_stack([np.where(is_deliv, "delivery", "gap"), kind])), ["gap"]])
+    sside = np.concatenate([np.ravel(np.column_stack([np.where(is_deliv, "delivery", "gap"), side])), ["gap"]])
+    slane = np.concatenate([np.ravel(np.column_stack([np.where(is_deliv, lane, ""), lane])), [""]])
+    node_ids = np.concatenate([np.repeat(ids, 2), [-1]])
+    batch = np.concatenate([np.repeat(path["batch_id"].to_numpy(np.int64), 2), [-1]])
+    sample = np.concatenate([np.repeat(path["sample_id"].to_numpy(np.int64), 2), [-1]])
+    segments = pd.DataFrame(
+        {
+            "start_s": seg_start,
+            "end_s": seg_end,
+            "seconds": seg_end - seg_start,
+            "label": label.astype(object),
+            "kind": skind.astype(object),
+            "side": sside.astype(object),
+            "node": node_ids,
+            "lane": slane.astype(object),
+            "batch_id": batch,
+            "sample_id": sample,
+        }
+    )
+    segments = segments[segments["seconds"] > 0].reset_index(drop=True)
+    wall = end - origin
+    shares = (
+        segments.groupby(["label", "kind", "side"], sort=False, observed=True)["seconds"].sum().reset_index()
+        .sort_values(["seconds", "label"], ascending=[False, True], kind="stable").reset_index(drop=True)
+    )
+    shares["share"] = shares["seconds"] / wall if wall > 0 else 0.0
+    on = segments[segments["lane"] != ""]
+    lanes = on.groupby("lane", sort=False)["seconds"].sum().reset_index()
+    lanes = lanes.sort_values(["seconds", "lane"], ascending=[False, True], kind="stable").reset_index(drop=True)
+    lanes["share"] = lanes["seconds"] / wall if wall > 0 else 0.0
+    return CriticalPath(path=path, segments=segments, shares=shares, lanes=lanes, origin_s=origin, end_s=end)
+
+
+def critical_path_length(timeline: Timeline) -> float:
+    """Length in seconds of the observed critical path (origin to the end of the last step).
+
+    Parameters
+    ----------
+    timeline : Timeline
+
+    Returns
+    -------
+    float
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile
+    >>> from pipeprobe.timeline import build_timeline
+    >>> d = tempfile.mkdtemp()
+    >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
+    ...     for batch in probe.watch([[0], [1]]):
+    ...         with probe.step():
+    ...             pass
+    >>> tl = build_timeline(pipeprobe.load(d))
+    >>> critical_path_length(tl) <= tl.wall_s
+    True
+
+    References
+    ----------
+    Kelley, J. E. and Walker, M. R. (1959). Critical-path planning and
+    scheduling. Proc. Eastern Joint Computer Conference, 160-173.
+    """
+    sink = sink_node(timeline)
+    if sink < 0:
+        return 0.0
+    return float(timeline.nodes["end_s"].iloc[sink]) - timeline.origin_s

@@ -1,0 +1,277 @@
+"""Why a run is slow: per-stage time statistics, heavy tails and the CPU view.
+
+:func:`stage_stats` gives, per stage, the count, total, mean and tail
+percentiles of span durations, the thread CPU time over wall time (near 1:
+the stage computes; low: it waits on I/O or was descheduled), the time it
+spent on the critical path, the slowest samples and their share of the
+stage's time, and whether the cores were saturated while the training loop
+stalled, hence whether more loader workers can help on this machine.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .critical import CriticalPath
+from .load import Run
+from .stalls import STEP_BOUND, Stalls
+
+__all__ = ["StageStats", "stage_stats", "STAGE_COLUMNS", "SLOWEST_COLUMNS", "SATURATED_FROM", "TAIL_FRACTION"]
+
+#: Columns of :attr:`StageStats.table`, one row per stage ('wait' excluded).
+STAGE_COLUMNS = {
+    "stage": "stage name ('step' for training steps)",
+    "count": "spans",
+    "total_s": "sum of span durations",
+    "mean_s": "mean duration",
+    "p50_s": "median duration",
+    "p95_s": "95th percentile",
+    "p99_s": "99th percentile",
+    "max_s": "longest span",
+    "cpu_s": "thread CPU time inside the spans (NaN when CPU time was off)",
+    "cpu_ratio": "cpu_s / total_s: near 1 computes, low waits (I/O, locks, descheduled)",
+    "critical_s": "time on the critical path",
+    "critical_share": "critical_s / wall time",
+}
+
+#: Columns of :attr:`StageStats.slowest`, one row per stage that has sample ids.
+SLOWEST_COLUMNS = {
+    "stage": "stage name",
+    "samples": "how many slowest samples are listed (TAIL_FRACTION of the stage's samples, 1 to 50)",
+    "of_samples": "samples the stage worked on",
+    "sample_ids": "their ids, slowest first",
+    "seconds": "their total time in the stage",
+    "share": "seconds / the stage's time over all samples",
+}
+
+#: Fraction of a stage's samples listed as its slowest (1 %; at least one, at most 50).
+TAIL_FRACTION = 0.01
+_TAIL_MAX = 50
+#: Mean busy fraction of all cores during stalls from which the cores count as saturated.
+SATURATED_FROM = 0.90
+
+
+@dataclass(frozen=True)
+class StageStats:
+    """Per-stage statistics and the CPU view of a run.
+
+    Attributes
+    ----------
+    table : DataFrame
+        See :data:`STAGE_COLUMNS`; largest ``total_s`` first.
+    slowest : DataFrame
+        See :data:`SLOWEST_COLUMNS`.
+    cores : int
+        Logical cores of the machine (from the run header).
+    core_busy_in_stalls : float
+        Mean busy fraction of all cores while the loop stalled, weighted by
+        overlap with the stalls; NaN when unknown (no resource samples or no stalls).
+    cores_saturated : bool or None
+        ``core_busy_in_stalls >= SATURATED_FROM``; None when unknown.
+    more_workers : str
+        'yes', 'no' or 'unknown': can more loader workers help on this machine?
+    more_workers_reason : str
+        The plain-words reason.
+    """
+
+    table: pd.DataFrame
+    slowest: pd.DataFrame
+    cores: int
+    core_busy_in_stalls: float
+    cores_saturated: bool | None
+    more_workers: str
+    more_workers_reason: str
+
+    def tail_of(self, stage: str) -> dict | None:
+        """The slowest-samples row of ``stage`` as a dict, or None."""
+        hit = self.slowest[self.slowest["stage"] == stage]
+        return None if hit.empty else hit.iloc[0].to_dict()
+
+
+def _table(run: Run, critical: CriticalPath | None, wall_s: float) -> pd.DataFrame:
+    sp = run.spans
+    sp = sp[sp["stage"] != "wait"]
+    cols = list(STAGE_COLUMNS)
+    if sp.empty:
+        return pd.DataFrame({c: pd.Series(dtype=object if c == "stage" else float) for c in cols})
+    g = sp.groupby(sp["stage"].astype(str), sort=False)["dur_s"]
+    t = g.agg(count="size", total_s="sum", mean_s="mean", max_s="max")
+    q = g.quantile([0.5, 0.95, 0.99]).unstack()
+    t["p50_s"], t["p95_s"], t["p99_s"] = q[0.5], q[0.95], q[0.99]
+    cpu = sp.groupby(sp["stage"].astype(str), sort=False)["cpu_s"].sum(min_count=1)
+    t["cpu_s"] = cpu
+    t["cpu_ratio"] = (t["cpu_s"] / t["total_s"].where(t["total_s"] > 0)).astype(float)
+    if critical is not None and len(critical.segments):
+        seg = critical.segments
+        crit = seg[seg["kind"].isin(["stage", "step"])].groupby("label")["seconds"].sum()
+        t["critical_s"] = crit.reindex(t.index).fillna(0.0)
+    else:
+        t["critical_s"] = 0.0
+    t["critical_share"] = t["critical_s"] / wall_s if wall_s > 0 else 0.0
+    t["count"] = t["count"].astype(np.int64)
+    t = t.rename_axis("stage").reset_index()
+    t["stage"] = t["stage"].astype(object)
+    return t.sort_values(["total_s", "stage"], ascending=[False, True], kind="stable")[cols].reset_index(drop=True)
+
+
+def _slowest(run: Run) -> pd.DataFrame:
+    sp = run.spans
+    sp = sp[(sp["sample_id"] >= 0) & ~sp["stage"].isin(["wait", "step"])]
+    rows = []
+    if len(sp):
+        per = sp.groupby([sp["stage"].astype(str), "sample_id"], sort=False)["dur_s"].sum().reset_index()
+        per = per.sort_values(["stage", "dur_s", "sample_id"], ascending=[True, False, True], kind="stable")
+        for stage, part in per.groupby("stage", sort=True):  # one iteration per stage
+            n = len(part)
+            k = min(_TAIL_MAX, max(1, math.ceil(TAIL_FRACTION * n)))
+            top = part.head(k)
+            total = float(part["dur_s"].sum())
+            secs = float(top["dur_s"].sum())
+            rows.append({"stage": str(stage), "samples": int(k), "of_samples": int(n),
+                         "sample_ids": [int(x) for x in top["sample_id"]], "seconds": secs,
+                         "share": secs / total if total > 0 else 0.0})
+    return pd.DataFrame(rows, columns=list(SLOWEST_COLUMNS))
+
+
+def _stall_intervals(run: Run) -> tuple[np.ndarray, np.ndarray]:
+    b = run.batches
+    b = b[(b["rank"] == (b["rank"].min() if len(b) else 0)) & (b["ready_s"] > b["wait_start_s"])]
+    b = b.sort_values("wait_start_s")
+    return b["wait_start_s"].to_numpy(np.float64), b["ready_s"].to_numpy(np.float64)
+
+
+def _covered(t: np.ndarray, s0: np.ndarray, s1: np.ndarray) -> np.ndarray:
+    """Stall time in ``[-inf, t]`` for sorted, disjoint intervals ``[s0, s1]``."""
+    if len(s0) == 0:
+        return np.zeros(len(t))
+    before = np.concatenate([[0.0], np.cumsum(s1 - s0)])
+    i = np.searchsorted(s0, t, side="right") - 1
+    inside = np.where(i >= 0, np.clip(t - s0[np.maximum(i, 0)], 0.0, (s1 - s0)[np.maximum(i, 0)]), 0.0)
+    return np.where(i >= 0, before[np.maximum(i, 0)] + inside, 0.0)
+
+
+def core_busy_during_stalls(run: Run) -> float:
+    """Mean busy fraction of all cores while the loop stalled (NaN when unknown).
+
+    Each per-core resource sample covers the time since the previous one;
+    samples are weighted by how much of that time the consumer (lowest rank)
+    was stalled.
+
+    Parameters
+    ----------
+    run : Run
+
+    Returns
+    -------
+    float
+        0 (idle) to 1 (every core busy).
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile
+    >>> d = tempfile.mkdtemp()
+    >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
+    ...     for batch in probe.watch([[0]]):
+    ...         pass
+    >>> import math; math.isnan(core_busy_during_stalls(pipeprobe.load(d)))
+    True
+
+    References
+    ----------
+    Denning, P. J. and Buzen, J. P. (1978). The operational analysis of
+    queueing network models. ACM Computing Surveys 10(3), 225-261
+    (utilisation = busy time / observed time).
+    """
+    res = run.resources
+    res = res[(res["pid"] == 0) & (res["core"] >= 0)]
+    if res.empty:
+        return float("nan")
+    res = res[res["rank"] == res["rank"].min()]
+    busy = (res.groupby("t_s", sort=True)["cpu_pct"].mean() / 100.0).clip(0.0, 1.0)
+    t = busy.index.to_numpy(np.float64)
+    interval = float(run.header.get("sample_interval_s") or 0.0)
+    if len(t) > 1:
+        prev = np.concatenate([[t[0] - (interval or (t[1] - t[0]))], t[:-1]])
+    else:
+        prev = t - (interval or 0.0)
+    s0, s1 = _stall_intervals(run)
+    w = _covered(t, s0, s1) - _covered(prev, s0, s1)
+    if w.sum() <= 0:
+        return float("nan")
+    return float(np.sum(busy.to_numpy() * w) / w.sum())
+
+
+def _more_workers(run: Run, stalls: Stalls | None, verdict_word: str | None, busy: float, cores: int,
+                  table: pd.DataFrame, critical: CriticalPath | None) -> tuple[str, str]:
+    if verdict_word == STEP_BOUND:
+        return "no", "the step sets the pace; more workers would wait on it too"
+    if stalls is not None and stalls.total_s <= 0:
+        return "no", "the loop never waited for a batch"
+    if math.isnan(busy):
+        return "unknown", "no resource samples cover the stalls (Probe(sample_interval_s=0)?)"
+    spare = cores * (1.0 - busy)
+    pct = f"{100 * busy:.0f} %"
+    if busy >= SATURATED_FROM or spare < 0.5:
+        return "no", (f"all {cores} cores were {pct} busy while the loop waited: more workers would share "
+                      "the same cores; make the input stages cheaper instead")
+    ratio = float("nan")
+    if critical is not None and len(table):
+        inp = critical.segments
+        names = set(inp.loc[(inp["side"] == "input") & (inp["kind"] == "stage"), "label"])
+        t = table[table["stage"].isin(names)]
+        if len(t) and t["cpu_s"].notna().any():
+            ratio = float(t["cpu_s"].sum() / t["total_s"].sum()) if t["total_s"].sum() > 0 else float("nan")
+    if not math.isnan(ratio) and ratio < 0.5:
+        return "yes", (f"the cores were {pct} busy while the loop waited and the input stages mostly wait "
+                       f"(CPU/wall {ratio:.2f}): more workers can overlap that waiting")
+    return "yes", f"the cores were only {pct} busy while the loop waited ({spare:.1f} of {cores} cores spare)"
+
+
+def stage_stats(run: Run, critical: CriticalPath | None = None, stalls: Stalls | None = None,
+                verdict_word: str | None = None) -> StageStats:
+    """Per-stage statistics, the slowest samples and the CPU view.
+
+    Parameters
+    ----------
+    run : Run
+    critical : CriticalPath, optional
+        For each stage's time on the critical path.
+    stalls : Stalls, optional
+        For the wall time and whether the loop stalled at all.
+    verdict_word : str, optional
+        The run's verdict; a step-bound run cannot gain from more workers.
+
+    Returns
+    -------
+    StageStats
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile
+    >>> d = tempfile.mkdtemp()
+    >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
+    ...     for i in range(5):
+    ...         with pipeprobe.stage("decode", sample=i):
+    ...             pass
+    >>> st = stage_stats(pipeprobe.load(d))
+    >>> int(st.table.loc[st.table["stage"] == "decode", "count"].iloc[0])
+    5
+
+    References
+    ----------
+    Hyndman, R. J. and Fan, Y. (1996). Sample quantiles in statistical
+    packages. The American Statistician 50(4), 361-365 (linear
+    interpolation, their definition 7, for p50/p95/p99).
+    """
+    wall = critical.wall_s if critical is not None else (stalls.wall_s if stalls is not None else run.wall_s)
+    table = _table(run, critical, wall)
+    cores = int(run.header.get("cores") or 1)
+    busy = core_busy_during_stalls(run)
+    saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
+    more, why = _more_workers(run, stalls, verdict_word, busy, cores, table, critical)
+    return StageStats(table=table, slowest=_slowest(run), cores=cores, core_busy_in_stalls=busy,
+                      cores_saturated=saturated, more_workers=more, more_workers_reason=why)

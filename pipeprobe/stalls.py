@@ -1,0 +1,339 @@
+"""Stalls: how long the training loop waited for its batches, and why.
+
+A *stall* is the time the consumer spent waiting for its next batch (the
+``wait_s`` of :attr:`Run.batches`). :func:`stall_summary` gives the total,
+its fraction of wall time, the steady-state fraction without the warm-up
+batches (stated separately), per-epoch and per-batch figures, and blames
+each stall on what ran on the critical path while it lasted.
+:func:`verdict` turns the numbers into one word.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .critical import DELIVERY, GAP, CriticalPath
+from .load import Run
+
+__all__ = [
+    "Stalls",
+    "Verdict",
+    "stall_summary",
+    "verdict",
+    "INPUT_BOUND",
+    "STEP_BOUND",
+    "BALANCED",
+    "NO_BATCHES",
+    "INPUT_BOUND_FROM",
+    "STEP_BOUND_BELOW",
+    "STALL_BATCH_COLUMNS",
+]
+
+#: Verdict: the loop waits on its input for a large part of the run.
+INPUT_BOUND = "input-bound"
+#: Verdict: the step sets the pace; the input keeps up.
+STEP_BOUND = "step-bound"
+#: Verdict: both matter; the input only just keeps up.
+BALANCED = "balanced"
+#: Verdict: nothing to judge (no batch was delivered).
+NO_BATCHES = "no batches"
+
+#: Steady-state stall fraction from which a run is input-bound (our choice:
+#: one fifth of the run lost to waiting is the first thing to fix).
+INPUT_BOUND_FROM = 0.20
+#: Steady-state stall fraction below which a run is step-bound (our choice:
+#: under 5 % the input is not worth working on).
+STEP_BOUND_BELOW = 0.05
+
+#: Columns of :attr:`Stalls.per_batch` beyond those of ``Run.batches``.
+STALL_BATCH_COLUMNS = {
+    "cycle_s": "from asking for this batch to asking for the next (last batch: to the end of its step)",
+    "warmup": "True for the warm-up batches at the start of each epoch",
+    "blame": "what ran on the critical path longest during the stall: a stage, 'delivery' or "
+             "'unexplained gap' ('' when the batch did not stall)",
+    "blame_lane": "thread that ran it ('' for gaps)",
+    "blame_s": "seconds of the stall it covered",
+    "blame_samples": "sample ids it worked on during the stall, as 'lo-hi' ('' when none)",
+    "blame_text": "the blame in words, e.g. 'decode on worker 1, samples 480-511'",
+}
+
+
+@dataclass(frozen=True)
+class Stalls:
+    """Stall figures of a run.
+
+    Attributes
+    ----------
+    total_s : float
+        Sum of all waits (over ranks).
+    fraction : float
+        ``total_s / (wall_s * ranks)``.
+    steady_s, steady_fraction : float
+        Stall time and its share of the consumer's time, warm-up batches excluded.
+    warmup_s : float
+        Stall time of the warm-up batches.
+    warmup_batches : int
+        Warm-up batches per epoch (the first ones of each epoch on each rank).
+    per_epoch : DataFrame
+        ``epoch, batches, stall_s, cycle_s, stall_fraction, warmup_stall_s``.
+    per_batch : DataFrame
+        ``Run.batches`` plus :data:`STALL_BATCH_COLUMNS`.
+    wall_s : float
+        Wall time the fractions are taken of.
+    ranks : int
+        Ranks that delivered batches (at least 1).
+    """
+
+    total_s: float
+    fraction: float
+    steady_s: float
+    steady_fraction: float
+    warmup_s: float
+    warmup_batches: int
+    per_epoch: pd.DataFrame
+    per_batch: pd.DataFrame
+    wall_s: float
+    ranks: int
+
+
+@dataclass(frozen=True)
+class Verdict:
+    """One word for the run, and the numbers behind it.
+
+    Attributes
+    ----------
+    word : str
+        :data:`INPUT_BOUND`, :data:`STEP_BOUND`, :data:`BALANCED` or :data:`NO_BATCHES`.
+    reason : str
+        The numbers behind it, in a sentence.
+    stall_fraction : float
+        The stall fraction the word was chosen on (steady state when there is one).
+    input_share : float
+        Share of wall time the critical path spent producing or delivering batches.
+    consumer_share : float
+        Share spent in steps and consumer-side stages.
+    """
+
+    word: str
+    reason: str
+    stall_fraction: float
+    input_share: float
+    consumer_share: float
+
+
+def _default_warmup(run: Run) -> int:
+    workers = run.processes.loc[run.processes["role"] == "worker", "pid"].nunique() if len(run.processes) else 0
+    return max(1, int(workers))
+
+
+def stall_summary(run: Run, critical: CriticalPath | None = None, *, warmup_batches: int | None = None,
+                  wall_s: float | None = None) -> Stalls:
+    """Sum up the stalls of a run and blame each on the critical path.
+
+    Parameters
+    ----------
+    run : Run
+        From :func:`pipeprobe.load`.
+    critical : CriticalPath, optional
+        From :func:`pipeprobe.critical.critical_path`; without it no blame is given.
+    warmup_batches : int, optional
+        Batches at the start of each epoch counted as warm-up. Default: one
+        per loader worker process (at least 1), the batches a fresh pool
+        delivers before it runs at its steady rate.
+    wall_s : float, optional
+        Wall time for the fractions; default the critical path's (else ``run.wall_s``).
+
+    Returns
+    -------
+    Stalls
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile, time
+    >>> d = tempfile.mkdtemp()
+    >>> def batches():
+    ...     for b in range(4):
+    ...         time.sleep(0.005)
+    ...         yield [b]
+    >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
+    ...     for batch in probe.watch(batches()):
+    ...         with probe.step():
+    ...             time.sleep(0.005)
+    >>> s = stall_summary(pipeprobe.load(d))
+    >>> 0.3 < s.fraction < 0.7
+    True
+
+    References
+    ----------
+    Denning, P. J. and Buzen, J. P. (1978). The operational analysis of
+    queueing network models. ACM Computing Surveys 10(3), 225-261 (busy
+    and idle time measured over an observation period).
+    """
+    if warmup_batches is None:
+        warmup_batches = _default_warmup(run)
+    if warmup_batches < 0:
+        raise ValueError(f"warmup_batches must be >= 0, got {warmup_batches}")
+    if wall_s is None:
+        wall_s = critical.wall_s if critical is not None else run.wall_s
+    b = run.batches.copy()
+    ranks = max(1, int(b["rank"].nunique())) if len(b) else 1
+    b = b.sort_values(["rank", "wait_start_s"], kind="stable").reset_index(drop=True)
+    nxt = b.groupby("rank", sort=False)["wait_start_s"].shift(-1).to_numpy(np.float64)
+    last_end = np.fmax(b["step_end_s"].to_numpy(np.float64), b["ready_s"].to_numpy(np.float64))
+    b["cycle_s"] = np.where(np.isnan(nxt), last_end, nxt) - b["wait_start_s"].to_numpy(np.float64)
+    pos = b.groupby(["rank", "epoch"], sort=False).cumcount().to_numpy()
+    b["warmup"] = pos < warmup_batches
+    wait = b["wait_s"].to_numpy(np.float64)
+    total = float(wait.sum())
+    warm = b["warmup"].to_numpy(bool)
+    steady_s = float(wait[~warm].sum())
+    steady_cycle = float(b["cycle_s"].to_numpy(np.float64)[~warm].sum())
+    if steady_cycle > 0:
+        steady_fraction = steady_s / steady_cycle
+    else:  # every batch is warm-up: there is no steady state to speak of
+        cyc = float(b["cycle_s"].sum())
+        steady_fraction = total / cyc if cyc > 0 else 0.0
+    per_epoch = (
+        b.assign(warm_wait=np.where(warm, wait, 0.0))
+        .groupby("epoch", sort=True)
+        .agg(batches=("batch_id", "size"), stall_s=("wait_s", "sum"), cycle_s=("cycle_s", "sum"),
+             warmup_stall_s=("warm_wait", "sum"))
+        .reset_index()
+    )
+    per_epoch["stall_fraction"] = np.where(per_epoch["cycle_s"] > 0,
+                                           per_epoch["stall_s"] / per_epoch["cycle_s"].where(per_epoch["cycle_s"] > 0),
+                                           0.0)
+    per_epoch = per_epoch[["epoch", "batches", "stall_s", "cycle_s", "stall_fraction", "warmup_stall_s"]]
+    b = _blame(b, critical)
+    b = b.sort_values(["rank", "batch_id"], kind="stable").reset_index(drop=True)
+    return Stalls(
+        total_s=total,
+        fraction=total / (wall_s * ranks) if wall_s > 0 else 0.0,
+        steady_s=steady_s,
+        steady_fraction=float(steady_fraction),
+        warmup_s=float(wait[warm].sum()),
+        warmup_batches=int(warmup_batches),
+        per_epoch=per_epoch,
+        per_batch=b,
+        wall_s=float(wall_s),
+        ranks=ranks,
+    )
+
+
+def _blame(b: pd.DataFrame, critical: CriticalPath | None) -> pd.DataFrame:
+    """Add the blame columns: what the critical path ran longest inside each stall."""
+    n = len(b)
+    blame = np.full(n, "", object)
+    lane = np.full(n, "", object)
+    secs = np.zeros(n)
+    samples = np.full(n, "", object)
+    text = np.full(n, "", object)
+    ws = b["wait_start_s"].to_numpy(np.float64)
+    we = b["ready_s"].to_numpy(np.float64)
+    stalled = np.flatnonzero(we > ws)
+    seg = critical.segments if critical is not None else None
+    if seg is not None and len(seg) and len(stalled):
+        s0 = seg["start_s"].to_numpy(np.float64)
+        s1 = seg["end_s"].to_numpy(np.float64)
+        lo = np.searchsorted(s1, ws[stalled], side="right")
+        hi = np.searchsorted(s0, we[stalled], side="left")
+        count = np.maximum(hi - lo, 0)
+        rows = np.repeat(stalled, count)
+        first = np.repeat(lo, count)
+        offset = np.arange(count.sum()) - np.repeat(np.cumsum(count) - count, count)
+        si = first + offset
+        overlap = np.minimum(s1[si], we[rows]) - np.maximum(s0[si], ws[rows])
+        sample = seg["sample_id"].to_numpy(np.int64)[si]
+        pairs = pd.DataFrame({
+            "row": rows, "label": seg["label"].to_numpy(object)[si], "lane": seg["lane"].to_numpy(object)[si],
+            "sec": overlap, "smin": np.where(sample >= 0, sample, np.iinfo(np.int64).max),
+            "smax": np.where(sample >= 0, sample, -1),
+        })
+        pairs = pairs[pairs["sec"] > 0]
+        g = pairs.groupby(["row", "label", "lane"], sort=False).agg(
+            sec=("sec", "sum"), smin=("smin", "min"), smax=("smax", "max")).reset_index()
+        g = g.sort_values(["row", "sec", "label"], ascending=[True, False, True], kind="stable")
+        top = g.drop_duplicates("row", keep="first")
+        r = top["row"].to_numpy(np.int64)
+        blame[r] = top["label"].to_numpy(object)
+        lane[r] = top["lane"].to_numpy(object)
+        secs[r] = top["sec"].to_numpy(np.float64)
+        smin = top["smin"].to_numpy(np.int64)
+        smax = top["smax"].to_numpy(np.int64)
+        for k, row in enumerate(r):  # one per stalled batch, not per span
+            samples[row] = "" if smax[k] < 0 else (f"{smin[k]}" if smin[k] == smax[k] else f"{smin[k]}-{smax[k]}")
+            text[row] = _blame_words(blame[row], lane[row], samples[row], int(b["batch_id"].iloc[row]))
+    return b.assign(blame=blame, blame_lane=lane, blame_s=secs, blame_samples=samples, blame_text=text)
+
+
+def _blame_words(label: str, lane: str, samples: str, batch_id: int) -> str:
+    if label == GAP:
+        return "unexplained gap (nothing recorded ran)"
+    if label == DELIVERY:
+        return "delivery (the batch was ready, on its way to the consumer)"
+    where = f" on {lane}" if lane else ""
+    if samples:
+        return f"{label}{where}, sample{'s' if '-' in samples else ''} {samples}"
+    return f"{label}{where}"
+
+
+def verdict(stalls: Stalls, critical: CriticalPath) -> Verdict:
+    """Call the run input-bound, step-bound or balanced, with the numbers behind it.
+
+    The word is chosen on the steady-state stall fraction (the overall one
+    when every batch is warm-up): at least :data:`INPUT_BOUND_FROM` is
+    input-bound, below :data:`STEP_BOUND_BELOW` step-bound, balanced between.
+
+    Parameters
+    ----------
+    stalls : Stalls
+    critical : CriticalPath
+
+    Returns
+    -------
+    Verdict
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile, time
+    >>> from pipeprobe.timeline import build_timeline
+    >>> from pipeprobe.critical import critical_path
+    >>> d = tempfile.mkdtemp()
+    >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
+    ...     for batch in probe.watch([[0], [1], [2]]):
+    ...         with probe.step():
+    ...             time.sleep(0.005)
+    >>> run = pipeprobe.load(d)
+    >>> cp = critical_path(build_timeline(run))
+    >>> verdict(stall_summary(run, cp), cp).word
+    'step-bound'
+
+    References
+    ----------
+    Amdahl, G. M. (1967). Validity of the single processor approach to
+    achieving large scale computing capabilities. AFIPS Conference
+    Proceedings 30, 483-485 (the stalled share bounds what faster input can gain).
+    """
+    sh = critical.shares
+    input_share = float(sh.loc[sh["side"].isin(["input", "delivery"]), "share"].sum())
+    consumer_share = float(sh.loc[sh["side"] == "consumer", "share"].sum())
+    if len(stalls.per_batch) == 0:
+        return Verdict(NO_BATCHES, "no batch reached a watched training loop", 0.0, input_share, consumer_share)
+    steady = bool((~stalls.per_batch["warmup"]).any())
+    frac = stalls.steady_fraction if steady else stalls.fraction
+    which = "steady-state stall" if steady else "stall"
+    if frac >= INPUT_BOUND_FROM:
+        word = INPUT_BOUND
+        rule = f">= {100 * INPUT_BOUND_FROM:.0f} %"
+    elif frac < STEP_BOUND_BELOW:
+        word = STEP_BOUND
+        rule = f"< {100 * STEP_BOUND_BELOW:.0f} %"
+    else:
+        word = BALANCED
+        rule = f"between {100 * STEP_BOUND_BELOW:.0f} and {100 * INPUT_BOUND_FROM:.0f} %"
+    reason = (f"{which} {100 * frac:.1f} % ({rule}); critical path {100 * input_share:.0f} % input, "
+              f"{100 * consumer_share:.0f} % step side")
+    return Verdict(word, reason, float(frac), input_share, consumer_share)

@@ -1,0 +1,91 @@
+"""Tests of the per-stage ceilings (pipeprobe.ceilings) and their report section.
+
+Outside references: Amdahl's law (Amdahl 1967), exact for a serial
+pipeline; the bottleneck law (Denning and Buzen 1978) for the worker count
+that keeps up with the step; hand-computed schedules.
+"""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+
+import pipeprobe
+from pipeprobe.analysis import analyze
+from pipeprobe.ceilings import ceilings, format_ceilings
+from pipeprobe.replay import plan_from_durations
+from pipeprobe.report import format_report, report_dict
+
+
+class TestSerialPipeline:
+    def test_formula_and_replay_agree_when_nothing_overlaps(self, simple_run_dir):
+        """In a serial pipeline Amdahl's law is exact (Amdahl 1967): decode's 1/3 share caps at 1.5x,
+        and the replay with decode free gives 1.5x too."""
+        c = ceilings(pipeprobe.load(simple_run_dir))
+        decode = next(r for r in c.stages if r.stage == "decode")
+        assert 1 / 3 == pytest.approx(decode.share)
+        assert 1.5 == pytest.approx(decode.amdahl_ceiling)
+        assert 1.5 == pytest.approx(decode.free_speedup)
+        # 2x: 1 / (2/3 + 1/6) = 1.2x by the formula; the replay of a serial run agrees
+        assert 1.2 == pytest.approx(decode.speedup_2x)
+        assert pipeprobe.amdahl_speedup(1 / 3, 4) == pytest.approx(decode.speedup_4x)
+
+    def test_next_critical_stage(self, simple_run_dir):
+        """With decode free, the step leads the path."""
+        c = ceilings(pipeprobe.load(simple_run_dir))
+        assert "step" == next(r for r in c.stages if r.stage == "decode").next_critical
+
+    def test_stages_sorted_by_share(self, simple_run_dir):
+        """The largest share comes first (the step: 30 of 54 ms)."""
+        c = ceilings(pipeprobe.load(simple_run_dir))
+        assert ["step", "decode", "augment"] == [r.stage for r in c.stages]
+
+
+class TestOverlappedPipeline:
+    def test_replay_stays_under_the_ceiling_for_a_hidden_stage(self):
+        """A loader hidden behind the step: making it free cannot beat Amdahl's ceiling for its share."""
+        plan = plan_from_durations([0.005] * 40, [0.01] * 40, workers=2, prefetch=4, cores=8)
+        c = ceilings(plan)
+        task = next(r for r in c.stages if r.stage == "task")
+        assert task.free_speedup <= task.amdahl_ceiling * (1 + 1e-9)
+        assert task.free_speedup == pytest.approx(1.0, abs=0.02)
+
+    def test_workers_to_hide_follow_the_bottleneck_law(self):
+        """30 ms tasks behind a 10 ms step need 3 workers: loader throughput m / 30 ms must reach
+        1 / 10 ms (bottleneck law, Denning and Buzen 1978)."""
+        plan = plan_from_durations([0.03] * 200, [0.01] * 200, workers=1, prefetch=8, cores=1,
+                                   epoch_barrier=False)
+        c = ceilings(plan)
+        assert 3 == c.workers_to_hide
+
+    def test_machine_cores_are_checked(self):
+        """CPU-bound tasks needing 4 cores do not fit on a 2-core machine."""
+        n = 200
+        plan = plan_from_durations([0.03] * n, [0.01] * n, task_cpu_s=[0.03] * n, step_cpu_s=[0.01] * n,
+                                   workers=1, prefetch=8, cores=2, epoch_barrier=False)
+        c = ceilings(plan)
+        assert 3 == c.workers_to_hide
+        assert c.has_cores is False
+        # CPU per batch 40 ms over 10 ms per batch: 4 cores kept busy
+        assert 4.0 == pytest.approx(c.cores_needed, rel=0.02)
+
+    def test_infinite_ceiling_is_written_as_inf(self):
+        """A stage that is the whole critical path has no ceiling; the text says inf."""
+        c = ceilings(plan_from_durations([0.01] * 4, [0.0] * 4, workers=0, prefetch=1, cores=1),
+                     shares={"task": 1.0})
+        assert math.inf == c.stages[0].amdahl_ceiling
+        assert "inf" in format_ceilings(c)[2]
+
+
+class TestReportSection:
+    def test_report_has_the_ceilings(self, simple_run_dir):
+        """The stall report shows the ceilings and explains formula versus replay."""
+        text = format_report(analyze(simple_run_dir))
+        assert "Speed-up ceilings" in text and "Why they differ" in text
+        assert max(len(line) for line in text.splitlines()) <= 100
+
+    def test_json_report_has_the_ceilings(self, simple_run_dir):
+        """The JSON report carries the same numbers, without infinities."""
+        d = report_dict(analyze(simple_run_dir))["ceilings"]
+        assert {"decode", "augment", "step"} == {r["stage"] for r in d["stages"]}

@@ -1,0 +1,80 @@
+"""``pipeprobe report`` and ``pipeprobe compare`` on the command line: output and exit codes."""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+from _synth import simple_pipeline, write_run
+
+from pipeprobe.cli import EXIT_BAD_INPUT, EXIT_GATE, EXIT_OK, main
+
+
+@pytest.fixture
+def slower_run_dir(tmp_path):
+    """Like simple_run_dir with decode at 5 ms: stall 36/66 instead of 24/54."""
+    return write_run(tmp_path / "slower", simple_pipeline(decode_ms=5.0))
+
+
+class TestReport:
+    def test_text(self, simple_run_dir, capsys):
+        """`pipeprobe report RUN` prints the report and exits 0."""
+        assert EXIT_OK == main(["report", str(simple_run_dir)])
+        assert "INPUT-BOUND" in capsys.readouterr().out
+
+    def test_json(self, simple_run_dir, capsys):
+        """`--json` prints one JSON object with the documented keys."""
+        assert EXIT_OK == main(["report", str(simple_run_dir), "--json"])
+        d = json.loads(capsys.readouterr().out)
+        assert (3, "input-bound") == (d["batches"], d["verdict"])
+
+    def test_missing_run_is_one_line_exit_2(self, tmp_path, capsys):
+        """A missing folder: one line on stderr that says what to pass, exit 2."""
+        assert EXIT_BAD_INPUT == main(["report", str(tmp_path / "nope")])
+        err = capsys.readouterr().err
+        assert 1 == len(err.strip().splitlines())
+        assert "Probe(out_dir)" in err
+
+
+class TestCompare:
+    def test_regression_fails_the_gate(self, simple_run_dir, slower_run_dir, capsys):
+        """Stall fraction up 10.1 points with a 5-point limit: REGRESSED, exit 1."""
+        code = main(["compare", str(simple_run_dir), str(slower_run_dir), "--max-stall-increase", "0.05"])
+        out = capsys.readouterr().out
+        assert EXIT_GATE == code
+        assert "REGRESSED" in out
+        assert max(len(x) for x in out.splitlines()) <= 100
+
+    def test_within_limits_passes(self, simple_run_dir, slower_run_dir):
+        """The same change within a 20-point limit passes (exit 0); improvements never fail."""
+        assert EXIT_OK == main(["compare", str(simple_run_dir), str(slower_run_dir), "--max-stall-increase", "0.2"])
+        assert EXIT_OK == main(["compare", str(slower_run_dir), str(simple_run_dir), "--max-stall-increase", "0",
+                                "--max-stage-increase", "0", "--max-wall-increase", "0"])
+
+    def test_stage_and_wall_gates(self, simple_run_dir, slower_run_dir, capsys):
+        """decode mean +66.7 % and wall per batch +22.2 % trip their gates."""
+        assert EXIT_GATE == main(["compare", str(simple_run_dir), str(slower_run_dir), "--max-stage-increase", "0.5"])
+        assert "stage decode mean_s" in capsys.readouterr().out
+        assert EXIT_GATE == main(["compare", str(simple_run_dir), str(slower_run_dir), "--max-wall-increase", "0.2"])
+
+    def test_json(self, simple_run_dir, slower_run_dir, capsys):
+        """`compare --json` reports each metric and the failures."""
+        main(["compare", str(simple_run_dir), str(slower_run_dir), "--max-stall-increase", "0.05", "--json"])
+        d = json.loads(capsys.readouterr().out)
+        row = {r["metric"]: r for r in d["rows"]}["stall_fraction"]
+        assert pytest.approx(36 / 66 - 24 / 54) == row["change"]
+        assert (True, 1) == (d["regressed"], len(d["failures"]))
+
+    @pytest.mark.parametrize("args", [["--max-stall-increase", "-1"], ["--max-stall-increase", "abc"], []])
+    def test_bad_arguments_exit_2(self, simple_run_dir, args, capsys):
+        """Bad thresholds or a missing run: exit 2 with a one-line error."""
+        argv = ["compare", str(simple_run_dir)] + (args + [str(simple_run_dir)] if args else [])
+        assert EXIT_BAD_INPUT == (_exit(argv))
+        assert 1 == len(capsys.readouterr().err.strip().splitlines())
+
+
+def _exit(argv):
+    try:
+        return main(argv)
+    except SystemExit as exc:
+        return exc.code

@@ -1,0 +1,405 @@
+"""Faults injected into recorded jobs: kills, signals, failing stages and workers, full disks.
+
+Anything that kills or signals runs in a child process; the test process is
+never signalled. Promises under test (README, 'Reliability'): a killed
+process loses at most about one flush interval of spans; a signal loses
+nothing recorded before it and keeps the user's handlers; user exceptions
+pass through unchanged; pipeprobe's own failures become one RuntimeWarning
+and training goes on.
+"""
+
+from __future__ import annotations
+
+import json
+import signal
+import subprocess
+import sys
+import time
+import traceback
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import pipeprobe
+from pipeprobe import stage
+
+sys.path.insert(0, str(Path(__file__).parent))
+from _faultlab import FAULT_CHILD, SIGNAL_CHILD, child_env, kill_trial, read_progress, wait_for  # noqa: E402
+
+FLUSH_S = 0.2
+# Scheduling slack on a shared 2-core machine: a flusher thread may run late.
+SLACK_S = 0.6
+
+
+def run_child(code: str, *args: str, timeout_s: float = 60) -> subprocess.CompletedProcess:
+    return subprocess.run(
+        [sys.executable, "-c", code, *args], env=child_env(), capture_output=True, text=True, timeout=timeout_s
+    )
+
+
+def load_quiet(run_dir: Path) -> pipeprobe.Run:
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return pipeprobe.load(run_dir)
+
+
+class TestKill:
+    @pytest.mark.slow
+    @pytest.mark.parametrize("target", ["main", "worker"])
+    @pytest.mark.parametrize("seed", [1, 2])
+    def test_sigkill_loses_at_most_one_flush_interval(self, tmp_path: Path, target: str, seed: int) -> None:
+        """A SIGKILLed training process or loader worker leaves a loadable trace missing at most the last flush."""
+        out = kill_trial(tmp_path, seed, target, flush_s=FLUSH_S)
+        assert "" == out.load_error
+        assert out.done > 20  # the job really ran before the kill
+        assert 0 == out.invented
+        assert out.batches_ok
+        assert out.loss_s <= FLUSH_S + SLACK_S, out
+
+    @pytest.mark.slow
+    def test_killed_run_analyses_with_incomplete_batches_marked(self, tmp_path: Path) -> None:
+        """A run killed mid-way analyses without error; batches it never finished are not invented."""
+        analysis = pytest.importorskip("pipeprobe.analysis")
+        out = kill_trial(tmp_path, 3, "main", flush_s=FLUSH_S)
+        assert "" == out.load_error
+        run = load_quiet(tmp_path / "run-main-3")
+        assert not run.header.get("closed")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            result = analysis.analyze(run)
+        b = run.batches
+        # Every batch in the table was delivered; only the last may lack a step.
+        assert np.arange(len(b)).tolist() == b["batch_id"].tolist()
+        assert b["step_s"].iloc[:-1].notna().all()
+        assert len(b) <= out.done + 1
+        assert result.run is run
+
+
+class TestSignals:
+    def _signal_run(self, tmp_path: Path, mode: str, signum: int) -> tuple[subprocess.Popen, list, Path]:
+        run_dir, progress = tmp_path / "run", tmp_path / "progress.txt"
+        child = subprocess.Popen(
+            [sys.executable, "-c", SIGNAL_CHILD, str(run_dir), str(progress), mode],
+            env=child_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+        )
+        try:
+            wait_for(progress, lambda ls: sum(k == "decode" for k, *_ in ls) >= 50, 30)
+            child.send_signal(signum)
+            child.wait(timeout=30)
+        finally:
+            if child.poll() is None:
+                child.kill()
+                child.wait()
+        return child, read_progress(progress), run_dir
+
+    def _assert_nothing_lost(self, lines: list, run_dir: Path) -> None:
+        done = {i for k, _, i, _ in lines if k == "decode"}
+        run = load_quiet(run_dir)
+        kept = set(run.spans.loc[run.spans["stage"] == "decode", "sample_id"].astype(int))
+        assert set() == done - kept  # every span announced before the signal is on disk
+        assert len(kept - done) <= 1  # at most the span that closed as the signal came
+
+    @pytest.mark.parametrize("mode", ["user-exit", "default"])
+    def test_sigterm_flushes_then_keeps_what_the_signal_did(self, tmp_path: Path, mode: str) -> None:
+        """SIGTERM still does what it did without pipeprobe (the user's handler, or death) and loses no span."""
+        child, lines, run_dir = self._signal_run(tmp_path, mode, signal.SIGTERM)
+        expected_rc = 7 if mode == "user-exit" else -signal.SIGTERM
+        assert expected_rc == child.returncode, child.stderr.read()
+        self._assert_nothing_lost(lines, run_dir)
+
+    def test_sigint_raises_keyboardinterrupt_in_user_code(self, tmp_path: Path) -> None:
+        """Ctrl-C still raises KeyboardInterrupt where the loop was, and the spans before it are kept."""
+        child, lines, run_dir = self._signal_run(tmp_path, "default", signal.SIGINT)
+        out = child.stdout.read()
+        assert 0 == child.returncode, child.stderr.read()
+        assert out.startswith("KeyboardInterrupt <module>")
+        assert "work" in out.split() or "<module>" == out.split()[1]
+        self._assert_nothing_lost(lines, run_dir)
+
+    @pytest.mark.slow
+    def test_signal_storm_during_buffer_spills_does_not_hang(self, tmp_path: Path) -> None:
+        """Signals arriving while a full buffer is being written never deadlock the job (regression)."""
+        code = r'''
+import signal, sys, time
+import pipeprobe
+hits = []
+signal.signal(signal.SIGTERM, lambda s, f: hits.append(s))
+with pipeprobe.Probe(sys.argv[1], report=False, sample_interval_s=0, buffer_spans=16, flush_interval_s=0.05) as p:
+    print("ready", flush=True)
+    t, n = time.monotonic(), 0
+    while time.monotonic() - t < 2.0:
+        with pipeprobe.stage("x"):
+            n += 1
+print(n, len(hits), flush=True)
+'''
+        child = subprocess.Popen([sys.executable, "-c", code, str(tmp_path / "run")], env=child_env(),
+                                 stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        try:
+            assert "ready" == child.stdout.readline().strip()
+            t = time.monotonic()
+            while time.monotonic() - t < 1.5 and child.poll() is None:
+                child.send_signal(signal.SIGTERM)
+                time.sleep(0.003)
+            out, err = child.communicate(timeout=20)
+        finally:
+            if child.poll() is None:
+                child.kill()
+                child.wait()
+        assert 0 == child.returncode, err
+        n, hits = map(int, out.split())
+        assert hits > 50
+        assert n == int((load_quiet(tmp_path / "run").spans["stage"] == "x").sum())
+
+    def test_user_handlers_are_restored_on_close(self, tmp_path: Path) -> None:
+        """The user's SIGTERM/SIGINT handlers are back in place after the probe closes (no signal is sent)."""
+        def mine(signum, frame):  # never called
+            raise AssertionError("not expected")
+
+        before = signal.signal(signal.SIGTERM, mine)
+        before_int = signal.getsignal(signal.SIGINT)
+        try:
+            with pipeprobe.Probe(tmp_path / "run", report=False, sample_interval_s=0):
+                assert mine is not signal.getsignal(signal.SIGTERM)  # flushes first, then calls mine
+            assert mine is signal.getsignal(signal.SIGTERM)
+            assert before_int is signal.getsignal(signal.SIGINT)
+        finally:
+            signal.signal(signal.SIGTERM, before)
+
+
+class TestUserExceptions:
+    @staticmethod
+    def _frames(exc: BaseException) -> list[tuple[str, str]]:
+        return [(f.filename, f.name) for f in traceback.extract_tb(exc.__traceback__)]
+
+    @staticmethod
+    def _fail(x: int) -> int:
+        raise ValueError(f"bad part {x}")
+
+    def _catch(self, fn) -> BaseException:
+        try:
+            fn()
+        except BaseException as exc:  # noqa: BLE001
+            return exc
+        raise AssertionError("no exception")
+
+    def test_block_form_passes_the_exception_through_unchanged(self, tmp_path: Path) -> None:
+        """A stage that raises gives the caller the same exception object, same traceback, marked in the trace."""
+        def body():
+            with stage("decode", sample=3):
+                self._fail(3)
+
+        plain = self._catch(body)
+        with pipeprobe.Probe(tmp_path / "run", report=False, sample_interval_s=0):
+            probed = self._catch(body)
+        assert type(plain) is type(probed)
+        assert str(plain) == str(probed)
+        assert self._frames(plain) == self._frames(probed)
+        run = load_quiet(tmp_path / "run")
+        assert [True] == run.spans.loc[run.spans["stage"] == "decode", "error"].tolist()
+
+    def test_decorator_form_adds_no_frame_but_its_own_wrapper(self, tmp_path: Path) -> None:
+        """The decorated stage re-raises the very exception; only pipeprobe's wrapper frame is added."""
+        raised = []
+
+        @stage("augment")
+        def augment(i: int) -> int:
+            exc = KeyError(i)
+            raised.append(exc)
+            raise exc
+
+        with pipeprobe.Probe(tmp_path / "run", report=False, sample_interval_s=0):
+            got = self._catch(lambda: augment(5))
+        assert raised[0] is got
+        user = [f for f in self._frames(got) if "pipeprobe" not in f[0]]
+        assert "augment" == user[-1][1]
+        run = load_quiet(tmp_path / "run")
+        assert [(5, True)] == list(zip(run.spans["sample_id"], run.spans["error"], strict=True))
+
+    @pytest.mark.parametrize("exc_type", [KeyboardInterrupt, SystemExit, GeneratorExit])
+    def test_base_exceptions_pass_through(self, tmp_path: Path, exc_type: type) -> None:
+        """KeyboardInterrupt, SystemExit and GeneratorExit raised in a stage reach the caller as they are."""
+        with pipeprobe.Probe(tmp_path / "run", report=False, sample_interval_s=0):
+            with pytest.raises(exc_type):
+                with stage("read"):
+                    raise exc_type()
+
+    def test_loader_timeout_passes_through_and_is_marked(self, tmp_path: Path) -> None:
+        """A loader that gives up waiting (the user's own timeout) raises as before; that wait is marked as failed."""
+        import queue
+        import threading
+
+        q: queue.Queue = queue.Queue()
+
+        def producer() -> None:  # delivers two batches, then hangs
+            for b in range(2):
+                with stage("decode", sample=b):
+                    time.sleep(0.005)
+                q.put([b])
+
+        def batches():
+            while True:
+                yield q.get(timeout=0.3)
+
+        threading.Thread(target=producer, daemon=True).start()
+        got = []
+        with pipeprobe.Probe(tmp_path / "run", report=False, sample_interval_s=0) as probe:
+            with pytest.raises(queue.Empty):
+                for batch in probe.watch(batches(), samples=lambda ids: ids):
+                    with probe.step():
+                        got.append(batch)
+        assert [[0], [1]] == got
+        run = load_quiet(tmp_path / "run")
+        waits = run.spans[run.spans["stage"] == "wait"].sort_values("start_s")
+        assert [False, False, True] == waits["error"].tolist()
+        assert [0, 1] == run.batches["batch_id"].tolist()
+
+    @pytest.mark.slow
+    def test_dataloader_worker_dying_mid_batch(self, tmp_path: Path) -> None:
+        """A torch DataLoader worker that os._exit()s mid-batch fails the loop as it would without pipeprobe."""
+        pytest.importorskip("torch")
+        code = r'''
+import os, sys, time
+import torch.utils.data as tud
+import pipeprobe
+class Parts(tud.Dataset):
+    def __len__(self):
+        return 200
+    def __getitem__(self, i):
+        with pipeprobe.stage("decode", sample=i):
+            time.sleep(0.008)
+            if i == 121:
+                os._exit(3)  # the worker dies mid-batch, skipping every exit hook
+        return i
+def train(probe):
+    loader = tud.DataLoader(Parts(), batch_size=4, num_workers=2)
+    for batch in (probe.watch(loader) if probe else loader):
+        pass
+for with_probe in (False, True):
+    try:
+        if with_probe:
+            with pipeprobe.Probe(sys.argv[1], report=False, flush_interval_s=0.2, sample_interval_s=0) as probe:
+                train(probe)
+        else:
+            train(None)
+    except Exception as exc:
+        print(type(exc).__name__, str(exc).split("(pid")[0].strip(), flush=True)
+'''
+        res = run_child(code, str(tmp_path / "run"), timeout_s=120)
+        lines = res.stdout.strip().splitlines()
+        assert 2 == len(lines), res.stderr
+        assert lines[0] == lines[1]  # same exception type and message with and without the probe
+        run = load_quiet(tmp_path / "run")
+        assert np.arange(len(run.batches)).tolist() == run.batches["batch_id"].tolist()
+        assert run.spans.loc[run.spans["stage"] == "wait", "error"].iloc[-1]
+        # The dead worker flushed every 0.2 s before dying, so both workers show.
+        assert 2 == run.spans.loc[run.spans["stage"] == "decode", "pid"].nunique()
+
+
+
+class TestOwnFailures:
+    @pytest.mark.parametrize("fault", ["fsize", "removed", "replaced"])
+    def test_one_warning_and_training_goes_on(self, tmp_path: Path, fault: str) -> None:
+        """A full disk or a run folder removed mid-run gives exactly one RuntimeWarning; the loop still finishes."""
+        run_dir = tmp_path / "run"
+        res = run_child(FAULT_CHILD, str(run_dir), fault, "20000")
+        assert 0 == res.returncode, res.stderr
+        report = json.loads(res.stdout)
+        assert 20000 == report["done"]
+        ours = [m for c, m in report["warnings"] if "pipeprobe" in m]
+        assert 1 == len(ours), report["warnings"]
+        assert "RuntimeWarning" == [c for c, m in report["warnings"] if "pipeprobe" in m][0]
+        assert ours[0].startswith("pipeprobe stopped recording")
+
+    def test_full_disk_leaves_a_readable_prefix(self, tmp_path: Path) -> None:
+        """What was written before the disk filled loads: whole records, the first samples in order."""
+        run_dir = tmp_path / "run"
+        res = run_child(FAULT_CHILD, str(run_dir), "fsize", "20000")
+        assert 0 == res.returncode, res.stderr
+        run = load_quiet(run_dir)
+        ids = np.sort(run.spans.loc[run.spans["stage"] == "decode", "sample_id"].to_numpy())
+        limit = (64 * 1024 - 16) // 48
+        assert 100 < len(ids) <= limit
+        assert np.arange(len(ids)).tolist() == ids.tolist()
+
+    def test_unusable_out_dir_at_start(self, tmp_path: Path) -> None:
+        """An out_dir that cannot be created gives one RuntimeWarning at start; the loop runs unrecorded."""
+        blocker = tmp_path / "file"
+        blocker.write_text("a file where a folder should go")
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            total = 0
+            with pipeprobe.Probe(blocker / "run", report=False, sample_interval_s=0) as probe:
+                for batch in probe.watch([[1, 2], [3, 4]]):
+                    with probe.step():
+                        total += sum(batch)
+        assert 10 == total
+        ours = [w for w in seen if "pipeprobe" in str(w.message)]
+        assert [RuntimeWarning] == [w.category for w in ours]
+        assert [blocker] == list(tmp_path.iterdir())
+
+
+@pytest.mark.slow
+def test_long_run_memory_stays_bounded(tmp_path: Path) -> None:
+    """A million spans grow the process by well under the 50 MB target (bench/bench_long_run.py runs 10 million)."""
+    code = r'''
+import sys, psutil
+import pipeprobe
+proc = psutil.Process()
+with pipeprobe.Probe(sys.argv[1], report=False, sample_interval_s=0, flush_interval_s=0.2) as probe:
+    for i in range(1_000_000):
+        with pipeprobe.stage("decode"):
+            pass
+        if i == 100_000:
+            early = proc.memory_info().rss
+    late = proc.memory_info().rss
+print(early, late)
+'''
+    res = run_child(code, str(tmp_path / "run"), timeout_s=300)
+    assert 0 == res.returncode, res.stderr
+    early, late = map(int, res.stdout.split())
+    assert late - early < 30 * 2**20
+
+
+class _HalfWriter:
+    """A span file whose next write stores only half its bytes, as a filling disk does."""
+
+    def __init__(self, fh) -> None:
+        self.fh = fh
+        self.short = True
+
+    def write(self, data: bytes) -> int:
+        if self.short:
+            self.short = False
+            return self.fh.write(data[: len(data) // 2 + 7])  # 5 records and a bit
+        return self.fh.write(data)
+
+    def __getattr__(self, name: str):
+        return getattr(self.fh, name)
+
+
+def test_short_write_stops_recording_before_records_misalign(tmp_path: Path) -> None:
+    """A write that stores part of a chunk stops recording, so later records cannot land misaligned."""
+    from pipeprobe._recorder import RECORDER
+
+    with warnings.catch_warnings(record=True) as seen:
+        warnings.simplefilter("always")
+        with pipeprobe.Probe(tmp_path / "run", report=False, sample_interval_s=0, flush_interval_s=60) as probe:
+            for i in range(10):
+                with probe.stage("decode", sample=i):
+                    pass
+            RECORDER.flush()
+            RECORDER.span_file = _HalfWriter(RECORDER.span_file)
+            for i in range(10, 20):
+                with probe.stage("decode", sample=i):
+                    pass
+            RECORDER.flush()
+            for i in range(20, 30):
+                with probe.stage("decode", sample=i):
+                    pass
+    assert 1 == sum(w.category is RuntimeWarning and "pipeprobe" in str(w.message) for w in seen)
+    with pytest.warns(UserWarning, match="truncated final record"):
+        run = pipeprobe.load(tmp_path / "run")
+    ids = run.spans.loc[run.spans["stage"] == "decode", "sample_id"].tolist()
+    assert list(range(15)) == ids

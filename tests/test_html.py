@@ -1,0 +1,184 @@
+"""The one-file HTML report: escaping, self-containment, the CLI option, and a real browser."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import tempfile
+from html.parser import HTMLParser
+from pathlib import Path
+from typing import Any
+
+import pytest
+from _synth import simple_pipeline, write_run
+
+from pipeprobe import html as ppe_html
+from pipeprobe.cli import main
+
+EVIL = "<script>alert(1)</script>"
+CHROMIUM_FLAGS = [
+    "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+    "--disable-background-networking", "--disable-component-update", "--disable-sync",
+]
+
+
+def _evil_rows() -> dict[int, list[tuple]]:
+    """The simple pipeline with its stages renamed to markup and an ampersand."""
+    rows = []
+    for row in simple_pipeline()[100]:
+        if row[0] == "stage":
+            row = (row[0], EVIL if row[1] == "decode" else 'a&b "c"', *row[2:])
+        rows.append(row)
+    return {100: rows}
+
+
+@pytest.fixture(scope="module")
+def html_evil_run_dir(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A run whose stage names are ``<script>alert(1)</script>`` and ``a&b "c"``, in a folder named with markup."""
+    return write_run(tmp_path_factory.mktemp("evil") / "run <i>x</i>", _evil_rows())
+
+
+@pytest.fixture(scope="module")
+def html_simple(tmp_path_factory: pytest.TempPathFactory) -> tuple[Any, str]:
+    """The conftest's simple run (3 batches, 8 ms waits, 10 ms steps), analysed, and its page."""
+    from pipeprobe.analysis import analyze
+
+    a = analyze(write_run(tmp_path_factory.mktemp("simple") / "simple", simple_pipeline()))
+    return a, ppe_html.render_report(a)
+
+
+class _Collect(HTMLParser):
+    """Collects tags and their attributes with the standard library's HTML parser."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.tags: list[tuple[str, dict[str, str | None]]] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag: str, attrs: list[tuple[str, str | None]]) -> None:
+        self.tags.append((tag, dict(attrs)))
+
+    def handle_data(self, data: str) -> None:
+        self.text.append(data)
+
+
+def _parse(page: str) -> _Collect:
+    p = _Collect()
+    p.feed(page)
+    p.close()
+    return p
+
+
+class TestEscaping:
+    def test_markup_in_stage_names_shows_as_text(self, html_evil_run_dir: Path) -> None:
+        """A stage named <script>...</script> is written escaped, so the parser sees text, not a tag."""
+        page = ppe_html.render_report(html_evil_run_dir)
+        assert EVIL not in page
+        assert "&lt;script&gt;alert(1)&lt;/script&gt;" in page
+        parsed = _parse(page)
+        assert [] == [t for t, _ in parsed.tags if t in ("script", "i")]
+        text = "".join(parsed.text)
+        assert EVIL in text  # the parser decodes the entities back into the visible text
+        assert 'a&b "c"' in text
+        assert "run <i>x</i>" in text
+
+
+class TestSelfContained:
+    def test_no_script_and_no_network_urls(self, html_simple: tuple[Any, str]) -> None:
+        """Every src/href is a data: URI or an in-page anchor; there is no <script> and no http(s) URL."""
+        page = html_simple[1]
+        parsed = _parse(page)
+        assert "script" not in [t for t, _ in parsed.tags]
+        links = [v for _, a in parsed.tags for k, v in a.items() if k in ("src", "href") and v is not None]
+        assert links, "the report embeds its pictures"
+        assert all(v.startswith("data:image/png;base64,") or v.startswith("#") for v in links)
+        assert "http://" not in page and "https://" not in page
+
+    def test_browser_is_told_to_fetch_nothing(self, html_simple: tuple[Any, str]) -> None:
+        """A Content-Security-Policy allows only inline style and data: images."""
+        parsed = _parse(html_simple[1])
+        csp = [a.get("content") for t, a in parsed.tags if t == "meta" and a.get("http-equiv") == "Content-Security-Policy"]
+        assert ["default-src 'none'; img-src data:; style-src 'unsafe-inline'"] == csp
+
+    def test_key_figures_are_in_the_page(self, html_simple: tuple[Any, str]) -> None:
+        """Verdict, stall share, critical-path rows and the pictures are all in the page."""
+        a, page = html_simple
+        text = "".join(_parse(page).text)
+        # by hand: 3 waits of 8 ms in a 54 ms run = 44.4 % stalled
+        assert "44.4 %" in text
+        assert a.verdict.word in text
+        for heading in ("Stalls", "Critical path", "Speed-up ceilings", "Stages", "Slowest samples", "Timeline"):
+            assert heading in text
+        assert {"decode", "augment", "step"} <= set(a.critical.shares["label"])
+        for label in ("decode", "augment", "step"):
+            assert label in text
+
+
+class TestCommandLine:
+    def test_report_writes_html(self, simple_run_dir: Path, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+        """``pipeprobe report RUN --html FILE`` writes the page and still prints the text report."""
+        out = tmp_path / "report.html"
+        assert 0 == main(["report", str(simple_run_dir), "--html", str(out)])
+        assert out.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
+        captured = capsys.readouterr()
+        assert "verdict" in captured.out
+        assert f"pipeprobe: wrote {out}\n" == captured.err
+
+    def test_missing_output_folder_is_one_line_exit_2(self, simple_run_dir: Path, tmp_path: Path,
+                                                      capsys: pytest.CaptureFixture) -> None:
+        """An HTML path in a folder that does not exist gives one line saying so, and exit code 2."""
+        assert 2 == main(["report", str(simple_run_dir), "--html", str(tmp_path / "no" / "r.html")])
+        err = capsys.readouterr().err
+        assert 1 == len(err.strip().splitlines())
+        assert "does not exist" in err and "Traceback" not in err
+
+
+def _chromium() -> tuple[str, str] | None:
+    browser = shutil.which("chromium") or shutil.which("chromium-browser")
+    driver = shutil.which("chromedriver")
+    return (browser, driver) if browser and driver else None
+
+
+@pytest.mark.skipif(_chromium() is None, reason="Chromium or chromedriver is not installed "
+                    "(Debian: apt-get install -y chromium chromium-driver); the in-browser check cannot run")
+class TestInChromium:
+    def test_page_loads_clean_and_shows_the_key_figures(self, html_evil_run_dir: Path, tmp_path: Path) -> None:
+        """In headless Chromium the page logs no console error, loads nothing from the network, and shows the figures."""
+        webdriver = pytest.importorskip("selenium.webdriver", reason="selenium is not installed (pip install selenium)")
+        from selenium.webdriver.chrome.service import Service
+        from selenium.webdriver.common.by import By
+
+        from pipeprobe.analysis import analyze
+
+        a = analyze(html_evil_run_dir)
+        page = ppe_html.write_report(a, tmp_path / "report.html")
+        browser, driver_path = _chromium()
+        opts = webdriver.ChromeOptions()
+        opts.binary_location = browser
+        for flag in CHROMIUM_FLAGS:
+            opts.add_argument(flag)
+        profile = tempfile.mkdtemp(prefix="pp-chromium-")
+        opts.add_argument(f"--user-data-dir={profile}")
+        opts.set_capability("goog:loggingPrefs", {"browser": "ALL", "performance": "ALL"})
+        drv = webdriver.Chrome(service=Service(driver_path), options=opts)
+        try:
+            drv.get(page.as_uri())
+            console = drv.get_log("browser")
+            assert [] == [e for e in console if e["level"] in ("SEVERE", "ERROR")]
+            requests = [e["message"] for e in drv.get_log("performance") if "Network.requestWillBeSent" in e["message"]]
+            assert [] == [m for m in requests if '"url":"http' in m.replace(" ", "")]
+            body = drv.find_element(By.TAG_NAME, "body").text
+            assert a.verdict.word in body
+            assert f"{100 * a.stalls.fraction:.1f} %" in body
+            assert EVIL in body  # shown as text, not run
+            assert 0 == len(drv.find_elements(By.TAG_NAME, "script"))
+            images = drv.find_elements(By.TAG_NAME, "img")
+            assert len(images) >= 4
+            widths = [int(img.get_property("naturalWidth")) for img in images]
+            assert all(w > 100 for w in widths), widths
+            headings = [h.text for h in drv.find_elements(By.TAG_NAME, "h2")]
+            assert {"Stalls", "Critical path", "Speed-up ceilings", "Slowest samples", "Timeline"} <= set(headings)
+        finally:
+            drv.quit()
+            shutil.rmtree(profile, ignore_errors=True)
+        assert os.path.getsize(page) > 10_000

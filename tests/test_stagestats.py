@@ -1,0 +1,106 @@
+"""Why it is slow: per-stage statistics, slowest samples, the CPU view."""
+
+from __future__ import annotations
+
+import math
+import time
+
+import numpy as np
+import pytest
+from _synth import pool_schedule, simple_pipeline, write_resources, write_run
+
+import pipeprobe
+from pipeprobe.analysis import analyze
+from pipeprobe.stagestats import STAGE_COLUMNS, core_busy_during_stalls, stage_stats
+
+
+class TestTable:
+    def test_counts_totals_and_percentiles(self, tmp_path):
+        """count/total/mean and p50/p95/p99 agree with numpy.percentile (linear, Hyndman and Fan's type 7)."""
+        durs = [1, 2, 3, 4, 100, 7, 8, 9, 10, 11]
+        rows = []
+        t = 0.0
+        for i, d in enumerate(durs):
+            rows.append(("stage", "decode", t, t + d, i, -1, 0))
+            t += d
+        st = stage_stats(pipeprobe.load(write_run(tmp_path / "r", {100: rows})))
+        assert list(STAGE_COLUMNS) == list(st.table.columns)
+        row = st.table.set_index("stage").loc["decode"]
+        ms = np.array(durs) / 1e3
+        assert (10, pytest.approx(ms.sum()), pytest.approx(ms.mean())) == (row["count"], row["total_s"], row["mean_s"])
+        for q in (50, 95, 99):
+            assert pytest.approx(np.percentile(ms, q)) == row[f"p{q}_s"]
+
+    def test_critical_share_of_each_stage(self, simple_run_dir):
+        """Hand check: decode is 18 of 54 ms on the critical path."""
+        a = analyze(simple_run_dir)
+        row = a.stages.table.set_index("stage").loc["decode"]
+        assert pytest.approx(18 / 54) == row["critical_share"]
+
+    def test_cpu_ratio_tells_computing_from_waiting(self, tmp_path):
+        """A busy loop has CPU/wall near 1, a sleep near 0 (thread CPU time, common practice)."""
+        d = tmp_path / "r"
+        with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
+            for _ in probe.watch([[0], [1]]):
+                with pipeprobe.stage("spin"):
+                    end = time.thread_time() + 0.02
+                    while time.thread_time() < end:
+                        pass
+                with pipeprobe.stage("nap"):
+                    time.sleep(0.02)
+        t = stage_stats(pipeprobe.load(d)).table.set_index("stage")
+        assert t.loc["spin", "cpu_ratio"] > t.loc["nap", "cpu_ratio"] + 0.3
+        assert t.loc["nap", "cpu_ratio"] < 0.2
+
+
+class TestSlowest:
+    def test_heavy_tail_share(self, tmp_path):
+        """Hand check: one sample of 100 taking 10x the others costs 10/109 of the stage's time."""
+        rows = []
+        t = 0.0
+        for i in range(100):
+            d = 10.0 if i == 37 else 1.0
+            rows.append(("stage", "decode", t, t + d, i, -1, 0))
+            t += d
+        st = stage_stats(pipeprobe.load(write_run(tmp_path / "r", {100: rows})))
+        tail = st.tail_of("decode")
+        assert (1, 100, [37]) == (tail["samples"], tail["of_samples"], tail["sample_ids"])
+        assert pytest.approx(10 / 109) == tail["share"]
+
+
+class TestCpuView:
+    def _run(self, tmp_path, pct):
+        procs, end = pool_schedule([[[4000]], [[4000]]], [1000, 1000], workers=1)
+        d = write_run(tmp_path / "r", procs, end_ms=end)
+        # samples every 2 ms; both cores at pct while the loop stalls (0-4 ms, 5-8 ms), idle otherwise
+        rows = []
+        for t in range(2, 12, 2):
+            p = pct if t <= 8 else 0.0
+            rows += [(t, 0, 0, p), (t, 0, 1, p)]
+        write_resources(d, rows)
+        return pipeprobe.load(d)
+
+    def test_core_busy_weighted_by_stall_overlap(self, tmp_path):
+        """Hand check: every sample covering a stall reads 60 % -> 0.6 busy during stalls."""
+        assert pytest.approx(0.6) == core_busy_during_stalls(self._run(tmp_path, 60.0))
+
+    def test_saturated_cores_mean_no_more_workers(self, tmp_path):
+        """With every core busy while the loop waits, more workers cannot help on this machine."""
+        a = analyze(self._run(tmp_path, 100.0))
+        assert (True, "no") == (a.stages.cores_saturated, a.stages.more_workers)
+        assert "cores" in a.stages.more_workers_reason
+
+    def test_idle_cores_mean_more_workers(self, tmp_path):
+        """With idle cores while the loop waits, more workers can help."""
+        a = analyze(self._run(tmp_path, 20.0))
+        assert (False, "yes") == (a.stages.cores_saturated, a.stages.more_workers)
+
+    def test_step_bound_needs_no_workers(self, tmp_path):
+        """When the step sets the pace, the answer is no, whatever the cores do."""
+        a = analyze(write_run(tmp_path / "r", simple_pipeline(decode_ms=0.01, augment_ms=0.0, step_ms=10.0)))
+        assert "no" == a.stages.more_workers
+
+    def test_unknown_without_resource_samples(self, simple_run_dir):
+        """No resource samples: the answer is 'unknown', not a guess."""
+        a = analyze(simple_run_dir)
+        assert ("unknown", True) == (a.stages.more_workers, math.isnan(a.stages.core_busy_in_stalls))

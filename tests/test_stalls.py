@@ -1,0 +1,110 @@
+"""Stalls: totals, fractions, warm-up, per epoch and per batch, blame and verdict."""
+
+from __future__ import annotations
+
+import pytest
+from _synth import pool_schedule, simple_pipeline, write_run
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+import pipeprobe
+from pipeprobe.analysis import analyze
+from pipeprobe.critical import critical_path
+from pipeprobe.stalls import BALANCED, INPUT_BOUND, NO_BATCHES, STEP_BOUND, stall_summary, verdict
+from pipeprobe.timeline import build_timeline
+
+
+def _stalls(run_dir, **kw):
+    run = pipeprobe.load(run_dir)
+    cp = critical_path(build_timeline(run))
+    return run, cp, stall_summary(run, cp, **kw)
+
+
+class TestHandChecked:
+    def test_simple_pipeline(self, simple_run_dir):
+        """Hand check: each batch waits 8 ms of an 18 ms cycle; wall 54 ms; batch 0 is warm-up."""
+        _, _, s = _stalls(simple_run_dir)
+        assert pytest.approx(0.024) == s.total_s
+        assert pytest.approx(24 / 54) == s.fraction
+        assert pytest.approx(16 / 36) == s.steady_fraction
+        assert pytest.approx(0.008) == s.warmup_s
+        assert [True, False, False] == s.per_batch["warmup"].tolist()
+        assert pytest.approx([0.018] * 3) == s.per_batch["cycle_s"].tolist()
+        assert [(0, 3)] == list(zip(s.per_epoch["epoch"], s.per_epoch["batches"], strict=True))
+
+    def test_warmup_batches_parameter(self, simple_run_dir):
+        """warmup_batches=0 makes the steady state the whole run; negative is refused."""
+        run, cp, s = _stalls(simple_run_dir, warmup_batches=0)
+        assert pytest.approx(24 / 54) == s.steady_fraction
+        with pytest.raises(ValueError, match="warmup_batches"):
+            stall_summary(run, cp, warmup_batches=-1)
+
+    def test_sleep_pipeline_within_five_percent(self, analysis_sleep_run):
+        """Sleep pipeline, by hand: 4 x (6 + 2) ms = 32 ms wait per 52 ms cycle -> stall 32/52; critical-path
+        shares decode 24/52, augment 8/52, step 20/52. The analysis matches within 5 %."""
+        a = analyze(analysis_sleep_run)
+        assert pytest.approx(32 / 52, rel=0.05) == a.stalls.fraction
+        assert pytest.approx(32 / 52, rel=0.05) == a.stalls.steady_fraction
+        shares = a.stage_shares()
+        assert pytest.approx(24 / 52, rel=0.05) == shares["decode"]
+        assert pytest.approx(8 / 52, rel=0.05) == shares["augment"]
+        assert pytest.approx(20 / 52, rel=0.05) == shares["step"]
+
+
+class TestBlame:
+    def test_stall_blamed_on_worker_stage_and_samples(self, tmp_path):
+        """A stall behind one slow worker stage names the stage, the worker and the sample range."""
+        spec = dict(stage_us=[[[3000, 1000], [3000, 1000]], [[3000, 1000], [3000, 1000]]],
+                    step_us=[1000, 1000], workers=1)
+        procs, end = pool_schedule(**spec)
+        _, _, s = _stalls(write_run(tmp_path / "r", procs, end_ms=end))
+        row = s.per_batch.iloc[1]
+        assert ("s0", "worker 1", "2-3") == (row["blame"], row["blame_lane"], row["blame_samples"])
+        assert "s0 on worker 1, samples 2-3" == row["blame_text"]
+        # batch 1 waits 9..16 ms; on the path then: s0 of sample 2 (9..11 of 8..11), s1 11..12, s0 of
+        # sample 3 12..15, s1 15..16 -> s0 holds 2 + 3 = 5 ms of the stall
+        assert pytest.approx(0.005) == row["blame_s"]
+
+    def test_no_stall_no_blame(self, tmp_path):
+        """A batch that did not wait has no blame."""
+        spec = dict(stage_us=[[[100]], [[100]]], step_us=[5000, 5000], workers=2)
+        procs, end = pool_schedule(**spec)
+        _, _, s = _stalls(write_run(tmp_path / "r", procs, end_ms=end))
+        assert "" == s.per_batch.iloc[1]["blame"]
+
+
+class TestVerdict:
+    @pytest.mark.parametrize(
+        "decode_ms, step_ms, word",
+        [(10.0, 1.0, INPUT_BOUND), (0.01, 10.0, STEP_BOUND), (1.0, 10.0, BALANCED)],
+    )
+    def test_words(self, tmp_path, decode_ms, step_ms, word):
+        """Steady stall >= 20 % is input-bound, < 5 % step-bound, between balanced."""
+        d = write_run(tmp_path / "r", simple_pipeline(n_batches=4, samples_per_batch=1, decode_ms=decode_ms,
+                                                      augment_ms=0.0, step_ms=step_ms))
+        run, cp, s = _stalls(d)
+        v = verdict(s, cp)
+        assert word == v.word
+        assert f"{100 * v.stall_fraction:.1f} %" in v.reason
+
+    def test_no_batches(self, tmp_path):
+        """A run without a watched loop says so instead of guessing."""
+        run, cp, s = _stalls(write_run(tmp_path / "r", {100: [("stage", "decode", 0, 1, 0, -1, 0)]}))
+        assert NO_BATCHES == verdict(s, cp).word
+
+
+SETTINGS = settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+
+
+class TestProperties:
+    @SETTINGS
+    @given(stage=st.lists(st.integers(1, 4000), min_size=1, max_size=6),
+           step=st.lists(st.integers(1, 4000), min_size=1, max_size=6), workers=st.integers(1, 3))
+    def test_stall_never_exceeds_wall(self, tmp_path_factory, stage, step, workers):
+        """Stall time is part of the wall time: 0 <= stall <= wall, fraction in [0, 1]."""
+        n = min(len(stage), len(step))
+        procs, end = pool_schedule([[[d]] for d in stage[:n]], step[:n], workers=workers)
+        _, _, s = _stalls(write_run(tmp_path_factory.mktemp("h") / "r", procs, end_ms=end))
+        assert 0.0 <= s.total_s <= s.wall_s + 1e-12
+        assert 0.0 <= s.fraction <= 1.0
+        assert 0.0 <= s.steady_fraction <= 1.0
