@@ -109,3 +109,42 @@ class TestEdges:
                 assert -1 == p
             else:
                 assert max(end[u] for u in preds) == end[p]
+
+
+def _slot_run(root):
+    """Two workers, prefetch 2: worker B finishes batch 1 at 12 ms and idles until the consumer
+    takes batch 1 (15.1 ms, after step 0) frees a slot; its batch 3 then takes until 40 ms."""
+    main = [
+        ("wait", "", 0, 10, -1, 0, 0), ("member", "", 10, 10, 0, 0, 0), ("step", "", 10, 15, -1, 0, 0),
+        ("wait", "", 15, 15.1, -1, 1, 0), ("member", "", 15.1, 15.1, 1, 1, 0), ("step", "", 15.1, 25, -1, 1, 0),
+        ("wait", "", 25, 25.05, -1, 2, 0), ("member", "", 25.05, 25.05, 2, 2, 0), ("step", "", 25.05, 30, -1, 2, 0),
+        ("wait", "", 30, 40, -1, 3, 0), ("member", "", 40, 40, 3, 3, 0), ("step", "", 40, 45, -1, 3, 0),
+    ]
+    worker_a = [("stage", "decode", 0, 10, 0, -1, -1), ("stage", "decode", 10, 20, 2, -1, -1)]
+    worker_b = [("stage", "decode", 0, 12, 1, -1, -1), ("stage", "decode", 15.1, 40, 3, -1, -1)]
+    return write_run(root, {100: main, 101: worker_a, 102: worker_b})
+
+
+class TestSlotEdges:
+    def test_idle_worker_waits_for_the_consumer_not_a_gap(self, tmp_path):
+        """A worker idle until the consumer frees a prefetch slot is explained by that delivery:
+        the critical path runs through step 0 and the delivery of batch 1, with no unexplained gap."""
+        tl = build_timeline(pipeprobe.load(_slot_run(tmp_path / "r")))
+        nodes = tl.nodes
+        deliv1 = int(nodes[(nodes["kind"] == "delivery") & (nodes["batch_id"] == 1)]["node"].iloc[0])
+        decode3 = int(nodes[(nodes["stage"] == "decode") & (nodes["sample_id"] == 3)]["node"].iloc[0])
+        assert (deliv1, decode3) in _edge_set(tl, "slot")
+        assert deliv1 == int(nodes.loc[decode3, "pred"])
+        path = pipeprobe.critical.critical_path(tl)
+        on_path = set(path.path["node"].tolist())
+        step0 = int(nodes[(nodes["kind"] == "step") & (nodes["batch_id"] == 0)]["node"].iloc[0])
+        assert {deliv1, decode3, step0} <= on_path
+        shares = dict(zip(path.shares["label"], path.shares["seconds"], strict=True))
+        assert abs(0.045 - sum(shares.values())) < 1e-9
+        assert shares.get("unexplained gap", 0.0) < 1e-4
+
+    def test_slot_path_is_a_longest_path(self, tmp_path):
+        """networkx.dag_longest_path_length on the weighted graph equals the wall time (networkx reference)."""
+        tl = build_timeline(pipeprobe.load(_slot_run(tmp_path / "r")))
+        g = tl.to_networkx()
+        assert abs(tl.wall_s - nx.dag_longest_path_length(g, weight="weight")) < 1e-9
