@@ -64,6 +64,13 @@ class TestPredictions:
         assert p.measured_wall_s == pytest.approx(p.predicted_wall_s)
         assert 1.0 == pytest.approx(p.predicted_speedup)
 
+    def test_run_method_is_the_same_prediction(self, simple_run_dir):
+        """`run.whatif(...)` gives the same prediction as `pipeprobe.whatif(run, ...)`."""
+        run = pipeprobe.load(simple_run_dir)
+        by_method = run.whatif(faster={"decode": math.inf})
+        assert whatif(run, faster={"decode": math.inf}).predicted_wall_s == by_method.predicted_wall_s
+        assert 1.5 == pytest.approx(by_method.predicted_speedup)
+
     def test_serial_pipeline_follows_amdahl(self, simple_run_dir):
         """In a serial pipeline Amdahl's law is exact (Amdahl 1967): decode is 18 of 54 ms, free -> 1.5x."""
         p = whatif(simple_run_dir, faster={"decode": math.inf})
