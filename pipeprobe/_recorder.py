@@ -392,7 +392,7 @@ RECORDER = _Recorder()
 
 
 # -- closing worker processes that outlive the probe ---------------------------
-CLOSE_POLL_S = 0.05
+CLOSE_POLL_S = 0.2  # worker wake-ups per second stay few: each needs the GIL
 
 
 def close_request_name(rank: int) -> str:

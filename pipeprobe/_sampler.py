@@ -23,6 +23,8 @@ from . import tracefile as tf
 class ResourceSampler:
     """Samples resources on a daemon thread; :meth:`write` appends them to disk."""
 
+    RESCAN = 5
+
     def __init__(self, run_dir: Path, rank: int, interval_s: float) -> None:
         self.path = Path(run_dir) / f"res-r{rank}.bin"
         self.interval_s = interval_s
@@ -33,6 +35,7 @@ class ResourceSampler:
         self.procs: dict[int, psutil.Process] = {}
         self.main = psutil.Process(os.getpid())
         self.failed = False
+        self.ticks = 0
 
     def start(self) -> None:
         with open(self.path, "ab") as fh:
@@ -68,10 +71,16 @@ class ResourceSampler:
         """Take one sample of every process and core now."""
         t = monotonic_ns()
         rows = []
-        try:
-            children = self.main.children(recursive=True)
-        except psutil.Error:
-            children = []
+        # Finding children scans every process on the machine; do it every
+        # RESCAN-th sample and keep the known ones in between.
+        self.ticks += 1
+        if self.ticks % self.RESCAN == 1:
+            try:
+                children = self.main.children(recursive=True)
+            except psutil.Error:
+                children = []
+        else:
+            children = list(self.procs.values())
         alive = {self.main.pid: self.main}
         for child in children:
             known = self.procs.get(child.pid)

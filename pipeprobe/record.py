@@ -92,14 +92,18 @@ class _CpuSpan(_Span):
 
     __slots__ = ("_c0",)
 
+    # The thread CPU clock is a system call, and the kernel may deschedule
+    # the thread on its way back: reading it inside the wall-clock reads
+    # puts that wait in the span (where cpu_s < dur_s shows it), not in a
+    # gap between spans that nothing recorded.
     def __enter__(self) -> _CpuSpan:
-        self._c0 = thread_time_ns()
         self._t0 = monotonic_ns()
+        self._c0 = thread_time_ns()
         return self
 
     def __exit__(self, et: Any, ev: Any, tb: Any) -> bool:
-        t1 = monotonic_ns()
         cpu = thread_time_ns() - self._c0
+        t1 = monotonic_ns()
         try:
             buf = TLS.buf
         except AttributeError:
@@ -132,20 +136,21 @@ def _timed(fn: Callable[..., T], name: str) -> Callable[..., T]:
         if code is None:
             code = codes[name] = rec.stage_id(name)
         sample = args[pos] if len(args) > pos and type(args[pos]) is int else -1
-        c0 = thread_time_ns() if rec.cpu_time else -1
         t0 = monotonic_ns()
+        c0 = thread_time_ns() if rec.cpu_time else -1  # inside the wall reads: see _CpuSpan
         try:
             return fn(*args, **kwargs)
         except BaseException:
             code |= _ERROR_BITS
             raise
         finally:
+            cpu = thread_time_ns() - c0 if c0 >= 0 else -1
             t1 = monotonic_ns()
             try:
                 buf = TLS.buf
             except AttributeError:
                 buf = rec.buffer()
-            buf.extend((t0, t1, thread_time_ns() - c0 if c0 >= 0 else -1, sample, buf.ctx, code))
+            buf.extend((t0, t1, cpu, sample, buf.ctx, code))
             if len(buf) >= buf.limit:
                 rec.spill(buf)
 
