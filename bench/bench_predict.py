@@ -20,7 +20,7 @@ know what other jobs will do during run B):
 
 The step's BLAS library is held to one thread: with its default two threads
 on a 2-core machine it spins against the loader workers, which slows steps
-tenfold in a way no CPU-time trace shows (see docs/readme-whatif.md).
+tenfold in a way no CPU-time trace shows (see the README, "Predicted against real reruns").
 """
 
 from __future__ import annotations
