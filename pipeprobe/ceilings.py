@@ -271,6 +271,12 @@ def format_ceilings(c: Ceilings, width: int = 100) -> list[str]:
             f"Workers to hide the input behind the step: {c.workers_to_hide} (recorded {c.workers}), "
             f"leaving {100 * c.stall_left:.1f} % stall; {where} (it keeps about {c.cores_needed:.1f} cores busy)."
         )
+        if c.stall_left >= 0.05:
+            advice += (
+                " The stall left is the wait for the first batches of each epoch and for one batch's "
+                "loading time, which more workers cannot shorten: start the next epoch's batches before "
+                "this one ends, or split a batch's loading across workers."
+            )
     note = (
         "Why they differ: the formula assumes the stage's share of the critical path shrinks and nothing "
         "else moves. The replay re-runs the pipeline: once a stage is cheaper another one (or the step) sets "
