@@ -99,6 +99,8 @@ class _Recorder:
 
     # -- set-up ---------------------------------------------------------
     def _reset_process_state(self) -> None:
+        self.flushing_tid = 0  # thread now inside flush(), 0 if none
+        self.pending_signal: tuple[int, Any] | None = None
         self.buffers: list[_Buffer] = []
         self.meta_lock = threading.Lock()
         self.io_lock = threading.Lock()
@@ -252,6 +254,20 @@ class _Recorder:
         """
         if not self.on:
             return
+        me = threading.get_ident()
+        outer = self.flushing_tid != me
+        if outer:
+            self.flushing_tid = me  # a signal arriving now waits for this flush (see _on_signal)
+        try:
+            self._flush(lock_timeout_s)
+        finally:
+            if outer:
+                self.flushing_tid = 0
+                pending, self.pending_signal = self.pending_signal, None
+                if pending is not None:
+                    _deliver(*pending)
+
+    def _flush(self, lock_timeout_s: float) -> None:
         # Take the file lock before any records, so records are never taken
         # out of a buffer and then dropped because the file is busy.
         if not self.io_lock.acquire(timeout=lock_timeout_s):
@@ -271,7 +287,7 @@ class _Recorder:
             self.io_lock.release()
         for writer in list(self.extra_writers):
             try:
-                writer()
+                writer(lock_timeout_s)
             except Exception as exc:  # noqa: BLE001 - never take training down
                 self.fail(exc)
 
@@ -539,19 +555,34 @@ _PREVIOUS_HANDLERS: dict[int, Any] = {}
 
 def _on_signal(signum: int, frame: Any) -> None:
     rec = RECORDER
+    if rec.flushing_tid == threading.get_ident():
+        # The interrupted code is writing records: dying or raising now would
+        # lose them. The flush delivers the signal as soon as it is done.
+        rec.pending_signal = (signum, frame)
+        return
     try:
         rec.flush(lock_timeout_s=0.2)
         for hook in list(_SIGNAL_CLOSERS):
             hook()
     except Exception:  # noqa: BLE001 - the signal must still be delivered
         pass
+    _deliver(signum, frame)
+
+
+def _deliver(signum: int, frame: Any) -> None:
+    """Hand a signal to the handler that was there before pipeprobe's."""
+    rec = RECORDER
     previous = _PREVIOUS_HANDLERS.get(signum, signal.SIG_DFL)
     if callable(previous):
         previous(signum, frame)
     elif previous == signal.SIG_IGN:
         return
     else:
-        rec.stop(lock_timeout_s=0.2)
+        # Not rec.stop(): the interrupted code may hold a lock that stop()
+        # takes without a timeout (e.g. inside Event.set() of an exit flush),
+        # and the process is about to end anyway. The span file is
+        # unbuffered, so what flush() wrote is on disk.
+        rec.on = False
         signal.signal(signum, signal.SIG_DFL)
         os.kill(os.getpid(), signum)
 

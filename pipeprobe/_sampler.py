@@ -104,10 +104,18 @@ class ResourceSampler:
         with self.lock:
             self.rows.extend(rows)
 
-    def write(self) -> None:
-        """Append the rows gathered since the last call to the resource file."""
-        with self.lock:
+    def write(self, lock_timeout_s: float = -1) -> None:
+        """Append the rows gathered since the last call to the resource file.
+
+        ``lock_timeout_s >= 0`` (from a signal handler) gives up instead of
+        waiting for a lock the interrupted thread may hold.
+        """
+        if not self.lock.acquire(timeout=lock_timeout_s):
+            return
+        try:
             rows, self.rows = self.rows, []
+        finally:
+            self.lock.release()
         if not rows:
             return
         arr = np.array(rows, dtype=[(n, tf.RESOURCE_RECORD[n]) for n in

