@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import sys
+import warnings
 from typing import Sequence
 
 from .errors import PipeprobeError
@@ -172,11 +173,20 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     handlers = {"demo": _cmd_demo, "report": _cmd_report, "compare": _cmd_compare, "whatif": _cmd_whatif}
+    previous = warnings.showwarning
+    warnings.showwarning = _one_line_warning
     try:
         return handlers[args.command](args)
     except (PipeprobeError, _UsageError, FileNotFoundError, NotADirectoryError, PermissionError) as exc:
         print(f"pipeprobe: error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    finally:
+        warnings.showwarning = previous
+
+
+def _one_line_warning(message, category, filename, lineno, file=None, line=None) -> None:  # noqa: ANN001
+    """Print a warning as one line, like the errors (no source location: it is about the input)."""
+    print(f"pipeprobe: warning: {message}", file=file or sys.stderr)
 
 
 if __name__ == "__main__":

@@ -153,3 +153,14 @@ class TestAsASubprocess:
         res = self._run("report", str(tmp_path), "--json")
         assert "" == res.stdout
         assert_one_line_error(res.returncode, res.stderr)
+
+
+def test_load_warnings_are_one_line_each(tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+    """A damaged run still reports; each problem is one 'pipeprobe: warning:' line naming the file."""
+    root = write_run(tmp_path / "r", simple_pipeline())
+    (root / "spans-r0-p100.json").unlink()
+    code, err = run_main(["report", str(root)], capsys)
+    lines = [line for line in err.splitlines() if line.strip()]
+    assert 0 == code
+    assert 1 == len(lines), err
+    assert lines[0].startswith("pipeprobe: warning: ") and "spans-r0-p100" in lines[0]
