@@ -60,6 +60,11 @@ def analysis_pool_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
 def analysis_sleep_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """Recorded run: one producer (a generator in the training thread), per batch 4 samples x
     (6 ms decode + 2 ms augment), then a 20 ms step; 6 batches."""
+    return record_sleep_run(tmp_path_factory.mktemp("analysis_sleep") / "run")
+
+
+def record_sleep_run(d: Path) -> Path:
+    """Record the sleep pipeline of :func:`analysis_sleep_run` into ``d``."""
     import time
 
     import pipeprobe
@@ -73,7 +78,6 @@ def analysis_sleep_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
                     time.sleep(0.002)
             yield b
 
-    d = tmp_path_factory.mktemp("analysis_sleep") / "run"
     with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
         for _ in probe.watch(batches()):
             with probe.step():
