@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import sys
 from pathlib import Path
 
@@ -9,6 +10,14 @@ import matplotlib
 import pytest
 
 matplotlib.use("Agg")
+
+# CI runs the property tests on the same examples every time (a red build must be reproducible);
+# locally they explore new examples on every run.
+from hypothesis import settings  # noqa: E402
+
+settings.register_profile("ci", derandomize=True, database=None)
+if os.environ.get("PIPEPROBE_CI"):
+    settings.load_profile("ci")
 sys.path.insert(0, str(Path(__file__).parent))
 
 from _synth import simple_pipeline, write_run  # noqa: E402
