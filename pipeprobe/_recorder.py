@@ -99,7 +99,7 @@ class _Recorder:
 
     # -- set-up ---------------------------------------------------------
     def _reset_process_state(self) -> None:
-        self.flushing_tid = 0  # thread now inside flush(), 0 if none
+        self.in_flush = threading.local()  # .on: this thread is inside flush()
         self.pending_signal: tuple[int, Any] | None = None
         self.buffers: list[_Buffer] = []
         self.meta_lock = threading.Lock()
@@ -188,6 +188,7 @@ class _Recorder:
         t.start()
 
     def _flush_loop(self) -> None:
+        block_signals_in_this_thread()
         stop = self.stop_event
         if self.role != "worker" or self.run_dir is None:
             while not stop.wait(self.flush_interval_s):
@@ -254,18 +255,19 @@ class _Recorder:
         """
         if not self.on:
             return
-        me = threading.get_ident()
-        outer = self.flushing_tid != me
-        if outer:
-            self.flushing_tid = me  # a signal arriving now waits for this flush (see _on_signal)
+        mine = self.in_flush
+        outer = not getattr(mine, "on", False)
+        mine.on = True  # a signal arriving in this thread now waits for this flush (see _on_signal)
         try:
             self._flush(lock_timeout_s)
         finally:
             if outer:
-                self.flushing_tid = 0
-                pending, self.pending_signal = self.pending_signal, None
-                if pending is not None:
-                    _deliver(*pending)
+                mine.on = False
+                # Signals run in the main thread, and only it may deliver one it held back.
+                if threading.current_thread() is threading.main_thread():
+                    pending, self.pending_signal = self.pending_signal, None
+                    if pending is not None:
+                        _deliver(*pending)
 
     def _flush(self, lock_timeout_s: float) -> None:
         # Take the file lock before any records, so records are never taken
@@ -555,7 +557,7 @@ _PREVIOUS_HANDLERS: dict[int, Any] = {}
 
 def _on_signal(signum: int, frame: Any) -> None:
     rec = RECORDER
-    if rec.flushing_tid == threading.get_ident():
+    if getattr(rec.in_flush, "on", False):
         # The interrupted code is writing records: dying or raising now would
         # lose them. The flush delivers the signal as soon as it is done.
         rec.pending_signal = (signum, frame)
@@ -588,6 +590,21 @@ def _deliver(signum: int, frame: Any) -> None:
 
 
 _SIGNAL_CLOSERS: list[Any] = []
+
+
+def block_signals_in_this_thread() -> None:
+    """Keep SIGTERM and SIGINT away from a pipeprobe thread.
+
+    The kernel may hand a process signal to any thread that does not block
+    it. If it lands on one of our background threads while the main thread
+    waits in a call that only a signal would interrupt (a lock, a pipe),
+    Python's handler, which runs in the main thread, waits with it: a pool
+    worker told to terminate would never do so.
+    """
+    try:
+        signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGTERM, signal.SIGINT})
+    except (AttributeError, OSError, ValueError):
+        pass
 
 
 def install_signal_hooks() -> None:
