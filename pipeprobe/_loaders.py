@@ -66,14 +66,20 @@ def _recording() -> bool:
     return rec.on or (not rec.checked_env and _r.attach_from_env())
 
 
+def _start() -> tuple[int, int]:
+    """Wall and thread-CPU clocks at a span's start, CPU read inside (as in ``record._CpuSpan``)."""
+    t0 = monotonic_ns()
+    return t0, (thread_time_ns() if _r.RECORDER.cpu_time else -1)
+
+
 def _record(name: str, t0: int, c0: int, sample: int, failed: bool) -> None:
     """Append one finished span of our own stage ``name`` (never raises)."""
+    cpu = thread_time_ns() - c0 if c0 >= 0 else -1
     t1 = monotonic_ns()
     rec = _r.RECORDER
     try:
         code = rec.stage_id(name) | (_ERROR_BITS if failed else 0)
         buf = rec.buffer()
-        cpu = thread_time_ns() - c0 if c0 >= 0 else -1
         buf.extend((t0, t1, cpu, sample, buf.ctx, code))
         if len(buf) >= buf.limit:
             rec.spill(buf)
@@ -130,17 +136,7 @@ class _TimedDataset(_Forwarding):
         sample = _as_id(index)
         if getattr(_FIRST, "id", -1) < 0:
             _FIRST.id = sample
-        c0 = thread_time_ns() if _r.RECORDER.cpu_time else -1
-        t0 = monotonic_ns()
-        failed = True
-        try:
-            item = self._pp_inner[index]
-            failed = False
-            return item
-        finally:
-            if failed:
-                _FIRST.id = -1
-            _record(FETCH_STAGE, t0, c0, sample, failed)
+        return _timed(FETCH_STAGE, self._pp_inner.__getitem__, index, sample, forget_first=True)
 
 
 class _TimedBatchDataset(_TimedDataset):
@@ -155,15 +151,21 @@ class _TimedBatchDataset(_TimedDataset):
             sample = -1
         if getattr(_FIRST, "id", -1) < 0:
             _FIRST.id = sample
-        c0 = thread_time_ns() if _r.RECORDER.cpu_time else -1
-        t0 = monotonic_ns()
-        failed = True
-        try:
-            items = self._pp_inner.__getitems__(indices)
-            failed = False
-            return items
-        finally:
-            _record(FETCH_STAGE, t0, c0, sample, failed)
+        return _timed(FETCH_STAGE, self._pp_inner.__getitems__, indices, sample)
+
+
+def _timed(name: str, call: Any, arg: Any, sample: int, forget_first: bool = False) -> Any:
+    """Run ``call(arg)`` as a span of stage ``name``; on failure optionally forget the batch's first id."""
+    t0, c0 = _start()
+    failed = True
+    try:
+        out = call(arg)
+        failed = False
+        return out
+    finally:
+        if failed and forget_first:
+            _FIRST.id = -1
+        _record(name, t0, c0, sample, failed)
 
 
 def _worker_slot() -> tuple[int, int]:
@@ -198,8 +200,7 @@ class _TimedIterable(_Forwarding):
                 yield item
                 continue
             sample = k * workers + worker
-            c0 = thread_time_ns() if _r.RECORDER.cpu_time else -1
-            t0 = monotonic_ns()
+            t0, c0 = _start()
             try:
                 item = next(it)
             except StopIteration:
@@ -225,15 +226,7 @@ class _TimedCollate:
         _FIRST.id = -1
         if not _recording():
             return self.inner(data)
-        c0 = thread_time_ns() if _r.RECORDER.cpu_time else -1
-        t0 = monotonic_ns()
-        failed = True
-        try:
-            out = self.inner(data)
-            failed = False
-            return out
-        finally:
-            _record(COLLATE_STAGE, t0, c0, sample, failed)
+        return _timed(COLLATE_STAGE, self.inner, data, sample)
 
     def __getattr__(self, name: str) -> Any:
         if name == "inner":
