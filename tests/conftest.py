@@ -20,6 +20,10 @@ if os.environ.get("PIPEPROBE_CI"):
     settings.load_profile("ci")
 sys.path.insert(0, str(Path(__file__).parent))
 
+# Helper scripts (``_*.py``) are run as subprocesses or imported by tests; ``--doctest-modules``
+# must not import them on its own (``_ddp_job.py`` needs torch, which is optional).
+collect_ignore_glob = ["_*.py"]
+
 from _synth import simple_pipeline, write_run  # noqa: E402
 
 
