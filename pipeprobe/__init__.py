@@ -33,7 +33,8 @@ from .load import Run, load  # noqa: E402
 from .ranks import RankView, rank_view  # noqa: E402
 from .record import Probe, stage  # noqa: E402
 from .stagestats import StageStats, stage_stats  # noqa: E402
-from .stalls import Stalls, Verdict, stall_summary  # noqa: E402
+from .pace import Verdict  # noqa: E402
+from .stalls import Stalls, stall_summary  # noqa: E402
 from .timeline import Timeline, build_timeline  # noqa: E402
 from .whatif import Prediction, whatif  # noqa: E402
 from .whatif import sweep as whatif_sweep  # noqa: E402

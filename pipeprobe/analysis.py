@@ -1,8 +1,9 @@
 """One entry point for the analysis: :func:`analyze` a run into an :class:`Analysis`.
 
 The :class:`Analysis` collects the dependency timeline, the critical path
-and its attribution, the stalls, the per-stage statistics, the verdict and
-the suggested actions. The report, the what-if replay and the plots read
+and its attribution, the stalls, the per-stage statistics and the
+suggested actions. The verdict (what sets the pace, what a change would
+buy) needs the replay and is made one layer up, in :mod:`pipeprobe.pace`. The report, the what-if replay and the plots read
 from it; nothing in it is recomputed by them.
 """
 
@@ -11,10 +12,10 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass
 
-from .critical import DELIVERY, GAP, CriticalPath, critical_path
+from .critical import DELIVERY, GAP, PACE_SPEEDUP, CriticalPath, critical_path
 from .load import Run, load
 from .stagestats import StageStats, stage_stats
-from .stalls import INPUT_BOUND, NO_BATCHES, STEP_BOUND, Stalls, Verdict, stall_summary, verdict
+from .stalls import Stalls, stall_summary
 from .timeline import Timeline, build_timeline
 
 __all__ = ["Analysis", "Action", "analyze"]
@@ -24,6 +25,8 @@ _DELIVERY_WORTH = 0.05
 _GAP_WORTH = 0.10
 _TAIL_WORTH = 0.10  # slowest samples' share of a stage must exceed this ...
 _TAIL_OVER = 3.0  # ... and be this many times their share of the samples
+#: A side whose share of the critical path gives an Amdahl ceiling under PACE_SPEEDUP is not worth an action.
+_SIDE_WORTH = 1.0 - 1.0 / PACE_SPEEDUP
 
 
 @dataclass(frozen=True)
@@ -66,8 +69,6 @@ class Analysis:
         ``ready_s`` and its blame).
     stages : StageStats
         Per-stage statistics, slowest samples and the CPU view.
-    verdict : Verdict
-        Input-bound, step-bound or balanced, with the numbers behind it.
     actions : tuple of Action
         Suggested changes, largest time at stake first (the report shows three).
     """
@@ -77,7 +78,6 @@ class Analysis:
     critical: CriticalPath
     stalls: Stalls
     stages: StageStats
-    verdict: Verdict
     actions: tuple[Action, ...]
 
     @property
@@ -96,12 +96,12 @@ class Analysis:
         return {str(k): float(v) for k, v in zip(sh["label"], sh["share"], strict=True)}
 
     def __repr__(self) -> str:
-        return (f"<pipeprobe.Analysis {str(self.run.run_dir)!r}: {self.verdict.word}, "
+        return (f"<pipeprobe.Analysis {str(self.run.run_dir)!r}: {self.batches} batches, "
                 f"stall {100 * self.stalls.fraction:.1f} %, {self.wall_s:.3f} s>")
 
 
 def analyze(run: Run | str | os.PathLike, *, warmup_batches: int | None = None) -> Analysis:
-    """Analyse a run: timeline, critical path, stalls, stage statistics, verdict, actions.
+    """Analyse a run: timeline, critical path, stalls, stage statistics, actions.
 
     Parameters
     ----------
@@ -134,8 +134,8 @@ def analyze(run: Run | str | os.PathLike, *, warmup_batches: int | None = None) 
     ...         with probe.step():
     ...             time.sleep(0.002)
     >>> a = pipeprobe.analyze(d)
-    >>> a.verdict.word
-    'input-bound'
+    >>> a.critical.input_share > a.critical.step_share
+    True
     >>> abs(sum(a.stage_shares().values()) - 1.0) < 1e-9
     True
 
@@ -151,10 +151,9 @@ def analyze(run: Run | str | os.PathLike, *, warmup_batches: int | None = None) 
     timeline = build_timeline(run)
     critical = critical_path(timeline)
     stalls = stall_summary(run, critical, warmup_batches=warmup_batches)
-    v = verdict(stalls, critical)
-    stages = stage_stats(run, critical, stalls, v.word)
-    actions = suggest_actions(critical, stalls, stages, v)
-    return Analysis(run=run, timeline=timeline, critical=critical, stalls=stalls, stages=stages, verdict=v,
+    stages = stage_stats(run, critical, stalls, input_on_path=critical.input_share >= _SIDE_WORTH)
+    actions = suggest_actions(critical, stalls, stages, workers_restart=_workers_restart(run))
+    return Analysis(run=run, timeline=timeline, critical=critical, stalls=stalls, stages=stages,
                     actions=tuple(actions))
 
 
@@ -162,13 +161,37 @@ def _pct(x: float) -> str:
     return f"{100 * x:.0f} %"
 
 
-def suggest_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, v: Verdict) -> list[Action]:
+def _workers_restart(run: Run) -> bool:
+    """True when a later epoch's loader work ran in worker processes no earlier epoch used."""
+    sp = run.spans
+    if sp.empty or "role" not in sp:
+        return False
+    w = sp[(sp["role"] == "worker") & (sp["epoch"] >= 0)]
+    seen: set[int] = set()
+    for i, (_, pids) in enumerate(w.groupby("epoch", sort=True)["pid"]):
+        now = set(int(p) for p in pids.unique())
+        if i > 0 and now - seen:
+            return True
+        seen |= now
+    return False
+
+
+def suggest_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, *,
+                    workers_restart: bool = False) -> list[Action]:
     """Candidate actions, largest time at stake first.
+
+    An input-side action needs the input side to hold enough of the
+    critical path that freeing it could buy :data:`~pipeprobe.critical.PACE_SPEEDUP`
+    by Amdahl's law, and the loop to have waited; a step action likewise
+    for the step side.
 
     Parameters
     ----------
-    critical, stalls, stages, v
+    critical, stalls, stages
         The parts of an :class:`Analysis`.
+    workers_restart : bool, default False
+        Loader workers were started again for a later epoch (the warm-up
+        action is given only then).
 
     Returns
     -------
@@ -192,15 +215,28 @@ def suggest_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, 
     achieving large scale computing capabilities. AFIPS Conference
     Proceedings 30, 483-485 (time at stake = the share a change touches).
     """
-    out: list[Action] = []
-    sh = critical.shares
     wall = critical.wall_s
-    if v.word == NO_BATCHES:
+    if len(stalls.per_batch) == 0:
         return [Action("gap", "No batch reached a watched loop: wrap the loader with probe.watch() and the "
                        "step with probe.step() to see stalls and the critical path", wall)]
+    input_on = critical.input_share >= _SIDE_WORTH and stalls.total_s > 0
+    step_on = critical.step_share >= _SIDE_WORTH
+    out = _input_actions(critical, stalls, stages, input_on, step_on)
+    out += _step_actions(critical, input_on, step_on)
+    out += _path_actions(critical)
+    if workers_restart:
+        out += _warmup_actions(stalls, wall)
+    out.sort(key=lambda a: -a.seconds)
+    return out
+
+
+def _input_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, input_on: bool,
+                   step_on: bool) -> list[Action]:
+    """The leading input stage, its slowest samples, and the worker advice."""
+    out: list[Action] = []
+    sh = critical.shares
     inp = sh[(sh["side"] == "input") & (sh["kind"] == "stage")]
-    step_like = sh[sh["side"] == "consumer"]
-    if v.word != STEP_BOUND and len(inp):
+    if input_on and len(inp):
         top = inp.iloc[0]
         row = stages.table[stages.table["stage"] == top["label"]]
         mean = f", {1e3 * float(row['mean_s'].iloc[0]):.2f} ms per span" if len(row) else ""
@@ -214,14 +250,29 @@ def suggest_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, 
                 out.append(Action("tail", f"Look at the {tail['samples']} slowest samples of '{top['label']}' "
                                           f"(ids {ids}): they cost {_pct(tail['share'])} of its time",
                                   float(top["seconds"]) * float(tail["share"])))
-    if v.word != STEP_BOUND and stages.more_workers == "yes":
+    if input_on and stages.more_workers == "yes" and stalls.steady_s > 0:
         out.append(Action("workers", f"Add loader workers: {stages.more_workers_reason}", stalls.steady_s))
-    elif v.word == INPUT_BOUND and stages.more_workers == "no":
+    elif input_on and not step_on and stages.more_workers == "no":
         out.append(Action("workers", f"Do not add workers: {stages.more_workers_reason}", 0.0))
-    if len(step_like) and (v.word != INPUT_BOUND or not len(inp)):
-        secs = float(step_like["seconds"].sum())
-        out.append(Action("step", f"Make the step faster: the step side holds {_pct(secs / wall if wall else 0)} "
-                                  "of the critical path and the input keeps up", secs))
+    return out
+
+
+def _step_actions(critical: CriticalPath, input_on: bool, step_on: bool) -> list[Action]:
+    sh = critical.shares
+    secs = float(sh.loc[sh["side"] == "consumer", "seconds"].sum())
+    if secs <= 0 or not (step_on or not input_on):
+        return []
+    share = secs / critical.wall_s if critical.wall_s else 0.0
+    tail = "and the input keeps up" if not input_on else "taking turns with the input"
+    return [Action("step", f"Make the step faster: the step side holds {_pct(share)} of the critical path "
+                           f"{tail}", secs)]
+
+
+def _path_actions(critical: CriticalPath) -> list[Action]:
+    """Deliveries and unexplained gaps that hold a large share of the path."""
+    out: list[Action] = []
+    sh = critical.shares
+    wall = critical.wall_s
     deliv = float(sh.loc[sh["label"] == DELIVERY, "seconds"].sum())
     if wall > 0 and deliv / wall >= _DELIVERY_WORTH:
         out.append(Action("delivery", f"Batches spend {_pct(deliv / wall)} of the critical path between being "
@@ -234,15 +285,14 @@ def suggest_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, 
                  if ends > 0.01 * wall else "")
         out.append(Action("gap", f"{_pct(gap / wall)} of the critical path is time when nothing recorded ran"
                                  f"{where}: time more of the run with pipeprobe.stage() to see what it is", gap))
-    pb = stalls.per_batch
-    if len(pb):
-        warm = pb["warmup"].to_numpy(bool)
-        steady_mean = float(pb.loc[~warm, "wait_s"].mean()) if (~warm).any() else 0.0
-        extra = stalls.warmup_s - int(warm.sum()) * steady_mean  # beyond what those batches would wait anyway
-        if wall > 0 and extra / wall >= 0.05:
-            out.append(Action("warmup", f"Warm-up costs {extra:.3f} s of extra stall (first "
-                                        f"{stalls.warmup_batches} batch(es) of each epoch): keep workers alive "
-                                        "across epochs or start them before the loop", extra))
-    out.sort(key=lambda a: -a.seconds)
     return out
 
+
+def _warmup_actions(stalls: Stalls, wall: float) -> list[Action]:
+    """Keep workers alive: only for runs whose workers start again each epoch."""
+    extra = stalls.warmup_extra_s
+    if wall <= 0 or extra / wall < 0.05:
+        return []
+    return [Action("warmup", f"Warm-up costs {extra:.3f} s of extra stall (first {stalls.warmup_batches} "
+                             "batch(es) of each epoch) and the loader starts new workers each epoch: keep them "
+                             "alive across epochs (e.g. persistent workers)", extra)]

@@ -20,7 +20,13 @@ import pandas as pd
 from .timeline import Timeline, sink_node
 
 __all__ = ["CriticalPath", "critical_path", "critical_path_length", "GAP", "DELIVERY", "SEGMENT_COLUMNS",
-           "SHARE_COLUMNS"]
+           "SHARE_COLUMNS", "PACE_SPEEDUP"]
+
+#: A side of the pipeline (input or step) counts as setting the pace when making it free could
+#: speed the whole run up by at least this factor. Our choice: a predicted gain under 5 % is
+#: within the replay's error against real reruns (up to 4.5 % in bench/bench_predict.py) and
+#: the run-to-run scatter of wall time on a shared machine (about 3 %).
+PACE_SPEEDUP = 1.05
 
 #: Label of critical-path time when nothing recorded ran.
 GAP = "unexplained gap"
@@ -110,6 +116,16 @@ class CriticalPath:
         """Share of wall time attributed to ``label`` (0 when absent)."""
         hit = self.shares.loc[self.shares["label"] == label, "share"]
         return float(hit.sum())
+
+    @property
+    def input_share(self) -> float:
+        """Share of wall time on the input side of the path: loader stages and deliveries."""
+        return float(self.shares.loc[self.shares["side"].isin(["input", "delivery"]), "share"].sum())
+
+    @property
+    def step_share(self) -> float:
+        """Share of wall time on the step side of the path: the step and the stages after a delivery."""
+        return float(self.shares.loc[self.shares["side"] == "consumer", "share"].sum())
 
 
 def _walk(pred: np.ndarray, sink: int) -> np.ndarray:

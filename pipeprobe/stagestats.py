@@ -18,7 +18,7 @@ import pandas as pd
 
 from .critical import CriticalPath
 from .load import Run
-from .stalls import STEP_BOUND, Stalls
+from .stalls import Stalls
 
 __all__ = ["StageStats", "stage_stats", "STAGE_COLUMNS", "SLOWEST_COLUMNS", "SATURATED_FROM", "TAIL_FRACTION"]
 
@@ -205,9 +205,9 @@ def core_busy_during_stalls(run: Run) -> float:
     return float(np.sum(busy.to_numpy() * w) / w.sum())
 
 
-def _more_workers(run: Run, stalls: Stalls | None, verdict_word: str | None, busy: float, cores: int,
+def _more_workers(run: Run, stalls: Stalls | None, input_on_path: bool | None, busy: float, cores: int,
                   table: pd.DataFrame, critical: CriticalPath | None) -> tuple[str, str]:
-    if verdict_word == STEP_BOUND:
+    if input_on_path is False:
         return "no", "the step sets the pace; more workers would wait on it too"
     if stalls is not None and stalls.total_s <= 0:
         return "no", "the loop never waited for a batch"
@@ -232,7 +232,7 @@ def _more_workers(run: Run, stalls: Stalls | None, verdict_word: str | None, bus
 
 
 def stage_stats(run: Run, critical: CriticalPath | None = None, stalls: Stalls | None = None,
-                verdict_word: str | None = None) -> StageStats:
+                input_on_path: bool | None = None) -> StageStats:
     """Per-stage statistics, the slowest samples and the CPU view.
 
     Parameters
@@ -242,8 +242,9 @@ def stage_stats(run: Run, critical: CriticalPath | None = None, stalls: Stalls |
         For each stage's time on the critical path.
     stalls : Stalls, optional
         For the wall time and whether the loop stalled at all.
-    verdict_word : str, optional
-        The run's verdict; a step-bound run cannot gain from more workers.
+    input_on_path : bool, optional
+        Whether the input side holds enough of the critical path to set the
+        pace; when it does not, more workers cannot help.
 
     Returns
     -------
@@ -272,6 +273,6 @@ def stage_stats(run: Run, critical: CriticalPath | None = None, stalls: Stalls |
     cores = int(run.header.get("cores") or 1)
     busy = core_busy_during_stalls(run)
     saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
-    more, why = _more_workers(run, stalls, verdict_word, busy, cores, table, critical)
+    more, why = _more_workers(run, stalls, input_on_path, busy, cores, table, critical)
     return StageStats(table=table, slowest=_slowest(run), cores=cores, core_busy_in_stalls=busy,
                       cores_saturated=saturated, more_workers=more, more_workers_reason=why)

@@ -5,7 +5,8 @@ A *stall* is the time the consumer spent waiting for its next batch (the
 its fraction of wall time, the steady-state fraction without the warm-up
 batches (stated separately), per-epoch and per-batch figures, and blames
 each stall on what ran on the critical path while it lasted.
-:func:`verdict` turns the numbers into one word.
+The report's verdict (what sets the pace) is made one layer up, in
+:mod:`pipeprobe.pace`, from the critical path and the replay.
 """
 
 from __future__ import annotations
@@ -20,33 +21,9 @@ from .load import Run
 
 __all__ = [
     "Stalls",
-    "Verdict",
     "stall_summary",
-    "verdict",
-    "INPUT_BOUND",
-    "STEP_BOUND",
-    "BALANCED",
-    "NO_BATCHES",
-    "INPUT_BOUND_FROM",
-    "STEP_BOUND_BELOW",
     "STALL_BATCH_COLUMNS",
 ]
-
-#: Verdict: the loop waits on its input for a large part of the run.
-INPUT_BOUND = "input-bound"
-#: Verdict: the step sets the pace; the input keeps up.
-STEP_BOUND = "step-bound"
-#: Verdict: both matter; the input only just keeps up.
-BALANCED = "balanced"
-#: Verdict: nothing to judge (no batch was delivered).
-NO_BATCHES = "no batches"
-
-#: Steady-state stall fraction from which a run is input-bound (our choice:
-#: one fifth of the run lost to waiting is the first thing to fix).
-INPUT_BOUND_FROM = 0.20
-#: Steady-state stall fraction below which a run is step-bound (our choice:
-#: under 5 % the input is not worth working on).
-STEP_BOUND_BELOW = 0.05
 
 #: Columns of :attr:`Stalls.per_batch` beyond those of ``Run.batches``.
 STALL_BATCH_COLUMNS = {
@@ -98,30 +75,18 @@ class Stalls:
     wall_s: float
     ranks: int
 
+    @property
+    def warmup_extra_s(self) -> float:
+        """Stall of the warm-up batches beyond what as many steady-state batches waited on average.
 
-@dataclass(frozen=True)
-class Verdict:
-    """One word for the run, and the numbers behind it.
-
-    Attributes
-    ----------
-    word : str
-        :data:`INPUT_BOUND`, :data:`STEP_BOUND`, :data:`BALANCED` or :data:`NO_BATCHES`.
-    reason : str
-        The numbers behind it, in a sentence.
-    stall_fraction : float
-        The stall fraction the word was chosen on (steady state when there is one).
-    input_share : float
-        Share of wall time the critical path spent producing or delivering batches.
-    consumer_share : float
-        Share spent in steps and consumer-side stages.
-    """
-
-    word: str
-    reason: str
-    stall_fraction: float
-    input_share: float
-    consumer_share: float
+        The one warm-up figure the report shows (text, JSON and HTML).
+        """
+        pb = self.per_batch
+        if pb.empty:
+            return 0.0
+        warm = pb["warmup"].to_numpy(bool)
+        steady_mean = float(pb.loc[~warm, "wait_s"].mean()) if (~warm).any() else 0.0
+        return max(0.0, self.warmup_s - int(warm.sum()) * steady_mean)
 
 
 def _default_warmup(run: Run) -> int:
@@ -278,62 +243,3 @@ def _blame_words(label: str, lane: str, samples: str, batch_id: int) -> str:
     if samples:
         return f"{label}{where}, sample{'s' if '-' in samples else ''} {samples}"
     return f"{label}{where}"
-
-
-def verdict(stalls: Stalls, critical: CriticalPath) -> Verdict:
-    """Call the run input-bound, step-bound or balanced, with the numbers behind it.
-
-    The word is chosen on the steady-state stall fraction (the overall one
-    when every batch is warm-up): at least :data:`INPUT_BOUND_FROM` is
-    input-bound, below :data:`STEP_BOUND_BELOW` step-bound, balanced between.
-
-    Parameters
-    ----------
-    stalls : Stalls
-    critical : CriticalPath
-
-    Returns
-    -------
-    Verdict
-
-    Examples
-    --------
-    >>> import pipeprobe, tempfile, time
-    >>> from pipeprobe.timeline import build_timeline
-    >>> from pipeprobe.critical import critical_path
-    >>> d = tempfile.mkdtemp()
-    >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
-    ...     for batch in probe.watch([[0], [1], [2]]):
-    ...         with probe.step():
-    ...             time.sleep(0.005)
-    >>> run = pipeprobe.load(d)
-    >>> cp = critical_path(build_timeline(run))
-    >>> verdict(stall_summary(run, cp), cp).word
-    'step-bound'
-
-    References
-    ----------
-    Amdahl, G. M. (1967). Validity of the single processor approach to
-    achieving large scale computing capabilities. AFIPS Conference
-    Proceedings 30, 483-485 (the stalled share bounds what faster input can gain).
-    """
-    sh = critical.shares
-    input_share = float(sh.loc[sh["side"].isin(["input", "delivery"]), "share"].sum())
-    consumer_share = float(sh.loc[sh["side"] == "consumer", "share"].sum())
-    if len(stalls.per_batch) == 0:
-        return Verdict(NO_BATCHES, "no batch reached a watched training loop", 0.0, input_share, consumer_share)
-    steady = bool((~stalls.per_batch["warmup"]).any())
-    frac = stalls.steady_fraction if steady else stalls.fraction
-    which = "steady-state stall" if steady else "stall"
-    if frac >= INPUT_BOUND_FROM:
-        word = INPUT_BOUND
-        rule = f">= {100 * INPUT_BOUND_FROM:.0f} %"
-    elif frac < STEP_BOUND_BELOW:
-        word = STEP_BOUND
-        rule = f"< {100 * STEP_BOUND_BELOW:.0f} %"
-    else:
-        word = BALANCED
-        rule = f"between {100 * STEP_BOUND_BELOW:.0f} and {100 * INPUT_BOUND_FROM:.0f} %"
-    reason = (f"{which} {100 * frac:.1f} % ({rule}); critical path {100 * input_share:.0f} % input, "
-              f"{100 * consumer_share:.0f} % step side")
-    return Verdict(word, reason, float(frac), input_share, consumer_share)

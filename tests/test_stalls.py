@@ -1,4 +1,4 @@
-"""Stalls: totals, fractions, warm-up, per epoch and per batch, blame and verdict."""
+"""Stalls: totals, fractions, warm-up, per epoch and per batch, and blame."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ from hypothesis import strategies as st
 import pipeprobe
 from pipeprobe.analysis import analyze
 from pipeprobe.critical import critical_path
-from pipeprobe.stalls import BALANCED, INPUT_BOUND, NO_BATCHES, STEP_BOUND, stall_summary, verdict
+from pipeprobe.stalls import stall_summary
 from pipeprobe.timeline import build_timeline
 
 
@@ -82,26 +82,6 @@ class TestBlame:
         procs, end = pool_schedule(**spec)
         _, _, s = _stalls(write_run(tmp_path / "r", procs, end_ms=end))
         assert "" == s.per_batch.iloc[1]["blame"]
-
-
-class TestVerdict:
-    @pytest.mark.parametrize(
-        "decode_ms, step_ms, word",
-        [(10.0, 1.0, INPUT_BOUND), (0.01, 10.0, STEP_BOUND), (1.0, 10.0, BALANCED)],
-    )
-    def test_words(self, tmp_path, decode_ms, step_ms, word):
-        """Steady stall >= 20 % is input-bound, < 5 % step-bound, between balanced."""
-        d = write_run(tmp_path / "r", simple_pipeline(n_batches=4, samples_per_batch=1, decode_ms=decode_ms,
-                                                      augment_ms=0.0, step_ms=step_ms))
-        run, cp, s = _stalls(d)
-        v = verdict(s, cp)
-        assert word == v.word
-        assert f"{100 * v.stall_fraction:.1f} %" in v.reason
-
-    def test_no_batches(self, tmp_path):
-        """A run without a watched loop says so instead of guessing."""
-        run, cp, s = _stalls(write_run(tmp_path / "r", {100: [("stage", "decode", 0, 1, 0, -1, 0)]}))
-        assert NO_BATCHES == verdict(s, cp).word
 
 
 SETTINGS = settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
