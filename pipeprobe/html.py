@@ -1,7 +1,12 @@
 """The one-file HTML report: ``pipeprobe report RUN_DIR --html report.html``.
 
-:func:`render_report` returns a complete HTML page; :func:`write_report`
-writes it. The page stands alone: its pictures are PNG images inside the
+:func:`render_report` returns a complete HTML page made from the report's
+one list of sections (:data:`pipeprobe.report.SECTIONS`): each section's
+figures are worked out once and this module draws their HTML (a section
+without its own HTML shows its text lines). :func:`write_report` writes
+the page next to the target under a fresh name opened exclusively, then
+renames it over the target, and refuses to replace anything that is not a
+regular file. The page stands alone: its pictures are PNG images inside the
 file (``data:`` URIs), its style sheet is inline, it holds no script and
 fetches nothing (a Content-Security-Policy that allows only inline styles
 and ``data:`` images says so to the browser too). Every text that comes
@@ -12,18 +17,27 @@ is HTML-escaped, so a stage named ``<script>`` shows as text.
 from __future__ import annotations
 
 import base64
+import errno
 import html
 import io
 import math
 import os
+import stat
+import tempfile
+from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any, Iterable
 
 from . import __version__
-from .load import Run
+from .errors import PipeprobeError
+from .report import STAGE_COLUMNS, Report, stage_cells
 
-__all__ = ["render_report", "write_report"]
+__all__ = ["render_report", "write_report", "OutputFileError"]
+
+
+class OutputFileError(PipeprobeError, OSError):
+    """The HTML report cannot be written where asked (a folder, a link, a device, a read-only place)."""
 
 _CSS = """
 body { font-family: "DejaVu Sans", "Helvetica Neue", Arial, sans-serif; color: #1d1d1d; background: #ffffff;
@@ -31,10 +45,11 @@ body { font-family: "DejaVu Sans", "Helvetica Neue", Arial, sans-serif; color: #
 h1 { font-size: 21px; margin: 0 0 2px; font-weight: 600; }
 h2 { font-size: 16px; margin: 30px 0 8px; padding-bottom: 3px; border-bottom: 2px solid #332288; font-weight: 600; }
 .sub { color: #555555; font-size: 12.5px; margin: 0; }
-.verdict { margin: 16px 0 6px; padding: 10px 14px; border-left: 6px solid #332288; background: #F3F1F8; }
-.verdict b { font-size: 18px; letter-spacing: 0.02em; }
-.verdict.input-bound { border-left-color: #CC6677; background: #FBF0F2; }
-.verdict.balanced { border-left-color: #DDCC77; background: #FBF8EC; }
+.pace { margin: 16px 0 6px; padding: 12px 16px; border-top: 5px solid #332288; background: #F3F1F8; }
+.pace .heading { font-size: 19px; font-weight: 600; display: block; margin-bottom: 4px; }
+.pace.input { border-top-color: #117733; background: #EFF6F1; }
+.pace.in-turn, .pace.level { border-top-color: #DDCC77; background: #FBF8EC; }
+pre { font-size: 12.5px; background: #F6F6F6; padding: 8px; overflow-x: auto; }
 .figures { display: flex; flex-wrap: wrap; gap: 10px; margin: 8px 0 12px; }
 .figure { border: 1px solid #D5D5D5; padding: 6px 12px; min-width: 150px; }
 .figure .value { font-size: 19px; font-weight: 600; display: block; }
@@ -99,33 +114,69 @@ def _figure(value: str, what: str) -> str:
     return f'<div class="figure"><span class="value">{_e(value)}</span><span class="what">{_e(what)}</span></div>'
 
 
-def _analysis(run: Any) -> Any:
-    from .analysis import Analysis, analyze
-
-    if isinstance(run, Analysis):
-        return run
-    return analyze(run)
-
-
 def _x(value: float) -> str:
-    return "unbounded" if not math.isfinite(value) else f"{value:.2f}x"
+    if math.isnan(value):
+        return "n/a"
+    return "unbounded" if math.isinf(value) else f"{value:.2f}x"
 
 
-def _ceilings_section(analysis: Any, dpi: int) -> str:
-    """Amdahl ceilings next to the replayed speed-ups, as a table and a chart."""
+@dataclass(frozen=True)
+class _Page:
+    """What every section's HTML may need besides its figures."""
+
+    analysis: Any
+    dpi: int = 100
+    window_s: tuple[float, float] | None = None
+
+
+# -- the HTML of each built-in section (named in pipeprobe.report.SECTIONS) -----------------------------
+def verdict_html(fig: Any, page: _Page) -> str:
+    """The opening box: what sets the pace, and what freeing each side would buy."""
+    v, a = fig
+    r = a.run
+    cards = ""
+    if a.batches:
+        cards = ('<div class="figures">'
+                 + _figure(_x(v.input_free_speedup), f"whole run faster with the input free (Amdahl's ceiling "
+                                                     f"{_x(v.input_ceiling)})")
+                 + _figure(_x(v.step_free_speedup), f"whole run faster with the step free (Amdahl's ceiling "
+                                                    f"{_x(v.step_ceiling)})")
+                 + _figure(f"{_pct(v.input_share)} / {_pct(v.step_share)}", "critical path: input side / step side")
+                 + "</div>")
+    note = f'<p class="note">{_e(v.note)}</p>' if v.note else ""
+    box = (f'<div class="pace {_e(v.pace.replace(" ", "-"))}"><span class="heading">{_e(v.heading)}</span>'
+           f"{cards}{note}</div>")
+    facts = ('<div class="figures">' + _figure(_s(a.wall_s), "wall time") + _figure(f"{a.batches:,}", "batches")
+             + _figure(f"{len(r.spans):,}", "spans") + _figure(_pct(a.stalls.fraction), "of wall time stalled")
+             + "</div>")
+    notes = ""
+    if r.problems:
+        notes = '<ul class="note">' + "".join(f"<li>{_e(p)}</li>" for p in r.problems) + "</ul>"
+    return box + facts + notes
+
+
+def _at_stake(seconds: float) -> str:
+    return f' <span class="sub">[{seconds:.3f} s at stake]</span>' if seconds > 0 else ""
+
+
+def actions_html(a: Any, page: _Page) -> str:
+    if not a.actions:
+        return "<h2>What to try first</h2><p>Nothing stands out.</p>"
+    items = "".join(f"<li>{_e(x.text)}{_at_stake(x.seconds)}</li>" for x in a.actions[:3])
+    return f"<h2>What to try first</h2><ol>{items}</ol>"
+
+
+def ceilings_html(fig: Any, page: _Page) -> str:
+    """Amdahl ceilings next to the replayed speed-ups, as a table and a chart (the report's one replay)."""
+    c, _ = fig
+    if c is None:
+        return ""
+    if isinstance(c, str):
+        return f'<h2>What a faster stage would buy</h2><p class="note">{_e(c)}</p>'
     from . import plot
-    from .ceilings import ceilings
-    from .errors import PipeprobeError
 
-    try:
-        c = ceilings(analysis.run, analysis=analysis)
-    except PipeprobeError as exc:  # e.g. no batches to replay
-        return f"<h2>Speed-up ceilings</h2><p class=\"note\">No replay: {_e(exc)}</p>"
-    rows = [
-        [_e(r.stage), _e(_pct(r.share)), _e(_x(r.amdahl_ceiling)), _e(_x(r.speedup_2x)), _e(_x(r.speedup_4x)),
-         _e(_x(r.free_speedup)), _e(r.next_critical or "-")]
-        for r in c.stages
-    ]
+    rows = [[_e(r.stage), _e(_pct(r.share)), _e(_x(r.amdahl_ceiling)), _e(_x(r.free_speedup)),
+             _e(_x(r.speedup_2x)), _e(_x(r.speedup_4x)), _e(r.next_critical or "-")] for r in c.stages]
     if c.workers_to_hide is None:
         workers = "No loader worker count up to 64 hides the input behind the step in the replay."
     else:
@@ -134,16 +185,133 @@ def _ceilings_section(analysis: Any, dpi: int) -> str:
         workers = (f"Loader workers needed to hide the input behind the step: {c.workers_to_hide} "
                    f"(recorded: {c.workers}); {where}.")
     return (
-        "<h2>Speed-up ceilings</h2>"
-        "<p>How much faster the whole run could get if one stage got faster. Amdahl's law gives the ceiling "
-        "1 / (1 &minus; p) from the stage's share p of the critical path, assuming nothing else moves; the "
-        "replay re-runs the recorded pipeline with the stage 2x faster, 4x faster or free, so it sees the "
-        "next stage take over and the cores the workers share.</p>"
-        + _table([("stage", False), ("share of path", True), ("Amdahl ceiling", True), ("replay 2x", True),
-                  ("replay 4x", True), ("replay free", True), ("then critical", False)], rows)
+        "<h2>What a faster stage would buy</h2>"
+        "<p>Amdahl's law gives the ceiling 1 / (1 &minus; p) from the stage's share p of the critical path, "
+        "assuming nothing else moves; the replay re-runs the recorded pipeline with the stage free, 2x or 4x "
+        "faster, so it sees the next stage take over and the cores the workers share.</p>"
+        + _table([("stage", False), ("share", True), ("Amdahl ceiling", True), ("replay free", True),
+                  ("replay 2x", True), ("replay 4x", True), ("then critical", False)], rows)
         + f"<p>{_e(workers)}</p>"
-        + _img(_png(plot.draw_ceilings(c).figure, dpi), "speed-up ceilings per stage")
+        + _img(_png(plot.draw_ceilings(c).figure, page.dpi), "speed-up ceilings per stage")
     )
+
+
+def stalls_html(a: Any, page: _Page) -> str:
+    s = a.stalls
+    if not a.batches:
+        return "<h2>Stalls</h2><p>None measured: no batch reached probe.watch().</p>"
+    from . import plot
+
+    parts = ["<h2>Stalls</h2>", '<div class="figures">' + _figure(_s(s.total_s), "total stall")
+             + _figure(_pct(s.fraction), "of wall time") + _figure(_pct(s.steady_fraction), "steady state")
+             + _figure(_s(s.warmup_extra_s), f"more stall in warm-up than steady batches (first "
+                                             f"{s.warmup_batches} batch(es) per epoch)")
+             + "</div>"]
+    pb = s.per_batch
+    worst = pb[pb["wait_s"] > 0].sort_values("wait_s", ascending=False).head(8)
+    if len(worst):
+        parts.append("<p>Longest waits, and what the critical path ran meanwhile:</p>")
+        parts.append(_table([("batch", True), ("waited", True), ("cause", False)],
+                            ([_e(int(w.batch_id)), _e(f"{1e3 * w.wait_s:.2f} ms"), _e(w.blame_text or "-")]
+                             for w in worst.itertuples())))
+    parts.append(_img(_png(plot.draw_stall_fraction(a).figure, page.dpi), "stall fraction per batch"))
+    return "".join(parts)
+
+
+def critical_html(a: Any, page: _Page) -> str:
+    cp = a.critical
+    rows = []
+    for row in cp.shares.itertuples():
+        width = max(0.0, min(100.0, 100 * float(row.share)))
+        side = str(row.side) if str(row.side) in ("input", "delivery", "gap") else "consumer"
+        rows.append([_e(row.label), _e(f"{row.seconds:.3f} s"), _e(_pct(row.share)),
+                     f'<span class="share {side}" style="width:{width * 2:.1f}px"></span>'])
+    out = (f"<h2>Critical path</h2><p>Where the {_e(_s(a.wall_s))} of wall time went: each moment is given to "
+           "what the critical path ran then (the longest chain of recorded work that ends with the last step).</p>"
+           + _table([("on the path", False), ("time", True), ("share", True), ("", False)], rows))
+    if len(cp.lanes):
+        out += _table([("thread", False), ("time", True), ("share", True)],
+                      ([_e(x.lane), _e(f"{x.seconds:.3f} s"), _e(_pct(x.share))] for x in cp.lanes.itertuples()))
+    return out
+
+
+def stages_html(a: Any, page: _Page) -> str:
+    t = a.stages.table
+    parts: list[str] = []
+    if len(t):
+        from . import plot
+
+        head = [("stage", False)] + [((f"{n} {u}" if u not in ("", "%") else n), True) for n, u in STAGE_COLUMNS]
+        parts.append("<h2>Stages</h2>" + _table(head, ([_e(x.stage)] + [_e(c) for c in stage_cells(x)]
+                                                       for x in t.itertuples())))
+        parts.append(_img(_png(plot.draw_stage_durations(a.run).figure, page.dpi), "span durations per stage"))
+    sl = a.stages.slowest
+    if len(sl):
+        parts.append("<h2>Slowest samples</h2>" + _table(
+            [("stage", False), ("slowest samples", False), ("their share of the stage's time", True)],
+            ([_e(x.stage), _e(", ".join(str(i) for i in list(x.sample_ids)[:12])
+                              + (", ..." if len(x.sample_ids) > 12 else "")),
+              _e(f"{_pct(x.share)} ({x.samples} of {x.of_samples} samples)")] for x in sl.itertuples())))
+    st = a.stages
+    busy = "unknown" if not math.isfinite(st.core_busy_in_stalls) else _pct(st.core_busy_in_stalls)
+    parts.append(f"<p>CPU: {_e(st.cores)} cores, busy {_e(busy)} during stalls. More loader workers can "
+                 f"help: <b>{_e(st.more_workers)}</b> &mdash; {_e(st.more_workers_reason)}</p>")
+    return "".join(parts)
+
+
+def ranks_html(fig: Any, page: _Page) -> str:
+    view, count = fig
+    if view is None:
+        return ""
+    if view.straggler_rank is None:
+        lead = "<p>No straggler: the ranks arrived together at the gradient synchronisation.</p>"
+    else:
+        stage = f", stage {view.straggler_stage}" if view.straggler_stage else ""
+        lead = (f"<p>Straggler: <b>rank {_e(view.straggler_rank)}</b> (cause: {_e(view.straggler_cause)}"
+                f"{_e(stage)}); its input stall is {_e(_pct(view.straggler_stall_fraction))} of its time. "
+                f"Job-wide cost: the fastest rank waited {_e(_s(view.straggler_cost_s))}; all ranks together "
+                f"{_e(f'{view.idle_rank_s:.3f}')} rank-seconds.</p>")
+    missing = (f'<p class="note">Ranks missing: {_e(", ".join(str(r) for r in view.missing_ranks))}</p>'
+               if view.missing_ranks else "")
+    rows = ([_e(int(r.rank)), _e(int(r.last_steps)), _e(f"{r.caused_s:.3f} s"), _e(f"{r.waited_s:.3f} s"),
+             _e(_pct(r.stall_fraction))] for r in view.ranks.itertuples(index=False))
+    return (f"<h2>Ranks ({_e(count)})</h2>" + lead + missing
+            + _table([("rank", True), ("last in steps", True), ("caused", True), ("waited", True),
+                      ("stall", True)], rows))
+
+
+def timeline_html(a: Any, page: _Page) -> str:
+    from . import plot
+
+    return ("<h2>Timeline</h2><p>One lane per thread; the consumer's stalls shaded; the critical path in black; "
+            "CPU and memory below on the same time axis.</p>"
+            + _img(_png(plot.draw_overview(a.run, window_s=page.window_s, path=a.critical), page.dpi),
+                   "pipeline timeline"))
+
+
+def _text_html(name: str, lines: list[str]) -> str:
+    """A section without HTML of its own: its text lines under its name."""
+    if not lines:
+        return ""
+    return f"<h2>{_e(name)}</h2><pre>{_e(chr(10).join(lines))}</pre>"
+
+
+# -- the page -------------------------------------------------------------------------------------------
+def _as_report(run: Any) -> Report:
+    from .analysis import Analysis, analyze
+
+    if isinstance(run, Report):
+        return run
+    return Report(run if isinstance(run, Analysis) else analyze(run))
+
+
+def _subtitle(a: Any) -> str:
+    r = a.run
+    started = r.header.get("anchor_wall_ns")
+    when = (datetime.fromtimestamp(int(started) / 1e9, tz=timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
+            if isinstance(started, int) else "unknown time")
+    return (f'<p class="sub">run folder {_e(r.run_dir)} &middot; recorded {_e(when)} on '
+            f"{_e(r.header.get('host', '?'))} &middot; {_e(r.header.get('cores', '?'))} cores</p>")
 
 
 def render_report(run: Any, *, window_s: tuple[float, float] | None = None, dpi: int = 100) -> str:
@@ -151,8 +319,9 @@ def render_report(run: Any, *, window_s: tuple[float, float] | None = None, dpi:
 
     Parameters
     ----------
-    run : Run, Analysis or path-like
-        A loaded run, its :func:`pipeprobe.analyze` result, or a run folder.
+    run : Run, Analysis, Report or path-like
+        A loaded run, its :func:`pipeprobe.analyze` result, a made
+        :class:`~pipeprobe.report.Report` (its figures are reused), or a run folder.
     window_s : (float, float), optional
         Time window of the timeline picture; the whole run by default.
     dpi : int
@@ -180,117 +349,15 @@ def render_report(run: Any, *, window_s: tuple[float, float] | None = None, dpi:
     >>> page.startswith("<!DOCTYPE html>"), "<script" in page
     (True, False)
     """
-    from . import plot
-
-    if not isinstance(run, Run) and not hasattr(run, "verdict"):
-        from .load import load
-
-        run = load(run)
-    a = _analysis(run)
-    r = a.run
-    s = a.stalls
-    cp = a.critical
-    parts: list[str] = []
-    started = r.header.get("anchor_wall_ns")
-    when = (
-        datetime.fromtimestamp(int(started) / 1e9, tz=timezone.utc).strftime("%Y-%m-%d %H:%M:%S UTC")
-        if isinstance(started, int) else "unknown time"
-    )
-    parts.append(f"<h1>Input pipeline report</h1><p class=\"sub\">run folder {_e(r.run_dir)} &middot; "
-                 f"recorded {_e(when)} on {_e(r.header.get('host', '?'))} &middot; "
-                 f"{_e(r.header.get('cores', '?'))} cores</p>")
-    parts.append(
-        f'<div class="verdict {_e(a.verdict.word.replace(" ", "-"))}"><b>{_e(a.verdict.word)}</b>'
-        f"<br>{_e(a.verdict.reason)}</div>"
-    )
-    parts.append('<div class="figures">'
-                 + _figure(_s(a.wall_s), "wall time")
-                 + _figure(f"{a.batches:,}", "batches")
-                 + _figure(f"{len(r.spans):,}", "spans")
-                 + _figure(_pct(s.fraction), "of wall time stalled")
-                 + _figure(_pct(s.steady_fraction), "stalled in steady state")
-                 + "</div>")
-    if a.actions:
-        items = "".join(f"<li>{_e(x.text)} <span class=\"sub\">({_e(_s(x.seconds))} at stake)</span></li>"
-                        for x in a.actions[:3])
-        parts.append(f"<h2>What to try first</h2><ol>{items}</ol>")
-
-    # stalls
-    parts.append("<h2>Stalls</h2>")
-    parts.append('<div class="figures">'
-                 + _figure(_s(s.total_s), "total stall")
-                 + _figure(_pct(s.fraction), "of wall time")
-                 + _figure(_pct(s.steady_fraction), "steady state (warm-up left out)")
-                 + _figure(_s(s.warmup_s), f"in warm-up (first {s.warmup_batches} batch(es) per epoch)")
-                 + "</div>")
-    pb = s.per_batch
-    worst = pb[pb["wait_s"] > 0].sort_values("wait_s", ascending=False).head(8)
-    if len(worst):
-        parts.append("<p>Longest waits, and what the critical path ran meanwhile:</p>")
-        parts.append(_table(
-            [("batch", True), ("epoch", True), ("waited", True), ("cause", False)],
-            ([_e(int(w.batch_id)), _e(int(w.epoch)), _e(_s(w.wait_s)), _e(w.blame_text or "-")]
-             for w in worst.itertuples()),
-        ))
-    if a.batches:
-        parts.append(_img(_png(plot.draw_stall_fraction(a).figure, dpi), "stall fraction per batch"))
-
-    # critical path
-    parts.append("<h2>Critical path</h2>")
-    parts.append(f"<p>Where the {_e(_s(a.wall_s))} of wall time went: each moment is given to what the "
-                 "critical path ran then (the longest chain of recorded work that ends with the last step).</p>")
-    rows = []
-    for row in cp.shares.itertuples():
-        width = max(0.0, min(100.0, 100 * float(row.share)))
-        side = str(row.side) if str(row.side) in ("input", "delivery", "gap") else "consumer"
-        rows.append([_e(row.label), _e(row.side), _e(_s(row.seconds)), _e(_pct(row.share)),
-                     f'<span class="share {side}" style="width:{width * 2:.1f}px"></span>'])
-    parts.append(_table([("on the path", False), ("side", False), ("time", True), ("share", True), ("", False)],
-                        rows))
-    if len(cp.lanes):
-        parts.append(_table([("thread", False), ("time on the path", True), ("share", True)],
-                            ([_e(x.lane), _e(_s(x.seconds)), _e(_pct(x.share))] for x in cp.lanes.itertuples())))
-
-    if a.batches:
-        parts.append(_ceilings_section(a, dpi))
-
-    # stages and slowest samples
-    t = a.stages.table
-    if len(t):
-        parts.append("<h2>Stages</h2>")
-        parts.append(_table(
-            [("stage", False), ("spans", True), ("total", True), ("median", True), ("p99", True),
-             ("slowest", True), ("CPU / wall", True), ("on the path", True)],
-            ([_e(x.stage), _e(f"{int(x.count):,}"), _e(_s(x.total_s)), _e(_s(x.p50_s)), _e(_s(x.p99_s)),
-              _e(_s(x.max_s)), _e("n/a" if not math.isfinite(x.cpu_ratio) else f"{x.cpu_ratio:.2f}"),
-              _e(_pct(x.critical_share))] for x in t.itertuples()),
-        ))
-        parts.append(_img(_png(plot.draw_stage_durations(r).figure, dpi), "span durations per stage"))
-    sl = a.stages.slowest
-    if len(sl):
-        parts.append("<h2>Slowest samples</h2>")
-        parts.append(_table(
-            [("stage", False), ("slowest samples", False), ("their share of the stage's time", True)],
-            ([_e(x.stage), _e(", ".join(str(i) for i in list(x.sample_ids)[:12])
-                              + (", ..." if len(x.sample_ids) > 12 else "")),
-              _e(f"{_pct(x.share)} ({x.samples} of {x.of_samples} samples)")] for x in sl.itertuples()),
-        ))
-    st = a.stages
-    busy = "unknown" if not math.isfinite(st.core_busy_in_stalls) else _pct(st.core_busy_in_stalls)
-    parts.append(f"<p>CPU: {_e(st.cores)} cores, busy {_e(busy)} during stalls. More loader workers can "
-                 f"help: <b>{_e(st.more_workers)}</b> &mdash; {_e(st.more_workers_reason)}</p>")
-
-    # timeline
-    parts.append("<h2>Timeline</h2>")
-    parts.append("<p>One lane per thread; the consumer's stalls shaded; the critical path in black; "
-                 "CPU and memory below on the same time axis.</p>")
-    parts.append(_img(_png(plot.draw_overview(r, window_s=window_s, path=cp), dpi), "pipeline timeline"))
-
-    if r.problems:
-        items = "".join(f"<li>{_e(p)}</li>" for p in r.problems)
-        parts.append(f'<h2>Notes on the recording</h2><ul class="note">{items}</ul>')
+    report = _as_report(run)
+    a = report.analysis
+    page = _Page(a, dpi, window_s)
+    parts = [f"<h1>What paces this run</h1>{_subtitle(a)}"]
+    for sec, fig in report.parts:
+        parts.append(sec.html(fig, page) if sec.html is not None else _text_html(sec.name, sec.text(fig)))
     body = "\n".join(p for p in parts if p)
-    title = f"pipeprobe report: {r.run_dir.name or r.run_dir}"
+    title = f"What paces {a.run.run_dir.name or a.run.run_dir}: {report.figures('verdict')[0].heading}" \
+        if any(sec.name == "verdict" for sec, _ in report.parts) else f"pipeprobe: {a.run.run_dir}"
     return (
         "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
         f'<meta http-equiv="Content-Security-Policy" content="{_CSP}">'
@@ -300,12 +367,49 @@ def render_report(run: Any, *, window_s: tuple[float, float] | None = None, dpi:
     )
 
 
+def _check_target(out: Path) -> None:
+    """Refuse a target that exists and is not a regular file (a folder, a link, a device, a pipe)."""
+    try:
+        st = os.lstat(out)
+    except FileNotFoundError:
+        return
+    if stat.S_ISREG(st.st_mode):
+        return
+    what = ("a folder" if stat.S_ISDIR(st.st_mode) else "a link" if stat.S_ISLNK(st.st_mode)
+            else "not a regular file")
+    raise OutputFileError(f"cannot write the report to {str(out)!r}: it is {what}; give a file name such as "
+                          f"{str(out / 'report.html') if stat.S_ISDIR(st.st_mode) else 'report.html'!r}")
+
+
+def _write_fresh(folder: Path, name: str, page: str) -> Path:
+    """Write ``page`` to a new file in ``folder`` under a fresh name, opened exclusively."""
+    try:
+        fd, tmp = tempfile.mkstemp(prefix=f".{name}.", suffix=".tmp", dir=folder)
+    except OSError as exc:
+        why = "the file system is read-only" if exc.errno == errno.EROFS else (exc.strerror or str(exc))
+        raise OutputFileError(f"cannot write the report in {str(folder)!r}: {why}; choose another folder") from None
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(page)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)
+    except BaseException:
+        os.unlink(tmp)
+        raise
+    return Path(tmp)
+
+
 def write_report(run: Any, path: str | os.PathLike, **kwargs: Any) -> Path:
     """Write :func:`render_report` of ``run`` to ``path`` (UTF-8) and return the path.
 
+    The page is written next to ``path`` under a fresh name opened
+    exclusively, then renamed over ``path``; a ``path`` that exists and is
+    not a regular file (a folder, a link, a device) is refused and left as it is.
+
     Parameters
     ----------
-    run : Run, Analysis or path-like
+    run : Run, Analysis, Report or path-like
     path : path-like
         The ``.html`` file to write; its folder must exist.
     **kwargs
@@ -319,6 +423,9 @@ def write_report(run: Any, path: str | os.PathLike, **kwargs: Any) -> Path:
     ------
     FileNotFoundError
         The folder of ``path`` does not exist.
+    OutputFileError
+        ``path`` is a folder, a link or another non-regular file, or its
+        folder cannot be written (read-only, no permission).
 
     Examples
     --------
@@ -333,8 +440,12 @@ def write_report(run: Any, path: str | os.PathLike, **kwargs: Any) -> Path:
     out = Path(path)
     if not out.parent.is_dir():
         raise FileNotFoundError(f"cannot write {str(out)!r}: folder {str(out.parent)!r} does not exist; create it first")
-    page = render_report(run, **kwargs)
-    tmp = out.with_name(out.name + ".tmp")
-    tmp.write_text(page, encoding="utf-8")
-    os.replace(tmp, out)
+    _check_target(out)
+    tmp = _write_fresh(out.parent, out.name, render_report(run, **kwargs))
+    try:
+        _check_target(out)  # it may have changed while the page was drawn
+        os.replace(tmp, out)
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
     return out

@@ -43,7 +43,7 @@ import pandas as pd
 
 from .load import Run, load
 
-__all__ = ["RankView", "rank_view", "format_rank_view"]
+__all__ = ["RankView", "rank_view", "format_rank_view", "rank_count", "rank_view_dict"]
 
 #: Read ranks in a process pool from this many ranks on (when ``processes`` is not given).
 POOL_FROM_RANKS = 8
@@ -323,6 +323,50 @@ def _straggler_stage(stages: pd.DataFrame, straggler: int | None) -> str | None:
     near = excess[excess >= 0.9 * excess.max()].index
     mean = per[(per["rank"] == straggler) & per["stage"].isin(near)].set_index("stage")["mean_s"]
     return str(mean.idxmin())
+
+
+def rank_count(run: Run) -> int:
+    """Ranks of a run: those that left files, or the world size the header announces when larger.
+
+    Examples
+    --------
+    >>> import sys, tempfile; sys.path.insert(0, "tests")
+    >>> from _synth import write_ranks
+    >>> rank_count(load(write_ranks(tempfile.mkdtemp(), late_ms={}, ranks=3, steps=2)))
+    3
+    """
+    present = set(run.spans["rank"].unique().tolist()) | set(run.batches["rank"].unique().tolist())
+    world = run.header.get("world_size", 1)
+    world = world if isinstance(world, int) and not isinstance(world, bool) and world > 0 else 1
+    return max(len(present), world, 1)
+
+
+def rank_view_dict(view: RankView) -> dict[str, Any]:
+    """The view as JSON-ready keys: the straggler, its cause, stage, stall share and cost, the per-rank table.
+
+    Examples
+    --------
+    >>> import sys, tempfile; sys.path.insert(0, "tests")
+    >>> from _synth import write_ranks
+    >>> d = rank_view_dict(rank_view(write_ranks(tempfile.mkdtemp(), late_ms={1: 30.0}, steps=4)))
+    >>> d["straggler_rank"], d["straggler_cause"], [r["rank"] for r in d["per_rank"]]
+    (1, 'input', [0, 1])
+    """
+    return {
+        "straggler_rank": view.straggler_rank,
+        "straggler_cause": view.straggler_cause,
+        "straggler_stage": view.straggler_stage,
+        "straggler_stall_fraction": float(view.straggler_stall_fraction),
+        "straggler_cost_s": float(view.straggler_cost_s),
+        "idle_rank_s": float(view.idle_rank_s),
+        "missing_ranks": [int(r) for r in view.missing_ranks],
+        "per_rank": [
+            {"rank": int(r.rank), "steps": int(r.steps), "last_steps": int(r.last_steps), "caused_s": float(r.caused_s),
+             "waited_s": float(r.waited_s), "stall_s": float(r.stall_s), "active_s": float(r.active_s),
+             "stall_fraction": float(r.stall_fraction)}
+            for r in view.ranks.itertuples(index=False)
+        ],
+    }
 
 
 def format_rank_view(view: RankView) -> str:

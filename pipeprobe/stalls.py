@@ -22,6 +22,7 @@ from .load import Run
 __all__ = [
     "Stalls",
     "stall_summary",
+    "sample_words",
     "STALL_BATCH_COLUMNS",
 ]
 
@@ -33,8 +34,10 @@ STALL_BATCH_COLUMNS = {
              "'unexplained gap' ('' when the batch did not stall)",
     "blame_lane": "thread that ran it ('' for gaps)",
     "blame_s": "seconds of the stall it covered",
-    "blame_samples": "sample ids it worked on during the stall, as 'lo-hi' ('' when none)",
-    "blame_text": "the blame in words, e.g. 'decode on worker 1, samples 480-511'",
+    "blame_sample_ids": "the first sample ids (up to 8, in the order it worked on them) during the stall; "
+                        "none for per-batch stages such as collate",
+    "blame_sample_count": "how many samples it worked on during the stall",
+    "blame_text": "the blame in words, e.g. 'decode on worker 1, samples 480, 17, 233, 5 and 28 more'",
 }
 
 
@@ -172,7 +175,7 @@ def stall_summary(run: Run, critical: CriticalPath | None = None, *, warmup_batc
                                            per_epoch["stall_s"] / per_epoch["cycle_s"].where(per_epoch["cycle_s"] > 0),
                                            0.0)
     per_epoch = per_epoch[["epoch", "batches", "stall_s", "cycle_s", "stall_fraction", "warmup_stall_s"]]
-    b = _blame(b, critical)
+    b = _blame(b, critical, _per_batch_stages(run))
     b = b.sort_values(["rank", "batch_id"], kind="stable").reset_index(drop=True)
     return Stalls(
         total_s=total,
@@ -188,58 +191,97 @@ def stall_summary(run: Run, critical: CriticalPath | None = None, *, warmup_batc
     )
 
 
-def _blame(b: pd.DataFrame, critical: CriticalPath | None) -> pd.DataFrame:
-    """Add the blame columns: what the critical path ran longest inside each stall."""
+def _per_batch_stages(run: Run) -> set[str]:
+    """Stages timed once per batch (e.g. collate) in a run whose batches hold several samples."""
+    sp = run.spans
+    sp = sp[(sp["batch_id"] >= 0) & (sp["sample_id"] >= 0)] if len(sp) else sp
+    if sp.empty or len(run.samples) == 0:
+        return set()
+    if run.samples.groupby(["rank", "batch_id"]).size().median() <= 1:
+        return set()
+    most = sp.groupby(["stage", "rank", "batch_id"], observed=True).size().groupby(level=0, observed=True).max()
+    return {str(k) for k, v in most.items() if v <= 1}
+
+
+def _stall_pairs(b: pd.DataFrame, seg: pd.DataFrame, stalled: np.ndarray) -> pd.DataFrame:
+    """One row per (stalled batch, critical-path piece inside its stall): row, label, lane, sec, sample, order."""
+    ws = b["wait_start_s"].to_numpy(np.float64)
+    we = b["ready_s"].to_numpy(np.float64)
+    s0 = seg["start_s"].to_numpy(np.float64)
+    s1 = seg["end_s"].to_numpy(np.float64)
+    lo = np.searchsorted(s1, ws[stalled], side="right")
+    hi = np.searchsorted(s0, we[stalled], side="left")
+    count = np.maximum(hi - lo, 0)
+    rows = np.repeat(stalled, count)
+    first = np.repeat(lo, count)
+    offset = np.arange(count.sum()) - np.repeat(np.cumsum(count) - count, count)
+    si = first + offset
+    overlap = np.minimum(s1[si], we[rows]) - np.maximum(s0[si], ws[rows])
+    pairs = pd.DataFrame({
+        "row": rows, "label": seg["label"].to_numpy(object)[si], "lane": seg["lane"].to_numpy(object)[si],
+        "sec": overlap, "sample": seg["sample_id"].to_numpy(np.int64)[si], "order": si,
+    })
+    return pairs[pairs["sec"] > 0]
+
+
+#: Sample ids kept per blamed stall (the text names the first few and a count).
+BLAME_IDS = 8
+
+
+def _blame(b: pd.DataFrame, critical: CriticalPath | None, per_batch: set[str] = frozenset()) -> pd.DataFrame:
+    """Add the blame columns: what the critical path ran longest inside each stall, and on which samples."""
     n = len(b)
     blame = np.full(n, "", object)
     lane = np.full(n, "", object)
     secs = np.zeros(n)
-    samples = np.full(n, "", object)
+    ids: list[list[int]] = [[] for _ in range(n)]
+    counts = np.zeros(n, np.int64)
     text = np.full(n, "", object)
-    ws = b["wait_start_s"].to_numpy(np.float64)
-    we = b["ready_s"].to_numpy(np.float64)
-    stalled = np.flatnonzero(we > ws)
+    stalled = np.flatnonzero(b["ready_s"].to_numpy(np.float64) > b["wait_start_s"].to_numpy(np.float64))
     seg = critical.segments if critical is not None else None
     if seg is not None and len(seg) and len(stalled):
-        s0 = seg["start_s"].to_numpy(np.float64)
-        s1 = seg["end_s"].to_numpy(np.float64)
-        lo = np.searchsorted(s1, ws[stalled], side="right")
-        hi = np.searchsorted(s0, we[stalled], side="left")
-        count = np.maximum(hi - lo, 0)
-        rows = np.repeat(stalled, count)
-        first = np.repeat(lo, count)
-        offset = np.arange(count.sum()) - np.repeat(np.cumsum(count) - count, count)
-        si = first + offset
-        overlap = np.minimum(s1[si], we[rows]) - np.maximum(s0[si], ws[rows])
-        sample = seg["sample_id"].to_numpy(np.int64)[si]
-        pairs = pd.DataFrame({
-            "row": rows, "label": seg["label"].to_numpy(object)[si], "lane": seg["lane"].to_numpy(object)[si],
-            "sec": overlap, "smin": np.where(sample >= 0, sample, np.iinfo(np.int64).max),
-            "smax": np.where(sample >= 0, sample, -1),
-        })
-        pairs = pairs[pairs["sec"] > 0]
-        g = pairs.groupby(["row", "label", "lane"], sort=False).agg(
-            sec=("sec", "sum"), smin=("smin", "min"), smax=("smax", "max")).reset_index()
+        pairs = _stall_pairs(b, seg, stalled)
+        g = pairs.groupby(["row", "label", "lane"], sort=False)["sec"].sum().reset_index()
         g = g.sort_values(["row", "sec", "label"], ascending=[True, False, True], kind="stable")
         top = g.drop_duplicates("row", keep="first")
         r = top["row"].to_numpy(np.int64)
         blame[r] = top["label"].to_numpy(object)
         lane[r] = top["lane"].to_numpy(object)
         secs[r] = top["sec"].to_numpy(np.float64)
-        smin = top["smin"].to_numpy(np.int64)
-        smax = top["smax"].to_numpy(np.int64)
-        for k, row in enumerate(r):  # one per stalled batch, not per span
-            samples[row] = "" if smax[k] < 0 else (f"{smin[k]}" if smin[k] == smax[k] else f"{smin[k]}-{smax[k]}")
-            text[row] = _blame_words(blame[row], lane[row], samples[row], int(b["batch_id"].iloc[row]))
-    return b.assign(blame=blame, blame_lane=lane, blame_s=secs, blame_samples=samples, blame_text=text)
+        named = pairs.merge(top[["row", "label", "lane"]], on=["row", "label", "lane"])
+        named = named[(named["sample"] >= 0) & ~named["label"].isin(list(per_batch))].sort_values("order")
+        for row, grp in named.groupby("row", sort=False)["sample"]:  # one per stalled batch, not per span
+            uniq = list(dict.fromkeys(int(x) for x in grp))
+            ids[row], counts[row] = uniq[:BLAME_IDS], len(uniq)
+        for row in r:
+            text[row] = _blame_words(blame[row], lane[row], ids[row], int(counts[row]))
+    out = b.assign(blame=blame, blame_lane=lane, blame_s=secs, blame_sample_count=counts, blame_text=text)
+    out["blame_sample_ids"] = pd.Series(ids, index=out.index, dtype=object)
+    return out
 
 
-def _blame_words(label: str, lane: str, samples: str, batch_id: int) -> str:
+def sample_words(ids: list[int], total: int, first: int = 4) -> str:
+    """Name samples: the first few ids and a count, never a range they need not fill.
+
+    Examples
+    --------
+    >>> sample_words([380, 9, 17], 3), sample_words([1, 2, 3, 4, 5, 6], 32)
+    ('samples 380, 9, 17', 'samples 1, 2, 3, 4 and 28 more')
+    """
+    if total <= 0:
+        return ""
+    if total == 1:
+        return f"sample {ids[0]}"
+    shown = ", ".join(str(i) for i in ids[:first])
+    more = total - min(first, len(ids))
+    return f"samples {shown}" + (f" and {more} more" if more > 0 else "")
+
+
+def _blame_words(label: str, lane: str, ids: list[int], count: int) -> str:
     if label == GAP:
         return "unexplained gap (nothing recorded ran)"
     if label == DELIVERY:
         return "delivery (the batch was ready, on its way to the consumer)"
     where = f" on {lane}" if lane else ""
-    if samples:
-        return f"{label}{where}, sample{'s' if '-' in samples else ''} {samples}"
-    return f"{label}{where}"
+    samples = sample_words(ids, count)
+    return f"{label}{where}, {samples}" if samples else f"{label}{where}"
