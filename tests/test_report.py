@@ -1,4 +1,4 @@
-"""The run report: text that fits 100 columns, verdict first, and the documented JSON."""
+"""The run report: text that fits 100 columns, the verdict first, one list of sections, the documented JSON."""
 
 from __future__ import annotations
 
@@ -10,8 +10,10 @@ import pytest
 from pipeprobe.analysis import analyze
 from pipeprobe.report import (
     JSON_SCHEMA,
+    SCHEMA_VERSION,
     SECTIONS,
     WIDTH,
+    Report,
     Section,
     add_section,
     format_report,
@@ -19,8 +21,8 @@ from pipeprobe.report import (
     report_dict,
 )
 
-REQUIRED = ["wall_s", "batches", "stall_fraction", "steady_stall_fraction", "verdict", "critical_path", "stages",
-            "slowest_samples"]
+REQUIRED = ["wall_s", "batches", "stall_fraction", "steady_stall_fraction", "pace", "at_stake", "critical_path",
+            "stages", "slowest_samples", "ranks"]
 
 
 class TestText:
@@ -31,7 +33,7 @@ class TestText:
         text = format_report(a)
         lines = text.splitlines()
         assert WIDTH >= max(len(x) for x in lines)
-        assert a.verdict.word.upper() in "\n".join(lines[:4])
+        assert lines[2].startswith("  pace  ") and "input free: run" in lines[4] and "step free: run" in lines[5]
         assert "stall" in text and "critical path" in text and "top actions" in text
         assert 0 == sum(line.startswith("  4. ") for line in lines)
 
@@ -40,6 +42,31 @@ class TestText:
         text = format_report(analyze(simple_run_dir))
         assert "44.4 % of wall" in text
         assert "decode                        0.018 s  33.3 %" in text
+
+    def test_verdict_of_a_serial_loop_is_exact(self, simple_run_dir):
+        """Loading inside the loop (8 ms input, 10 ms step, 3 batches): both sides pace in turn; freeing the
+        input gives 54/30 = 1.80x and the step 54/24 = 2.25x, equal to Amdahl's ceilings (Amdahl 1967: with
+        nothing overlapping, the formula is exact)."""
+        lines = format_report(analyze(simple_run_dir)).splitlines()
+        assert ["  pace  input and step set the pace in turn",
+                "    critical path: input side 44 %, step side 56 %",
+                "    input free: run 1.80x faster (replayed); Amdahl's ceiling 1.80x",
+                "    step free: run 2.25x faster (replayed); Amdahl's ceiling 2.25x"] == lines[2:6]
+
+    def test_ends_with_what_to_run_next(self, simple_run_dir):
+        """The report ends by naming the next commands: whatif, --html and the notebook."""
+        text = format_report(analyze(simple_run_dir))
+        tail = text[text.rindex("\nnext\n"):]
+        assert ["whatif", "--html", "walkthrough.ipynb"] == [w for w in ("whatif", "--html", "walkthrough.ipynb")
+                                                              if w in tail]
+
+    def test_control_characters_from_the_trace_are_escaped(self, tmp_path):
+        """A stage named with a clear-screen sequence and a newline prints as visible escapes (common practice)."""
+        from _synth import simple_pipeline, write_run
+
+        rows = [(r[0], "dec\x1b[2J\nforged" if r[1] == "decode" else r[1], *r[2:]) for r in simple_pipeline()[100]]
+        text = format_report(analyze(write_run(tmp_path / "run\x07x", {100: rows})))
+        assert (False, False, True) == ("\x1b" in text, "\x07" in text, "dec\\x1b[2J\\x0aforged" in text)
 
     def test_print_close_report_writes_to_file(self, simple_run_dir):
         """Probe.close() prints through print_close_report(run_dir, file)."""
@@ -58,8 +85,11 @@ class TestSections:
             assert names.index("critical path") + 1 == names.index("extra")
             a = analyze(simple_run_dir)
             text = format_report(a)
-            assert text.index("critical path") < text.index("extra section line") < text.index("top actions")
+            assert text.index("critical path") < text.index("extra section line") < text.index("stages  ")
             assert 1 == report_dict(a)["extra"]
+            from pipeprobe.html import render_report
+
+            assert "extra section line" in render_report(a)
         finally:
             SECTIONS[:] = [s for s in SECTIONS if s.name != "extra"]
 
@@ -85,4 +115,52 @@ class TestJson:
         assert (pytest.approx(0.054), 3, pytest.approx(24 / 54)) == (d["wall_s"], d["batches"], d["stall_fraction"])
         share = {x["stage"]: x["share"] for x in d["critical_path"]}
         assert pytest.approx(18 / 54) == share["decode"]
-        assert "input-bound" == d["verdict"]
+        assert ("in turn", SCHEMA_VERSION) == (d["pace"]["outcome"], d["schema"])
+        assert (pytest.approx(1.8), pytest.approx(2.25)) == (d["at_stake"]["input_free_speedup"],
+                                                              d["at_stake"]["step_free_speedup"])
+        assert {"count": 1, "cross_rank_view": False} == d["ranks"]
+        assert not {"verdict", "verdict_reason"} & set(d)
+
+    def test_infinity_is_one_spelling(self, tmp_path):
+        """An infinite speed-up is the string "inf" in the report JSON, as in the what-if JSON; NaN is null."""
+        from _synth import write_run
+
+        d = report_dict(analyze(write_run(tmp_path / "r", {100: [("wait", "", 0, 5, -1, 0, 0),
+                                                                  ("step", "", 5, 5, -1, 0, 0)]})))
+        text = json.dumps(d, allow_nan=False)
+        assert ("inf" in text, "Infinity" in text, "NaN" in text) == (True, False, False)
+
+
+class TestOneComputation:
+    def test_ceilings_are_replayed_once_for_text_json_and_html(self, simple_run_dir, monkeypatch):
+        """Text, JSON and HTML of one Report share one ceilings computation and one replay plan."""
+        import pipeprobe.report as rep
+        from pipeprobe.html import render_report
+
+        calls = {"ceilings": 0, "plan": 0}
+        real_ceilings, real_plan = rep.ceilings, rep.build_plan
+
+        def counting_ceilings(*a, **k):
+            calls["ceilings"] += 1
+            return real_ceilings(*a, **k)
+
+        def counting_plan(*a, **k):
+            calls["plan"] += 1
+            return real_plan(*a, **k)
+
+        monkeypatch.setattr(rep, "ceilings", counting_ceilings)
+        monkeypatch.setattr(rep, "build_plan", counting_plan)
+        r = Report(analyze(simple_run_dir))
+        format_report(r), report_dict(r), render_report(r)
+        assert {"ceilings": 1, "plan": 1} == calls
+
+    def test_html_shows_the_text_reports_capped_ceilings(self, simple_run_dir, monkeypatch):
+        """The page's ceilings are the text report's (the same batch cap), not a second computation."""
+        import pipeprobe.report as rep
+        from pipeprobe.html import render_report
+
+        monkeypatch.setattr(rep, "REPORT_MAX_BATCHES", 2)
+        r = Report(analyze(simple_run_dir))
+        c = r.figures("ceilings")[0]
+        assert 2 == r.replay_plan.batches
+        assert f"{c.stages[0].free_speedup:.2f}x" in render_report(r)
