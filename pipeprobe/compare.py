@@ -1,8 +1,9 @@
 """What changed between two runs, and whether the second one regressed.
 
 :func:`compare` lines up two :class:`~pipeprobe.analysis.Analysis` objects:
-wall time, time per batch, stall fractions, each stage's mean span time
-and each critical-path share. Optional limits turn it into a gate for CI:
+what sets the pace (:func:`pipeprobe.pace.judge`) and the replayed
+speed-up at stake on each side, wall time, time per batch, stall
+fractions, each stage's mean span time and each critical-path share. Optional limits turn it into a gate for CI:
 ``pipeprobe compare RUN_A RUN_B --max-stall-increase 0.05`` exits with 1
 when run B stalls more than 5 percentage points more than run A.
 """
@@ -15,7 +16,10 @@ from typing import Any
 
 import pandas as pd
 
+from ._jsonnum import json_ready
+from ._text import printable
 from .analysis import Analysis
+from .pace import judge
 
 __all__ = ["Comparison", "compare", "format_comparison", "comparison_dict", "COMPARE_COLUMNS"]
 
@@ -41,15 +45,16 @@ class Comparison:
         The two run folders.
     rows : DataFrame
         See :data:`COMPARE_COLUMNS`.
-    verdict_a, verdict_b : str
-        The two verdicts.
+    pace_a, pace_b : str
+        What sets the pace of each run (the verdict's outcome: 'input',
+        'step', 'in turn', 'level' or 'none').
     """
 
     run_a: str
     run_b: str
     rows: pd.DataFrame
-    verdict_a: str
-    verdict_b: str
+    pace_a: str
+    pace_b: str
 
     @property
     def regressed(self) -> bool:
@@ -119,6 +124,9 @@ def compare(a: Analysis, b: Analysis, *, max_stall_increase: float | None = None
         rows.append({"metric": metric, "a": va, "b": vb, "change": change, "unit": unit, "limit": lim,
                      "regressed": bad})
 
+    va, vb = judge(a), judge(b)
+    add("input free speedup", va.input_free_speedup, vb.input_free_speedup, "relative", None)
+    add("step free speedup", va.step_free_speedup, vb.step_free_speedup, "relative", None)
     add("wall_s", a.wall_s, b.wall_s, "relative", None)
     per_a = a.wall_s / a.batches if a.batches else float("nan")
     per_b = b.wall_s / b.batches if b.batches else float("nan")
@@ -135,7 +143,16 @@ def compare(a: Analysis, b: Analysis, *, max_stall_increase: float | None = None
         add(f"share {label}", sa.get(label, 0.0), sb.get(label, 0.0), "points", None)
     frame = pd.DataFrame(rows, columns=list(COMPARE_COLUMNS))
     return Comparison(run_a=str(a.run.run_dir), run_b=str(b.run.run_dir), rows=frame,
-                      verdict_a=a.verdict.word, verdict_b=b.verdict.word)
+                      pace_a=va.pace, pace_b=vb.pace)
+
+
+def _pace_words() -> dict[str, str]:
+    from .pace import HEADINGS
+
+    return dict(HEADINGS)
+
+
+_PACE_WORDS = _pace_words()
 
 
 def _change(x: float, unit: str) -> str:
@@ -147,6 +164,8 @@ def _change(x: float, unit: str) -> str:
 def _value(metric: str, x: float) -> str:
     if not math.isfinite(x):
         return "-"
+    if metric.endswith("speedup"):
+        return "unbounded" if math.isinf(x) else f"{x:.2f}x"
     if "fraction" in metric or metric.startswith("share "):
         return f"{100 * x:.1f} %"
     if metric.endswith("mean_s"):
@@ -169,7 +188,8 @@ def format_comparison(c: Comparison) -> str:
         return s if len(s) <= n else "..." + s[-(n - 3):]
 
     lines = [f"compare  A {cut(c.run_a, 88)}", f"         B {cut(c.run_b, 88)}",
-             f"  verdict {c.verdict_a} -> {c.verdict_b}", "",
+             f"  pace  A: {_PACE_WORDS.get(c.pace_a, c.pace_a)}", f"        B: {_PACE_WORDS.get(c.pace_b, c.pace_b)}",
+             "",
              f"  {'metric':<34} {'A':>12} {'B':>12} {'change':>12} {'limit':>12}"]
     for r in c.rows.itertuples():
         lim = _change(r.limit, r.unit) if math.isfinite(r.limit) else ""
@@ -182,11 +202,14 @@ def format_comparison(c: Comparison) -> str:
     else:
         gated = c.rows["limit"].notna().any()
         lines.append("result  within limits" if gated else "result  no limits given (pass --max-... to gate)")
+    lines = [printable(line) for line in lines]
     return "\n".join(line if len(line) <= 100 else line[:97] + "..." for line in lines)
 
 
 def comparison_dict(c: Comparison) -> dict[str, Any]:
-    """The comparison as a JSON-ready dict: ``run_a, run_b, verdict_a, verdict_b, regressed, failures, rows``.
+    """The comparison as a JSON-ready dict: ``run_a, run_b, pace_a, pace_b, regressed, failures, rows``.
+
+    Numbers follow the report's rule (:mod:`pipeprobe._jsonnum`): NaN is null, infinity ``"inf"``.
 
     Parameters
     ----------
@@ -196,12 +219,9 @@ def comparison_dict(c: Comparison) -> dict[str, Any]:
     -------
     dict
     """
-    def num(x: float) -> float | None:
-        return float(x) if math.isfinite(x) else None
-
-    return {
-        "run_a": c.run_a, "run_b": c.run_b, "verdict_a": c.verdict_a, "verdict_b": c.verdict_b,
+    return json_ready({
+        "run_a": c.run_a, "run_b": c.run_b, "pace_a": c.pace_a, "pace_b": c.pace_b,
         "regressed": c.regressed, "failures": c.failures,
-        "rows": [{"metric": r.metric, "a": num(r.a), "b": num(r.b), "change": num(r.change), "unit": r.unit,
-                  "limit": num(r.limit), "regressed": bool(r.regressed)} for r in c.rows.itertuples()],
-    }
+        "rows": [{"metric": r.metric, "a": r.a, "b": r.b, "change": r.change, "unit": r.unit,
+                  "limit": r.limit, "regressed": bool(r.regressed)} for r in c.rows.itertuples()],
+    })

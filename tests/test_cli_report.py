@@ -20,13 +20,13 @@ class TestReport:
     def test_text(self, simple_run_dir, capsys):
         """`pipeprobe report RUN` prints the report and exits 0."""
         assert EXIT_OK == main(["report", str(simple_run_dir)])
-        assert "INPUT-BOUND" in capsys.readouterr().out
+        assert "  pace  input and step set the pace in turn" in capsys.readouterr().out.splitlines()
 
     def test_json(self, simple_run_dir, capsys):
         """`--json` prints one JSON object with the documented keys."""
         assert EXIT_OK == main(["report", str(simple_run_dir), "--json"])
         d = json.loads(capsys.readouterr().out)
-        assert (3, "input-bound") == (d["batches"], d["verdict"])
+        assert (3, "in turn") == (d["batches"], d["pace"]["outcome"])
 
     def test_missing_run_is_one_line_exit_2(self, tmp_path, capsys):
         """A missing folder: one line on stderr that says what to pass, exit 2."""
@@ -64,6 +64,16 @@ class TestCompare:
         row = {r["metric"]: r for r in d["rows"]}["stall_fraction"]
         assert pytest.approx(36 / 66 - 24 / 54) == row["change"]
         assert (True, 1) == (d["regressed"], len(d["failures"]))
+        assert ("in turn", "in turn") == (d["pace_a"], d["pace_b"])
+
+    def test_pace_and_stakes_side_by_side(self, simple_run_dir, slower_run_dir, capsys):
+        """compare shows what paces each run and the replayed speed-up at stake: freeing the input of the
+        serial loop gives 54/30 in A and 66/30 in B (analytic, Amdahl 1967: nothing overlaps)."""
+        main(["compare", str(simple_run_dir), str(slower_run_dir)])
+        out = capsys.readouterr().out
+        row = next(line for line in out.splitlines() if "input free speedup" in line)
+        assert ["1.80x", "2.20x"] == row.split()[3:5]
+        assert "  pace  A: input and step set the pace in turn" in out.splitlines()
 
     @pytest.mark.parametrize("args", [["--max-stall-increase", "-1"], ["--max-stall-increase", "abc"], []])
     def test_bad_arguments_exit_2(self, simple_run_dir, args, capsys):

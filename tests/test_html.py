@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import re
 import shutil
 import tempfile
 from html.parser import HTMLParser
@@ -106,22 +107,108 @@ class TestSelfContained:
         text = "".join(_parse(page).text)
         # by hand: 3 waits of 8 ms in a 54 ms run = 44.4 % stalled
         assert "44.4 %" in text
-        assert a.verdict.word in text
-        for heading in ("Stalls", "Critical path", "Speed-up ceilings", "Stages", "Slowest samples", "Timeline"):
+        assert "input and step set the pace in turn" in text
+        for heading in ("Stalls", "Critical path", "What a faster stage would buy", "Stages", "Slowest samples",
+                        "Timeline"):
             assert heading in text
         assert {"decode", "augment", "step"} <= set(a.critical.shares["label"])
         for label in ("decode", "augment", "step"):
             assert label in text
 
 
+class TestLayout:
+    def test_page_leads_with_the_pace_and_what_a_change_buys(self, html_simple: tuple[Any, str]) -> None:
+        """The title and the opening box name what paces the run; the first sections are what to try and buy."""
+        _, page = html_simple
+        parsed = _parse(page)
+        text = "".join(parsed.text)
+        assert text.index("input and step set the pace in turn") < text.index("What to try first") < text.index(
+            "What a faster stage would buy") < text.index("Stalls")
+        assert "<title>What paces simple: input and step set the pace in turn</title>" in page
+
+    def test_same_stage_columns_as_the_text_report(self, html_simple: tuple[Any, str]) -> None:
+        """The stage table's columns come in the text report's order."""
+        a, page = html_simple
+        from pipeprobe.report import format_report
+
+        text_head = next(line for line in format_report(a).splitlines() if line.startswith("stages "))
+        html_head = page[page.index("<h2>Stages</h2>"):].split("</thead>")[0]
+        titles = re.findall(r"<th[^>]*>([^<]*)</th>", html_head)
+        assert " ".join(text_head.split()) == " ".join(["stages"] + titles[1:])
+
+    def test_no_zero_stakes(self) -> None:
+        """An action with nothing at stake shows no '(0.00 ms at stake)'."""
+        from types import SimpleNamespace
+
+        from pipeprobe.analysis import Action
+
+        page = ppe_html.actions_html(SimpleNamespace(actions=(Action("workers", "Do not add workers: busy", 0.0),)),
+                                     None)
+        assert ("Do not add workers: busy", False) == ("Do not add workers: busy" if "busy" in page else "",
+                                                       "at stake" in page)
+
+
+class TestWriting:
+    def test_a_folder_is_refused(self, simple_run_dir: Path, tmp_path: Path) -> None:
+        """--html naming a folder: OutputFileError, the folder untouched."""
+        with pytest.raises(ppe_html.OutputFileError, match="it is a folder"):
+            ppe_html.write_report(simple_run_dir, tmp_path)
+        assert [] == [p.name for p in tmp_path.iterdir() if p.name.endswith(".tmp")]
+
+    def test_a_link_is_not_followed(self, simple_run_dir: Path, tmp_path: Path) -> None:
+        """A link at the target (here to /dev/null) is refused and left as it is; nothing is written through it."""
+        target = tmp_path / "r.html"
+        target.symlink_to("/dev/null")
+        with pytest.raises(ppe_html.OutputFileError, match="a link"):
+            ppe_html.write_report(simple_run_dir, target)
+        assert ("/dev/null", []) == (os.readlink(target), [p.name for p in tmp_path.iterdir() if p.name not in ("r.html", "simple")])
+
+    def test_a_link_at_the_old_temporary_name_is_not_followed(self, simple_run_dir: Path, tmp_path: Path) -> None:
+        """A link planted at ``F.tmp`` is neither followed nor used: the page goes to a fresh name."""
+        victim = tmp_path / "victim"
+        victim.write_text("keep")
+        (tmp_path / "r.html.tmp").symlink_to(victim)
+        ppe_html.write_report(simple_run_dir, tmp_path / "r.html")
+        assert ("keep", True) == (victim.read_text(), (tmp_path / "r.html").read_text().startswith("<!DOCTYPE"))
+
+    def test_an_old_report_is_replaced(self, simple_run_dir: Path, tmp_path: Path) -> None:
+        """A regular file at the target is replaced by the new page, readable by others as a new file would be."""
+        target = tmp_path / "r.html"
+        target.write_text("old")
+        ppe_html.write_report(simple_run_dir, target)
+        umask = os.umask(0)
+        os.umask(umask)
+        assert (True, 0o666 & ~umask) == (target.read_text().startswith("<!DOCTYPE"), target.stat().st_mode & 0o777)
+
+
 class TestCommandLine:
+    def test_html_to_a_folder_is_one_line_exit_2(self, simple_run_dir: Path, tmp_path: Path,
+                                                 capsys: pytest.CaptureFixture) -> None:
+        """``report R --html SOME_FOLDER``: one line naming the problem, exit 2, no traceback."""
+        assert 2 == main(["report", str(simple_run_dir), "--html", str(tmp_path)])
+        err = capsys.readouterr().err
+        assert (1, True, False) == (len(err.strip().splitlines()), "folder" in err, "Traceback" in err)
+
+    def test_html_on_a_read_only_folder_is_one_line_exit_2(self, simple_run_dir: Path, tmp_path: Path,
+                                                           capsys: pytest.CaptureFixture, monkeypatch) -> None:
+        """A folder that cannot be written (read-only file system: EROFS, simulated) gives one line, exit 2."""
+        import errno
+
+        def read_only(*a, **k):
+            raise OSError(errno.EROFS, "Read-only file system")
+
+        monkeypatch.setattr(ppe_html.tempfile, "mkstemp", read_only)
+        assert 2 == main(["report", str(simple_run_dir), "--html", str(tmp_path / "r.html")])
+        err = capsys.readouterr().err
+        assert (1, True) == (len(err.strip().splitlines()), "read-only" in err)
+
     def test_report_writes_html(self, simple_run_dir: Path, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
         """``pipeprobe report RUN --html FILE`` writes the page and still prints the text report."""
         out = tmp_path / "report.html"
         assert 0 == main(["report", str(simple_run_dir), "--html", str(out)])
         assert out.read_text(encoding="utf-8").startswith("<!DOCTYPE html>")
         captured = capsys.readouterr()
-        assert "verdict" in captured.out
+        assert "  pace  " in captured.out
         assert f"pipeprobe: wrote {out}\n" == captured.err
 
     def test_missing_output_folder_is_one_line_exit_2(self, simple_run_dir: Path, tmp_path: Path,
@@ -168,7 +255,7 @@ class TestInChromium:
             requests = [e["message"] for e in drv.get_log("performance") if "Network.requestWillBeSent" in e["message"]]
             assert [] == [m for m in requests if '"url":"http' in m.replace(" ", "")]
             body = drv.find_element(By.TAG_NAME, "body").text
-            assert a.verdict.word in body
+            assert "input and step set the pace in turn" in body
             assert f"{100 * a.stalls.fraction:.1f} %" in body
             assert EVIL in body  # shown as text, not run
             assert 0 == len(drv.find_elements(By.TAG_NAME, "script"))
@@ -177,7 +264,8 @@ class TestInChromium:
             widths = [int(img.get_property("naturalWidth")) for img in images]
             assert all(w > 100 for w in widths), widths
             headings = [h.text for h in drv.find_elements(By.TAG_NAME, "h2")]
-            assert {"Stalls", "Critical path", "Speed-up ceilings", "Slowest samples", "Timeline"} <= set(headings)
+            assert {"Stalls", "Critical path", "What a faster stage would buy", "Slowest samples",
+                    "Timeline"} <= set(headings)
         finally:
             drv.quit()
             shutil.rmtree(profile, ignore_errors=True)

@@ -64,17 +64,35 @@ class TestHandChecked:
 
 class TestBlame:
     def test_stall_blamed_on_worker_stage_and_samples(self, tmp_path):
-        """A stall behind one slow worker stage names the stage, the worker and the sample range."""
+        """A stall behind one slow worker stage names the stage, the worker and the samples it worked on."""
         spec = dict(stage_us=[[[3000, 1000], [3000, 1000]], [[3000, 1000], [3000, 1000]]],
                     step_us=[1000, 1000], workers=1)
         procs, end = pool_schedule(**spec)
         _, _, s = _stalls(write_run(tmp_path / "r", procs, end_ms=end))
         row = s.per_batch.iloc[1]
-        assert ("s0", "worker 1", "2-3") == (row["blame"], row["blame_lane"], row["blame_samples"])
-        assert "s0 on worker 1, samples 2-3" == row["blame_text"]
+        assert ("s0", "worker 1", [2, 3], 2, "s0 on worker 1, samples 2, 3") == (
+            row["blame"], row["blame_lane"], row["blame_sample_ids"], row["blame_sample_count"], row["blame_text"])
         # batch 1 waits 9..16 ms; on the path then: s0 of sample 2 (9..11 of 8..11), s1 11..12, s0 of
         # sample 3 12..15, s1 15..16 -> s0 holds 2 + 3 = 5 ms of the stall
         assert pytest.approx(0.005) == row["blame_s"]
+
+    def test_shuffled_samples_are_named_not_ranged(self, tmp_path):
+        """A batch of samples 379, 1, 200, 5, 42 (shuffled) names the first four and a count, not '1-379'."""
+        ids = [379, 1, 200, 5, 42]
+        rows = [("stage", "decode", 2 * i, 2 * i + 2, sid, -1, 0, 201) for i, sid in enumerate(ids)]
+        consumer = [("member", "", 10, 10, sid, 0, 0) for sid in ids]
+        consumer += [("wait", "", 0, 10.5, -1, 0, 0), ("step", "", 10.5, 12, -1, 0, 0)]
+        _, _, s = _stalls(write_run(tmp_path / "r", {100: consumer, 201: rows}, end_ms=12))
+        assert "decode on worker 1, samples 379, 1, 200, 5 and 1 more" == s.per_batch.iloc[0]["blame_text"]
+
+    def test_per_batch_stage_names_no_samples(self, tmp_path):
+        """A collate span tagged with its batch's first sample (as the DataLoader hook does) names no samples."""
+        rows = [("stage", "decode", 0, 1, 0, -1, 0, 201), ("stage", "decode", 1, 2, 1, -1, 0, 201),
+                ("stage", "collate", 2, 9, 0, 0, 0, 201)]
+        consumer = [("member", "", 9, 9, 0, 0, 0), ("member", "", 9, 9, 1, 0, 0),
+                    ("wait", "", 0, 9.5, -1, 0, 0), ("step", "", 9.5, 10, -1, 0, 0)]
+        _, _, s = _stalls(write_run(tmp_path / "r", {100: consumer, 201: rows}, end_ms=10))
+        assert ("collate on worker 1", 0) == (s.per_batch.iloc[0]["blame_text"], s.per_batch.iloc[0]["blame_sample_count"])
 
     def test_no_stall_no_blame(self, tmp_path):
         """A batch that did not wait has no blame."""
