@@ -164,3 +164,65 @@ def test_load_warnings_are_one_line_each(tmp_path: Path, capsys: pytest.CaptureF
     assert 0 == code
     assert 1 == len(lines), err
     assert lines[0].startswith("pipeprobe: warning: ") and "spans-r0-p100" in lines[0]
+
+
+class TestHardening:
+    def test_demo_out_holding_a_run_is_refused_before_recording(self, cli_runs: dict, capsys) -> None:
+        """`demo --out` an existing run: one line, exit 2, the run's files untouched."""
+        before = {p.name: p.read_bytes() for p in cli_runs["good"].iterdir()}
+        line = assert_one_line_error(*run_main(["demo", "--out", str(cli_runs["good"])], capsys))
+        assert ("already holds a recorded run" in line, before) == (
+            True, {p.name: p.read_bytes() for p in cli_runs["good"].iterdir()})
+
+    def test_demo_out_a_file_is_refused(self, cli_runs: dict, capsys) -> None:
+        """`demo --out` a plain file: one line, exit 2, the file unchanged."""
+        line = assert_one_line_error(*run_main(["demo", "--out", str(cli_runs["plain"])], capsys))
+        assert ("is a file" in line, "not a run") == (True, cli_runs["plain"].read_text())
+
+    def test_demo_huge_batch_size_is_one_line(self, tmp_path: Path, capsys) -> None:
+        """`demo --batch-size 1000000000`: one line naming the limit, exit 2, nothing recorded."""
+        line = assert_one_line_error(*run_main(["demo", "--batch-size", "1000000000", "--out",
+                                                str(tmp_path / "r")], capsys))
+        assert ("batch_size must be 1..", False) == (line[18:40], (tmp_path / "r").exists())
+
+    def test_report_into_a_closed_pipe_is_quiet(self, cli_runs: dict) -> None:
+        """`pipeprobe report R | head` with the reader gone: no traceback, nothing on stderr, exit 141
+        (128 + SIGPIPE, what a shell reports for a command whose reader went away; common practice)."""
+        p = subprocess.Popen([sys.executable, "-m", "pipeprobe", "report", str(cli_runs["good"]), "--json"],
+                             env=child_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        p.stdout.close()
+        err = p.stderr.read()
+        assert (cli.EXIT_BROKEN_PIPE, "") == (p.wait(timeout=120), err)
+
+    def test_control_characters_in_messages_are_escaped(self, tmp_path: Path, capsys) -> None:
+        """A run folder named with a terminal escape is printed escaped in the error line."""
+        line = assert_one_line_error(*run_main(["report", str(tmp_path / "x\x1b]0;owned\x07y")], capsys))
+        assert ("\x1b" in line, "\\x1b]0;owned\\x07y" in line) == (False, True)
+
+    def test_stage_names_in_warnings_are_escaped(self, tmp_path: Path, capsys) -> None:
+        """A warning quoting text from the trace reaches the terminal with its control characters escaped."""
+        import warnings
+
+        cli._one_line_warning(warnings.WarningMessage("bad stage 'a\x1b[2Jb'", UserWarning, "f", 1).message,
+                              UserWarning, "f", 1)
+        err = capsys.readouterr().err
+        assert "pipeprobe: warning: bad stage 'a\\x1b[2Jb'\n" == err
+
+
+class TestHelp:
+    def test_version(self, capsys) -> None:
+        """`pipeprobe --version` prints the version."""
+        from pipeprobe import __version__
+
+        with pytest.raises(SystemExit) as exc:
+            cli.main(["--version"])
+        assert (0, f"pipeprobe {__version__}\n") == (exc.value.code, capsys.readouterr().out)
+
+    @pytest.mark.parametrize("name", sorted(cli.COMMANDS))
+    def test_every_subcommand_has_a_description_and_an_example(self, name: str, capsys) -> None:
+        """`pipeprobe NAME --help` shows what the command does and an example line starting 'pipeprobe NAME'."""
+        with pytest.raises(SystemExit):
+            cli.main([name, "--help"])
+        out = capsys.readouterr().out
+        assert (True, True) == (cli.COMMANDS[name].description.split()[0] in out,
+                                f"example:\n  pipeprobe {name}" in out)
