@@ -30,10 +30,10 @@ from .errors import (  # noqa: E402
     TraceFormatError,
 )
 from .load import Run, load  # noqa: E402
+from .pace import Verdict  # noqa: E402
 from .ranks import RankView, rank_view  # noqa: E402
 from .record import Probe, stage  # noqa: E402
 from .stagestats import StageStats, stage_stats  # noqa: E402
-from .pace import Verdict  # noqa: E402
 from .stalls import Stalls, stall_summary  # noqa: E402
 from .timeline import Timeline, build_timeline  # noqa: E402
 from .whatif import Prediction, whatif  # noqa: E402

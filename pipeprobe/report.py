@@ -27,8 +27,9 @@ from .errors import PipeprobeError
 from .pace import Verdict, judge
 from .stalls import sample_words
 
+# isort: split
 # -- the what-if layer (the replay plan and the ceilings); kept together for the move to pipeprobe/whatif/
-from .ceilings import REPORT_MAX_BATCHES, Ceilings, ceilings, format_ceilings  # noqa: I001
+from .ceilings import REPORT_MAX_BATCHES, Ceilings, ceilings, format_ceilings
 from .ceilings import _head as _first_batches
 from .replay import build_plan
 

@@ -11,7 +11,7 @@ import pytest
 from _synth import pool_schedule, write_run
 
 import pipeprobe
-from pipeprobe.pace import PACE_INPUT, PACE_LEVEL, PACE_NONE, PACE_STEP, PACE_TURNS, judge
+from pipeprobe.pace import PACE_INPUT, PACE_LEVEL, PACE_NONE, PACE_STEP, judge
 
 
 def _pool_run(tmp_path: Path, load_us: int, step_us: int, n: int = 40, workers: int = 1) -> Path:

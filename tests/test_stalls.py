@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import pytest
-from _synth import pool_schedule, simple_pipeline, write_run
+from _synth import pool_schedule, write_run
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
