@@ -270,3 +270,21 @@ class TestInChromium:
             drv.quit()
             shutil.rmtree(profile, ignore_errors=True)
         assert os.path.getsize(page) > 10_000
+
+
+class TestStageDurationLabels:
+    def test_slowest_span_labels_never_overlap(self, tmp_path: Path) -> None:
+        """Three slowest decode spans of almost equal length (and the one step) get numbers that do not overlap."""
+        from matplotlib.text import Annotation
+
+        from pipeprobe import load, plot
+
+        rows = [("stage", "decode", 2 * i, 2 * i + (1.99 if i < 3 else 0.5) - 0.001 * i, i, 0, 0) for i in range(30)]
+        rows += [("wait", "", 0, 60, -1, 0, 0), ("step", "", 60, 61, -1, 0, 0)]
+        ax = plot.draw_stage_durations(load(write_run(tmp_path / "r", {100: rows})))
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+        renderer = FigureCanvasAgg(ax.figure).get_renderer()
+        boxes = [t.get_window_extent(renderer) for t in ax.texts if isinstance(t, Annotation)]
+        overlapping = [(i, j) for i in range(len(boxes)) for j in range(i + 1, len(boxes)) if boxes[i].overlaps(boxes[j])]
+        assert (4, []) == (len(boxes), overlapping)  # decode 3, step 1
