@@ -9,14 +9,15 @@
    the speed-up of the whole run. Beside each stands Amdahl's ceiling
    ``1 / (1 - p)`` from that side's share ``p`` of the observed critical
    path: what freeing it could give if nothing else moved.
-2. **What sets the pace.** A side sets the pace when freeing it buys at
-   least :data:`~pipeprobe.critical.PACE_SPEEDUP` (1.05x) in the replay.
-   Input only: the input pipeline sets the pace; step only: the step; both:
-   the two take turns (each holds part of the critical path, as in a loop
-   that loads and then trains); neither: the two sides overlap and keep
-   level, so only making both faster helps. When the replay cannot run,
-   Amdahl's ceilings from the observed path stand in for it (and the
-   verdict says so).
+2. **What sets the pace.** A side sets the pace when it holds enough of
+   the observed critical path that Amdahl's ceiling reaches
+   :data:`~pipeprobe.critical.PACE_SPEEDUP` (1.05x), *and* freeing it buys
+   at least that much in the replay: the smaller of the two decides. Input
+   only: the input pipeline sets the pace; step only: the step; both: the
+   two take turns (each holds part of the critical path, as in a loop that
+   loads and then trains); neither: the two sides overlap and keep level,
+   so only making both faster helps. When the replay cannot run, Amdahl's
+   ceilings decide alone (and the verdict says so).
 
 References
 ----------
@@ -165,7 +166,7 @@ def judge(analysis: Analysis, plan: Any = None) -> Verdict:
     except PipeprobeError as exc:
         s_in, s_step, batches = math.nan, math.nan, 0
         note = f"no replay ({exc}); Amdahl's ceilings from the observed critical path decide"
-    judge_in = s_in if math.isfinite(s_in) or math.isinf(s_in) else ceil_in
-    judge_step = s_step if math.isfinite(s_step) or math.isinf(s_step) else ceil_step
+    judge_in = ceil_in if math.isnan(s_in) else min(s_in, ceil_in)
+    judge_step = ceil_step if math.isnan(s_step) else min(s_step, ceil_step)
     pace = _pace(judge_in >= PACE_SPEEDUP, judge_step >= PACE_SPEEDUP)
     return Verdict(pace, HEADINGS[pace], p_in, p_step, s_in, s_step, ceil_in, ceil_step, batches, note)
