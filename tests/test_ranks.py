@@ -67,6 +67,27 @@ class TestStraggler:
         assert np.allclose(local.ranks["waited_s"], pooled.ranks["waited_s"])
 
 
+class TestInTheReport:
+    def test_several_ranks_get_a_section_in_text_json_and_html(self, tmp_path: Path) -> None:
+        """Rank 1 late by 30 ms at each of 4 steps: the report names it; the cost is 4 x 30 ms (analytic)."""
+        from pipeprobe.html import render_report
+        from pipeprobe.report import Report, format_report, report_dict
+
+        r = Report(pipeprobe.analyze(write_ranks(tmp_path / "r", {1: 30.0}, steps=4)))
+        text, d = format_report(r), report_dict(r)["ranks"]
+        assert ((1, "input", pytest.approx(0.12)), True, True) == (
+            (d["straggler_rank"], d["straggler_cause"], d["straggler_cost_s"]),
+            "ranks at the gradient synchronisation" in text, "<h2>Ranks (2)</h2>" in render_report(r))
+
+    def test_one_rank_has_no_section_and_says_so(self, simple_run_dir: Path) -> None:
+        """One rank: no ranks section in the text, and the JSON says there is no cross-rank view."""
+        from pipeprobe.report import Report, format_report, report_dict
+
+        r = Report(pipeprobe.analyze(simple_run_dir))
+        assert ({"count": 1, "cross_rank_view": False}, False) == (
+            report_dict(r)["ranks"], "gradient synchronisation" in format_report(r))
+
+
 class TestBadFolders:
     def test_missing_rank_is_named(self, tmp_path: Path) -> None:
         """World size 4 with rank 2 absent: a warning names run-r2.json; the view lists it as missing."""
@@ -131,3 +152,18 @@ class TestRealDataParallelJob:
         assert waited > 0.8  # 30 steps x 4 photos x 10 ms, less what overlaps
         assert abs(view.straggler_cost_s - waited) <= 0.10 * waited, (view.straggler_cost_s, waited)
         assert view.straggler_stall_fraction > 0.5
+        self._check_report(run, view)
+
+    @staticmethod
+    def _check_report(run, view) -> None:
+        """`pipeprobe report` on the job: the ranks section in text, JSON and HTML names the straggler."""
+        from pipeprobe.html import render_report
+        from pipeprobe.report import Report, format_report, report_dict
+
+        r = Report(pipeprobe.analyze(run))
+        text, d, page = format_report(r), report_dict(r)["ranks"], render_report(r)
+        assert ((2, True, 1, "input", "decode"), True, True) == (
+            (d["count"], d["cross_rank_view"], d["straggler_rank"], d["straggler_cause"], d["straggler_stage"]),
+            "straggler: rank 1 (cause: input, stage 'decode')" in text, "<b>rank 1</b>" in page)
+        assert (pytest.approx(view.straggler_cost_s), [0, 1]) == (d["straggler_cost_s"],
+                                                                   [x["rank"] for x in d["per_rank"]])
