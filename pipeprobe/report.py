@@ -427,6 +427,38 @@ def _ranks_data(fig: tuple[Any, int]) -> dict[str, Any]:
     return {"ranks": {"count": count, "cross_rank_view": True, **rank_view_dict(view)}}
 
 
+# -- what recording cost -------------------------------------------------------------------------------
+def _cost_compute(report: Report) -> Any:
+    from .probecost import recording_cost
+
+    a = report.analysis
+    return recording_cost(a.run, a.stages.table, a.wall_s)
+
+
+def _cost_text(c: Any) -> list[str]:
+    if not c.measured:
+        return [f"recording cost  {c.spans} spans; per-span cost not measured in this run, so no estimate"]
+    lines = [f"recording cost  {c.spans} spans; per-span cost measured at probe start, time it added:"]
+    for p in c.processes.itertuples(index=False):
+        if math.isnan(p.span_cost_ns):
+            lines.append(f"  {p.role} pid {p.pid}: {p.spans} spans, cost not measured")
+        else:
+            lines.append(f"  {p.role} pid {p.pid}: {p.spans} spans x {p.span_cost_ns / 1e3:.2f} us = "
+                         f"{1e3 * p.added_s:.2f} ms, {100 * p.wall_share:.2f} % of wall")
+    for r in c.too_short.itertuples(index=False):
+        lines.append(f"  '{r.stage}' is too short to time per item (median {1e6 * r.p50_s:.1f} us, under "
+                     f"{1e6 * r.limit_s:.1f} us): time it per batch")
+    return lines
+
+
+def _cost_data(c: Any) -> dict[str, Any]:
+    return {"recording_cost": {
+        "spans": c.spans, "measured": c.measured,
+        "processes": [dict(p._asdict()) for p in c.processes.itertuples(index=False)],
+        "too_short": [dict(r._asdict()) for r in c.too_short.itertuples(index=False)],
+    }}
+
+
 # -- what to run next ----------------------------------------------------------------------------------
 def _next_text(a: Analysis) -> list[str]:
     if not a.batches:
@@ -468,6 +500,7 @@ SECTIONS: list[Section] = [
     Section("stages", _stage_text, _stage_data, _page("stages_html")),
     Section("ranks", _ranks_text, _ranks_data, _page("ranks_html"), _ranks_compute),
     Section("timeline", lambda a: [], None, _page("timeline_html")),
+    Section("recording cost", _cost_text, _cost_data, None, _cost_compute),
     Section("next", _next_text, None, _no_html),
 ]
 
@@ -507,6 +540,9 @@ JSON_SCHEMA: dict[str, str] = {
     "slowest_samples": "list of {stage, samples, of_samples, sample_ids, seconds, share}",
     "cpu": "{cores, core_busy_in_stalls, cores_saturated, more_workers: 'yes'|'no'|'unknown', "
            "more_workers_reason}",
+    "recording_cost": "{spans, measured, processes: list of {pid, rank, role, spans, span_cost_ns, added_s, "
+                      "wall_share}, too_short: list of {stage, p50_s, limit_s}}; span_cost_ns null when the run "
+                      "did not measure it",
     "ranks": "{count, cross_rank_view: false} for one rank; with several: also straggler_rank, straggler_cause, "
              "straggler_stage, straggler_stall_fraction, straggler_cost_s, idle_rank_s, missing_ranks, "
              "per_rank: list of {rank, steps, last_steps, caused_s, waited_s, stall_s, active_s, stall_fraction}",

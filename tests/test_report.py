@@ -164,3 +164,35 @@ class TestOneComputation:
         c = r.figures("ceilings")[0]
         assert 2 == r.replay_plan.batches
         assert f"{c.stages[0].free_speedup:.2f}x" in render_report(r)
+
+
+class TestRecordingCost:
+    @staticmethod
+    def _with_cost(run_dir, cost_ns):
+        from pipeprobe import tracefile
+
+        for f in run_dir.glob("spans-*.json"):
+            h = tracefile.read_json(f)
+            h["span_cost_ns"] = cost_ns
+            tracefile.write_json_atomic(f, h)
+        return run_dir
+
+    def test_estimate_from_the_measured_per_span_cost(self, simple_run_dir):
+        """18 spans at 1 us each add 18 us: 0.03 % of the 54 ms run (arithmetic)."""
+        d = report_dict(analyze(self._with_cost(simple_run_dir, 1000.0)))["recording_cost"]
+        p = d["processes"][0]
+        assert (18, True, pytest.approx(18e-6), pytest.approx(18e-6 / 0.054), []) == (
+            p["spans"], d["measured"], p["added_s"], p["wall_share"], d["too_short"])
+
+    def test_stages_too_short_to_time_per_item(self, simple_run_dir):
+        """At 200 us a span, stages with a median under 4 ms (20x) are flagged: augment 1 ms and decode 3 ms."""
+        a = analyze(self._with_cost(simple_run_dir, 200_000.0))
+        text = format_report(a)
+        flagged = [x["stage"] for x in report_dict(a)["recording_cost"]["too_short"]]
+        assert (["augment", "decode"], True) == (sorted(flagged), "'decode' is too short to time per item" in text)
+
+    def test_not_measured_says_so(self, simple_run_dir):
+        """A run recorded without the measurement says the cost was not measured and estimates nothing."""
+        d = report_dict(analyze(simple_run_dir))["recording_cost"]
+        assert (False, None) == (d["measured"], d["processes"][0]["span_cost_ns"])
+        assert "per-span cost not measured in this run" in format_report(analyze(simple_run_dir))
