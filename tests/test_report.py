@@ -196,3 +196,36 @@ class TestRecordingCost:
         d = report_dict(analyze(simple_run_dir))["recording_cost"]
         assert (False, None) == (d["measured"], d["processes"][0]["span_cost_ns"])
         assert "per-span cost not measured in this run" in format_report(analyze(simple_run_dir))
+
+
+class TestWarmupAction:
+    @staticmethod
+    def _two_epochs(tmp_path, restart: bool):
+        """2 epochs x 3 batches; the first batch of each epoch waits 20 ms (18 ms of worker start-up), the rest
+        2 ms; each wait ends with a 2 ms decode on the epoch's worker; 5 ms steps. Wall 78 ms."""
+        from _synth import write_run
+
+        consumer, workers, t = [], {201: [], 202: []}, 0.0
+        for e in range(2):
+            pid = 202 if (restart and e == 1) else 201
+            for k in range(3):
+                b, w = 3 * e + k, (20.0 if k == 0 else 2.0)
+                workers[pid].append(("stage", "decode", t + w - 2, t + w, b, -1, -1))
+                consumer += [("member", "", t + w, t + w, b, b, e), ("wait", "", t, t + w, -1, b, e),
+                             ("step", "", t + w, t + w + 5, -1, b, e)]
+                t += w + 5
+        procs = {100: consumer, **{p: r for p, r in workers.items() if r}}
+        return write_run(tmp_path / "r", procs, end_ms=t)
+
+    def test_given_when_workers_restart(self, tmp_path):
+        """New worker processes in epoch 1: keep them alive; the figure is the one warm-up figure of the
+        stalls section (2 x 20 ms less 2 x the 2 ms steady mean = 36 ms; arithmetic)."""
+        a = analyze(self._two_epochs(tmp_path, restart=True), warmup_batches=1)
+        warm = [x for x in a.actions if x.kind == "warmup"]
+        assert ([pytest.approx(0.036)], pytest.approx(0.036)) == ([x.seconds for x in warm], a.stalls.warmup_extra_s)
+        assert "0.036 s extra stall" in format_report(a)
+
+    def test_not_given_when_workers_live_on(self, tmp_path):
+        """The same waits with one worker process across both epochs: no keep-alive advice."""
+        a = analyze(self._two_epochs(tmp_path, restart=False), warmup_batches=1)
+        assert [] == [x for x in a.actions if x.kind == "warmup"]
