@@ -199,8 +199,8 @@ def _per_batch_stages(run: Run) -> set[str]:
         return set()
     if run.samples.groupby(["rank", "batch_id"]).size().median() <= 1:
         return set()
-    most = sp.groupby(["stage", "rank", "batch_id"], observed=True).size().groupby(level=0, observed=True).max()
-    return {str(k) for k, v in most.items() if v <= 1}
+    repeated = set(sp.loc[sp.duplicated(["stage", "rank", "batch_id"]), "stage"].astype(str))
+    return {str(x) for x in sp["stage"].astype(str).unique()} - repeated
 
 
 def _stall_pairs(b: pd.DataFrame, seg: pd.DataFrame, stalled: np.ndarray) -> pd.DataFrame:
@@ -248,16 +248,29 @@ def _blame(b: pd.DataFrame, critical: CriticalPath | None, per_batch: set[str] =
         blame[r] = top["label"].to_numpy(object)
         lane[r] = top["lane"].to_numpy(object)
         secs[r] = top["sec"].to_numpy(np.float64)
-        named = pairs.merge(top[["row", "label", "lane"]], on=["row", "label", "lane"])
-        named = named[(named["sample"] >= 0) & ~named["label"].isin(list(per_batch))].sort_values("order")
-        for row, grp in named.groupby("row", sort=False)["sample"]:  # one per stalled batch, not per span
-            uniq = list(dict.fromkeys(int(x) for x in grp))
-            ids[row], counts[row] = uniq[:BLAME_IDS], len(uniq)
-        for row in r:
+        _blamed_samples(pairs, top, per_batch, ids, counts)
+        for row in r:  # one per stalled batch, not per span
             text[row] = _blame_words(blame[row], lane[row], ids[row], int(counts[row]))
     out = b.assign(blame=blame, blame_lane=lane, blame_s=secs, blame_sample_count=counts, blame_text=text)
     out["blame_sample_ids"] = pd.Series(ids, index=out.index, dtype=object)
     return out
+
+
+def _blamed_samples(pairs: pd.DataFrame, top: pd.DataFrame, per_batch: set[str], ids: list[list[int]],
+                    counts: np.ndarray) -> None:
+    """Fill ``ids`` (first :data:`BLAME_IDS` per stalled batch, in the order worked on) and ``counts``."""
+    named = pairs.merge(top[["row", "label", "lane"]], on=["row", "label", "lane"])
+    named = named[(named["sample"] >= 0) & ~named["label"].isin(list(per_batch))]
+    named = named.sort_values(["row", "order"], kind="stable").drop_duplicates(["row", "sample"])
+    if named.empty:
+        return
+    row = named["row"].to_numpy(np.int64)
+    sample = named["sample"].to_numpy(np.int64)
+    starts = np.flatnonzero(np.r_[True, row[1:] != row[:-1]])
+    ends = np.r_[starts[1:], len(row)]
+    counts[row[starts]] = ends - starts
+    for a, b in zip(starts.tolist(), ends.tolist(), strict=True):  # one per stalled batch, not per span
+        ids[int(row[a])] = sample[a:min(b, a + BLAME_IDS)].tolist()
 
 
 def sample_words(ids: list[int], total: int, first: int = 4) -> str:

@@ -98,12 +98,3 @@ class TestSleepPipelines:
             if v.pace == pace and 1.6 <= faster <= 2.2:
                 break
         assert (pace, True) == (v.pace, 1.6 <= faster <= 2.2), v
-
-    def test_equal_sides(self, tmp_path):
-        """Input and step of 10 ms each overlap: freeing either alone saves about one batch of 30
-        (analytic: 31/30), so neither sets the pace (recorded up to 3 times on the shared machine)."""
-        for attempt in range(3):
-            v = judge(pipeprobe.analyze(_record_thread_loader(tmp_path / f"r{attempt}", 10.0, 10.0)))
-            if v.pace == PACE_LEVEL:
-                break
-        assert PACE_LEVEL == v.pace, v
