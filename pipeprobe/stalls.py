@@ -193,14 +193,14 @@ def stall_summary(run: Run, critical: CriticalPath | None = None, *, warmup_batc
 
 def _per_batch_stages(run: Run) -> set[str]:
     """Stages timed once per batch (e.g. collate) in a run whose batches hold several samples."""
-    sp = run.spans
-    sp = sp[(sp["batch_id"] >= 0) & (sp["sample_id"] >= 0)] if len(sp) else sp
-    if sp.empty or len(run.samples) == 0:
+    if run.spans.empty or len(run.samples) == 0:
         return set()
+    sp = run.spans[["stage", "rank", "batch_id", "sample_id"]]
+    sp = sp[(sp["batch_id"].to_numpy() >= 0) & (sp["sample_id"].to_numpy() >= 0)]
     if run.samples.groupby(["rank", "batch_id"]).size().median() <= 1:
         return set()
-    repeated = set(sp.loc[sp.duplicated(["stage", "rank", "batch_id"]), "stage"].astype(str))
-    return {str(x) for x in sp["stage"].astype(str).unique()} - repeated
+    repeated = {str(x) for x in sp.loc[sp.duplicated(["stage", "rank", "batch_id"]), "stage"].unique()}
+    return {str(x) for x in sp["stage"].unique()} - repeated
 
 
 def _stall_pairs(b: pd.DataFrame, seg: pd.DataFrame, stalled: np.ndarray) -> pd.DataFrame:
