@@ -460,10 +460,15 @@ def _cost_data(c: Any) -> dict[str, Any]:
 
 
 # -- what to run next ----------------------------------------------------------------------------------
+#: Longest run folder the "next" commands quote in full (longer ones: RUN_DIR, the folder named at the top).
+_NEXT_PATH_MAX = 40
+
+
 def _next_text(a: Analysis) -> list[str]:
     if not a.batches:
         return []
     run = printable(a.run.run_dir)
+    run = run if len(run) <= _NEXT_PATH_MAX else "RUN_DIR"  # a command cut at 100 columns would mislead
     top = next((str(r.label) for r in a.critical.shares.itertuples() if r.side == "input" and r.kind == "stage"),
                "step")
     return ["next",

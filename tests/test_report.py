@@ -53,6 +53,14 @@ class TestText:
                 "    input free: run 1.80x faster (replayed); Amdahl's ceiling 1.80x",
                 "    step free: run 2.25x faster (replayed); Amdahl's ceiling 2.25x"] == lines[2:6]
 
+    def test_verdict_lines_stay_whole_in_a_long_folder(self, tmp_path):
+        """With a 150-character run folder, each verdict phrase still has a whole line under 100 columns."""
+        from _synth import simple_pipeline, write_run
+
+        lines = format_report(analyze(write_run(tmp_path / ("x" * 150), simple_pipeline()))).splitlines()
+        assert ("  pace  input and step set the pace in turn", True) == (
+            lines[2], all(len(line) <= WIDTH for line in lines[2:6]) and lines[5].endswith("2.25x"))
+
     def test_ends_with_what_to_run_next(self, simple_run_dir):
         """The report ends by naming the next commands: whatif, --html and the notebook."""
         text = format_report(analyze(simple_run_dir))
