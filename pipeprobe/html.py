@@ -289,6 +289,22 @@ def timeline_html(a: Any, page: _Page) -> str:
                    "pipeline timeline"))
 
 
+def cost_html(c: Any, page: _Page) -> str:
+    """What recording cost: per process, spans x the measured per-span cost; stages too short to time per item."""
+    if not c.measured:
+        return (f"<h2>What recording cost</h2><p>{c.spans:,} spans. The per-span cost was not measured when "
+                "this run was recorded, so there is no estimate.</p>")
+    rows = ([_e(p.role), _e(p.pid), _e(f"{p.spans:,}"),
+             _e("not measured" if math.isnan(p.span_cost_ns) else f"{p.span_cost_ns / 1e3:.2f} us"),
+             _e(_s(p.added_s)), _e(f"{100 * p.wall_share:.2f} %")] for p in c.processes.itertuples(index=False))
+    short = "".join(f"<li>{_e(r.stage)}: median {_e(f'{1e6 * r.p50_s:.1f} us')}, under "
+                    f"{_e(f'{1e6 * r.limit_s:.1f} us')}; time it per batch</li>" for r in c.too_short.itertuples())
+    return ("<h2>What recording cost</h2>"
+            + _table([("process", False), ("pid", True), ("spans", True), ("per span", True), ("added", True),
+                      ("of wall", True)], rows)
+            + (f"<p>Too short to time per item:</p><ul>{short}</ul>" if short else ""))
+
+
 def _text_html(name: str, lines: list[str]) -> str:
     """A section without HTML of its own: its text lines under its name."""
     if not lines:

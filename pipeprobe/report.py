@@ -505,7 +505,7 @@ SECTIONS: list[Section] = [
     Section("stages", _stage_text, _stage_data, _page("stages_html")),
     Section("ranks", _ranks_text, _ranks_data, _page("ranks_html"), _ranks_compute),
     Section("timeline", lambda a: [], None, _page("timeline_html")),
-    Section("recording cost", _cost_text, _cost_data, None, _cost_compute),
+    Section("recording cost", _cost_text, _cost_data, _page("cost_html"), _cost_compute),
     Section("next", _next_text, None, _no_html),
 ]
 

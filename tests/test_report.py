@@ -198,6 +198,10 @@ class TestRecordingCost:
         text = format_report(a)
         flagged = [x["stage"] for x in report_dict(a)["recording_cost"]["too_short"]]
         assert (["augment", "decode"], True) == (sorted(flagged), "'decode' is too short to time per item" in text)
+        from pipeprobe.html import render_report
+
+        page = render_report(a)
+        assert (True, True) == ("<h2>What recording cost</h2>" in page, "decode: median 3000.0 us" in page)
 
     def test_not_measured_says_so(self, simple_run_dir):
         """A run recorded without the measurement says the cost was not measured and estimates nothing."""
