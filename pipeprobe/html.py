@@ -30,6 +30,7 @@ from pathlib import Path
 from typing import Any, Iterable
 
 from . import __version__
+from ._text import printable
 from .errors import PipeprobeError
 from .report import STAGE_COLUMNS, Report, stage_cells
 
@@ -70,8 +71,8 @@ _CSP = "default-src 'none'; img-src data:; style-src 'unsafe-inline'"
 
 
 def _e(value: Any) -> str:
-    """Escape any value for HTML text or attribute use."""
-    return html.escape(str(value), quote=True)
+    """Escape any value for HTML text or attribute use (control characters and lone surrogates made visible)."""
+    return html.escape(printable(value), quote=True)
 
 
 def _s(seconds: float) -> str:

@@ -84,6 +84,17 @@ class TestEscaping:
         assert "run <i>x</i>" in text
 
 
+    def test_control_characters_show_as_escapes(self, tmp_path: Path) -> None:
+        """A stage named with a terminal escape shows as visible text in the page, never as a raw control byte."""
+        rows = [(r[0], "dec\x1b[2Jode" if r[1] == "decode" else r[1], *r[2:]) for r in simple_pipeline()[100]]
+        import warnings
+
+        with warnings.catch_warnings():  # matplotlib may lack a glyph for ESC in the chart labels
+            warnings.simplefilter("ignore")
+            page = ppe_html.render_report(write_run(tmp_path / "r", {100: rows}))
+        assert (False, True) == ("\x1b" in page, "dec\\x1b[2Jode" in page)
+
+
 class TestSelfContained:
     def test_no_script_and_no_network_urls(self, html_simple: tuple[Any, str]) -> None:
         """Every src/href is a data: URI or an in-page anchor; there is no <script> and no http(s) URL."""
