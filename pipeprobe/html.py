@@ -30,9 +30,10 @@ from pathlib import Path
 from typing import Any, Iterable
 
 from . import __version__
+from ._sections import STAGE_COLUMNS, stage_cells
 from ._text import printable
 from .errors import PipeprobeError
-from .report import STAGE_COLUMNS, Report, stage_cells
+from .report import Report
 
 __all__ = ["render_report", "write_report", "OutputFileError"]
 
