@@ -600,8 +600,11 @@ class ProcessHeader:
         return out
 
     @classmethod
-    def from_json(cls, data: Mapping[str, Any], path: Path) -> ProcessHeader:
+    def from_json(cls, data: Mapping[str, Any], path: Path, anchors_required: bool = False) -> ProcessHeader:
         """Check a process header read by :func:`read_json` (``path`` names it in errors).
+
+        ``anchors_required``: the anchors must be there (processes on
+        several hosts are put on one axis by them).
 
         Raises
         ------
@@ -610,8 +613,8 @@ class ProcessHeader:
             stage table is not a list of at most :data:`MAX_STAGES` names.
         """
         return cls(
-            anchor_mono_ns=_whole(path, data, "anchor_mono_ns", 0, NS_MAX),
-            anchor_wall_ns=_whole(path, data, "anchor_wall_ns", 0, NS_MAX),
+            anchor_mono_ns=_whole(path, data, "anchor_mono_ns", 0, NS_MAX, required=anchors_required),
+            anchor_wall_ns=_whole(path, data, "anchor_wall_ns", 0, NS_MAX, required=anchors_required),
             ppid=_whole(path, data, "ppid", -1, 2**32),
             stages=_stage_table(path, data),
             pid=_lenient_int(data, "pid", 0, 2**32),
