@@ -12,7 +12,7 @@ from matplotlib.collections import LineCollection, PolyCollection
 from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 
-from .._lanes import TimelineLayout, layout_timeline
+from .._timeline_layout import TimelineLayout, layout_timeline
 from ..load import Run
 from ._style import (
     _BAND_HALF,

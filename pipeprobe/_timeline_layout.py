@@ -1,8 +1,10 @@
-"""Timeline layout: lanes, exact rectangles and merged pixel columns, as numbers.
+"""The timeline picture's pixel layout: lanes, exact rectangles and merged pixel columns, as numbers.
 
 The numpy/pandas half of :func:`pipeprobe.plot.draw_timeline`, kept apart
-from matplotlib so it can be tested and reused without drawing. Public
-names are re-exported by :mod:`pipeprobe.plot`.
+from matplotlib so it can be tested and reused without drawing. Lanes and
+their names come from :func:`pipeprobe.timeline.thread_lanes`, the same
+rule the dependency timeline uses. Public names are re-exported by
+:mod:`pipeprobe.plot`.
 """
 
 from __future__ import annotations
@@ -13,8 +15,9 @@ import numpy as np
 import pandas as pd
 
 from .load import Run
+from .timeline import thread_lanes
 
-__all__ = ["TimelineLane", "TimelineLayout", "layout_timeline", "thread_lanes"]
+__all__ = ["TimelineLane", "TimelineLayout", "layout_timeline"]
 
 
 @dataclass(frozen=True)
@@ -92,57 +95,6 @@ class TimelineLayout:
         return wide + float(self.stall_columns["share"].sum()) * self.pixel_s
 
 
-def thread_lanes(sp: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray]:
-    """Lanes in display order and each span's lane.
-
-    Per rank: the consumer thread(s) (which waited for batches or ran
-    steps) named ``main``, other threads of the training process ``main
-    thread k``, then loader workers ``worker k`` in the order they first
-    started work (``worker k thread t`` for extra threads), the names
-    :mod:`pipeprobe.timeline` gives its lanes.
-    """
-    cols = ["rank", "pid", "tid", "consumer", "name"]
-    if not len(sp):
-        return pd.DataFrame({c: [] for c in cols}), np.zeros(0, np.int64)
-    grouped = sp.groupby(["rank", "pid", "tid"], sort=True, observed=True)
-    codes = grouped.ngroup().to_numpy(np.int64)
-    keys = grouped.size().index
-    n = len(keys)
-    stage = sp["stage"]
-    cons = np.bincount(codes[stage.isin(["wait", "step"]).to_numpy()], minlength=n) > 0
-    first = grouped["start_s"].min().to_numpy(np.float64)
-    worker = (sp["role"] == "worker").to_numpy()
-    is_worker = np.bincount(codes[worker], minlength=n) > 0
-    th = pd.DataFrame({
-        "code": np.arange(n), "rank": keys.get_level_values(0).to_numpy(np.int64),
-        "pid": keys.get_level_values(1).to_numpy(np.int64), "tid": keys.get_level_values(2).to_numpy(np.int64),
-        "consumer": cons, "first_s": first, "worker": is_worker & ~cons,
-    })
-    pid_first = th.groupby(["rank", "pid"])["first_s"].transform("min")
-    th = th.assign(pid_first=pid_first, group=np.where(th["consumer"], 0, np.where(th["worker"], 2, 1)))
-    th = th.sort_values(["rank", "group", "pid_first", "pid", "first_s", "tid"], kind="stable").reset_index(drop=True)
-    names = []
-    multi_rank = th["rank"].nunique() > 1
-    for rank, part in th.groupby("rank", sort=False):
-        prefix = f"rank {rank} " if multi_rank or rank else ""
-        k_main = 0
-        worker_no: dict[int, int] = {}
-        thread_no: dict[int, int] = {}
-        for worker, pid in zip(part["worker"], part["pid"], strict=True):
-            if not worker:
-                k_main += 1
-                names.append(prefix + ("main" if k_main == 1 else f"main thread {k_main}"))
-                continue
-            worker_no.setdefault(pid, len(worker_no) + 1)
-            thread_no[pid] = thread_no.get(pid, 0) + 1
-            t = thread_no[pid]
-            names.append(prefix + f"worker {worker_no[pid]}" + (f" thread {t}" if t > 1 else ""))
-    th["name"] = names
-    lane_of_code = np.empty(n, np.int64)
-    lane_of_code[th["code"].to_numpy()] = np.arange(n)
-    return th[cols], lane_of_code[codes]
-
-
 def _column_time(lane: np.ndarray, code: np.ndarray, s: np.ndarray, e: np.ndarray, lo: float, pixel_s: float,
                  n_cols: int, n_lanes: int, n_codes: int) -> np.ndarray:
     """Seconds each (lane, column, code) spends in intervals shorter than a column.
@@ -169,11 +121,12 @@ def layout_timeline(
 ) -> TimelineLayout:
     """Compute the timeline's lanes, rectangles, merged columns and stall band.
 
-    Spans are grouped into lanes by thread ``(rank, pid, tid)``. Per rank,
-    the consumer thread (the one that waited for batches and ran steps) is
-    named ``main`` and comes first, then other threads of the training
-    process, then loader workers ``worker 1, 2, ...`` in the order they
-    first started work, the lane names of :mod:`pipeprobe.timeline`.
+    Spans are grouped into lanes by thread ``(rank, pid, tid)``, named and
+    ordered by :func:`pipeprobe.timeline.thread_lanes` (the dependency
+    timeline's lanes): per rank, the consumer thread (the one that waited
+    for batches and ran steps) ``main`` first, then other threads of the
+    training process, then loader workers ``worker 1, 2, ...`` in the order
+    they first started work.
     A span at least one pixel column wide (``pixel_s = window / resolution_px``)
     becomes its own rectangle. Shorter spans cannot be told apart at this
     zoom, so their time is added, per lane and stage, to the pixel columns
@@ -277,7 +230,7 @@ def layout_timeline(
             label=f"{name} (pid {p})", rank=int(r), pid=int(p), tid=int(t), is_consumer=bool(c),
             spans=int(n_in[i]), exact=int(n_exact[i]), merged=int(n_in[i] - n_exact[i]),
         )
-        for i, (r, p, t, c, name) in enumerate(threads.itertuples(index=False))
+        for i, (r, p, t, c, name) in enumerate(threads[["rank", "pid", "tid", "consumer", "name"]].itertuples(index=False))
     ]
     return TimelineLayout(
         window_s=(lo, hi), pixel_s=pixel_s, lanes=lanes, stages=stages,
