@@ -6,7 +6,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from _synth import write_run
+from _synth import member, stage, step, wait, write_run
 
 import pipeprobe
 from pipeprobe import tracefile as tf
@@ -17,20 +17,20 @@ from pipeprobe.load import BATCH_COLUMNS, SPAN_COLUMNS
 def _two_epoch_worker_run(root: Path) -> Path:
     """Sample 0 and 1 decoded by a worker twice (two epochs); batch 0 = {0, 1}, batch 1 = {0, 1}."""
     main = [
-        ("wait", "", 0, 5, -1, 0, 0),
-        ("member", "", 5, 5, 0, 0, 0),
-        ("member", "", 5, 5, 1, 0, 0),
-        ("step", "", 5, 8, -1, 0, -1),
-        ("wait", "", 8, 14, -1, 1, 1),
-        ("member", "", 14, 14, 0, 1, 1),
-        ("member", "", 14, 14, 1, 1, 1),
-        ("step", "", 14, 17, -1, 1, -1),
+        wait(0, 5, 0),
+        member(5, 0, 0),
+        member(5, 1, 0),
+        step(5, 8, 0, epoch=None),
+        wait(8, 14, 1, epoch=1),
+        member(14, 0, 1, epoch=1),
+        member(14, 1, 1, epoch=1),
+        step(14, 17, 1, epoch=None),
     ]
     worker = [
-        ("stage", "decode", 0, 2, 0, -1, -1),
-        ("stage", "decode", 2, 4, 1, -1, -1),
-        ("stage", "decode", 6, 9, 0, -1, -1),
-        ("stage", "decode", 9, 13, 1, -1, -1),
+        stage("decode", 0, 2, sample=0),
+        stage("decode", 2, 4, sample=1),
+        stage("decode", 6, 9, sample=0),
+        stage("decode", 9, 13, sample=1),
     ]
     return write_run(root, {10: main, 11: worker})
 
@@ -100,7 +100,7 @@ class TestBadRuns:
 
     def test_unclosed_run_warns(self, tmp_path: Path) -> None:
         """A run whose process was killed loads, with a warning that the end may be missing."""
-        root = write_run(tmp_path / "r", {5: [("wait", "", 0, 1, -1, 0, 0)]}, closed=False)
+        root = write_run(tmp_path / "r", {5: [wait(0, 1, 0)]}, closed=False)
         with pytest.warns(UserWarning, match="did not close cleanly"):
             run = pipeprobe.load(root)
         assert 1 == len(run.batches)

@@ -16,7 +16,7 @@ import matplotlib
 import matplotlib.pyplot as plt
 import numpy as np
 import pytest
-from _synth import write_many_spans, write_run
+from _synth import Row, member, stage, step, wait, write_many_spans, write_run
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
@@ -37,18 +37,18 @@ WAITS_MS = [10.0, 0.5, 4.0, 6.0]
 CYCLES_MS = [18.0, 8.0, 12.0, 14.0]
 
 
-def _two_worker_rows() -> dict[int, list[tuple]]:
+def _two_worker_rows() -> dict[int, list[Row]]:
     main = []
     for b, (w0, w1, s1) in enumerate([(0, 10, 18), (18, 18.5, 26), (26, 30, 38), (38, 44, 52)]):
-        main.append(("wait", "", w0, w1, -1, b, 0))
-        main += [("member", "", w1, w1, 2 * b + k, b, 0) for k in range(2)]
-        main.append(("step", "", w1, s1, -1, b, 0))
+        main.append(wait(w0, w1, b))
+        main += [member(w1, 2 * b + k, b) for k in range(2)]
+        main.append(step(w1, s1, b))
 
-    def worker(plan: list[tuple[int, float, float]]) -> list[tuple]:
+    def worker(plan: list[tuple[int, float, float]]) -> list[Row]:
         rows = []
         for sample, start, decode_ms in plan:
-            rows.append(("stage", "decode", start, start + decode_ms, sample, -1, -1))
-            rows.append(("stage", "augment", start + decode_ms, start + decode_ms + 1, sample, -1, -1))
+            rows.append(stage("decode", start, start + decode_ms, sample=sample))
+            rows.append(stage("augment", start + decode_ms, start + decode_ms + 1, sample=sample))
         return rows
 
     return {
@@ -258,9 +258,9 @@ class TestStallFraction:
 class TestStageDurations:
     def test_slowest_samples_are_named(self, tmp_path: Path) -> None:
         """A 40 ms decode among 1 ms ones is labelled with its sample id, and the long tail turns the axis to log."""
-        rows = [("stage", "decode", 2 * i, 2 * i + (40 if i == 7 else 1), i, -1, -1) for i in range(20)]
-        rows[7] = ("stage", "decode", 100, 140, 7, -1, -1)
-        main = [("wait", "", 0, 141, -1, 0, 0)] + [("member", "", 141, 141, i, 0, 0) for i in range(20)]
+        rows = [stage("decode", 2 * i, 2 * i + (40 if i == 7 else 1), sample=i) for i in range(20)]
+        rows[7] = stage("decode", 100, 140, sample=7)
+        main = [wait(0, 141, 0)] + [member(141, i, 0) for i in range(20)]
         run = pipeprobe.load(write_run(tmp_path / "tail", {1: main, 2: rows}))
         ax = plot.draw_stage_durations(run, slowest=1)
         texts = " ".join(t.get_text() for t in ax.texts)
