@@ -122,3 +122,42 @@ def wait_for_quiet_cpu(min_idle: float = 0.85, max_wait_s: float = 30.0) -> floa
     while idle < min_idle and time.monotonic() < deadline:
         idle = machine_idle_share()
     return idle
+
+
+def analysis_load_batch(b: int) -> list[int]:
+    """Pool task of the recorded analysis fixture: 4 samples x (3 ms decode + 1 ms augment), 1 ms collate."""
+    import time
+
+    import pipeprobe
+
+    ids = list(range(4 * b, 4 * b + 4))
+    for i in ids:
+        with pipeprobe.stage("decode", sample=i):
+            time.sleep(0.003)
+        with pipeprobe.stage("augment", sample=i):
+            time.sleep(0.001)
+    with pipeprobe.stage("collate", batch=b):
+        time.sleep(0.001)
+    return ids
+
+
+def record_sleep_run(d: Path) -> Path:
+    """Record the sleep pipeline of :func:`analysis_sleep_run` into ``d``."""
+    import time
+
+    import pipeprobe
+
+    def batches():
+        for b in range(6):
+            for i in range(4 * b, 4 * b + 4):
+                with pipeprobe.stage("decode", sample=i):
+                    time.sleep(0.006)
+                with pipeprobe.stage("augment", sample=i):
+                    time.sleep(0.002)
+            yield b
+
+    with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
+        for _ in probe.watch(batches()):
+            with probe.step():
+                time.sleep(0.020)
+    return d
