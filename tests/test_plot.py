@@ -172,6 +172,30 @@ class TestTimelineLanes:
         assert [float(lanes[x]) for x in nodes["lane"]] == [s[0][1] for s in segs]
 
 
+    def test_two_rank_lanes_have_one_name_everywhere(self, tmp_path: Path) -> None:
+        """On a 2-rank run the timeline, the pixel layout, the drawn labels and the resource legend name lanes alike."""
+        from pipeprobe.critical import critical_path
+        from pipeprobe.timeline import build_timeline
+
+        rows = _two_worker_rows()
+        for rank in (0, 1):
+            write_run(tmp_path / "job", rows, rank=rank, world_size=2, run_id="job", mono_offset_ns=1000 * rank)
+        run = pipeprobe.load(tmp_path / "job")
+        expected = {f"rank {r} {name}" for r in (0, 1) for name in ("main", "worker 1", "worker 2")}
+        tl = build_timeline(run)
+        assert expected == set(tl.nodes["lane"].astype(str))
+        assert set(critical_path(tl).lanes["lane"]) <= expected
+        labels = [lane.label for lane in plot.layout_timeline(run).lanes]
+        assert expected == {label.rsplit(" (pid", 1)[0] for label in labels}
+        fig, ax = _fixed_axes(lanes=6)
+        plot.draw_timeline(run, ax=ax, resolution_px=800)
+        assert labels == [t.get_text() for t in ax.get_yticklabels()]
+        from pipeprobe.plot._style import _process_names
+
+        assert {"rank 0 main", "rank 0 worker 1", "rank 0 worker 2"} == set(
+            name for (r, _), name in _process_names(run).items() if r == 0)
+
+
 class TestFigures:
     def test_importing_pipeprobe_does_not_import_matplotlib(self) -> None:
         """Recording code never pays matplotlib's import cost: only pipeprobe.plot loads it."""
