@@ -337,7 +337,7 @@ def read_json(path: str | os.PathLike) -> dict[str, Any]:
             "it is not a pipeprobe header"
         )
     with open(path, "rb") as fh:
-        raw = fh.read(MAX_JSON_BYTES + 1)
+        raw = fh.read(size + 1)  # the size lstat gave (a file grown since is cut there, then fails to parse)
     _check_json_content(path, raw)
     try:
         data = json.loads(raw.decode("utf-8"))
