@@ -7,6 +7,17 @@ anchor). Spans recorded in worker processes carry a sample id but no batch
 id; they are linked to the first delivery of a batch holding that sample
 at or after the span ended (so a sample seen in several epochs links to the
 right one).
+
+The steps of :func:`load`, each a function below returning a small frozen
+record: list the folder without following links (``_list_folder``), read
+and check the run headers (``_read_run_headers``, through
+:class:`~pipeprobe.tracefile.RunHeader`), put every rank's clock on one axis
+and bound the times a record may have (``_align_clocks``), read each
+process's header and span records in bounded pieces (``_read_processes``,
+``_read_process``, ``_read_span_records``), merge them (``_merge_spans``),
+form the batches (``_batches``), link worker spans to them (``_link``), and
+read the resource samples (``_resources``). What was missing or damaged is
+collected on the way and issued as warnings when ``load`` returns.
 """
 
 from __future__ import annotations

@@ -45,6 +45,17 @@ outermost span stands for the whole block), and a user stage that encloses
 a step or a delivery of its own thread (e.g. a stage around a whole epoch)
 is not a node either; both still count in the per-stage statistics.
 
+:func:`build_timeline` takes these steps, each a function below: the spans
+as arrays with their threads and lanes (``_span_arrays``; lanes named by
+:func:`lane_name`, the one rule for lane names), one delivery per batch
+(``_deliveries``), the spans that are nodes and their time order
+(``_node_order``: no waits, no umbrellas, outermost per thread), the node
+columns the rules read (``_node_arrays``), one rule per edge kind
+(``_sample_edges``, ``_assembly_edges``, ``_delivery_edges``,
+``_consumer_edges``, ``_slot_edges``, ``_step_edges``, ``_thread_edges``),
+the edges the recording agrees with (``_edges``), and each node's
+last-arriving dependency (``_last_arriving``).
+
 Each node's *last-arriving dependency* (``pred``) is the predecessor that
 ended last; the node waited from that instant (``ready_s``) until it
 started (``gap_s``), then ran (``dur_s``). Its *weight* ``weight_s =
