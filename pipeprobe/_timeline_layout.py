@@ -22,14 +22,16 @@ __all__ = ["TimelineLane", "TimelineLayout", "layout_timeline"]
 
 @dataclass(frozen=True)
 class TimelineLane:
-    """One lane of the timeline: a thread that recorded spans.
+    """One lane of the timeline: a thread that recorded spans, or the threads of one worker slot.
 
     Attributes
     ----------
     label : str
-        What the lane shows, e.g. ``"worker 1 (pid 4113)"``.
+        What the lane shows, e.g. ``"worker 1 (pid 4113)"``, or ``"worker 1
+        (pids 4113, 4120, 4127)"`` when a loader started a new worker
+        process in that slot each epoch.
     rank, pid, tid : int
-        Which thread.
+        Which thread (the first one, for a slot of several processes).
     is_consumer : bool
         True for the thread that waited for batches and ran steps.
     spans : int
@@ -49,6 +51,7 @@ class TimelineLane:
     spans: int
     exact: int
     merged: int
+    pids: tuple[int, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -77,6 +80,8 @@ class TimelineLayout:
     stall_columns : DataFrame
         Shorter stall intervals, merged: ``lane, column, share`` (share of
         the column's time the consumer waited).
+    threads : DataFrame
+        Which lane each thread is drawn in: ``rank, pid, tid, lane``.
     """
 
     window_s: tuple[float, float]
@@ -87,12 +92,35 @@ class TimelineLayout:
     columns: pd.DataFrame
     stalls: pd.DataFrame
     stall_columns: pd.DataFrame
+    threads: pd.DataFrame | None = None
 
     @property
     def stall_s(self) -> float:
         """Total stall time shaded in the window, seconds."""
         wide = float((self.stalls["end_s"] - self.stalls["start_s"]).sum())
         return wide + float(self.stall_columns["share"].sum()) * self.pixel_s
+
+
+def _slot_lanes(threads: pd.DataFrame, lane: np.ndarray) -> tuple[pd.DataFrame, np.ndarray, pd.DataFrame]:
+    """Merge threads that share a lane name (the worker processes of one slot, one per epoch) into one lane.
+
+    Returns the lanes (``rank, pid, tid, consumer, name, pids``, in display
+    order), each span's lane, and each thread's lane (``rank, pid, tid, lane``).
+    """
+    code, _ = pd.factorize(threads["name"])  # names in display order of their first thread
+    per_thread = threads.assign(lane=code.astype(np.int64))
+    g = per_thread.groupby("lane", sort=True)
+    lanes = g.agg(rank=("rank", "first"), pid=("pid", "first"), tid=("tid", "first"), consumer=("consumer", "any"),
+                  name=("name", "first"))
+    lanes["pids"] = g["pid"].agg(lambda p: tuple(dict.fromkeys(int(x) for x in p)))
+    return lanes.reset_index(drop=True), code.astype(np.int64)[lane], per_thread[["rank", "pid", "tid", "lane"]]
+
+
+def _lane_label(name: str, pids: tuple[int, ...]) -> str:
+    if len(pids) == 1:
+        return f"{name} (pid {pids[0]})"
+    shown = ", ".join(str(p) for p in pids[:3])
+    return f"{name} (pids {shown}{', ...' if len(pids) > 3 else ''})"
 
 
 def _column_time(lane: np.ndarray, code: np.ndarray, s: np.ndarray, e: np.ndarray, lo: float, pixel_s: float,
@@ -180,7 +208,7 @@ def layout_timeline(
             raise ValueError(f"window_s must be (start, end) with end > start, got {window_s!r}")
     pixel_s = (hi - lo) / resolution_px
 
-    threads, lane = thread_lanes(sp)
+    threads, lane, per_thread = _slot_lanes(*thread_lanes(sp))
     stage_arr = sp["stage"].astype(str).to_numpy() if len(sp) else np.zeros(0, object)
     is_wait = stage_arr == "wait"
 
@@ -227,12 +255,12 @@ def layout_timeline(
     n_exact = np.bincount(ln[wide], minlength=n_lanes)
     lanes = [
         TimelineLane(
-            label=f"{name} (pid {p})", rank=int(r), pid=int(p), tid=int(t), is_consumer=bool(c),
-            spans=int(n_in[i]), exact=int(n_exact[i]), merged=int(n_in[i] - n_exact[i]),
+            label=_lane_label(name, pids), rank=int(r), pid=int(p), tid=int(t), is_consumer=bool(c),
+            spans=int(n_in[i]), exact=int(n_exact[i]), merged=int(n_in[i] - n_exact[i]), pids=pids,
         )
-        for i, (r, p, t, c, name) in enumerate(threads[["rank", "pid", "tid", "consumer", "name"]].itertuples(index=False))
+        for i, (r, p, t, c, name, pids) in enumerate(threads.itertuples(index=False))
     ]
     return TimelineLayout(
         window_s=(lo, hi), pixel_s=pixel_s, lanes=lanes, stages=stages,
-        bars=bars, columns=columns, stalls=stalls, stall_columns=stall_columns,
+        bars=bars, columns=columns, stalls=stalls, stall_columns=stall_columns, threads=per_thread,
     )

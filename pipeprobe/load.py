@@ -23,6 +23,7 @@ collected on the way and issued as warnings when ``load`` returns.
 from __future__ import annotations
 
 import hashlib
+import heapq
 import os
 import re
 import stat
@@ -39,7 +40,7 @@ from . import tracefile as tf
 from ._clocksync import check_ranks, check_step_alignment, plan_alignment
 from .errors import RunNotFoundError, TraceFormatError
 
-__all__ = ["Run", "load", "SPAN_COLUMNS", "BATCH_COLUMNS"]
+__all__ = ["Run", "load", "worker_slots", "SPAN_COLUMNS", "BATCH_COLUMNS"]
 
 # Names pipeprobe writes: no leading zeros, so one rank or pid has one name.
 _SPAN_FILE = re.compile(r"^spans-r(0|[1-9]\d{0,5})-p([1-9]\d{0,9})\.bin$")
@@ -101,7 +102,10 @@ class Run:
         ``t_s, pid, core, cpu_pct, rss_bytes, read_bytes``; per-core system
         rows have ``pid == 0``, process rows have ``core == -1``.
     processes : DataFrame
-        One row per process file: ``pid, ppid, rank, role, host, spans, file``.
+        One row per process file: ``pid, ppid, rank, role, host, spans, file,
+        slot``; ``slot`` is 0 for the training process and ``k >= 1`` for the
+        loader worker slot the process filled (:func:`worker_slots`), so the
+        new worker processes a loader starts each epoch fill the same slots.
     problems : list of str
         What was missing or damaged (also issued as warnings).
     clock : dict
@@ -318,7 +322,7 @@ def load(run_dir: str | os.PathLike, *, ranks: Iterable[int] | None = None) -> R
         batches=batches,
         samples=samples[["rank", "batch_id", "sample_id", "ready_s"]],
         resources=resources,
-        processes=_process_table(procs),
+        processes=_process_table(procs, spans),
         problems=problems.messages,
         clock=axis.clock,
         t0_ns=axis.t0_ns,
@@ -592,7 +596,7 @@ def _merge_spans(procs: list[_Process]) -> tuple[pd.DataFrame, pd.DataFrame]:
     return spans, samples
 
 
-def _process_table(procs: list[_Process]) -> pd.DataFrame:
+def _process_table(procs: list[_Process], spans: pd.DataFrame) -> pd.DataFrame:
     rows = [
         {
             "pid": p.pid,
@@ -606,7 +610,64 @@ def _process_table(procs: list[_Process]) -> pd.DataFrame:
         for p in procs
         if p.spans is not None
     ]
-    return pd.DataFrame(rows, columns=["pid", "ppid", "rank", "role", "host", "spans", "file"])
+    table = pd.DataFrame(rows, columns=["pid", "ppid", "rank", "role", "host", "spans", "file"])
+    slots = worker_slots(spans)
+    table["slot"] = [slots.get((int(r), int(p)), 0) for r, p in zip(table["rank"], table["pid"], strict=True)]
+    return table
+
+
+def worker_slots(spans: pd.DataFrame) -> dict[tuple[int, int], int]:
+    """The loader worker slot (1, 2, ...) of each worker process, per rank: ``{(rank, pid): slot}``.
+
+    A worker is a slot of the loader, not a process: with torch's default
+    ``persistent_workers=False`` every epoch starts new worker processes,
+    which take over the slots of the last epoch's. A worker process is
+    alive from its first span's start to its last span's end; taken in
+    order of their start, each takes the lowest slot that no living worker
+    holds (greedy interval colouring, which uses as few slots as there are
+    workers alive at once). Persistent workers thus keep one slot each, and
+    the two workers of each of three epochs fill slots 1 and 2.
+
+    Parameters
+    ----------
+    spans : DataFrame
+        :attr:`Run.spans` (``rank, pid, role, start_s, end_s``).
+
+    Returns
+    -------
+    dict
+        ``(rank, pid) -> slot`` for every process with ``role == "worker"``.
+
+    References
+    ----------
+    Interval graph colouring by start time: Hashimoto, A. and Stevens, J.
+    (1971), "Wire routing by optimizing channel assignment within large
+    apertures" (the left-edge algorithm).
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> spans = pd.DataFrame({"rank": 0, "pid": [11, 12, 13, 14], "role": "worker",
+    ...                       "start_s": [0.0, 0.1, 2.0, 2.1], "end_s": [1.0, 1.1, 3.0, 3.1]})
+    >>> worker_slots(spans)
+    {(0, 11): 1, (0, 12): 2, (0, 13): 1, (0, 14): 2}
+    """
+    workers = spans[spans["role"] == "worker"] if len(spans) else spans
+    if not len(workers):
+        return {}
+    life = workers.groupby(["rank", "pid"], observed=True).agg(start=("start_s", "min"), end=("end_s", "max"))
+    life = life.reset_index().sort_values(["rank", "start", "pid"], kind="stable")
+    out: dict[tuple[int, int], int] = {}
+    for _, part in life.groupby("rank", sort=True):
+        busy: list[tuple[float, int]] = []  # (end, slot) of living workers
+        free: list[int] = []
+        for rank, pid, start, end in zip(part["rank"], part["pid"], part["start"], part["end"], strict=True):
+            while busy and busy[0][0] <= start:
+                heapq.heappush(free, heapq.heappop(busy)[1])
+            slot = heapq.heappop(free) if free else len(busy) + 1
+            heapq.heappush(busy, (float(end), slot))
+            out[(int(rank), int(pid))] = slot
+    return out
 
 
 def _concat_spans(frames: list[pd.DataFrame]) -> pd.DataFrame:

@@ -75,6 +75,8 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
+from .load import worker_slots
+
 if TYPE_CHECKING:  # pragma: no cover
     import networkx
 
@@ -262,8 +264,8 @@ def lane_name(rank: int | None, process: int, thread: int = 1) -> str:
     rank : int or None
         The thread's rank, or None on a run of one rank 0 (no prefix).
     process : int
-        0 for the training process, ``k`` for the loader worker that
-        started work ``k``-th on its rank.
+        0 for the training process, ``k`` for the loader worker in slot
+        ``k`` of its rank (:func:`pipeprobe.load.worker_slots`).
     thread : int
         1 for the process's first thread (the consumer thread of the
         training process), ``t`` for its ``t``-th.
@@ -283,9 +285,12 @@ def thread_lanes(spans: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray]:
 
     Per rank: the consumer thread(s) (which waited for batches or ran
     steps) first, then other threads of the training process, then loader
-    workers in the order they first started work, each named by
-    :func:`lane_name`; lanes get a ``rank R`` prefix on runs of several
-    ranks (or of one rank other than 0).
+    workers by their slot (:func:`pipeprobe.load.worker_slots`: the worker
+    processes a loader starts anew each epoch take over the last epoch's
+    slots, so they share its lane names), each named by :func:`lane_name`;
+    lanes get a ``rank R`` prefix on runs of several ranks (or of one rank
+    other than 0). Threads of successive processes in one slot share a
+    name, so the timeline's ``lane`` column holds one lane per slot.
 
     Returns
     -------
@@ -308,12 +313,14 @@ def thread_lanes(spans: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray]:
         "pid": keys.get_level_values(1).to_numpy(np.int64), "tid": keys.get_level_values(2).to_numpy(np.int64),
         "consumer": cons, "first_s": grouped["start_s"].min().to_numpy(np.float64), "worker": is_worker & ~cons,
     })
+    slots = worker_slots(spans)
+    slot = np.array([slots.get((int(r), int(p)), 0) for r, p in zip(th["rank"], th["pid"], strict=True)], np.int64)
+    # process number: 0 for the training process, the worker's slot for a loader worker
     th = th.assign(pid_first=th.groupby(["rank", "pid"])["first_s"].transform("min"),
-                   group=np.where(th["consumer"], 0, np.where(th["worker"], 2, 1)))
-    th = th.sort_values(["rank", "group", "pid_first", "pid", "first_s", "tid"], kind="stable").reset_index(drop=True)
-    # process number: 0 for the training process, k for the k-th worker of the rank; thread number within it
-    worker_no = th[th["worker"]].groupby("rank")["pid"].transform(lambda p: pd.factorize(p)[0] + 1)
-    th["process"] = worker_no.reindex(th.index).fillna(0).astype(np.int64)
+                   group=np.where(th["consumer"], 0, np.where(th["worker"], 2, 1)),
+                   process=np.where(th["worker"], slot, 0))
+    th = th.sort_values(["rank", "group", "process", "pid_first", "pid", "first_s", "tid"],
+                        kind="stable").reset_index(drop=True)
     th["thread"] = th.groupby(["rank", "process", th["pid"].where(th["worker"], -1)]).cumcount() + 1
     multi_rank = th["rank"].nunique() > 1
     th["name"] = [lane_name(r if multi_rank or r else None, p, t)

@@ -5,13 +5,16 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
-from _synth import member, stage, step, wait, write_run
+from _synth import Row, member, stage, step, wait, write_run
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import pipeprobe
 from pipeprobe import tracefile as tf
 from pipeprobe.errors import RunNotFoundError, TraceFormatError
-from pipeprobe.load import BATCH_COLUMNS, SPAN_COLUMNS
+from pipeprobe.load import BATCH_COLUMNS, SPAN_COLUMNS, worker_slots
 
 
 def _two_epoch_worker_run(root: Path) -> Path:
@@ -148,3 +151,59 @@ class TestTraceFile:
         path.write_bytes(bytes(head))
         with pytest.raises(TraceFormatError, match="upgrade pipeprobe"):
             tf.read_records(path, tf.CONTENT_SPANS)
+
+
+def _three_epoch_rows(persistent: bool) -> dict[int, list[Row]]:
+    """3 epochs x 2 batches, 2 loader workers; without persistent workers each epoch has new worker pids.
+
+    Epoch e starts at 20e ms: its workers decode batch 2e in [t, t+4] and batch 2e+1 in [t, t+5]; the
+    consumer waits for batch 2e until t+4, steps to t+8, takes batch 2e+1 at once and steps to t+12.
+    """
+    main: list[Row] = []
+    procs: dict[int, list[Row]] = {}
+    for e in range(3):
+        t = 20.0 * e
+        for k in range(2):
+            pid = 201 + k if persistent else 201 + 2 * e + k
+            procs.setdefault(pid, []).append(stage("decode", t, t + 4 + k, sample=2 * e + k))
+        main += [wait(t, t + 4, 2 * e, epoch=e), member(t + 4, 2 * e, 2 * e, epoch=e), step(t + 4, t + 8, 2 * e, epoch=e),
+                 wait(t + 8, t + 8, 2 * e + 1, epoch=e), member(t + 8, 2 * e + 1, 2 * e + 1, epoch=e),
+                 step(t + 8, t + 12, 2 * e + 1, epoch=e)]
+    return {100: main, **procs}
+
+
+class TestWorkerSlots:
+    def test_new_worker_pids_each_epoch_fill_the_same_slots(self, tmp_path: Path) -> None:
+        """With a new pair of worker processes per epoch (persistent_workers=False), there are 2 slots, not 6."""
+        run = pipeprobe.load(write_run(tmp_path / "r", _three_epoch_rows(persistent=False)))
+        slots = dict(zip(run.processes["pid"], run.processes["slot"], strict=True))
+        assert {100: 0, 201: 1, 202: 2, 203: 1, 204: 2, 205: 1, 206: 2} == slots
+
+    def test_lanes_are_slots_as_with_persistent_workers(self, tmp_path: Path) -> None:
+        """Timeline and picture show one lane per slot, the same lanes as the persistent-worker run."""
+        from pipeprobe import plot
+        from pipeprobe.timeline import build_timeline
+
+        fresh = pipeprobe.load(write_run(tmp_path / "fresh", _three_epoch_rows(persistent=False)))
+        kept = pipeprobe.load(write_run(tmp_path / "kept", _three_epoch_rows(persistent=True)))
+        lanes = [set(build_timeline(r).nodes["lane"].astype(str)) for r in (fresh, kept)]
+        assert [{"main", "worker 1", "worker 2"}] * 2 == lanes
+        labels = [lane.label for lane in plot.layout_timeline(fresh).lanes]
+        assert ["main (pid 100)", "worker 1 (pids 201, 203, 205)", "worker 2 (pids 202, 204, 206)"] == labels
+        assert [6, 3, 3] == [lane.spans for lane in plot.layout_timeline(fresh).lanes]
+
+    @settings(max_examples=80, deadline=None)
+    @given(st.lists(st.tuples(st.integers(0, 50), st.integers(0, 20)), min_size=1, max_size=12))
+    def test_slots_are_as_few_as_workers_alive_at_once(self, lives: list[tuple[int, int]]) -> None:
+        """No two workers alive at once share a slot, and the slots used equal the most workers alive at once
+        (interval graphs are perfect, so the left-edge colouring is optimal: Hajós 1958; Hashimoto and Stevens 1971)."""
+        spans = pd.DataFrame({"rank": 0, "pid": range(1, len(lives) + 1), "role": "worker",
+                              "start_s": [float(a) for a, _ in lives], "end_s": [float(a + d) for a, d in lives]})
+        slots = worker_slots(spans)
+        ivs = [(float(a), float(a + d), slots[(0, i + 1)]) for i, (a, d) in enumerate(lives)]
+        for i, (a1, e1, s1) in enumerate(ivs):
+            for a2, e2, s2 in ivs[i + 1:]:
+                if a1 < e2 and a2 < e1:  # both alive over an open interval
+                    assert s1 != s2
+        most = max([1] + [sum(1 for a, e, _ in ivs if a <= t < e) for t, _, _ in ivs])  # alive over [start, end)
+        assert most == max(slots.values())

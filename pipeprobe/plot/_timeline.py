@@ -205,13 +205,16 @@ def _draw_path(ax: Axes, lay: TimelineLayout, nodes: pd.DataFrame) -> None:
     lo, hi = lay.window_s
     if nodes.empty or not lay.lanes:
         return
-    keys = pd.MultiIndex.from_arrays(
-        [[lane.rank for lane in lay.lanes], [lane.pid for lane in lay.lanes], [lane.tid for lane in lay.lanes]]
-    )
+    th = lay.threads if lay.threads is not None else pd.DataFrame(
+        {"rank": [x.rank for x in lay.lanes], "pid": [x.pid for x in lay.lanes], "tid": [x.tid for x in lay.lanes],
+         "lane": np.arange(len(lay.lanes))})
+    keys = pd.MultiIndex.from_arrays([th["rank"].to_numpy(np.int64), th["pid"].to_numpy(np.int64),
+                                      th["tid"].to_numpy(np.int64)])
     rank = nodes["rank"].to_numpy(np.int64) if "rank" in nodes else np.zeros(len(nodes), np.int64)
-    y = keys.get_indexer(pd.MultiIndex.from_arrays(
+    at = keys.get_indexer(pd.MultiIndex.from_arrays(
         [rank, nodes["pid"].to_numpy(np.int64), nodes["tid"].to_numpy(np.int64)]
-    )).astype(float)
+    ))
+    y = np.where(at >= 0, th["lane"].to_numpy(np.int64)[np.maximum(at, 0)], -1).astype(float)
     s = nodes["start_s"].to_numpy(np.float64)
     e = nodes["end_s"].to_numpy(np.float64)
     ok = y >= 0
