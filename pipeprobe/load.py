@@ -167,7 +167,8 @@ class _Problems:
         self.messages: list[str] = []
 
     def add(self, message: str) -> None:
-        self.messages.append(message)
+        # a file name that is not UTF-8 comes from os.listdir with lone surrogates: escape them
+        self.messages.append(tf.clean_text(message))
 
     def warn(self) -> None:
         for message in self.messages:

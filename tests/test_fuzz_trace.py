@@ -513,6 +513,19 @@ class TestHostileFolders:
             (captured.out + captured.err).encode("utf-8")
         assert "dec\\ud800ode" in html.read_bytes().decode("utf-8")
 
+    def test_file_name_that_is_not_utf8_is_named_escaped(self, work, capsys) -> None:
+        """A file named like a trace file with bytes that are not UTF-8 is named in a warning that prints as UTF-8."""
+        from pipeprobe.cli import EXIT_OK, main
+
+        root = work()
+        with open(os.path.join(os.fsencode(root), b"spans-r0-p1\xff.bin"), "wb") as fh:
+            fh.write(b"x")
+        run, error, ours = load_checked(root)
+        assert [m for m in ours if "spans-r0-p1\\udcff.bin" in m]
+        assert EXIT_OK == main(["report", str(root)])
+        captured = capsys.readouterr()
+        (captured.out + captured.err).encode("utf-8")
+
     @pytest.mark.parametrize("target", ["loop", "dangling"])
     @pytest.mark.parametrize("prefix,suffix", [("spans-", ".bin"), ("spans-", ".json"), ("res-", ".bin")])
     def test_link_named_like_a_trace_file_is_skipped_with_one_warning(self, work, target: str, prefix: str,
