@@ -323,7 +323,7 @@ def load(run_dir: str | os.PathLike, *, ranks: Iterable[int] | None = None) -> R
         batches=batches,
         samples=samples[["rank", "batch_id", "sample_id", "ready_s"]],
         resources=resources,
-        processes=_process_table(procs, spans),
+        processes=_process_table(procs),
         problems=problems.messages,
         clock=axis.clock,
         t0_ns=axis.t0_ns,
@@ -597,7 +597,7 @@ def _merge_spans(procs: list[_Process]) -> tuple[pd.DataFrame, pd.DataFrame]:
     return spans, samples
 
 
-def _process_table(procs: list[_Process], spans: pd.DataFrame) -> pd.DataFrame:
+def _process_table(procs: list[_Process]) -> pd.DataFrame:
     rows = [
         {
             "pid": p.pid,
@@ -612,7 +612,12 @@ def _process_table(procs: list[_Process], spans: pd.DataFrame) -> pd.DataFrame:
         if p.spans is not None
     ]
     table = pd.DataFrame(rows, columns=["pid", "ppid", "rank", "role", "host", "spans", "file"])
-    slots = worker_slots(spans)
+    # each process as one span from its first start to its last end: enough to find the worker slots
+    lives = pd.DataFrame(
+        [{"rank": p.rank, "pid": p.pid, "role": p.header.role, "start_s": p.spans["start_s"].min(),
+          "end_s": p.spans["end_s"].max()} for p in procs if p.spans is not None and len(p.spans)],
+        columns=["rank", "pid", "role", "start_s", "end_s"])
+    slots = worker_slots(lives)
     table["slot"] = [slots.get((int(r), int(p)), 0) for r, p in zip(table["rank"], table["pid"], strict=True)]
     return table
 

@@ -313,7 +313,10 @@ def thread_lanes(spans: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray]:
         "pid": keys.get_level_values(1).to_numpy(np.int64), "tid": keys.get_level_values(2).to_numpy(np.int64),
         "consumer": cons, "first_s": grouped["start_s"].min().to_numpy(np.float64), "worker": is_worker & ~cons,
     })
-    slots = worker_slots(spans)
+    # each thread as one span from its first start to its last end: enough to find the worker slots
+    lives = th.assign(start_s=th["first_s"], end_s=grouped["end_s"].max().to_numpy(np.float64),
+                      role=np.where(is_worker, "worker", "main"))
+    slots = worker_slots(lives)
     slot = np.array([slots.get((int(r), int(p)), 0) for r, p in zip(th["rank"], th["pid"], strict=True)], np.int64)
     # process number: 0 for the training process, the worker's slot for a loader worker
     th = th.assign(pid_first=th.groupby(["rank", "pid"])["first_s"].transform("min"),
