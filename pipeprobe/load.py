@@ -662,7 +662,9 @@ def worker_slots(spans: pd.DataFrame) -> dict[tuple[int, int], int]:
     if not len(workers):
         return {}
     life = workers.groupby(["rank", "pid"], observed=True).agg(start=("start_s", "min"), end=("end_s", "max"))
-    life = life.reset_index().sort_values(["rank", "start", "end", "pid"], kind="stable")
+    # by start; at one instant, a worker that also ended there first (it frees its slot at once), then by pid
+    life = life.reset_index().assign(lasts=lambda f: f["end"] > f["start"])
+    life = life.sort_values(["rank", "start", "lasts", "pid"], kind="stable")
     out: dict[tuple[int, int], int] = {}
     for _, part in life.groupby("rank", sort=True):
         busy: list[tuple[float, int]] = []  # (end, slot) of living workers

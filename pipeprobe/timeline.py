@@ -708,7 +708,11 @@ def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np
     """The nodes as the documented DataFrame (:data:`NODE_COLUMNS`)."""
     ready = np.where(pred >= 0, n.end[np.maximum(pred, 0)], origin) if len(pred) else np.zeros(0)
     side = np.where(s.is_step | sides[1], _S_CONSUMER, _S_INPUT)
-    names = s.lane_names[o.take(s.lane, s.lane[d.wait])] if len(n.start) else np.zeros(0, object)
+    lane = o.take(s.lane, s.lane[d.wait])
+    used = np.unique(lane)
+    lane_cats = sorted(set(s.lane_names[used]))  # threads of one worker slot share a name
+    code_of_lane = np.full(len(s.lane_names), -1, np.int64)
+    code_of_lane[used] = [lane_cats.index(name) for name in s.lane_names[used]]
     has_b = d.of_span >= 0
     nodes = pd.DataFrame(
         {
@@ -722,7 +726,7 @@ def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np
             "rank": n.rank,
             "pid": o.take(s.pid, s.pid[d.wait]),
             "tid": o.take(s.tid, s.tid[d.wait]),
-            "lane": pd.Categorical(names, categories=sorted(set(names))),
+            "lane": pd.Categorical.from_codes(code_of_lane[lane], categories=lane_cats),
             "batch_id": o.take(np.where(has_b, s.batch, -1), s.batch[d.wait]),
             "sample_id": n.sample,
             "epoch": o.take(s.epoch, s.epoch[d.wait]),
