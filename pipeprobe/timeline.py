@@ -32,7 +32,10 @@ and resource edges:
     when that event came during the idle time: a loader with bounded
     prefetch hands a worker its next task only when the loop takes a batch
     and frees a slot, and at an epoch start only when the loop asks for the
-    new epoch. Shorter idle times are scheduling noise, not such a wait;
+    new epoch. A worker thread's first span counts as after an idle time:
+    with torch's default ``persistent_workers=False`` the loader starts new
+    worker processes for each epoch when the loop asks for it. Shorter idle
+    times are scheduling noise, not such a wait;
 ``step``
     step ``k-1`` -> step ``k`` of the same rank;
 ``thread``
@@ -573,7 +576,8 @@ def _consumer_edges(n: _Nodes) -> _Pairs:
 
 def _slot_edges(n: _Nodes) -> _Pairs:
     """``slot``: the training loop's latest event -> a worker thread's first span of a batch, when the
-    worker sat idle for at least :data:`SLOT_MIN_IDLE_S` and the event came during that idle time."""
+    worker sat idle for at least :data:`SLOT_MIN_IDLE_S` (or had not run yet) and the event came during
+    that idle time."""
     none = np.zeros(0, np.int64), np.zeros(0, np.int64)
     pw = n.ids[n.producer & ~n.on_consumer_thread]
     loop = n.ids[n.on_consumer_thread]
@@ -584,7 +588,8 @@ def _slot_edges(n: _Nodes) -> _Pairs:
     prev = np.full(len(n.start), -1, np.int64)
     a_, b_ = _consecutive(n.thread_order, n.th[n.thread_order])
     prev[b_] = a_
-    idle_from = np.where(prev[hd] >= 0, n.end[np.maximum(prev[hd], 0)], np.inf)
+    # a thread's first span: the worker was new (a loader starts new worker processes each epoch), idle till then
+    idle_from = np.where(prev[hd] >= 0, n.end[np.maximum(prev[hd], 0)], -np.inf)
     idle = n.start[hd] - idle_from >= SLOT_MIN_IDLE_S
     hd, idle_from = hd[idle], idle_from[idle]
     if not len(hd):

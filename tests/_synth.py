@@ -161,6 +161,25 @@ def simple_pipeline(n_batches: int = 3, samples_per_batch: int = 2, decode_ms: f
     return {100: rows}
 
 
+def three_epoch_rows(persistent: bool) -> dict[int, list[Row]]:
+    """3 epochs x 2 batches, 2 loader workers; without persistent workers each epoch has new worker pids.
+
+    Epoch e starts at 20e ms: its workers decode batch 2e in [t, t+4] and batch 2e+1 in [t, t+5]; the
+    consumer waits for batch 2e until t+4, steps to t+8, takes batch 2e+1 at once and steps to t+12.
+    """
+    main: list[Row] = []
+    procs: dict[int, list[Row]] = {}
+    for e in range(3):
+        t = 20.0 * e
+        for k in range(2):
+            pid = 201 + k if persistent else 201 + 2 * e + k
+            procs.setdefault(pid, []).append(stage("decode", t, t + 4 + k, sample=2 * e + k))
+        main += [wait(t, t + 4, 2 * e, epoch=e), member(t + 4, 2 * e, 2 * e, epoch=e), step(t + 4, t + 8, 2 * e, epoch=e),
+                 wait(t + 8, t + 8, 2 * e + 1, epoch=e), member(t + 8, 2 * e + 1, 2 * e + 1, epoch=e),
+                 step(t + 8, t + 12, 2 * e + 1, epoch=e)]
+    return {100: main, **procs}
+
+
 def write_many_spans(run_dir: str | os.PathLike, n_spans: int = 1_000_000, workers: int = 4,
                      batch_size: int = 32, step_ms: float = 1.0, seed: int = 0) -> Path:
     """Write a large run with numpy only: ``workers`` loader processes and one consumer.

@@ -7,7 +7,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from _synth import Row, member, stage, step, wait, write_run
+from _synth import member, stage, step, three_epoch_rows, wait, write_run
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -153,29 +153,10 @@ class TestTraceFile:
             tf.read_records(path, tf.CONTENT_SPANS)
 
 
-def _three_epoch_rows(persistent: bool) -> dict[int, list[Row]]:
-    """3 epochs x 2 batches, 2 loader workers; without persistent workers each epoch has new worker pids.
-
-    Epoch e starts at 20e ms: its workers decode batch 2e in [t, t+4] and batch 2e+1 in [t, t+5]; the
-    consumer waits for batch 2e until t+4, steps to t+8, takes batch 2e+1 at once and steps to t+12.
-    """
-    main: list[Row] = []
-    procs: dict[int, list[Row]] = {}
-    for e in range(3):
-        t = 20.0 * e
-        for k in range(2):
-            pid = 201 + k if persistent else 201 + 2 * e + k
-            procs.setdefault(pid, []).append(stage("decode", t, t + 4 + k, sample=2 * e + k))
-        main += [wait(t, t + 4, 2 * e, epoch=e), member(t + 4, 2 * e, 2 * e, epoch=e), step(t + 4, t + 8, 2 * e, epoch=e),
-                 wait(t + 8, t + 8, 2 * e + 1, epoch=e), member(t + 8, 2 * e + 1, 2 * e + 1, epoch=e),
-                 step(t + 8, t + 12, 2 * e + 1, epoch=e)]
-    return {100: main, **procs}
-
-
 class TestWorkerSlots:
     def test_new_worker_pids_each_epoch_fill_the_same_slots(self, tmp_path: Path) -> None:
         """With a new pair of worker processes per epoch (persistent_workers=False), there are 2 slots, not 6."""
-        run = pipeprobe.load(write_run(tmp_path / "r", _three_epoch_rows(persistent=False)))
+        run = pipeprobe.load(write_run(tmp_path / "r", three_epoch_rows(persistent=False)))
         slots = dict(zip(run.processes["pid"], run.processes["slot"], strict=True))
         assert {100: 0, 201: 1, 202: 2, 203: 1, 204: 2, 205: 1, 206: 2} == slots
 
@@ -184,8 +165,8 @@ class TestWorkerSlots:
         from pipeprobe import plot
         from pipeprobe.timeline import build_timeline
 
-        fresh = pipeprobe.load(write_run(tmp_path / "fresh", _three_epoch_rows(persistent=False)))
-        kept = pipeprobe.load(write_run(tmp_path / "kept", _three_epoch_rows(persistent=True)))
+        fresh = pipeprobe.load(write_run(tmp_path / "fresh", three_epoch_rows(persistent=False)))
+        kept = pipeprobe.load(write_run(tmp_path / "kept", three_epoch_rows(persistent=True)))
         lanes = [set(build_timeline(r).nodes["lane"].astype(str)) for r in (fresh, kept)]
         assert [{"main", "worker 1", "worker 2"}] * 2 == lanes
         labels = [lane.label for lane in plot.layout_timeline(fresh).lanes]

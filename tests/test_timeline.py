@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import networkx as nx
 import numpy as np
-from _synth import member, pool_schedule, stage, step, wait, write_run
+from _synth import member, pool_schedule, stage, step, three_epoch_rows, wait, write_run
 
 import pipeprobe
 from pipeprobe.timeline import EDGE_KINDS, NODE_COLUMNS, build_timeline
@@ -148,3 +148,18 @@ class TestSlotEdges:
         tl = build_timeline(pipeprobe.load(_slot_run(tmp_path / "r")))
         g = tl.to_networkx()
         assert abs(tl.wall_s - nx.dag_longest_path_length(g, weight="weight")) < 1e-9
+
+
+class TestEpochsWithNewWorkers:
+    def test_critical_path_covers_every_epoch(self, tmp_path):
+        """With new worker processes each epoch, a new worker's first span waits for the loop's last step
+        (a slot edge), so the critical path runs through all three epochs and adds up to the wall time
+        (networkx.dag_longest_path_length as the reference)."""
+        tl = build_timeline(pipeprobe.load(write_run(tmp_path / "r", three_epoch_rows(persistent=False))))
+        path = pipeprobe.critical.critical_path(tl)
+        assert {0, 1, 2} == set(path.path.loc[path.path["kind"] == "step", "epoch"])
+        step1 = tl.nodes[(tl.nodes["kind"] == "step") & (tl.nodes["batch_id"] == 1)]["node"].iloc[0]
+        first2 = tl.nodes[(tl.nodes["stage"] == "decode") & (tl.nodes["batch_id"] == 2)]["node"].iloc[0]
+        assert (int(step1), int(first2)) in _edge_set(tl, "slot")
+        assert abs(tl.wall_s - nx.dag_longest_path_length(tl.to_networkx(), weight="weight")) < 1e-9
+        assert abs(0.052 - float(path.shares["seconds"].sum())) < 1e-9
