@@ -2,7 +2,7 @@
 
 The numpy/pandas half of :func:`pipeprobe.plot.draw_timeline`, kept apart
 from matplotlib so it can be tested and reused without drawing. Lanes and
-their names come from :func:`pipeprobe.timeline.thread_lanes`, the same
+their names come from :func:`pipeprobe.lanes.thread_lanes`, the same
 rule the dependency timeline uses. Public names are re-exported by
 :mod:`pipeprobe.plot`.
 """
@@ -14,8 +14,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from .lanes import thread_lanes
 from .load import Run
-from .timeline import thread_lanes
 
 __all__ = ["TimelineLane", "TimelineLayout", "layout_timeline"]
 
@@ -150,7 +150,7 @@ def layout_timeline(
     """Compute the timeline's lanes, rectangles, merged columns and stall band.
 
     Spans are grouped into lanes by thread ``(rank, pid, tid)``, named and
-    ordered by :func:`pipeprobe.timeline.thread_lanes` (the dependency
+    ordered by :func:`pipeprobe.lanes.thread_lanes` (the dependency
     timeline's lanes): per rank, the consumer thread (the one that waited
     for batches and ran steps) ``main`` first, then other threads of the
     training process, then loader workers ``worker 1, 2, ...`` in the order

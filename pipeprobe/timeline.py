@@ -50,7 +50,7 @@ is not a node either; both still count in the per-stage statistics.
 
 :func:`build_timeline` takes these steps, each a function below: the spans
 as arrays with their threads and lanes (``_span_arrays``; lanes named by
-:func:`lane_name`, the one rule for lane names), one delivery per batch
+:func:`pipeprobe.lanes.lane_name`, the one rule for lane names), one delivery per batch
 (``_deliveries``), the spans that are nodes and their time order
 (``_node_order``: no waits, no umbrellas, outermost per thread), the node
 columns the rules read (``_node_arrays``), one rule per edge kind
@@ -78,14 +78,14 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
-from .load import worker_slots
+from .lanes import thread_lanes
 
 if TYPE_CHECKING:  # pragma: no cover
     import networkx
 
     from .load import Run
 
-__all__ = ["Timeline", "build_timeline", "lane_name", "thread_lanes", "NODE_COLUMNS", "EDGE_COLUMNS", "EDGE_KINDS"]
+__all__ = ["Timeline", "build_timeline", "NODE_COLUMNS", "EDGE_COLUMNS", "EDGE_KINDS"]
 
 #: Edge kinds, dependency edges first (their order breaks ties between
 #: predecessors that ended at the same instant).
@@ -108,7 +108,7 @@ NODE_COLUMNS = {
     "rank": "rank",
     "pid": "process id",
     "tid": "thread id",
-    "lane": "readable thread name (lane_name): 'main', 'main thread 2', 'worker 1', 'worker 1 thread 2', "
+    "lane": "readable thread name (pipeprobe.lanes.lane_name): 'main', 'main thread 2', 'worker 1', 'worker 1 thread 2', "
             "prefixed 'rank R ' on runs of several ranks",
     "batch_id": "batch id, -1 when the span is linked to no batch",
     "sample_id": "sample id, -1 unknown",
@@ -127,7 +127,6 @@ EDGE_COLUMNS = {
     "kind": "one of EDGE_KINDS",
 }
 
-_LANE_MAIN = "main"
 _NODE_KINDS = ("stage", "step", "delivery")
 _N_STAGE, _N_STEP, _N_DELIVERY = range(3)
 _SIDES = ("input", "delivery", "consumer")
@@ -254,86 +253,6 @@ def _consecutive(order: np.ndarray, group: np.ndarray) -> tuple[np.ndarray, np.n
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     same = group[1:] == group[:-1]
     return order[:-1][same], order[1:][same]
-
-
-# -- lanes: the one rule that names a thread ---------------------------------------------------
-
-
-def lane_name(rank: int | None, process: int, thread: int = 1) -> str:
-    """The name of a lane (a thread that recorded spans): the one rule timeline, plots and layout use.
-
-    Parameters
-    ----------
-    rank : int or None
-        The thread's rank, or None on a run of one rank 0 (no prefix).
-    process : int
-        0 for the training process, ``k`` for the loader worker in slot
-        ``k`` of its rank (:func:`pipeprobe.load.worker_slots`).
-    thread : int
-        1 for the process's first thread (the consumer thread of the
-        training process), ``t`` for its ``t``-th.
-
-    Examples
-    --------
-    >>> lane_name(None, 0), lane_name(None, 0, 2), lane_name(None, 2), lane_name(1, 2, 3)
-    ('main', 'main thread 2', 'worker 2', 'rank 1 worker 2 thread 3')
-    """
-    prefix = "" if rank is None else f"rank {rank} "
-    base = _LANE_MAIN if process == 0 else f"worker {process}"
-    return prefix + base + (f" thread {thread}" if thread > 1 else "")
-
-
-def thread_lanes(spans: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray]:
-    """Lanes in display order and each span's lane (a row position in the lanes table).
-
-    Per rank: the consumer thread(s) (which waited for batches or ran
-    steps) first, then other threads of the training process, then loader
-    workers by their slot (:func:`pipeprobe.load.worker_slots`: the worker
-    processes a loader starts anew each epoch take over the last epoch's
-    slots, so they share its lane names), each named by :func:`lane_name`;
-    lanes get a ``rank R`` prefix on runs of several ranks (or of one rank
-    other than 0). Threads of successive processes in one slot share a
-    name, so the timeline's ``lane`` column holds one lane per slot.
-
-    Returns
-    -------
-    lanes : DataFrame
-        ``rank, pid, tid, consumer, name, process, thread``, one row per lane.
-    lane : ndarray of int
-        Each span's row in ``lanes``.
-    """
-    cols = ["rank", "pid", "tid", "consumer", "name", "process", "thread"]
-    if not len(spans):
-        return pd.DataFrame({c: [] for c in cols}), np.zeros(0, np.int64)
-    grouped = spans.groupby(["rank", "pid", "tid"], sort=True, observed=True)
-    codes = grouped.ngroup().to_numpy(np.int64)
-    keys = grouped.size().index
-    n = len(keys)
-    cons = np.bincount(codes[spans["stage"].isin(["wait", "step"]).to_numpy()], minlength=n) > 0
-    is_worker = np.bincount(codes[(spans["role"] == "worker").to_numpy()], minlength=n) > 0
-    th = pd.DataFrame({
-        "code": np.arange(n), "rank": keys.get_level_values(0).to_numpy(np.int64),
-        "pid": keys.get_level_values(1).to_numpy(np.int64), "tid": keys.get_level_values(2).to_numpy(np.int64),
-        "consumer": cons, "first_s": grouped["start_s"].min().to_numpy(np.float64), "worker": is_worker & ~cons,
-    })
-    # each thread as one span from its first start to its last end: enough to find the worker slots
-    lives = th.assign(start_s=th["first_s"], end_s=grouped["end_s"].max().to_numpy(np.float64),
-                      role=np.where(is_worker, "worker", "main"))
-    slots = worker_slots(lives)
-    slot = np.array([slots.get((int(r), int(p)), 0) for r, p in zip(th["rank"], th["pid"], strict=True)], np.int64)
-    # process number: 0 for the training process, the worker's slot for a loader worker
-    th = th.assign(pid_first=th.groupby(["rank", "pid"])["first_s"].transform("min"),
-                   group=np.where(th["consumer"], 0, np.where(th["worker"], 2, 1)),
-                   process=np.where(th["worker"], slot, 0))
-    th = th.sort_values(["rank", "group", "process", "pid_first", "pid", "first_s", "tid"],
-                        kind="stable").reset_index(drop=True)
-    th["thread"] = th.groupby(["rank", "process", th["pid"].where(th["worker"], -1)]).cumcount() + 1
-    multi_rank = th["rank"].nunique() > 1
-    th["name"] = [lane_name(r if multi_rank or r else None, p, t)
-                  for r, p, t in zip(th["rank"], th["process"], th["thread"], strict=True)]
-    lane_of_code = np.empty(n, np.int64)
-    lane_of_code[th["code"].to_numpy()] = np.arange(n)
-    return th[cols], lane_of_code[codes]
 
 
 # -- the steps of build_timeline -----------------------------------------------------------------

@@ -9,8 +9,8 @@ import pandas as pd
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
+from ..lanes import lane_name, thread_lanes
 from ..load import Run
-from ..timeline import lane_name, thread_lanes
 
 #: Paul Tol's *muted* scheme minus indigo (kept for the step) and rose (kept
 #: for stalls), in the order stages get them.
