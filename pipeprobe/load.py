@@ -80,7 +80,9 @@ class Run:
     ----------
     run_dir : Path
     header : dict
-        Run header of the lowest rank present.
+        Run header of the lowest rank present, as checked by
+        :class:`~pipeprobe.tracefile.RunHeader` (its ``to_json()``: every
+        documented field, names that UTF-8 cannot encode escaped).
     spans : DataFrame
         See :data:`SPAN_COLUMNS`.
     batches : DataFrame
