@@ -330,21 +330,11 @@ class _Recorder:
 
     def _write_process_header(self) -> None:
         names = list(self.stage_names)
-        header = {
-            "format": "pipeprobe-process",
-            "format_version": tf.FORMAT_VERSION,
-            "pid": self.pid,
-            "ppid": os.getppid(),
-            "rank": self.rank,
-            "world_size": self.world_size,
-            "role": self.role,
-            "host": socket.gethostname(),
-            "anchor_mono_ns": self.anchor_mono_ns,
-            "anchor_wall_ns": self.anchor_wall_ns,
-            "cpu_time": self.cpu_time,
-            "stages": names,
-            "run_id": self.run_id,
-        }
+        header = tf.ProcessHeader(
+            pid=self.pid, ppid=os.getppid(), rank=self.rank, world_size=self.world_size, role=self.role,
+            host=socket.gethostname(), anchor_mono_ns=self.anchor_mono_ns, anchor_wall_ns=self.anchor_wall_ns,
+            cpu_time=self.cpu_time, stages=tuple(names), run_id=self.run_id,
+        ).to_json()
         tf.write_json_atomic(self.run_dir / (self.file_stem() + ".json"), header)
         self.header_stages_written = len(names)
 

@@ -7,14 +7,25 @@ anchor). Spans recorded in worker processes carry a sample id but no batch
 id; they are linked to the first delivery of a batch holding that sample
 at or after the span ended (so a sample seen in several epochs links to the
 right one).
+
+The steps of :func:`load`, each a function returning a small frozen record.
+Those that read files live in :mod:`pipeprobe._runfolder`: list the folder
+without following links (``list_folder``), read and check the run headers
+(``read_run_headers``, through :class:`~pipeprobe.tracefile.RunHeader`), put
+every rank's clock on one axis and bound the times a record may have
+(``align_clocks``), read each process's header and span records in bounded
+pieces (``read_processes``), and read the resource samples
+(``read_resources``). The rest are below: merge the processes' spans
+(``_merge_spans``), form the batches (``_batches``), link worker spans to
+them (``_link``), and give each worker process its loader slot
+(:func:`worker_slots`). What was missing or damaged is collected on the way
+and issued as warnings when ``load`` returns.
 """
 
 from __future__ import annotations
 
-import hashlib
+import heapq
 import os
-import re
-import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable
@@ -22,22 +33,12 @@ from typing import Any, Iterable
 import numpy as np
 import pandas as pd
 
-from . import tracefile as tf
-from ._clocksync import check_ranks, check_step_alignment, plan_alignment
-from .errors import RunNotFoundError, TraceFormatError
+from . import _runfolder as _rf
+from ._clocksync import check_step_alignment
+from ._runfolder import _RUN_HEADER  # noqa: F401 (ranks.py finds run headers by this pattern)
+from .errors import RunNotFoundError
 
-__all__ = ["Run", "load", "SPAN_COLUMNS", "BATCH_COLUMNS"]
-
-# Names pipeprobe writes: no leading zeros, so one rank or pid has one name.
-_SPAN_FILE = re.compile(r"^spans-r(0|[1-9]\d{0,5})-p([1-9]\d{0,9})\.bin$")
-_RUN_HEADER = re.compile(r"^run-r(0|[1-9]\d{0,5})\.json$")
-_RES_FILE = re.compile(r"^res-r(0|[1-9]\d{0,5})\.bin$")
-_PROC_HEADER = re.compile(r"^spans-r(0|[1-9]\d{0,5})-p([1-9]\d{0,9})\.json$")
-_LOOKS_OURS = re.compile(r"^(spans|run|res)-r\d")
-_NS_MAX = 2**62  # clock readings and anchors are int64 nanoseconds
-_MAX_STAGES = 65536  # stage ids are uint16
-_LEAD_S = 60.0  # spans may start this long before the run start (wall-anchor skew)
-_LAG_S = 3600.0  # ... or end this long after the run's files were last written
+__all__ = ["Run", "load", "worker_slots", "SPAN_COLUMNS", "BATCH_COLUMNS"]
 
 #: Columns of :attr:`Run.spans`, one row per timed span.
 SPAN_COLUMNS = {
@@ -79,7 +80,9 @@ class Run:
     ----------
     run_dir : Path
     header : dict
-        Run header of the lowest rank present.
+        Run header of the lowest rank present, as checked by
+        :class:`~pipeprobe.tracefile.RunHeader` (its ``to_json()``: every
+        documented field, names that UTF-8 cannot encode escaped).
     spans : DataFrame
         See :data:`SPAN_COLUMNS`.
     batches : DataFrame
@@ -90,7 +93,10 @@ class Run:
         ``t_s, pid, core, cpu_pct, rss_bytes, read_bytes``; per-core system
         rows have ``pid == 0``, process rows have ``core == -1``.
     processes : DataFrame
-        One row per process file: ``pid, ppid, rank, role, host, spans, file``.
+        One row per process file: ``pid, ppid, rank, role, host, spans, file,
+        slot``; ``slot`` is 0 for the training process and ``k >= 1`` for the
+        loader worker slot the process filled (:func:`worker_slots`), so the
+        new worker processes a loader starts each epoch fill the same slots.
     problems : list of str
         What was missing or damaged (also issued as warnings).
     clock : dict
@@ -145,62 +151,6 @@ class Run:
         )
 
 
-def _problem(problems: list[str], message: str) -> None:
-    problems.append(message)
-    warnings.warn(message, stacklevel=3)
-
-
-def _short(value: Any) -> str:
-    text = repr(value)
-    return text if len(text) <= 40 else text[:37] + "..."
-
-
-def _int_field(path: Path, h: dict[str, Any], key: str, lo: int, hi: int, required: bool = False) -> int | None:
-    """Return header field ``key`` after checking it is a whole number in ``[lo, hi]``."""
-    value = h.get(key)
-    if value is None:
-        if required:
-            raise TraceFormatError(f"{path}: header field {key!r} is missing; the header is damaged, re-record the run")
-        return None
-    if isinstance(value, bool) or not isinstance(value, int) or not lo <= value <= hi:
-        raise TraceFormatError(
-            f"{path}: header field {key!r} is {_short(value)}, expected a whole number from {lo} to {hi}; "
-            "the header is damaged, re-record the run"
-        )
-    return value
-
-
-def _check_run_header(path: Path, h: dict[str, Any]) -> None:
-    for key in ("anchor_mono_ns", "anchor_wall_ns"):
-        _int_field(path, h, key, 0, _NS_MAX, required=True)
-    _int_field(path, h, "end_mono_ns", 0, _NS_MAX)
-    _int_field(path, h, "cores", 1, 1 << 20)
-    _int_field(path, h, "batches", 0, 2**31 - 1)
-    for key in ("sample_interval_s", "flush_interval_s"):
-        value = h.get(key)
-        if value is not None and (
-            isinstance(value, bool) or not isinstance(value, (int, float)) or not 0 <= value <= 86400
-        ):
-            raise TraceFormatError(
-                f"{path}: header field {key!r} is {_short(value)}, expected seconds from 0 to 86400; "
-                "the header is damaged, re-record the run"
-            )
-
-
-def _check_process_header(path: Path, h: dict[str, Any]) -> list[str]:
-    """Check a process header; return its stage table."""
-    for key in ("anchor_mono_ns", "anchor_wall_ns"):
-        _int_field(path, h, key, 0, _NS_MAX)
-    _int_field(path, h, "ppid", -1, 2**32)
-    stages = h.get("stages", [])
-    if not isinstance(stages, list) or len(stages) > _MAX_STAGES or not all(isinstance(s, str) for s in stages):
-        raise TraceFormatError(
-            f"{path}: header field 'stages' must be a list of at most {_MAX_STAGES} names, "
-            f"got {_short(stages)}; the header is damaged"
-        )
-    return stages
-
-
 def _empty_spans() -> pd.DataFrame:
     return pd.DataFrame(
         {
@@ -223,6 +173,13 @@ def _empty_spans() -> pd.DataFrame:
 
 def load(run_dir: str | os.PathLike, *, ranks: Iterable[int] | None = None) -> Run:
     """Load a run directory written by :class:`pipeprobe.Probe`.
+
+    The steps: list the folder (:func:`~pipeprobe._runfolder.list_folder`), read and check the
+    run headers (:func:`~pipeprobe._runfolder.read_run_headers`), put the ranks' clocks on one
+    axis (:func:`~pipeprobe._runfolder.align_clocks`), read each process's spans
+    (:func:`~pipeprobe._runfolder.read_process`), form the batches and link worker spans to them
+    (:func:`_batches`, :func:`_link`), and read the resource samples
+    (:func:`~pipeprobe._runfolder.read_resources`).
 
     Parameters
     ----------
@@ -256,226 +213,139 @@ def load(run_dir: str | os.PathLike, *, ranks: Iterable[int] | None = None) -> R
     >>> len(run.batches)
     2
     """
-    root = Path(run_dir)
-    if root.exists() and not root.is_dir():
-        raise RunNotFoundError(f"{str(root)!r} is a file, not a run directory; pass the folder given to Probe(out_dir)")
-    if not root.is_dir():
-        raise RunNotFoundError(f"run directory {str(root)!r} does not exist; pass the folder given to Probe(out_dir)")
-    names = sorted(os.listdir(root))
-    headers: dict[int, dict[str, Any]] = {}
-    for name in names:
-        m = _RUN_HEADER.match(name)
-        if m:
-            h = tf.read_json(root / name)
-            _check_run_header(root / name, h)
-            headers[int(m.group(1))] = h
-    if not headers:
-        raise RunNotFoundError(
-            f"{str(root)!r} holds no pipeprobe run (no run-r<rank>.json); pass a folder written by pipeprobe.Probe"
-        )
-    problems: list[str] = []
-    for name in names:
-        if _LOOKS_OURS.match(name) and not name.endswith(".tmp") and not (
-            _SPAN_FILE.match(name) or _RUN_HEADER.match(name) or _RES_FILE.match(name) or _PROC_HEADER.match(name)
-        ):
-            _problem(problems, f"{root / name}: not a file name pipeprobe writes; ignored it")
-    for rank, h in sorted(headers.items()):
-        if not h.get("closed"):
-            _problem(
-                problems,
-                f"{root / f'run-r{rank}.json'}: the run did not close cleanly (killed or still running); "
-                "up to one flush interval of spans may be missing",
-            )
-    # Several ranks: one job? all there? how do their clocks line up?
-    for message in check_ranks(root, headers):
-        _problem(problems, message)
-    clock, offsets, notes = plan_alignment(root, headers)
-    for message in notes:
-        _problem(problems, message)
-    first = headers[min(headers)]
-    wanted = None if ranks is None else {int(r) for r in ranks}
-
-    def to_axis(mono_ns: np.ndarray, h: dict[str, Any]) -> np.ndarray:
-        if clock["method"] == "shared-monotonic":
-            return mono_ns
-        if clock["method"] == "measured-offsets":
-            r = h.get("rank")
-            return mono_ns - offsets.get(r if isinstance(r, int) else -1, 0)
-        return mono_ns - int(h["anchor_mono_ns"]) + int(h["anchor_wall_ns"])
-
-    starts = [int(to_axis(np.array([int(h["anchor_mono_ns"])]), h)[0]) for h in headers.values()]
-    t0 = min(starts)
-    # No record can end after its file was last written: bound the time axis
-    # by the newest file time, so a flipped bit cannot make a 100-year span.
-    newest_wall_ns = max(os.stat(root / n).st_mtime_ns for n in names if _LOOKS_OURS.match(n))
-    lo_ns = -int(_LEAD_S * 1e9)
-    hi_ns = max(newest_wall_ns - int(h["anchor_wall_ns"]) + s - t0 for h, s in zip(headers.values(), starts, strict=True))
-    hi_ns += int(_LAG_S * 1e9)
-    end = first.get("end_mono_ns")
-    if end is not None and not lo_ns <= int(to_axis(np.array([end]), first)[0]) - t0 <= hi_ns:
-        _problem(problems, f"{root / f'run-r{min(headers)}.json'}: its end time is outside the run; ignored it")
-        first = {**first, "end_mono_ns": None}
-
-    frames: list[pd.DataFrame] = []
-    members: list[pd.DataFrame] = []
-    procs: list[dict[str, Any]] = []
-    seen_json = set()
-    seen_bodies: dict[bytes, str] = {}
-    mains: dict[int, list[str]] = {}
-    for name in names:
-        m = _SPAN_FILE.match(name)
-        if not m:
-            continue
-        rank, pid = int(m.group(1)), int(m.group(2))
-        bin_path = root / name
-        json_path = bin_path.with_suffix(".json")
-        seen_json.add(json_path.name)
-        if wanted is not None and rank not in wanted:
-            continue
-        if rank not in headers:
-            _problem(
-                problems,
-                f"{bin_path}: there is no run header run-r{rank}.json for its rank (a file of another run?); "
-                "skipped this process",
-            )
-            continue
-        if not json_path.exists():
-            _problem(problems, f"{bin_path}: its process header {json_path.name} is missing; skipped this process")
-            continue
-        try:
-            ph = tf.read_json(json_path)
-            stages = _check_process_header(json_path, ph)
-            if clock["method"] != "shared-monotonic":
-                for key in ("anchor_mono_ns", "anchor_wall_ns"):
-                    _int_field(json_path, ph, key, 0, _NS_MAX, required=True)
-            recs = tf.read_records(bin_path, tf.CONTENT_SPANS)
-        except (TraceFormatError, OSError) as exc:
-            _problem(problems, f"{exc}; skipped this process")
-            continue
-        run_id = headers[rank].get("run_id")
-        if ph.get("run_id") and run_id and ph.get("run_id") != run_id:
-            _problem(
-                problems,
-                f"{json_path}: belongs to run {_short(ph.get('run_id'))}, but run-r{rank}.json to run "
-                f"{_short(run_id)} (files of two runs mixed in one folder); skipped this process",
-            )
-            continue
-        if len(recs):
-            digest = hashlib.blake2b(recs.tobytes(), digest_size=16).digest()
-            if digest in seen_bodies:
-                _problem(problems, f"{bin_path}: same records as {seen_bodies[digest]} (a copied file); skipped it")
-                continue
-            seen_bodies[digest] = name
-        bad = (recs["stage"] >= len(stages)) | (recs["kind"] > tf.KIND_MEMBER)
-        if bad.any():
-            _problem(problems, f"{bin_path}: {int(bad.sum())} records name unknown stages or kinds; dropped them")
-            recs = recs[~bad]
-        # Each process's own anchor pair maps its monotonic clock to the wall clock.
-        start_ns = to_axis(recs["start_ns"], ph) - t0
-        end_ns = to_axis(recs["end_ns"], ph) - t0
-        outside = (start_ns < lo_ns) | (end_ns > hi_ns)
-        if outside.any():
-            _problem(
-                problems,
-                f"{bin_path}: {int(outside.sum())} records have times outside the run "
-                "(before it started or after its files were last written); dropped them",
-            )
-            keep = ~outside
-            recs, start_ns, end_ns = recs[keep], start_ns[keep], end_ns[keep]
-        reversed_ = end_ns < start_ns
-        if reversed_.any():
-            _problem(problems, f"{bin_path}: {int(reversed_.sum())} spans end before they start; dropped them")
-            keep = ~reversed_
-            recs, start_ns, end_ns = recs[keep], start_ns[keep], end_ns[keep]
-        is_member = recs["kind"] == tf.KIND_MEMBER
-        if is_member.any():
-            mr = recs[is_member]
-            members.append(
-                pd.DataFrame(
-                    {
-                        "rank": rank,
-                        "batch_id": mr["batch_id"].astype(np.int64),
-                        "sample_id": mr["sample_id"].astype(np.int64),
-                        "ready_s": end_ns[is_member] / 1e9,
-                        "epoch": mr["epoch"].astype(np.int64),
-                    }
-                )
-            )
-        sr = recs[~is_member]
-        if len(set(stages)) != len(stages):
-            _problem(problems, f"{json_path}: the stage table repeats a name; skipped this process")
-            continue
-        cat = pd.Categorical.from_codes(sr["stage"].astype(np.int64), categories=stages)
-        cpu = sr["cpu_ns"].astype(np.float64)
-        cpu[sr["cpu_ns"] < 0] = np.nan
-        frames.append(
-            pd.DataFrame(
-                {
-                    "stage": cat,
-                    "start_s": start_ns[~is_member] / 1e9,
-                    "end_s": end_ns[~is_member] / 1e9,
-                    "sample_id": sr["sample_id"].astype(np.int64),
-                    "batch_id": sr["batch_id"].astype(np.int64),
-                    "epoch": sr["epoch"].astype(np.int64),
-                    "pid": pid,
-                    "tid": sr["tid"].astype(np.int64),
-                    "rank": rank,
-                    "cpu_s": cpu / 1e9,
-                    "error": (sr["flags"] & tf.FLAG_ERROR).astype(bool),
-                    "role": str(ph.get("role", "worker")),
-                }
-            )
-        )
-        if ph.get("role") == "main":
-            mains.setdefault(rank, []).append(name)
-        procs.append(
-            {
-                "pid": pid,
-                "ppid": -1 if ph.get("ppid") is None else int(ph["ppid"]),
-                "rank": rank,
-                "role": str(ph.get("role", "worker")),
-                "host": str(ph.get("host", "")),
-                "spans": int((~is_member).sum()),
-                "file": name,
-            }
-        )
-    for rank, files in sorted(mains.items()):
-        if len(files) > 1:
-            _problem(problems, f"{root}: {', '.join(files)} all claim to be the main process of rank {rank}")
-    for name in names:
-        if _PROC_HEADER.match(name) and name not in seen_json:
-            _problem(problems, f"{root / name}: span file {name[:-5]}.bin is missing; that process recorded nothing")
-
-    spans = _empty_spans() if not frames else _concat_spans(frames)
-    samples = (
-        pd.concat(members, ignore_index=True)
-        if members
-        else pd.DataFrame({c: np.zeros(0, np.int64) for c in ("rank", "batch_id", "sample_id", "epoch")}).assign(
-            ready_s=np.zeros(0)
-        )
-    )
-    batches = _batches(spans, samples)
-    for message in check_step_alignment(root, batches, clock):
-        _problem(problems, message)
-    spans = _link(spans, samples, batches)
-    spans["dur_s"] = spans["end_s"] - spans["start_s"]
-    spans = spans[list(SPAN_COLUMNS)].sort_values(["start_s", "end_s"], kind="stable").reset_index(drop=True)
-    resources = _resources(root, names, headers, to_axis, t0, problems)
-    if wanted is not None:
-        resources = resources[resources["rank"].isin(wanted)].reset_index(drop=True)
-    processes = pd.DataFrame(procs, columns=["pid", "ppid", "rank", "role", "host", "spans", "file"])
+    problems = _rf.Problems()
+    try:
+        folder = _rf.list_folder(_check_folder(run_dir), problems)
+        headers = _rf.read_run_headers(folder)
+        _rf.check_names(folder, headers, problems)
+        axis, first = _rf.align_clocks(folder, headers, problems)
+        wanted = None if ranks is None else {int(r) for r in ranks}
+        procs = _rf.read_processes(folder, headers, axis, wanted, problems)
+        spans, samples = _merge_spans(procs)
+        batches = _batches(spans, samples)
+        for message in check_step_alignment(folder.root, batches, axis.clock):
+            problems.add(message)
+        spans = _link(spans, samples, batches)
+        spans["dur_s"] = spans["end_s"] - spans["start_s"]
+        spans = spans[list(SPAN_COLUMNS)].sort_values(["start_s", "end_s"], kind="stable").reset_index(drop=True)
+        resources = _rf.read_resources(folder, headers, axis, wanted, problems)
+    finally:
+        problems.warn()
     return Run(
-        run_dir=root,
+        run_dir=folder.root,
         header=first,
         spans=spans,
         batches=batches,
         samples=samples[["rank", "batch_id", "sample_id", "ready_s"]],
         resources=resources,
-        processes=processes,
-        problems=problems,
-        clock=clock,
-        t0_ns=t0,
+        processes=_process_table(procs),
+        problems=problems.messages,
+        clock=axis.clock,
+        t0_ns=axis.t0_ns,
     )
+
+
+def _check_folder(run_dir: str | os.PathLike) -> Path:
+    root = Path(run_dir)
+    if root.exists() and not root.is_dir():
+        raise RunNotFoundError(f"{str(root)!r} is a file, not a run directory; pass the folder given to Probe(out_dir)")
+    if not root.is_dir():
+        raise RunNotFoundError(f"run directory {str(root)!r} does not exist; pass the folder given to Probe(out_dir)")
+    return root
+
+
+def _merge_spans(procs: list[_rf.Process]) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """All processes' spans in one frame, and all membership rows in another."""
+    frames = [p.spans for p in procs if p.spans is not None]
+    members = [p.members for p in procs if p.members is not None]
+    spans = _empty_spans() if not frames else _concat_spans(frames)
+    if members:
+        samples = pd.concat(members, ignore_index=True)
+    else:
+        samples = pd.DataFrame({c: np.zeros(0, np.int64) for c in ("rank", "batch_id", "sample_id", "epoch")})
+        samples = samples.assign(ready_s=np.zeros(0))
+    return spans, samples
+
+
+def _process_table(procs: list[_rf.Process]) -> pd.DataFrame:
+    rows = [
+        {
+            "pid": p.pid,
+            "ppid": -1 if p.header.ppid is None else int(p.header.ppid),
+            "rank": p.rank,
+            "role": p.header.role,
+            "host": p.header.host,
+            "spans": len(p.spans),
+            "file": p.name,
+        }
+        for p in procs
+        if p.spans is not None
+    ]
+    table = pd.DataFrame(rows, columns=["pid", "ppid", "rank", "role", "host", "spans", "file"])
+    # each process as one span from its first start to its last end: enough to find the worker slots
+    lives = pd.DataFrame(
+        [{"rank": p.rank, "pid": p.pid, "role": p.header.role, "start_s": p.spans["start_s"].min(),
+          "end_s": p.spans["end_s"].max()} for p in procs if p.spans is not None and len(p.spans)],
+        columns=["rank", "pid", "role", "start_s", "end_s"])
+    slots = worker_slots(lives)
+    table["slot"] = [slots.get((int(r), int(p)), 0) for r, p in zip(table["rank"], table["pid"], strict=True)]
+    return table
+
+
+def worker_slots(spans: pd.DataFrame) -> dict[tuple[int, int], int]:
+    """The loader worker slot (1, 2, ...) of each worker process, per rank: ``{(rank, pid): slot}``.
+
+    A worker is a slot of the loader, not a process: with torch's default
+    ``persistent_workers=False`` every epoch starts new worker processes,
+    which take over the slots of the last epoch's. A worker process is
+    alive from its first span's start to its last span's end; taken in
+    order of their start, each takes the lowest slot that no living worker
+    holds (greedy interval colouring, which uses as few slots as there are
+    workers alive at once). Persistent workers thus keep one slot each, and
+    the two workers of each of three epochs fill slots 1 and 2.
+
+    Parameters
+    ----------
+    spans : DataFrame
+        :attr:`Run.spans` (``rank, pid, role, start_s, end_s``).
+
+    Returns
+    -------
+    dict
+        ``(rank, pid) -> slot`` for every process with ``role == "worker"``.
+
+    References
+    ----------
+    Interval graph colouring by start time: Hashimoto, A. and Stevens, J.
+    (1971), "Wire routing by optimizing channel assignment within large
+    apertures" (the left-edge algorithm).
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> spans = pd.DataFrame({"rank": 0, "pid": [11, 12, 13, 14], "role": "worker",
+    ...                       "start_s": [0.0, 0.1, 2.0, 2.1], "end_s": [1.0, 1.1, 3.0, 3.1]})
+    >>> worker_slots(spans)
+    {(0, 11): 1, (0, 12): 2, (0, 13): 1, (0, 14): 2}
+    """
+    workers = spans[spans["role"] == "worker"] if len(spans) else spans
+    if not len(workers):
+        return {}
+    life = workers.groupby(["rank", "pid"], observed=True).agg(start=("start_s", "min"), end=("end_s", "max"))
+    # by start; at one instant, a worker that also ended there first (it frees its slot at once), then by pid
+    life = life.reset_index().assign(lasts=lambda f: f["end"] > f["start"])
+    life = life.sort_values(["rank", "start", "lasts", "pid"], kind="stable")
+    out: dict[tuple[int, int], int] = {}
+    for _, part in life.groupby("rank", sort=True):
+        busy: list[tuple[float, int]] = []  # (end, slot) of living workers
+        free: list[int] = []
+        for rank, pid, start, end in zip(part["rank"], part["pid"], part["start"], part["end"], strict=True):
+            while busy and busy[0][0] <= start:
+                heapq.heappush(free, heapq.heappop(busy)[1])
+            slot = heapq.heappop(free) if free else len(busy) + 1
+            heapq.heappush(busy, (float(end), slot))
+            out[(int(rank), int(pid))] = slot
+    return out
 
 
 def _concat_spans(frames: list[pd.DataFrame]) -> pd.DataFrame:
@@ -541,37 +411,3 @@ def _link(spans: pd.DataFrame, samples: pd.DataFrame, batches: pd.DataFrame) -> 
         fill[ok] = ep[ok].astype(np.int64)
         spans.loc[has, "epoch"] = fill
     return spans
-
-
-def _resources(root: Path, names: list[str], headers: dict[int, dict[str, Any]], to_axis: Any, t0: int,
-               problems: list[str]) -> pd.DataFrame:
-    parts = []
-    for name in names:
-        m = _RES_FILE.match(name)
-        if not m:
-            continue
-        try:
-            recs = tf.read_records(root / name, tf.CONTENT_RESOURCES)
-        except (TraceFormatError, OSError) as exc:
-            _problem(problems, f"{exc}; resource samples of this rank skipped")
-            continue
-        h = headers.get(int(m.group(1)))
-        if h is None:
-            continue
-        parts.append(
-            pd.DataFrame(
-                {
-                    "t_s": (to_axis(recs["t_ns"], h) - t0) / 1e9,
-                    "rank": int(m.group(1)),
-                    "pid": recs["pid"].astype(np.int64),
-                    "core": recs["core"].astype(np.int64),
-                    "cpu_pct": recs["cpu_pct"],
-                    "rss_bytes": recs["rss_bytes"],
-                    "read_bytes": recs["read_bytes"],
-                }
-            )
-        )
-    cols = ["t_s", "rank", "pid", "core", "cpu_pct", "rss_bytes", "read_bytes"]
-    if not parts:
-        return pd.DataFrame({c: np.zeros(0, np.float64 if c in ("t_s", "cpu_pct") else np.int64) for c in cols})
-    return pd.concat(parts, ignore_index=True)[cols].sort_values(["t_s", "pid", "core"]).reset_index(drop=True)

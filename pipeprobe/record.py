@@ -15,6 +15,7 @@ import platform
 import socket
 import warnings
 from collections import deque
+from dataclasses import replace
 from pathlib import Path
 from time import monotonic_ns, thread_time_ns
 from typing import Any, Callable, Iterable, Iterator, TypeVar
@@ -421,29 +422,13 @@ class Probe:
             world_size=self.world_size,
             run_id=run_id,
         )
-        self._header = {
-            "format": "pipeprobe-run",
-            "format_version": tf.FORMAT_VERSION,
-            "run_id": run_id,
-            "run_id_source": run_id_source,
-            "clock_sync": clock_sync,
-            "host": socket.gethostname(),
-            "cores": os.cpu_count() or 1,
-            "anchor_wall_ns": rec.anchor_wall_ns,
-            "anchor_mono_ns": rec.anchor_mono_ns,
-            "end_mono_ns": None,
-            "pipeprobe_version": __version__,
-            "python_version": platform.python_version(),
-            "platform": platform.platform(),
-            "pid": os.getpid(),
-            "rank": self.rank,
-            "world_size": self.world_size,
-            "cpu_time": bool(cpu_time),
-            "sample_interval_s": float(sample_interval_s),
-            "flush_interval_s": float(flush_interval_s),
-            "stages": [],
-            "closed": False,
-        }
+        self._header = tf.RunHeader(
+            run_id=run_id, run_id_source=run_id_source, clock_sync=clock_sync, host=socket.gethostname(),
+            cores=os.cpu_count() or 1, anchor_wall_ns=rec.anchor_wall_ns, anchor_mono_ns=rec.anchor_mono_ns,
+            pipeprobe_version=__version__, python_version=platform.python_version(), platform=platform.platform(),
+            pid=os.getpid(), rank=self.rank, world_size=self.world_size, cpu_time=bool(cpu_time),
+            sample_interval_s=float(sample_interval_s), flush_interval_s=float(flush_interval_s),
+        )
         try:
             out.mkdir(parents=True, exist_ok=True)
             self._write_header()
@@ -504,13 +489,12 @@ class Probe:
 
     # -- life cycle ----------------------------------------------------------
     def _write_header(self) -> None:
-        self._header["stages"] = list(RECORDER.stage_names)
-        tf.write_json_atomic(self.run_dir / f"run-r{self.rank}.json", self._header)
+        self._header = replace(self._header, stages=tuple(RECORDER.stage_names))
+        tf.write_json_atomic(self.run_dir / f"run-r{self.rank}.json", self._header.to_json())
 
     def _close_on_signal(self) -> None:
         if not self.closed:
-            self._header["end_mono_ns"] = monotonic_ns()
-            self._header["ended_by"] = "signal"
+            self._header = replace(self._header, end_mono_ns=monotonic_ns(), ended_by="signal")
             try:
                 self._write_header()
             except Exception:  # noqa: BLE001
@@ -551,9 +535,7 @@ class Probe:
                 os.environ[key] = value
         if not ok and not rec.failed:
             return
-        self._header["end_mono_ns"] = end
-        self._header["closed"] = True
-        self._header["batches"] = rec.next_batch
+        self._header = replace(self._header, end_mono_ns=end, closed=True, batches=rec.next_batch)
         try:
             self._write_header()
         except Exception as exc:  # noqa: BLE001

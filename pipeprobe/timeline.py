@@ -32,7 +32,10 @@ and resource edges:
     when that event came during the idle time: a loader with bounded
     prefetch hands a worker its next task only when the loop takes a batch
     and frees a slot, and at an epoch start only when the loop asks for the
-    new epoch. Shorter idle times are scheduling noise, not such a wait;
+    new epoch. A worker thread's first span counts as after an idle time:
+    with torch's default ``persistent_workers=False`` the loader starts new
+    worker processes for each epoch when the loop asks for it. Shorter idle
+    times are scheduling noise, not such a wait;
 ``step``
     step ``k-1`` -> step ``k`` of the same rank;
 ``thread``
@@ -44,6 +47,17 @@ cycle. Spans nested in another span of the same thread are not nodes (the
 outermost span stands for the whole block), and a user stage that encloses
 a step or a delivery of its own thread (e.g. a stage around a whole epoch)
 is not a node either; both still count in the per-stage statistics.
+
+:func:`build_timeline` takes these steps, each a function below: the spans
+as arrays with their threads and lanes (``_span_arrays``; lanes named by
+:func:`pipeprobe.lanes.lane_name`, the one rule for lane names), one delivery per batch
+(``_deliveries``), the spans that are nodes and their time order
+(``_node_order``: no waits, no umbrellas, outermost per thread), the node
+columns the rules read (``_node_arrays``), one rule per edge kind
+(``_sample_edges``, ``_assembly_edges``, ``_delivery_edges``,
+``_consumer_edges``, ``_slot_edges``, ``_step_edges``, ``_thread_edges``),
+the edges the recording agrees with (``_edges``), and each node's
+last-arriving dependency (``_last_arriving``).
 
 Each node's *last-arriving dependency* (``pred``) is the predecessor that
 ended last; the node waited from that instant (``ready_s``) until it
@@ -63,6 +77,8 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
+
+from .lanes import thread_lanes
 
 if TYPE_CHECKING:  # pragma: no cover
     import networkx
@@ -92,8 +108,8 @@ NODE_COLUMNS = {
     "rank": "rank",
     "pid": "process id",
     "tid": "thread id",
-    "lane": "readable thread name: 'main', 'main thread 2', 'worker 1', 'worker 1 thread 2', "
-            "prefixed 'rank R ' for ranks above 0",
+    "lane": "readable thread name (pipeprobe.lanes.lane_name): 'main', 'main thread 2', 'worker 1', 'worker 1 thread 2', "
+            "prefixed 'rank R ' on runs of several ranks",
     "batch_id": "batch id, -1 when the span is linked to no batch",
     "sample_id": "sample id, -1 unknown",
     "epoch": "epoch, -1 unknown",
@@ -111,7 +127,6 @@ EDGE_COLUMNS = {
     "kind": "one of EDGE_KINDS",
 }
 
-_LANE_MAIN = "main"
 _NODE_KINDS = ("stage", "step", "delivery")
 _N_STAGE, _N_STEP, _N_DELIVERY = range(3)
 _SIDES = ("input", "delivery", "consumer")
@@ -232,29 +247,6 @@ def _bkey(rank: np.ndarray, batch: np.ndarray) -> np.ndarray:
     return rank.astype(np.int64) * (1 << 33) + batch.astype(np.int64) + 1
 
 
-def _lanes(threads: pd.DataFrame, consumer: set[int]) -> dict[int, str]:
-    """Readable name per thread code. ``threads``: th, rank, pid, tid, role, first_s (one row per thread)."""
-    names: dict[int, str] = {}
-    t = threads.sort_values(["rank", "first_s", "th"])
-    for rank, part in t.groupby("rank", sort=True):
-        prefix = f"rank {rank} " if rank else ""
-        main = part[part["role"] != "worker"]
-        heads = [th for th in main["th"] if th in consumer] or list(main["th"].head(1))
-        for i, th in enumerate(heads, start=1):
-            names[int(th)] = prefix + _LANE_MAIN + (f" {i}" if i > 1 else "")
-        k = 1
-        for th in main["th"]:
-            if int(th) not in names:
-                k += 1
-                names[int(th)] = f"{prefix}main thread {k}"
-        workers = part[part["role"] == "worker"]
-        order = workers.groupby("pid", sort=False)["first_s"].min().sort_values()
-        for w_i, pid in enumerate(order.index, start=1):
-            for t_i, th in enumerate(workers.loc[workers["pid"] == pid, "th"], start=1):
-                names[int(th)] = f"{prefix}worker {w_i}" + (f" thread {t_i}" if t_i > 1 else "")
-    return names
-
-
 def _consecutive(order: np.ndarray, group: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Pairs (order[i], order[i+1]) whose ``group`` (already in that order) agrees."""
     if len(order) < 2:
@@ -263,8 +255,330 @@ def _consecutive(order: np.ndarray, group: np.ndarray) -> tuple[np.ndarray, np.n
     return order[:-1][same], order[1:][same]
 
 
+# -- the steps of build_timeline -----------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Spans:
+    """``run.spans`` as arrays, one entry per span, with its thread and lane."""
+
+    stages: list[str]  # stage categories, 'delivery' appended
+    code: np.ndarray
+    is_wait: np.ndarray
+    is_step: np.ndarray
+    start: np.ndarray
+    end: np.ndarray
+    rank: np.ndarray
+    pid: np.ndarray
+    tid: np.ndarray
+    batch: np.ndarray
+    sample: np.ndarray
+    epoch: np.ndarray
+    th: np.ndarray
+    lane: np.ndarray
+    lane_names: np.ndarray
+
+    @property
+    def user(self) -> np.ndarray:
+        return ~self.is_wait & ~self.is_step
+
+
+@dataclass(frozen=True)
+class _Deliveries:
+    """One delivery per batch (its last wait with that batch id), and each span's batch (-1 none)."""
+
+    wait: np.ndarray  # span row of each batch's wait
+    ready: np.ndarray
+    th: np.ndarray
+    of_span: np.ndarray
+
+
+@dataclass(frozen=True)
+class _Order:
+    """Which spans are nodes, and the permutation that puts nodes (kept spans, then deliveries) in time order."""
+
+    kept: np.ndarray
+    n_b: int
+    perm: np.ndarray
+
+    def take(self, per_span: np.ndarray, per_delivery: Any) -> np.ndarray:
+        """A node column from a per-span array and a per-delivery value (or array)."""
+        return np.concatenate([per_span[self.kept], np.broadcast_to(per_delivery, (self.n_b,))])[self.perm]
+
+
+@dataclass(frozen=True)
+class _Nodes:
+    """Node columns the edge rules read (node id = position, in time order)."""
+
+    start: np.ndarray
+    end: np.ndarray
+    th: np.ndarray
+    batch: np.ndarray  # delivery index of the node's batch, -1 none
+    kind: np.ndarray
+    sample: np.ndarray
+    rank: np.ndarray
+    producer: np.ndarray
+    consumer: np.ndarray
+    on_consumer_thread: np.ndarray
+    delivery_of_batch: np.ndarray
+    thread_order: np.ndarray  # node ids by thread, then time
+
+    @property
+    def ids(self) -> np.ndarray:
+        return np.arange(len(self.start), dtype=np.int64)
+
+
+def _span_arrays(sp: pd.DataFrame) -> _Spans:
+    n_sp = len(sp)
+    stage_cat = sp["stage"].astype("category") if n_sp else pd.Series(pd.Categorical([]))
+    cats = [str(c) for c in stage_cat.cat.categories] if n_sp else []
+    code = stage_cat.cat.codes.to_numpy(np.int64) if n_sp else np.zeros(0, np.int64)
+    is_wait = code == (cats.index("wait") if "wait" in cats else -2)
+    is_step = code == (cats.index("step") if "step" in cats else -2)
+    if "delivery" not in cats:
+        cats.append("delivery")
+    th = (sp.groupby(["rank", "pid", "tid"], sort=True, observed=True).ngroup().to_numpy(np.int64)
+          if n_sp else np.zeros(0, np.int64))
+    lanes, lane = thread_lanes(sp)
+    return _Spans(
+        stages=cats, code=code, is_wait=is_wait, is_step=is_step,
+        start=sp["start_s"].to_numpy(np.float64), end=sp["end_s"].to_numpy(np.float64),
+        rank=sp["rank"].to_numpy(np.int64), pid=sp["pid"].to_numpy(np.int64), tid=sp["tid"].to_numpy(np.int64),
+        batch=sp["batch_id"].to_numpy(np.int64), sample=sp["sample_id"].to_numpy(np.int64),
+        epoch=sp["epoch"].to_numpy(np.int64), th=th, lane=lane, lane_names=lanes["name"].to_numpy(object),
+    )
+
+
+def _deliveries(s: _Spans) -> _Deliveries:
+    """Each batch's ready instant and consumer thread: its last wait with that batch id."""
+    w_idx = np.flatnonzero(s.is_wait & (s.batch >= 0))
+    wt = pd.DataFrame({"key": _bkey(s.rank[w_idx], s.batch[w_idx]), "i": w_idx})
+    w_idx = wt.drop_duplicates("key", keep="last")["i"].to_numpy(np.int64)
+    b_key = pd.Index(_bkey(s.rank[w_idx], s.batch[w_idx]))
+    bi = b_key.get_indexer(_bkey(s.rank, s.batch)) if len(w_idx) else np.full(len(s.start), -1, np.int64)
+    return _Deliveries(wait=w_idx, ready=s.end[w_idx], th=s.th[w_idx], of_span=np.where(s.batch >= 0, bi, -1))
+
+
+def _umbrellas(s: _Spans, d: _Deliveries) -> np.ndarray:
+    """User stages around a step or a delivery of their own thread (e.g. an epoch timer): not nodes."""
+    anchors_t = np.concatenate([(s.start[s.is_step] + s.end[s.is_step]) / 2, d.ready])
+    anchors_th = np.concatenate([s.th[s.is_step], d.th])
+    umbrella = np.zeros(len(s.start), bool)
+    u_idx = np.flatnonzero(s.user)
+    if len(u_idx) and len(anchors_t):
+        left = pd.DataFrame({"t": s.start[u_idx], "th": s.th[u_idx], "i": u_idx}).sort_values("t", kind="stable")
+        right = pd.DataFrame({"t": anchors_t, "th": anchors_th, "a": anchors_t}).sort_values("t", kind="stable")
+        j = pd.merge_asof(left, right, on="t", by="th", direction="forward", allow_exact_matches=False)
+        a = j["a"].to_numpy(np.float64)
+        ii = j["i"].to_numpy(np.int64)
+        hit = ~np.isnan(a)
+        umbrella[ii[hit]] = a[hit] < s.end[ii[hit]]
+    return umbrella
+
+
+def _outermost(s: _Spans, candidate: np.ndarray) -> np.ndarray:
+    """Candidate spans not nested in an earlier candidate of the same thread."""
+    cand = np.flatnonzero(candidate)
+    keep = np.zeros(len(s.start), bool)
+    if len(cand):
+        c = cand[np.lexsort((-s.end[cand], s.start[cand], s.th[cand]))]
+        cf = pd.DataFrame({"th": s.th[c], "end": s.end[c]})
+        prev_max = cf.groupby("th", sort=False)["end"].cummax().groupby(cf["th"], sort=False).shift(1)
+        pm = prev_max.to_numpy(np.float64)
+        keep[c] = np.isnan(pm) | (s.start[c] >= pm)
+    return keep
+
+
+def _span_sides(s: _Spans, d: _Deliveries) -> tuple[np.ndarray, np.ndarray]:
+    """(producer, consumer side) per span: input work that ended by its batch's delivery, and
+    consumer-thread work of the batch after it."""
+    has_b = d.of_span >= 0
+    safe = np.maximum(d.of_span, 0)
+    n_b = len(d.wait)
+    ready_of = np.where(has_b, d.ready[safe], np.nan) if n_b else np.full(len(s.start), np.nan)
+    on_cth = has_b & (s.th == d.th[safe]) if n_b else np.zeros(len(s.start), bool)
+    consumer_side = s.user & on_cth & (s.start >= ready_of)
+    producer = s.user & has_b & (s.end <= ready_of) & ~consumer_side
+    return producer, consumer_side
+
+
+def _node_order(s: _Spans, d: _Deliveries) -> _Order:
+    kept = np.flatnonzero(_outermost(s, ~s.is_wait & ~_umbrellas(s, d)))
+    n_b = len(d.wait)
+    raw = _Order(kept, n_b, np.arange(len(kept) + n_b))
+    korder = raw.take(np.where(s.is_step, 2, 0), 1)
+    return _Order(kept, n_b, np.lexsort((korder, raw.take(s.end, d.ready), raw.take(s.start, d.ready))))
+
+
+def _node_arrays(s: _Spans, d: _Deliveries, o: _Order, sides: tuple[np.ndarray, np.ndarray]) -> _Nodes:
+    producer, consumer_side = sides
+    nth = o.take(s.th, d.th)
+    nbi = o.take(np.where(d.of_span >= 0, d.of_span, -1), np.arange(o.n_b))
+    nkind = o.take(np.where(s.is_step, _N_STEP, _N_STAGE), _N_DELIVERY)
+    is_deliv = nkind == _N_DELIVERY
+    deliv_of_b = np.full(o.n_b, -1, np.int64)
+    deliv_of_b[nbi[is_deliv]] = np.flatnonzero(is_deliv)
+    ids = np.arange(len(nth), dtype=np.int64)
+    return _Nodes(
+        start=o.take(s.start, d.ready), end=o.take(s.end, d.ready), th=nth, batch=nbi, kind=nkind,
+        sample=o.take(s.sample, -1), rank=o.take(s.rank, s.rank[d.wait]),
+        producer=o.take(producer, False), consumer=o.take(consumer_side, False),
+        on_consumer_thread=np.isin(nth, np.unique(d.th)), delivery_of_batch=deliv_of_b,
+        thread_order=ids[np.lexsort((ids, nth))],
+    )
+
+
+# -- one function per edge kind: each returns (src, dst) node ids ----------------------------------
+
+_Pairs = tuple[np.ndarray, np.ndarray]
+
+
+def _sample_chains(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Producer spans with a sample id ordered by (batch, sample, time); their chain keys; each chain's last."""
+    ps = n.ids[n.producer & (n.sample >= 0)]
+    o = ps[np.lexsort((ps, n.sample[ps], n.batch[ps]))]
+    key = n.batch[o] * (1 << 31) + n.sample[o]
+    tails = o[np.append(key[1:] != key[:-1], True)] if len(o) else o
+    return o, key, tails
+
+
+def _assembly_spans(n: _Nodes) -> np.ndarray:
+    """Batch-level producer spans (no sample id) ordered by (batch, time)."""
+    pa = n.ids[n.producer & (n.sample < 0)]
+    return pa[np.lexsort((pa, n.batch[pa]))]
+
+
+def _sample_edges(n: _Nodes) -> _Pairs:
+    """``sample``: the stages of one sample of one batch, in the order they started."""
+    o, key, _ = _sample_chains(n)
+    return _consecutive(o, key)
+
+
+def _assembly_edges(n: _Nodes) -> _Pairs:
+    """``assembly``: batch-level producer spans in order, each fed by the sample chains that ended before it."""
+    o = _assembly_spans(n)
+    if not len(o):
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    src, dst = _consecutive(o, n.batch[o])
+    _, _, tails = _sample_chains(n)
+    if len(tails):
+        left = pd.DataFrame({"t": n.end[tails], "b": n.batch[tails], "src": tails}).sort_values("t", kind="stable")
+        right = pd.DataFrame({"t": n.start[o], "b": n.batch[o], "dst": o}).sort_values("t", kind="stable")
+        j = pd.merge_asof(left, right, on="t", by="b", direction="forward")
+        hit = j["dst"].notna().to_numpy()
+        src = np.concatenate([src, j["src"].to_numpy()[hit].astype(np.int64)])
+        dst = np.concatenate([dst, j["dst"].to_numpy()[hit].astype(np.int64)])
+    return src, dst
+
+
+def _delivery_edges(n: _Nodes) -> _Pairs:
+    """``delivery``: the last stage of each sample chain and of the assembly chain -> the batch's delivery."""
+    _, _, tails = _sample_chains(n)
+    o = _assembly_spans(n)
+    lasts = o[np.append(n.batch[o][1:] != n.batch[o][:-1], True)] if len(o) else o
+    src = np.concatenate([tails, lasts])
+    return src, n.delivery_of_batch[n.batch[src]]
+
+
+def _consumer_edges(n: _Nodes) -> _Pairs:
+    """``consumer``: delivery -> consumer-side stages of the batch -> its steps; delivery -> steps."""
+    pc = n.ids[n.consumer]
+    st_b = n.ids[(n.kind == _N_STEP) & (n.batch >= 0)]
+    src = [n.delivery_of_batch[n.batch[pc]], n.delivery_of_batch[n.batch[st_b]]]
+    dst = [pc, st_b]
+    if len(pc) and len(st_b):
+        j = pd.DataFrame({"b": n.batch[pc], "src": pc}).merge(pd.DataFrame({"b": n.batch[st_b], "dst": st_b}), on="b")
+        src.append(j["src"].to_numpy(np.int64))
+        dst.append(j["dst"].to_numpy(np.int64))
+    return np.concatenate(src), np.concatenate(dst)
+
+
+def _slot_edges(n: _Nodes) -> _Pairs:
+    """``slot``: the training loop's latest event -> a worker thread's first span of a batch, when the
+    worker sat idle for at least :data:`SLOT_MIN_IDLE_S` (or had not run yet) and the event came during
+    that idle time."""
+    none = np.zeros(0, np.int64), np.zeros(0, np.int64)
+    pw = n.ids[n.producer & ~n.on_consumer_thread]
+    loop = n.ids[n.on_consumer_thread]
+    if not len(pw) or not len(loop):
+        return none
+    heads = pd.DataFrame({"b": n.batch[pw], "th": n.th[pw], "dst": pw}).groupby(["b", "th"], sort=False)["dst"].min()
+    hd = np.sort(heads.to_numpy(np.int64))
+    prev = np.full(len(n.start), -1, np.int64)
+    a_, b_ = _consecutive(n.thread_order, n.th[n.thread_order])
+    prev[b_] = a_
+    # a thread's first span: the worker was new (a loader starts new worker processes each epoch), idle till then
+    idle_from = np.where(prev[hd] >= 0, n.end[np.maximum(prev[hd], 0)], -np.inf)
+    idle = n.start[hd] - idle_from >= SLOT_MIN_IDLE_S
+    hd, idle_from = hd[idle], idle_from[idle]
+    if not len(hd):
+        return none
+    left = pd.DataFrame({"t": n.start[hd], "r": n.rank[hd], "dst": hd}).sort_values("t", kind="stable")
+    right = pd.DataFrame({"t": n.end[loop], "r": n.rank[loop], "src": loop}).sort_values("t", kind="stable")
+    j = pd.merge_asof(left, right, on="t", by="r", direction="backward")
+    hit = j["src"].notna().to_numpy()
+    src = j["src"].to_numpy()[hit].astype(np.int64)
+    dst = j["dst"].to_numpy()[hit].astype(np.int64)
+    during = n.end[src] > idle_from[np.searchsorted(hd, dst)]  # the event came while the worker was idle
+    return src[during], dst[during]
+
+
+def _step_edges(n: _Nodes) -> _Pairs:
+    """``step``: step k-1 -> step k of the same rank."""
+    st = n.ids[n.kind == _N_STEP]
+    o = st[np.lexsort((st, n.rank[st]))]
+    return _consecutive(o, n.rank[o])
+
+
+def _thread_edges(n: _Nodes) -> _Pairs:
+    """``thread``: consecutive nodes on the same thread (node ids are in time order already)."""
+    return _consecutive(n.thread_order, n.th[n.thread_order])
+
+
+#: The rule of each edge kind, in :data:`EDGE_KINDS` order.
+_EDGE_RULES = (_sample_edges, _assembly_edges, _delivery_edges, _consumer_edges, _slot_edges, _step_edges,
+               _thread_edges)
+
+
+def _edges(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Every rule's edges that the recording agrees with, one per node pair (the first kind in EDGE_KINDS order)."""
+    pairs = [rule(n) for rule in _EDGE_RULES]
+    src = np.concatenate([np.asarray(p[0], np.int64) for p in pairs])
+    dst = np.concatenate([np.asarray(p[1], np.int64) for p in pairs])
+    ek = np.concatenate([np.full(len(p[0]), k, np.int8) for k, p in enumerate(pairs)])
+    ok = (src >= 0) & (dst >= 0) & (src != dst)
+    src, dst, ek = src[ok], dst[ok], ek[ok]
+    ok = n.end[src] <= n.start[dst]  # the recording must agree with the dependency
+    src, dst, ek = src[ok], dst[ok], ek[ok]
+    o = np.lexsort((ek, dst, src))
+    src, dst, ek = src[o], dst[o], ek[o]
+    first = np.ones(len(src), bool)
+    first[1:] = (src[1:] != src[:-1]) | (dst[1:] != dst[:-1])
+    return src[first], dst[first], ek[first]
+
+
+def _last_arriving(n: _Nodes, src: np.ndarray, dst: np.ndarray, ek: np.ndarray) -> tuple[np.ndarray, float]:
+    """Each node's last-arriving dependency (latest end; ties go to dependency edges), and the origin."""
+    count = len(n.start)
+    origin = float(min(0.0, n.start.min())) if count else 0.0
+    pred = np.full(count, -1, np.int64)
+    if len(src):
+        o = np.lexsort((src, -ek.astype(np.int64), n.end[src], dst))
+        d_sorted = dst[o]
+        last = np.append(d_sorted[1:] != d_sorted[:-1], True)
+        pred[d_sorted[last]] = src[o][last]
+    return pred, origin
+
+
 def build_timeline(run: Run) -> Timeline:
     """Build the dependency timeline of a loaded run.
+
+    The steps: spans as arrays with their lanes (:func:`_span_arrays`), one
+    delivery per batch (:func:`_deliveries`), the spans that are nodes and
+    their time order (:func:`_node_order`), one rule per edge kind
+    (:data:`_EDGE_RULES`), the edges the recording agrees with
+    (:func:`_edges`), and each node's last-arriving dependency
+    (:func:`_last_arriving`).
 
     Parameters
     ----------
@@ -299,246 +613,53 @@ def build_timeline(run: Run) -> Timeline:
     scheduling. Proc. Eastern Joint Computer Conference, 160-173 (the
     activity network and the longest path).
     """
-    sp = run.spans
-    n_sp = len(sp)
-    stage_cat = sp["stage"].astype("category") if n_sp else pd.Categorical([])
-    cats = [str(c) for c in stage_cat.cat.categories] if n_sp else []
-    scode = stage_cat.cat.codes.to_numpy(np.int64) if n_sp else np.zeros(0, np.int64)
-    is_wait = scode == (cats.index("wait") if "wait" in cats else -2)
-    is_step = scode == (cats.index("step") if "step" in cats else -2)
-    if "delivery" not in cats:
-        cats.append("delivery")
-    deliv_code = cats.index("delivery")
-    start = sp["start_s"].to_numpy(np.float64)
-    end = sp["end_s"].to_numpy(np.float64)
-    rank = sp["rank"].to_numpy(np.int64)
-    pid = sp["pid"].to_numpy(np.int64)
-    tid = sp["tid"].to_numpy(np.int64)
-    batch = sp["batch_id"].to_numpy(np.int64)
-    sample = sp["sample_id"].to_numpy(np.int64)
-    epoch = sp["epoch"].to_numpy(np.int64)
-    worker = (sp["role"].astype(str) == "worker").to_numpy(bool) if n_sp else np.zeros(0, bool)
-    th = (sp.groupby(["rank", "pid", "tid"], sort=True, observed=True).ngroup().to_numpy(np.int64)
-          if n_sp else np.zeros(0, np.int64))
-
-    # -- batches: ready instant and consumer thread ------------------------
-    w_idx = np.flatnonzero(is_wait & (batch >= 0))
-    wt = pd.DataFrame({"key": _bkey(rank[w_idx], batch[w_idx]), "i": w_idx})
-    w_idx = wt.drop_duplicates("key", keep="last")["i"].to_numpy(np.int64)
-    n_b = len(w_idx)
-    b_key = pd.Index(_bkey(rank[w_idx], batch[w_idx]))
-    b_ready = end[w_idx]
-    b_th = th[w_idx]
-    consumer_threads = {int(x) for x in np.unique(b_th)}
-
-    bi = b_key.get_indexer(_bkey(rank, batch)) if n_b else np.full(n_sp, -1, np.int64)
-    bi = np.where(batch >= 0, bi, -1)
-    has_b = bi >= 0
-    safe = np.maximum(bi, 0)
-    ready_of = np.where(has_b, b_ready[safe], np.nan) if n_b else np.full(n_sp, np.nan)
-    on_cth = has_b & (th == b_th[safe]) if n_b else np.zeros(n_sp, bool)
-    user = ~is_wait & ~is_step
-
-    # -- umbrellas: user stages around a step or a delivery of their own thread
-    anchors_t = np.concatenate([(start[is_step] + end[is_step]) / 2, b_ready])
-    anchors_th = np.concatenate([th[is_step], b_th])
-    umbrella = np.zeros(n_sp, bool)
-    u_idx = np.flatnonzero(user)
-    if len(u_idx) and len(anchors_t):
-        left = pd.DataFrame({"t": start[u_idx], "th": th[u_idx], "i": u_idx}).sort_values("t", kind="stable")
-        right = pd.DataFrame({"t": anchors_t, "th": anchors_th, "a": anchors_t}).sort_values("t", kind="stable")
-        j = pd.merge_asof(left, right, on="t", by="th", direction="forward", allow_exact_matches=False)
-        a = j["a"].to_numpy(np.float64)
-        ii = j["i"].to_numpy(np.int64)
-        hit = ~np.isnan(a)
-        umbrella[ii[hit]] = a[hit] < end[ii[hit]]
-
-    # -- outermost spans per thread ----------------------------------------
-    cand = np.flatnonzero(~is_wait & ~umbrella)
-    keep = np.zeros(n_sp, bool)
-    if len(cand):
-        c = cand[np.lexsort((-end[cand], start[cand], th[cand]))]
-        cf = pd.DataFrame({"th": th[c], "end": end[c]})
-        prev_max = cf.groupby("th", sort=False)["end"].cummax().groupby(cf["th"], sort=False).shift(1)
-        pm = prev_max.to_numpy(np.float64)
-        keep[c] = np.isnan(pm) | (start[c] >= pm)
-
-    # -- node arrays (kept spans, then one delivery per batch), in time order
-    k_idx = np.flatnonzero(keep)
-    consumer_side = user & on_cth & (start >= ready_of)
-    producer = user & has_b & (end <= ready_of) & ~consumer_side
-    kind_sp = np.where(is_step, _N_STEP, _N_STAGE)
-    side_sp = np.where(is_step | consumer_side, _S_CONSUMER, _S_INPUT)
-
-    def cat(sp_arr: np.ndarray, b_arr: Any) -> np.ndarray:
-        return np.concatenate([sp_arr[k_idx], np.broadcast_to(b_arr, (n_b,))])
-
-    ns_ = cat(start, b_ready)
-    ne_ = cat(end, b_ready)
-    korder = cat(np.where(is_step, 2, 0), 1)
-    perm = np.lexsort((korder, ne_, ns_))
-    n = len(perm)
-    ns = ns_[perm]
-    ne = ne_[perm]
-    nth = cat(th, b_th)[perm]
-    nbi = cat(np.where(has_b, bi, -1), np.arange(n_b))[perm]
-    nkind = cat(kind_sp, _N_DELIVERY)[perm]
-    nsample = cat(sample, -1)[perm]
-    nrank = cat(rank, rank[w_idx])[perm]
-    prod = cat(producer, False)[perm]
-    cons = cat(consumer_side, False)[perm]
-    is_deliv = nkind == _N_DELIVERY
-    is_stepn = nkind == _N_STEP
-    deliv_of_b = np.full(n_b, -1, np.int64)
-    deliv_of_b[nbi[is_deliv]] = np.flatnonzero(is_deliv)
-
-    srcs: list[np.ndarray] = []
-    dsts: list[np.ndarray] = []
-    kinds: list[np.ndarray] = []
-
-    def add(s: np.ndarray, d: np.ndarray, k: int) -> None:
-        srcs.append(np.asarray(s, np.int64))
-        dsts.append(np.asarray(d, np.int64))
-        kinds.append(np.full(len(s), k, np.int8))
-
-    ids = np.arange(n, dtype=np.int64)
-    # thread edges: node ids are in time order already
-    o = ids[np.lexsort((ids, nth))]
-    add(*_consecutive(o, nth[o]), _K_THREAD)
-    # sample chains, and each chain's last stage -> delivery
-    ps = ids[prod & (nsample >= 0)]
-    o = ps[np.lexsort((ps, nsample[ps], nbi[ps]))]
-    gkey = nbi[o] * (1 << 31) + nsample[o]
-    add(*_consecutive(o, gkey), _K_SAMPLE)
-    tails = o[np.append(gkey[1:] != gkey[:-1], True)] if len(o) else o
-    add(tails, deliv_of_b[nbi[tails]], _K_DELIVERY)
-    # assembly chains (batch-level producer spans) -> delivery; chain tails -> next assembly span
-    pa = ids[prod & (nsample < 0)]
-    if len(pa):
-        o = pa[np.lexsort((pa, nbi[pa]))]
-        add(*_consecutive(o, nbi[o]), _K_ASSEMBLY)
-        lasts = o[np.append(nbi[o][1:] != nbi[o][:-1], True)]
-        add(lasts, deliv_of_b[nbi[lasts]], _K_DELIVERY)
-        if len(tails):
-            left = pd.DataFrame({"t": ne[tails], "b": nbi[tails], "src": tails}).sort_values("t", kind="stable")
-            right = pd.DataFrame({"t": ns[pa], "b": nbi[pa], "dst": pa}).sort_values("t", kind="stable")
-            j = pd.merge_asof(left, right, on="t", by="b", direction="forward")
-            hit = j["dst"].notna().to_numpy()
-            add(j["src"].to_numpy()[hit], j["dst"].to_numpy()[hit].astype(np.int64), _K_ASSEMBLY)
-    # consumer side: delivery -> consumer stages -> steps of the batch; delivery -> steps
-    pc = ids[cons]
-    add(deliv_of_b[nbi[pc]], pc, _K_CONSUMER)
-    st_b = ids[is_stepn & (nbi >= 0)]
-    add(deliv_of_b[nbi[st_b]], st_b, _K_CONSUMER)
-    if len(pc) and len(st_b):
-        j = pd.DataFrame({"b": nbi[pc], "src": pc}).merge(pd.DataFrame({"b": nbi[st_b], "dst": st_b}), on="b")
-        add(j["src"].to_numpy(), j["dst"].to_numpy(), _K_CONSUMER)
-    # slot: the training loop's latest event -> a worker's first span of a batch, when the
-    # worker sat idle for at least SLOT_MIN_IDLE_S after its previous span
-    pw = ids[prod & ~np.isin(nth, list(consumer_threads))]
-    cons_nodes = ids[np.isin(nth, list(consumer_threads))]
-    if len(pw) and len(cons_nodes):
-        heads = pd.DataFrame({"b": nbi[pw], "th": nth[pw], "dst": pw}).groupby(["b", "th"], sort=False)["dst"].min()
-        hd = np.sort(heads.to_numpy(np.int64))
-        o = ids[np.lexsort((ids, nth))]
-        prev = np.full(n, -1, np.int64)
-        a_, b_ = _consecutive(o, nth[o])
-        prev[b_] = a_
-        idle_from = np.where(prev[hd] >= 0, ne[np.maximum(prev[hd], 0)], np.inf)
-        idle = ns[hd] - idle_from >= SLOT_MIN_IDLE_S
-        hd, idle_from = hd[idle], idle_from[idle]
-        if len(hd):
-            left = pd.DataFrame({"t": ns[hd], "r": nrank[hd], "dst": hd}).sort_values("t", kind="stable")
-            right = pd.DataFrame({"t": ne[cons_nodes], "r": nrank[cons_nodes], "src": cons_nodes})
-            j = pd.merge_asof(left, right.sort_values("t", kind="stable"), on="t", by="r", direction="backward")
-            hit = j["src"].notna().to_numpy()
-            src_ = j["src"].to_numpy()[hit].astype(np.int64)
-            dst_ = j["dst"].to_numpy()[hit]
-            keep_ = ne[src_] > idle_from[np.searchsorted(hd, dst_)]  # the event came while the worker was idle
-            add(src_[keep_], dst_[keep_], _K_SLOT)
-    # step k-1 -> step k per rank
-    st = ids[is_stepn]
-    o = st[np.lexsort((st, nrank[st]))]
-    add(*_consecutive(o, nrank[o]), _K_STEP)
-
-    src = np.concatenate(srcs)
-    dst = np.concatenate(dsts)
-    ek = np.concatenate(kinds)
-    ok = (src >= 0) & (dst >= 0) & (src != dst)
-    src, dst, ek = src[ok], dst[ok], ek[ok]
-    ok = ne[src] <= ns[dst]  # the recording must agree with the dependency
-    src, dst, ek = src[ok], dst[ok], ek[ok]
-    # one edge per pair, keeping the first kind in EDGE_KINDS order
-    o = np.lexsort((ek, dst, src))
-    src, dst, ek = src[o], dst[o], ek[o]
-    first = np.ones(len(src), bool)
-    first[1:] = (src[1:] != src[:-1]) | (dst[1:] != dst[:-1])
-    src, dst, ek = src[first], dst[first], ek[first]
-
-    # -- last-arriving dependency: latest end; ties go to dependency edges --
-    origin = float(min(0.0, ns.min())) if n else 0.0
-    pred = np.full(n, -1, np.int64)
-    if len(src):
-        o = np.lexsort((src, -ek.astype(np.int64), ne[src], dst))
-        d_sorted = dst[o]
-        last = np.append(d_sorted[1:] != d_sorted[:-1], True)
-        pred[d_sorted[last]] = src[o][last]
-    ready = np.where(pred >= 0, ne[np.maximum(pred, 0)], origin) if n else np.zeros(0)
-
-    # -- lanes ---------------------------------------------------------------
-    npid = cat(pid, pid[w_idx])[perm]
-    ntid = cat(tid, tid[w_idx])[perm]
-    nworker = cat(worker, worker[w_idx])[perm]
-    if n:
-        firsts = pd.DataFrame({"th": nth, "rank": nrank, "pid": npid, "tid": ntid, "worker": nworker, "first_s": ns})
-        threads = firsts.groupby("th", sort=True).agg(
-            rank=("rank", "first"), pid=("pid", "first"), tid=("tid", "first"), worker=("worker", "first"),
-            first_s=("first_s", "min")).reset_index()
-        threads["role"] = np.where(threads["worker"], "worker", "main")
-        names = _lanes(threads, consumer_threads)
-        lane_cats = sorted(set(names.values()))
-        code_of = np.full(int(nth.max()) + 1, -1, np.int64)
-        for code, name in names.items():
-            code_of[code] = lane_cats.index(name)
-        lane = pd.Categorical.from_codes(code_of[nth], categories=lane_cats)
-    else:
-        lane = pd.Categorical([])
-    nodes = pd.DataFrame(
-        {
-            "node": ids,
-            "kind": pd.Categorical.from_codes(nkind, categories=list(_NODE_KINDS)),
-            "stage": pd.Categorical.from_codes(cat(scode, deliv_code)[perm], categories=cats),
-            "side": pd.Categorical.from_codes(cat(side_sp, _S_DELIVERY)[perm], categories=list(_SIDES)),
-            "start_s": ns,
-            "end_s": ne,
-            "dur_s": ne - ns,
-            "rank": nrank,
-            "pid": npid,
-            "tid": ntid,
-            "lane": lane,
-            "batch_id": cat(np.where(has_b, batch, -1), batch[w_idx])[perm],
-            "sample_id": nsample,
-            "epoch": cat(epoch, epoch[w_idx])[perm],
-            "span": cat(np.arange(n_sp), -1)[perm],
-            "pred": pred,
-            "ready_s": ready,
-            "gap_s": ns - ready,
-            "weight_s": ne - ready,
-        }
-    )
-    nodes["stage"] = nodes["stage"].cat.remove_unused_categories()
+    s = _span_arrays(run.spans)
+    d = _deliveries(s)
+    order = _node_order(s, d)
+    sides = _span_sides(s, d)
+    n = _node_arrays(s, d, order, sides)
+    src, dst, ek = _edges(n)
+    pred, origin = _last_arriving(n, src, dst, ek)
+    nodes = _node_frame(s, d, order, n, sides, pred, origin)
     edges = pd.DataFrame({"src": src, "dst": dst,
                           "kind": pd.Categorical.from_codes(ek.astype(np.int64), categories=list(EDGE_KINDS))})
-    end_s = max(float(run.wall_s), float(ne.max()) if n else 0.0)
+    end_s = max(float(run.wall_s), float(n.end.max()) if len(n.end) else 0.0)
     return Timeline(nodes=nodes, edges=edges, origin_s=origin, end_s=end_s)
 
 
-def lane_names(nodes: pd.DataFrame) -> list[str]:
-    """Lanes in display order: consumer first, then other main threads, then workers."""
-    if nodes.empty:
-        return []
-    first = nodes.groupby("lane", sort=False)["start_s"].min()
-    def rank_key(name: str) -> tuple[Any, ...]:
-        main = " main" in f" {name}"
-        return (name.split(" ")[1] if name.startswith("rank ") else "0", 0 if main else 1, first[name], name)
-    return sorted(first.index, key=rank_key)
+def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np.ndarray, np.ndarray],
+                pred: np.ndarray, origin: float) -> pd.DataFrame:
+    """The nodes as the documented DataFrame (:data:`NODE_COLUMNS`)."""
+    ready = np.where(pred >= 0, n.end[np.maximum(pred, 0)], origin) if len(pred) else np.zeros(0)
+    side = np.where(s.is_step | sides[1], _S_CONSUMER, _S_INPUT)
+    lane = o.take(s.lane, s.lane[d.wait])
+    used = np.unique(lane)
+    lane_cats = sorted(set(s.lane_names[used]))  # threads of one worker slot share a name
+    code_of_lane = np.full(len(s.lane_names), -1, np.int64)
+    code_of_lane[used] = [lane_cats.index(name) for name in s.lane_names[used]]
+    has_b = d.of_span >= 0
+    nodes = pd.DataFrame(
+        {
+            "node": n.ids,
+            "kind": pd.Categorical.from_codes(n.kind, categories=list(_NODE_KINDS)),
+            "stage": pd.Categorical.from_codes(o.take(s.code, s.stages.index("delivery")), categories=s.stages),
+            "side": pd.Categorical.from_codes(o.take(side, _S_DELIVERY), categories=list(_SIDES)),
+            "start_s": n.start,
+            "end_s": n.end,
+            "dur_s": n.end - n.start,
+            "rank": n.rank,
+            "pid": o.take(s.pid, s.pid[d.wait]),
+            "tid": o.take(s.tid, s.tid[d.wait]),
+            "lane": pd.Categorical.from_codes(code_of_lane[lane], categories=lane_cats),
+            "batch_id": o.take(np.where(has_b, s.batch, -1), s.batch[d.wait]),
+            "sample_id": n.sample,
+            "epoch": o.take(s.epoch, s.epoch[d.wait]),
+            "span": o.take(np.arange(len(s.start)), -1),
+            "pred": pred,
+            "ready_s": ready,
+            "gap_s": n.start - ready,
+            "weight_s": n.end - ready,
+        }
+    )
+    nodes["stage"] = nodes["stage"].cat.remove_unused_categories()
+    return nodes

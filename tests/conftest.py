@@ -1,4 +1,9 @@
-"""Shared fixtures. Tiny traces live in ``_synth.py``; fixtures here wrap them."""
+"""Shared fixtures: exact synthetic runs first, then runs recorded for real.
+
+Exact traces are written by ``_synth.py`` (no probe runs, so expected
+numbers follow by hand); recorded runs (real sleeps, real process pools)
+are made by ``_recorded.py`` and carry the machine's timing noise.
+"""
 
 from __future__ import annotations
 
@@ -24,6 +29,7 @@ sys.path.insert(0, str(Path(__file__).parent))
 # must not import them on its own (``_ddp_job.py`` needs torch, which is optional).
 collect_ignore_glob = ["_*.py"]
 
+from _recorded import analysis_load_batch, record_sleep_run  # noqa: E402, F401 (tests import record_sleep_run here)
 from _synth import simple_pipeline, write_run  # noqa: E402
 
 
@@ -33,21 +39,7 @@ def simple_run_dir(tmp_path: Path) -> Path:
     return write_run(tmp_path / "simple", simple_pipeline())
 
 
-def _analysis_load_batch(b: int) -> list[int]:
-    """Pool task of the recorded analysis fixture: 4 samples x (3 ms decode + 1 ms augment), 1 ms collate."""
-    import time
-
-    import pipeprobe
-
-    ids = list(range(4 * b, 4 * b + 4))
-    for i in ids:
-        with pipeprobe.stage("decode", sample=i):
-            time.sleep(0.003)
-        with pipeprobe.stage("augment", sample=i):
-            time.sleep(0.001)
-    with pipeprobe.stage("collate", batch=b):
-        time.sleep(0.001)
-    return ids
+# -- runs recorded for real ----------------------------------------------------------------------
 
 
 @pytest.fixture(scope="session")
@@ -61,7 +53,7 @@ def analysis_pool_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
     d = tmp_path_factory.mktemp("analysis_pool") / "run"
     with pipeprobe.Probe(d, report=False, sample_interval_s=0.02) as probe:
         with mp.get_context("fork").Pool(2) as pool:
-            for _ in probe.watch(pool.imap(_analysis_load_batch, range(10)), samples=lambda ids: ids):
+            for _ in probe.watch(pool.imap(analysis_load_batch, range(10)), samples=lambda ids: ids):
                 with probe.stage("to_device"):
                     time.sleep(0.001)
                 with probe.step():
@@ -74,25 +66,3 @@ def analysis_sleep_run(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """Recorded run: one producer (a generator in the training thread), per batch 4 samples x
     (6 ms decode + 2 ms augment), then a 20 ms step; 6 batches."""
     return record_sleep_run(tmp_path_factory.mktemp("analysis_sleep") / "run")
-
-
-def record_sleep_run(d: Path) -> Path:
-    """Record the sleep pipeline of :func:`analysis_sleep_run` into ``d``."""
-    import time
-
-    import pipeprobe
-
-    def batches():
-        for b in range(6):
-            for i in range(4 * b, 4 * b + 4):
-                with pipeprobe.stage("decode", sample=i):
-                    time.sleep(0.006)
-                with pipeprobe.stage("augment", sample=i):
-                    time.sleep(0.002)
-            yield b
-
-    with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
-        for _ in probe.watch(batches()):
-            with probe.step():
-                time.sleep(0.020)
-    return d

@@ -467,7 +467,138 @@ class TestNoCodeRuns:
         """The modules that read run folders contain no pickle, marshal, eval, exec or allow_pickle."""
         pkg = Path(pipeprobe.__file__).parent
         banned = re.compile(r"\b(pickle|marshal|eval\(|exec\(|allow_pickle|__import__|yaml\.load)")
-        for name in ["tracefile.py", "load.py", "timeline.py", "analysis.py", "report.py"]:
+        for name in ["tracefile.py", "_runfolder.py", "load.py", "timeline.py", "analysis.py", "report.py"]:
             path = pkg / name
             if path.exists():
                 assert [] == banned.findall(path.read_text()), name
+
+
+class TestHostileFolders:
+    """Issue 14: header numbers, unencodable names, links, sparse files, bloated headers, future file times."""
+
+    @pytest.mark.parametrize("fields", [{"world_size": 10**12}, {"world_size": 0}, {"world_size": "8"}],
+                             ids=["10^12", "zero", "text"])
+    def test_world_size_out_of_range_is_a_clear_error(self, work, fields: dict) -> None:
+        """A run header's world size beyond what rank file names can hold (10^6) is one error naming it."""
+        root = work()
+        path = _edit_header(root, "run-", **fields)
+        tracemalloc.start()
+        try:
+            run, error, ours = load_checked(root)
+            peak = tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+        assert peak < 50 * 2**20
+        assert str(path) in error and "'world_size'" in error and "1 to 1000000" in error
+
+    def test_lone_surrogate_in_names_is_escaped_on_read(self, work, tmp_path: Path, capsys) -> None:
+        """Stage and host names with a lone surrogate load escaped, so report, --json, --html, whatif and
+        compare all print UTF-8 (a strict UTF-8 encode is the check, as a terminal or file would do)."""
+        from pipeprobe.cli import EXIT_OK, main
+
+        root = work()
+        path = file_named(root, "spans-", ".json")
+        h = json.loads(path.read_text())
+        h["stages"] = [("dec\ud800ode" if s == "decode" else s) for s in h["stages"]]
+        path.write_text(json.dumps(h))  # JSON carries the surrogate as the escape \ud800
+        _edit_header(root, "run-", host="box\udfff")
+        run = pipeprobe.load(root)
+        assert "dec\\ud800ode" in set(run.spans["stage"].astype(str))
+        assert "box\\udfff" == run.header["host"]
+        html = tmp_path / "r.html"
+        for argv in (["report", str(root)], ["report", str(root), "--json", "--html", str(html)],
+                     ["whatif", str(root), "--workers", "2"], ["compare", str(root), str(root)]):
+            assert EXIT_OK == main(argv)
+            captured = capsys.readouterr()
+            (captured.out + captured.err).encode("utf-8")
+        assert "dec\\ud800ode" in html.read_bytes().decode("utf-8")
+
+    def test_file_name_that_is_not_utf8_is_named_escaped(self, work, capsys) -> None:
+        """A file named like a trace file with bytes that are not UTF-8 is named in a warning that prints as UTF-8."""
+        from pipeprobe.cli import EXIT_OK, main
+
+        root = work()
+        with open(os.path.join(os.fsencode(root), b"spans-r0-p1\xff.bin"), "wb") as fh:
+            fh.write(b"x")
+        run, error, ours = load_checked(root)
+        assert [m for m in ours if "spans-r0-p1\\udcff.bin" in m]
+        assert EXIT_OK == main(["report", str(root)])
+        captured = capsys.readouterr()
+        (captured.out + captured.err).encode("utf-8")
+
+    @pytest.mark.parametrize("target", ["loop", "dangling"])
+    @pytest.mark.parametrize("prefix,suffix", [("spans-", ".bin"), ("spans-", ".json"), ("res-", ".bin")])
+    def test_link_named_like_a_trace_file_is_skipped_with_one_warning(self, work, target: str, prefix: str,
+                                                                       suffix: str) -> None:
+        """A symlink loop or a dangling link in place of a trace file: one warning naming it; the rest loads."""
+        root = work()
+        whole = pipeprobe.load(root)
+        path = file_named(root, prefix, suffix)
+        path.unlink()
+        path.symlink_to(path.name if target == "loop" else root / "gone.bin")
+        run, error, ours = load_checked(root)
+        assert "" == error
+        assert 1 == len([m for m in ours if str(path) in m])
+        assert [m for m in ours if str(path) in m and "not a regular file" in m]
+        assert (0 if prefix == "spans-" else len(whole.spans)) == len(run.spans)  # the base run has one process
+
+    def test_sparse_terabyte_span_file_is_not_read_whole(self, work) -> None:
+        """A span file grown to 1 TB of holes loads its written records, reads none of the holes, and says so."""
+        root = work()
+        whole = pipeprobe.load(root)
+        path = file_named(root, "spans-", ".bin")
+        with open(path, "r+b") as fh:
+            fh.truncate(2**40)
+        tracemalloc.start()
+        try:
+            run, error, ours = load_checked(root)
+            peak = tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+        assert peak < 50 * 2**20
+        assert "" == error
+        assert [m for m in ours if str(path) in m and "holes of a sparse file" in m]
+        assert len(whole.spans) == len(run.spans)
+
+    def test_span_file_read_in_bounded_pieces(self, work) -> None:
+        """Read 5 records at a time, a span file gives the same records as read whole."""
+        root = work()
+        rf = tf.open_records(file_named(root, "spans-", ".bin"), tf.CONTENT_SPANS)
+        pieces = list(rf.chunks(max_records=5))
+        assert all(len(p) <= 5 for p in pieces)
+        assert tf.read_records(rf.path, tf.CONTENT_SPANS).tobytes() == b"".join(p.tobytes() for p in pieces)
+
+    @pytest.mark.parametrize("prefix", ["run-", "spans-"])
+    @pytest.mark.parametrize("filler", ["{}", "[]", "0"])
+    def test_header_full_of_values_costs_no_memory(self, work, prefix: str, filler: str) -> None:
+        """A 16 MiB header holding millions of empty objects, lists or numbers is refused before parsing."""
+        root = work()
+        path = file_named(root, prefix, ".json")
+        h = json.loads(path.read_text())
+        body = json.dumps(h)[:-1] + ', "x": [' + ", ".join([filler] * ((tf.MAX_JSON_BYTES - 4096) // 4)) + "]}"
+        path.write_text(body)
+        tracemalloc.start()
+        try:
+            run, error, ours = load_checked(root)
+            peak = tracemalloc.get_traced_memory()[1]
+        finally:
+            tracemalloc.stop()
+        assert peak < 3 * tf.MAX_JSON_BYTES
+        assert [m for m in [error, *ours] if str(path) in m and "more than a pipeprobe header has" in m]
+
+    def test_future_file_time_does_not_admit_a_fifty_year_span(self, work) -> None:
+        """A span ending 50 years on is dropped even when its file's time is set 50 years ahead: a closed run
+        is bounded by its own end anchor."""
+        root = work()
+        whole = pipeprobe.load(root)
+        path = file_named(root, "spans-", ".bin")
+        recs = tf.read_records(path, tf.CONTENT_SPANS)
+        fifty_years_ns = 50 * 365 * 86400 * 10**9
+        recs["end_ns"][0] += fifty_years_ns
+        path.write_bytes(tf.preamble(tf.CONTENT_SPANS) + recs.tobytes())
+        future = (os.stat(path).st_mtime_ns + fifty_years_ns) / 1e9
+        os.utime(path, (future, future))
+        run, error, ours = load_checked(root)
+        assert [m for m in ours if str(path) in m and "outside the run" in m]
+        assert run.wall_s <= whole.wall_s + 1e-9
+        assert run.spans["dur_s"].max() < 60

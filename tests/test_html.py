@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import os
 import re
 import shutil
@@ -23,12 +24,12 @@ CHROMIUM_FLAGS = [
 ]
 
 
-def _evil_rows() -> dict[int, list[tuple]]:
+def _evil_rows() -> dict[int, list]:
     """The simple pipeline with its stages renamed to markup and an ampersand."""
     rows = []
     for row in simple_pipeline()[100]:
-        if row[0] == "stage":
-            row = (row[0], EVIL if row[1] == "decode" else 'a&b "c"', *row[2:])
+        if row.kind == "stage":
+            row = dataclasses.replace(row, stage=EVIL if row.stage == "decode" else 'a&b "c"')
         rows.append(row)
     return {100: rows}
 

@@ -5,32 +5,35 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 import pytest
-from _synth import write_run
+from _synth import member, stage, step, three_epoch_rows, wait, write_run
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import pipeprobe
 from pipeprobe import tracefile as tf
 from pipeprobe.errors import RunNotFoundError, TraceFormatError
-from pipeprobe.load import BATCH_COLUMNS, SPAN_COLUMNS
+from pipeprobe.load import BATCH_COLUMNS, SPAN_COLUMNS, worker_slots
 
 
 def _two_epoch_worker_run(root: Path) -> Path:
     """Sample 0 and 1 decoded by a worker twice (two epochs); batch 0 = {0, 1}, batch 1 = {0, 1}."""
     main = [
-        ("wait", "", 0, 5, -1, 0, 0),
-        ("member", "", 5, 5, 0, 0, 0),
-        ("member", "", 5, 5, 1, 0, 0),
-        ("step", "", 5, 8, -1, 0, -1),
-        ("wait", "", 8, 14, -1, 1, 1),
-        ("member", "", 14, 14, 0, 1, 1),
-        ("member", "", 14, 14, 1, 1, 1),
-        ("step", "", 14, 17, -1, 1, -1),
+        wait(0, 5, 0),
+        member(5, 0, 0),
+        member(5, 1, 0),
+        step(5, 8, 0, epoch=None),
+        wait(8, 14, 1, epoch=1),
+        member(14, 0, 1, epoch=1),
+        member(14, 1, 1, epoch=1),
+        step(14, 17, 1, epoch=None),
     ]
     worker = [
-        ("stage", "decode", 0, 2, 0, -1, -1),
-        ("stage", "decode", 2, 4, 1, -1, -1),
-        ("stage", "decode", 6, 9, 0, -1, -1),
-        ("stage", "decode", 9, 13, 1, -1, -1),
+        stage("decode", 0, 2, sample=0),
+        stage("decode", 2, 4, sample=1),
+        stage("decode", 6, 9, sample=0),
+        stage("decode", 9, 13, sample=1),
     ]
     return write_run(root, {10: main, 11: worker})
 
@@ -100,7 +103,7 @@ class TestBadRuns:
 
     def test_unclosed_run_warns(self, tmp_path: Path) -> None:
         """A run whose process was killed loads, with a warning that the end may be missing."""
-        root = write_run(tmp_path / "r", {5: [("wait", "", 0, 1, -1, 0, 0)]}, closed=False)
+        root = write_run(tmp_path / "r", {5: [wait(0, 1, 0)]}, closed=False)
         with pytest.warns(UserWarning, match="did not close cleanly"):
             run = pipeprobe.load(root)
         assert 1 == len(run.batches)
@@ -148,3 +151,46 @@ class TestTraceFile:
         path.write_bytes(bytes(head))
         with pytest.raises(TraceFormatError, match="upgrade pipeprobe"):
             tf.read_records(path, tf.CONTENT_SPANS)
+
+
+class TestWorkerSlots:
+    def test_new_worker_pids_each_epoch_fill_the_same_slots(self, tmp_path: Path) -> None:
+        """With a new pair of worker processes per epoch (persistent_workers=False), there are 2 slots, not 6."""
+        run = pipeprobe.load(write_run(tmp_path / "r", three_epoch_rows(persistent=False)))
+        slots = dict(zip(run.processes["pid"], run.processes["slot"], strict=True))
+        assert {100: 0, 201: 1, 202: 2, 203: 1, 204: 2, 205: 1, 206: 2} == slots
+
+    def test_lanes_are_slots_as_with_persistent_workers(self, tmp_path: Path) -> None:
+        """Timeline and picture show one lane per slot, the same lanes as the persistent-worker run."""
+        from pipeprobe import plot
+        from pipeprobe.timeline import build_timeline
+
+        fresh = pipeprobe.load(write_run(tmp_path / "fresh", three_epoch_rows(persistent=False)))
+        kept = pipeprobe.load(write_run(tmp_path / "kept", three_epoch_rows(persistent=True)))
+        lanes = [set(build_timeline(r).nodes["lane"].astype(str)) for r in (fresh, kept)]
+        assert [{"main", "worker 1", "worker 2"}] * 2 == lanes
+        labels = [lane.label for lane in plot.layout_timeline(fresh).lanes]
+        assert ["main (pid 100)", "worker 1 (pids 201, 203, 205)", "worker 2 (pids 202, 204, 206)"] == labels
+        assert [6, 3, 3] == [lane.spans for lane in plot.layout_timeline(fresh).lanes]
+
+    @settings(max_examples=200, deadline=None)
+    @given(st.lists(st.tuples(st.integers(0, 50), st.integers(0, 20)), min_size=1, max_size=12))
+    def test_slots_are_as_few_as_workers_alive_at_once(self, lives: list[tuple[int, int]]) -> None:
+        """No two workers alive at once share a slot, and the slots used equal the largest set of workers alive
+        at once: a maximum clique of the overlap graph (networkx.find_cliques as the reference; interval graphs
+        are perfect, so the left-edge colouring is optimal: Hashimoto and Stevens 1971)."""
+        import networkx as nx
+
+        spans = pd.DataFrame({"rank": 0, "pid": range(1, len(lives) + 1), "role": "worker",
+                              "start_s": [float(a) for a, _ in lives], "end_s": [float(a + d) for a, d in lives]})
+        slots = worker_slots(spans)
+        ivs = [(float(a), float(a + d), slots[(0, i + 1)]) for i, (a, d) in enumerate(lives)]
+        g = nx.Graph()
+        g.add_nodes_from(range(len(ivs)))
+        for i, (a1, e1, s1) in enumerate(ivs):
+            for j in range(i + 1, len(ivs)):
+                a2, e2, s2 = ivs[j]
+                if a1 < e2 and a2 < e1:  # neither had ended when the other started
+                    g.add_edge(i, j)
+                    assert s1 != s2
+        assert max(len(c) for c in nx.find_cliques(g)) == max(slots.values())

@@ -16,7 +16,7 @@ import matplotlib
 import matplotlib.pyplot as plt
 import numpy as np
 import pytest
-from _synth import write_many_spans, write_run
+from _synth import Row, member, stage, step, wait, write_many_spans, write_run
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
@@ -37,18 +37,18 @@ WAITS_MS = [10.0, 0.5, 4.0, 6.0]
 CYCLES_MS = [18.0, 8.0, 12.0, 14.0]
 
 
-def _two_worker_rows() -> dict[int, list[tuple]]:
+def _two_worker_rows() -> dict[int, list[Row]]:
     main = []
     for b, (w0, w1, s1) in enumerate([(0, 10, 18), (18, 18.5, 26), (26, 30, 38), (38, 44, 52)]):
-        main.append(("wait", "", w0, w1, -1, b, 0))
-        main += [("member", "", w1, w1, 2 * b + k, b, 0) for k in range(2)]
-        main.append(("step", "", w1, s1, -1, b, 0))
+        main.append(wait(w0, w1, b))
+        main += [member(w1, 2 * b + k, b) for k in range(2)]
+        main.append(step(w1, s1, b))
 
-    def worker(plan: list[tuple[int, float, float]]) -> list[tuple]:
+    def worker(plan: list[tuple[int, float, float]]) -> list[Row]:
         rows = []
         for sample, start, decode_ms in plan:
-            rows.append(("stage", "decode", start, start + decode_ms, sample, -1, -1))
-            rows.append(("stage", "augment", start + decode_ms, start + decode_ms + 1, sample, -1, -1))
+            rows.append(stage("decode", start, start + decode_ms, sample=sample))
+            rows.append(stage("augment", start + decode_ms, start + decode_ms + 1, sample=sample))
         return rows
 
     return {
@@ -172,6 +172,30 @@ class TestTimelineLanes:
         assert [float(lanes[x]) for x in nodes["lane"]] == [s[0][1] for s in segs]
 
 
+    def test_two_rank_lanes_have_one_name_everywhere(self, tmp_path: Path) -> None:
+        """On a 2-rank run the timeline, the pixel layout, the drawn labels and the resource legend name lanes alike."""
+        from pipeprobe.critical import critical_path
+        from pipeprobe.timeline import build_timeline
+
+        rows = _two_worker_rows()
+        for rank in (0, 1):
+            write_run(tmp_path / "job", rows, rank=rank, world_size=2, run_id="job", mono_offset_ns=1000 * rank)
+        run = pipeprobe.load(tmp_path / "job")
+        expected = {f"rank {r} {name}" for r in (0, 1) for name in ("main", "worker 1", "worker 2")}
+        tl = build_timeline(run)
+        assert expected == set(tl.nodes["lane"].astype(str))
+        assert set(critical_path(tl).lanes["lane"]) <= expected
+        labels = [lane.label for lane in plot.layout_timeline(run).lanes]
+        assert expected == {label.rsplit(" (pid", 1)[0] for label in labels}
+        fig, ax = _fixed_axes(lanes=6)
+        plot.draw_timeline(run, ax=ax, resolution_px=800)
+        assert labels == [t.get_text() for t in ax.get_yticklabels()]
+        from pipeprobe.plot._style import _process_names
+
+        assert {"rank 0 main", "rank 0 worker 1", "rank 0 worker 2"} == set(
+            name for (r, _), name in _process_names(run).items() if r == 0)
+
+
 class TestFigures:
     def test_importing_pipeprobe_does_not_import_matplotlib(self) -> None:
         """Recording code never pays matplotlib's import cost: only pipeprobe.plot loads it."""
@@ -258,9 +282,9 @@ class TestStallFraction:
 class TestStageDurations:
     def test_slowest_samples_are_named(self, tmp_path: Path) -> None:
         """A 40 ms decode among 1 ms ones is labelled with its sample id, and the long tail turns the axis to log."""
-        rows = [("stage", "decode", 2 * i, 2 * i + (40 if i == 7 else 1), i, -1, -1) for i in range(20)]
-        rows[7] = ("stage", "decode", 100, 140, 7, -1, -1)
-        main = [("wait", "", 0, 141, -1, 0, 0)] + [("member", "", 141, 141, i, 0, 0) for i in range(20)]
+        rows = [stage("decode", 2 * i, 2 * i + (40 if i == 7 else 1), sample=i) for i in range(20)]
+        rows[7] = stage("decode", 100, 140, sample=7)
+        main = [wait(0, 141, 0)] + [member(141, i, 0) for i in range(20)]
         run = pipeprobe.load(write_run(tmp_path / "tail", {1: main, 2: rows}))
         ax = plot.draw_stage_durations(run, slowest=1)
         texts = " ".join(t.get_text() for t in ax.texts)

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import networkx as nx
 import numpy as np
-from _synth import pool_schedule, write_run
+from _synth import member, pool_schedule, stage, step, three_epoch_rows, wait, write_run
 
 import pipeprobe
 from pipeprobe.timeline import EDGE_KINDS, NODE_COLUMNS, build_timeline
@@ -32,16 +32,16 @@ class TestNodes:
 
     def test_nested_span_is_not_a_node(self, tmp_path):
         """A span nested in another on the same thread is covered by the outer one."""
-        rows = [("stage", "load", 0, 5, 0, 0, 0), ("stage", "read", 1, 2, 0, 0, 0),
-                ("wait", "", 0, 5, -1, 0, 0), ("step", "", 5, 6, -1, 0, 0)]
+        rows = [stage("load", 0, 5, sample=0, batch=0, epoch=0), stage("read", 1, 2, sample=0, batch=0, epoch=0),
+                wait(0, 5, 0), step(5, 6, 0)]
         tl = build_timeline(pipeprobe.load(write_run(tmp_path / "r", {100: rows})))
         assert ["load", "delivery", "step"] == list(tl.nodes["stage"].astype(str))
 
     def test_stage_around_the_whole_loop_is_not_a_node(self, tmp_path):
         """A user stage that encloses steps of its own thread (an 'epoch' timer) does not hide them."""
-        rows = [("stage", "epoch", 0, 20, -1, -1, 0), ("stage", "decode", 0, 3, 0, 0, 0),
-                ("wait", "", 0, 3, -1, 0, 0), ("step", "", 3, 10, -1, 0, 0),
-                ("stage", "decode", 10, 13, 1, 1, 0), ("wait", "", 10, 13, -1, 1, 0), ("step", "", 13, 20, -1, 1, 0)]
+        rows = [stage("epoch", 0, 20, epoch=0), stage("decode", 0, 3, sample=0, batch=0, epoch=0),
+                wait(0, 3, 0), step(3, 10, 0),
+                stage("decode", 10, 13, sample=1, batch=1, epoch=0), wait(10, 13, 1), step(13, 20, 1)]
         tl = build_timeline(pipeprobe.load(write_run(tmp_path / "r", {100: rows})))
         assert ["decode", "delivery", "step"] * 2 == list(tl.nodes["stage"].astype(str))
 
@@ -115,13 +115,13 @@ def _slot_run(root):
     """Two workers, prefetch 2: worker B finishes batch 1 at 12 ms and idles until the consumer
     takes batch 1 (15.1 ms, after step 0) frees a slot; its batch 3 then takes until 40 ms."""
     main = [
-        ("wait", "", 0, 10, -1, 0, 0), ("member", "", 10, 10, 0, 0, 0), ("step", "", 10, 15, -1, 0, 0),
-        ("wait", "", 15, 15.1, -1, 1, 0), ("member", "", 15.1, 15.1, 1, 1, 0), ("step", "", 15.1, 25, -1, 1, 0),
-        ("wait", "", 25, 25.05, -1, 2, 0), ("member", "", 25.05, 25.05, 2, 2, 0), ("step", "", 25.05, 30, -1, 2, 0),
-        ("wait", "", 30, 40, -1, 3, 0), ("member", "", 40, 40, 3, 3, 0), ("step", "", 40, 45, -1, 3, 0),
+        wait(0, 10, 0), member(10, 0, 0), step(10, 15, 0),
+        wait(15, 15.1, 1), member(15.1, 1, 1), step(15.1, 25, 1),
+        wait(25, 25.05, 2), member(25.05, 2, 2), step(25.05, 30, 2),
+        wait(30, 40, 3), member(40, 3, 3), step(40, 45, 3),
     ]
-    worker_a = [("stage", "decode", 0, 10, 0, -1, -1), ("stage", "decode", 10, 20, 2, -1, -1)]
-    worker_b = [("stage", "decode", 0, 12, 1, -1, -1), ("stage", "decode", 15.1, 40, 3, -1, -1)]
+    worker_a = [stage("decode", 0, 10, sample=0), stage("decode", 10, 20, sample=2)]
+    worker_b = [stage("decode", 0, 12, sample=1), stage("decode", 15.1, 40, sample=3)]
     return write_run(root, {100: main, 101: worker_a, 102: worker_b})
 
 
@@ -148,3 +148,18 @@ class TestSlotEdges:
         tl = build_timeline(pipeprobe.load(_slot_run(tmp_path / "r")))
         g = tl.to_networkx()
         assert abs(tl.wall_s - nx.dag_longest_path_length(g, weight="weight")) < 1e-9
+
+
+class TestEpochsWithNewWorkers:
+    def test_critical_path_covers_every_epoch(self, tmp_path):
+        """With new worker processes each epoch, a new worker's first span waits for the loop's last step
+        (a slot edge), so the critical path runs through all three epochs and adds up to the wall time
+        (networkx.dag_longest_path_length as the reference)."""
+        tl = build_timeline(pipeprobe.load(write_run(tmp_path / "r", three_epoch_rows(persistent=False))))
+        path = pipeprobe.critical.critical_path(tl)
+        assert {0, 1, 2} == set(path.path.loc[path.path["kind"] == "step", "epoch"])
+        step1 = tl.nodes[(tl.nodes["kind"] == "step") & (tl.nodes["batch_id"] == 1)]["node"].iloc[0]
+        first2 = tl.nodes[(tl.nodes["stage"] == "decode") & (tl.nodes["batch_id"] == 2)]["node"].iloc[0]
+        assert (int(step1), int(first2)) in _edge_set(tl, "slot")
+        assert abs(tl.wall_s - nx.dag_longest_path_length(tl.to_networkx(), weight="weight")) < 1e-9
+        assert abs(0.052 - float(path.shares["seconds"].sum())) < 1e-9

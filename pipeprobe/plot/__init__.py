@@ -24,7 +24,7 @@ Heat maps use matplotlib's ``cividis`` (Nuñez, Anderton and Renslow 2018,
 
 from __future__ import annotations
 
-from .._lanes import TimelineLane, TimelineLayout, layout_timeline
+from .._timeline_layout import TimelineLane, TimelineLayout, layout_timeline
 from ._charts import draw_ceilings, draw_stage_durations, draw_stall_fraction, draw_sweep
 from ._style import _BAND_HALF, _BAR_HALF, PALETTE, PATH_COLOUR, STALL_COLOUR, STEP_COLOUR, stage_colours  # noqa: F401
 from ._timeline import draw_overview, draw_resources, draw_timeline

@@ -9,7 +9,7 @@ import pandas as pd
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
 
-from .._lanes import thread_lanes
+from ..lanes import lane_name, thread_lanes
 from ..load import Run
 
 #: Paul Tol's *muted* scheme minus indigo (kept for the step) and rose (kept
@@ -139,11 +139,12 @@ def _analysis_parts(run: Any) -> tuple[Run, Any]:
 
 
 def _process_names(run: Run) -> dict[tuple[int, int], str]:
-    """``(rank, pid) -> "main" / "worker k"``, the timeline's lane names without thread suffixes."""
+    """``(rank, pid) -> "main" / "worker k"``: the timeline's lane names of each process's first thread."""
     threads, _ = thread_lanes(run.spans)
+    multi_rank = threads["rank"].nunique() > 1
     out: dict[tuple[int, int], str] = {}
-    for r, p, name in zip(threads["rank"], threads["pid"], threads["name"], strict=True):
-        out.setdefault((int(r), int(p)), str(name).split(" thread ")[0])
+    for r, p, k in zip(threads["rank"], threads["pid"], threads["process"], strict=True):
+        out.setdefault((int(r), int(p)), lane_name(int(r) if multi_rank or r else None, int(k)))
     return out
 
 

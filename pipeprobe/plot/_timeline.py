@@ -12,7 +12,7 @@ from matplotlib.collections import LineCollection, PolyCollection
 from matplotlib.figure import Figure
 from matplotlib.patches import Patch
 
-from .._lanes import TimelineLayout, layout_timeline
+from .._timeline_layout import TimelineLayout, layout_timeline
 from ..load import Run
 from ._style import (
     _BAND_HALF,
@@ -98,9 +98,21 @@ def draw_timeline(
     lay = layout_timeline(run, window_s=window_s, resolution_px=px)
     colours = stage_colours(lay.stages)
     stage_rgba = np.array([mpl.colors.to_rgba(colours[s]) for s in lay.stages]) if lay.stages else np.zeros((0, 4))
-    lo, hi = lay.window_s
-    n = len(lay.lanes)
+    _draw_stall_band(ax, lay)
+    _draw_spans(ax, lay, stage_rgba)
+    with_path = path is not None and path is not False
+    if with_path:
+        _draw_path(ax, lay, _path_nodes(run, path))
+    _label_lanes(ax, lay)
+    _style(ax)
+    if legend and lay.lanes:
+        _draw_legend(ax, lay, colours, with_path)
+    return ax
 
+
+def _draw_stall_band(ax: Axes, lay: TimelineLayout) -> None:
+    """The consumer's stall band: wide waits as rectangles, merged ones as columns shaded by their share."""
+    lo = lay.window_s[0]
     st = lay.stalls
     sc = lay.stall_columns
     stall_rgb = np.array(mpl.colors.to_rgb(STALL_COLOUR))
@@ -123,11 +135,15 @@ def draw_timeline(
         coll.set_gid(f"pipeprobe:stall:{i}")
         ax.add_collection(coll, autolim=False)
 
+
+def _draw_spans(ax: Axes, lay: TimelineLayout, stage_rgba: np.ndarray) -> None:
+    """Per lane, one collection of exact rectangles and one of stacked per-column stage shares."""
+    lo = lay.window_s[0]
     bars = lay.bars
     cols = lay.columns
     if len(cols):
         cum = cols.groupby(["lane", "column"], sort=False)["share"].cumsum().to_numpy() - cols["share"].to_numpy()
-    for i in range(n):
+    for i in range(len(lay.lanes)):
         b = bars[bars["lane"] == i]
         if len(b):
             y = np.full(len(b), float(i))
@@ -150,9 +166,11 @@ def draw_timeline(
             coll.set_gid(f"pipeprobe:columns:{i}")
             ax.add_collection(coll, autolim=False)
 
-    if path is not None and path is not False:
-        _draw_path(ax, lay, _path_nodes(run, path))
 
+def _label_lanes(ax: Axes, lay: TimelineLayout) -> None:
+    """Window, lane labels and separators, the axis label and the title with the span counts."""
+    lo, hi = lay.window_s
+    n = len(lay.lanes)
     ax.set_xlim(lo, hi)
     ax.set_ylim(max(n, 1) - 0.5, -0.5)  # first lane on top
     if not n:
@@ -169,17 +187,17 @@ def draw_timeline(
     if merged:
         note += f"; {merged:,} shorter than a pixel ({_fmt_s(lay.pixel_s)}) shown as stage shares per column"
     ax.set_title(f"Pipeline timeline, {_fmt_s(hi - lo)} window   ·   {note}", loc="left", fontsize=9)
-    _style(ax)
-    if legend and n:
-        used = set(bars["stage"].tolist()) | set(cols["stage"].tolist())
-        handles = [Patch(facecolor=colours[s], label=s) for k, s in enumerate(lay.stages) if k in used]
-        if len(st) or len(sc):
-            handles.append(Patch(facecolor=STALL_COLOUR, label="stall (consumer waits for input)"))
-        if path is not None and path is not False:
-            handles.append(mpl.lines.Line2D([], [], color=PATH_COLOUR, linewidth=2, label="critical path"))
-        ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.005, 1.0), frameon=False, fontsize=8,
-                  handlelength=1.2, title="stage", title_fontsize=8, alignment="left")
-    return ax
+
+
+def _draw_legend(ax: Axes, lay: TimelineLayout, colours: dict[str, str], with_path: bool) -> None:
+    used = set(lay.bars["stage"].tolist()) | set(lay.columns["stage"].tolist())
+    handles = [Patch(facecolor=colours[s], label=s) for k, s in enumerate(lay.stages) if k in used]
+    if len(lay.stalls) or len(lay.stall_columns):
+        handles.append(Patch(facecolor=STALL_COLOUR, label="stall (consumer waits for input)"))
+    if with_path:
+        handles.append(mpl.lines.Line2D([], [], color=PATH_COLOUR, linewidth=2, label="critical path"))
+    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.005, 1.0), frameon=False, fontsize=8,
+              handlelength=1.2, title="stage", title_fontsize=8, alignment="left")
 
 
 def _draw_path(ax: Axes, lay: TimelineLayout, nodes: pd.DataFrame) -> None:
@@ -187,13 +205,16 @@ def _draw_path(ax: Axes, lay: TimelineLayout, nodes: pd.DataFrame) -> None:
     lo, hi = lay.window_s
     if nodes.empty or not lay.lanes:
         return
-    keys = pd.MultiIndex.from_arrays(
-        [[lane.rank for lane in lay.lanes], [lane.pid for lane in lay.lanes], [lane.tid for lane in lay.lanes]]
-    )
+    th = lay.threads if lay.threads is not None else pd.DataFrame(
+        {"rank": [x.rank for x in lay.lanes], "pid": [x.pid for x in lay.lanes], "tid": [x.tid for x in lay.lanes],
+         "lane": np.arange(len(lay.lanes))})
+    keys = pd.MultiIndex.from_arrays([th["rank"].to_numpy(np.int64), th["pid"].to_numpy(np.int64),
+                                      th["tid"].to_numpy(np.int64)])
     rank = nodes["rank"].to_numpy(np.int64) if "rank" in nodes else np.zeros(len(nodes), np.int64)
-    y = keys.get_indexer(pd.MultiIndex.from_arrays(
+    at = keys.get_indexer(pd.MultiIndex.from_arrays(
         [rank, nodes["pid"].to_numpy(np.int64), nodes["tid"].to_numpy(np.int64)]
-    )).astype(float)
+    ))
+    y = np.where(at >= 0, th["lane"].to_numpy(np.int64)[np.maximum(at, 0)], -1).astype(float)
     s = nodes["start_s"].to_numpy(np.float64)
     e = nodes["end_s"].to_numpy(np.float64)
     ok = y >= 0

@@ -1,8 +1,10 @@
-"""Timeline layout: lanes, exact rectangles and merged pixel columns, as numbers.
+"""The timeline picture's pixel layout: lanes, exact rectangles and merged pixel columns, as numbers.
 
 The numpy/pandas half of :func:`pipeprobe.plot.draw_timeline`, kept apart
-from matplotlib so it can be tested and reused without drawing. Public
-names are re-exported by :mod:`pipeprobe.plot`.
+from matplotlib so it can be tested and reused without drawing. Lanes and
+their names come from :func:`pipeprobe.lanes.thread_lanes`, the same
+rule the dependency timeline uses. Public names are re-exported by
+:mod:`pipeprobe.plot`.
 """
 
 from __future__ import annotations
@@ -12,21 +14,24 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from .lanes import thread_lanes
 from .load import Run
 
-__all__ = ["TimelineLane", "TimelineLayout", "layout_timeline", "thread_lanes"]
+__all__ = ["TimelineLane", "TimelineLayout", "layout_timeline"]
 
 
 @dataclass(frozen=True)
 class TimelineLane:
-    """One lane of the timeline: a thread that recorded spans.
+    """One lane of the timeline: a thread that recorded spans, or the threads of one worker slot.
 
     Attributes
     ----------
     label : str
-        What the lane shows, e.g. ``"worker 1 (pid 4113)"``.
+        What the lane shows, e.g. ``"worker 1 (pid 4113)"``, or ``"worker 1
+        (pids 4113, 4120, 4127)"`` when a loader started a new worker
+        process in that slot each epoch.
     rank, pid, tid : int
-        Which thread.
+        Which thread (the first one, for a slot of several processes).
     is_consumer : bool
         True for the thread that waited for batches and ran steps.
     spans : int
@@ -46,6 +51,7 @@ class TimelineLane:
     spans: int
     exact: int
     merged: int
+    pids: tuple[int, ...] = ()
 
 
 @dataclass(frozen=True)
@@ -74,6 +80,8 @@ class TimelineLayout:
     stall_columns : DataFrame
         Shorter stall intervals, merged: ``lane, column, share`` (share of
         the column's time the consumer waited).
+    threads : DataFrame
+        Which lane each thread is drawn in: ``rank, pid, tid, lane``.
     """
 
     window_s: tuple[float, float]
@@ -84,6 +92,7 @@ class TimelineLayout:
     columns: pd.DataFrame
     stalls: pd.DataFrame
     stall_columns: pd.DataFrame
+    threads: pd.DataFrame | None = None
 
     @property
     def stall_s(self) -> float:
@@ -92,55 +101,26 @@ class TimelineLayout:
         return wide + float(self.stall_columns["share"].sum()) * self.pixel_s
 
 
-def thread_lanes(sp: pd.DataFrame) -> tuple[pd.DataFrame, np.ndarray]:
-    """Lanes in display order and each span's lane.
+def _slot_lanes(threads: pd.DataFrame, lane: np.ndarray) -> tuple[pd.DataFrame, np.ndarray, pd.DataFrame]:
+    """Merge threads that share a lane name (the worker processes of one slot, one per epoch) into one lane.
 
-    Per rank: the consumer thread(s) (which waited for batches or ran
-    steps) named ``main``, other threads of the training process ``main
-    thread k``, then loader workers ``worker k`` in the order they first
-    started work (``worker k thread t`` for extra threads), the names
-    :mod:`pipeprobe.timeline` gives its lanes.
+    Returns the lanes (``rank, pid, tid, consumer, name, pids``, in display
+    order), each span's lane, and each thread's lane (``rank, pid, tid, lane``).
     """
-    cols = ["rank", "pid", "tid", "consumer", "name"]
-    if not len(sp):
-        return pd.DataFrame({c: [] for c in cols}), np.zeros(0, np.int64)
-    grouped = sp.groupby(["rank", "pid", "tid"], sort=True, observed=True)
-    codes = grouped.ngroup().to_numpy(np.int64)
-    keys = grouped.size().index
-    n = len(keys)
-    stage = sp["stage"]
-    cons = np.bincount(codes[stage.isin(["wait", "step"]).to_numpy()], minlength=n) > 0
-    first = grouped["start_s"].min().to_numpy(np.float64)
-    worker = (sp["role"] == "worker").to_numpy()
-    is_worker = np.bincount(codes[worker], minlength=n) > 0
-    th = pd.DataFrame({
-        "code": np.arange(n), "rank": keys.get_level_values(0).to_numpy(np.int64),
-        "pid": keys.get_level_values(1).to_numpy(np.int64), "tid": keys.get_level_values(2).to_numpy(np.int64),
-        "consumer": cons, "first_s": first, "worker": is_worker & ~cons,
-    })
-    pid_first = th.groupby(["rank", "pid"])["first_s"].transform("min")
-    th = th.assign(pid_first=pid_first, group=np.where(th["consumer"], 0, np.where(th["worker"], 2, 1)))
-    th = th.sort_values(["rank", "group", "pid_first", "pid", "first_s", "tid"], kind="stable").reset_index(drop=True)
-    names = []
-    multi_rank = th["rank"].nunique() > 1
-    for rank, part in th.groupby("rank", sort=False):
-        prefix = f"rank {rank} " if multi_rank or rank else ""
-        k_main = 0
-        worker_no: dict[int, int] = {}
-        thread_no: dict[int, int] = {}
-        for worker, pid in zip(part["worker"], part["pid"], strict=True):
-            if not worker:
-                k_main += 1
-                names.append(prefix + ("main" if k_main == 1 else f"main thread {k_main}"))
-                continue
-            worker_no.setdefault(pid, len(worker_no) + 1)
-            thread_no[pid] = thread_no.get(pid, 0) + 1
-            t = thread_no[pid]
-            names.append(prefix + f"worker {worker_no[pid]}" + (f" thread {t}" if t > 1 else ""))
-    th["name"] = names
-    lane_of_code = np.empty(n, np.int64)
-    lane_of_code[th["code"].to_numpy()] = np.arange(n)
-    return th[cols], lane_of_code[codes]
+    code, _ = pd.factorize(threads["name"])  # names in display order of their first thread
+    per_thread = threads.assign(lane=code.astype(np.int64))
+    g = per_thread.groupby("lane", sort=True)
+    lanes = g.agg(rank=("rank", "first"), pid=("pid", "first"), tid=("tid", "first"), consumer=("consumer", "any"),
+                  name=("name", "first"))
+    lanes["pids"] = g["pid"].agg(lambda p: tuple(dict.fromkeys(int(x) for x in p)))
+    return lanes.reset_index(drop=True), code.astype(np.int64)[lane], per_thread[["rank", "pid", "tid", "lane"]]
+
+
+def _lane_label(name: str, pids: tuple[int, ...]) -> str:
+    if len(pids) == 1:
+        return f"{name} (pid {pids[0]})"
+    shown = ", ".join(str(p) for p in pids[:3])
+    return f"{name} (pids {shown}{', ...' if len(pids) > 3 else ''})"
 
 
 def _column_time(lane: np.ndarray, code: np.ndarray, s: np.ndarray, e: np.ndarray, lo: float, pixel_s: float,
@@ -169,11 +149,12 @@ def layout_timeline(
 ) -> TimelineLayout:
     """Compute the timeline's lanes, rectangles, merged columns and stall band.
 
-    Spans are grouped into lanes by thread ``(rank, pid, tid)``. Per rank,
-    the consumer thread (the one that waited for batches and ran steps) is
-    named ``main`` and comes first, then other threads of the training
-    process, then loader workers ``worker 1, 2, ...`` in the order they
-    first started work, the lane names of :mod:`pipeprobe.timeline`.
+    Spans are grouped into lanes by thread ``(rank, pid, tid)``, named and
+    ordered by :func:`pipeprobe.lanes.thread_lanes` (the dependency
+    timeline's lanes): per rank, the consumer thread (the one that waited
+    for batches and ran steps) ``main`` first, then other threads of the
+    training process, then loader workers ``worker 1, 2, ...`` in the order
+    they first started work.
     A span at least one pixel column wide (``pixel_s = window / resolution_px``)
     becomes its own rectangle. Shorter spans cannot be told apart at this
     zoom, so their time is added, per lane and stage, to the pixel columns
@@ -227,7 +208,7 @@ def layout_timeline(
             raise ValueError(f"window_s must be (start, end) with end > start, got {window_s!r}")
     pixel_s = (hi - lo) / resolution_px
 
-    threads, lane = thread_lanes(sp)
+    threads, lane, per_thread = _slot_lanes(*thread_lanes(sp))
     stage_arr = sp["stage"].astype(str).to_numpy() if len(sp) else np.zeros(0, object)
     is_wait = stage_arr == "wait"
 
@@ -274,12 +255,12 @@ def layout_timeline(
     n_exact = np.bincount(ln[wide], minlength=n_lanes)
     lanes = [
         TimelineLane(
-            label=f"{name} (pid {p})", rank=int(r), pid=int(p), tid=int(t), is_consumer=bool(c),
-            spans=int(n_in[i]), exact=int(n_exact[i]), merged=int(n_in[i] - n_exact[i]),
+            label=_lane_label(name, pids), rank=int(r), pid=int(p), tid=int(t), is_consumer=bool(c),
+            spans=int(n_in[i]), exact=int(n_exact[i]), merged=int(n_in[i] - n_exact[i]), pids=pids,
         )
-        for i, (r, p, t, c, name) in enumerate(threads.itertuples(index=False))
+        for i, (r, p, t, c, name, pids) in enumerate(threads.itertuples(index=False))
     ]
     return TimelineLayout(
         window_s=(lo, hi), pixel_s=pixel_s, lanes=lanes, stages=stages,
-        bars=bars, columns=columns, stalls=stalls, stall_columns=stall_columns,
+        bars=bars, columns=columns, stalls=stalls, stall_columns=stall_columns, threads=per_thread,
     )
