@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 
 import pytest
@@ -92,7 +93,7 @@ def _exit(argv):
 
 def test_compare_escapes_control_characters(tmp_path, capsys):
     """Stage names with a clear-screen sequence print as visible escapes in `compare` (common practice)."""
-    rows = [(r[0], "dec\x1b[2Jode" if r[1] == "decode" else r[1], *r[2:]) for r in simple_pipeline()[100]]
+    rows = [dataclasses.replace(r, stage="dec\x1b[2Jode") if r.stage == "decode" else r for r in simple_pipeline()[100]]
     a = write_run(tmp_path / "a", {100: rows})
     b = write_run(tmp_path / "b", {100: rows})
     assert EXIT_OK == main(["compare", str(a), str(b)])

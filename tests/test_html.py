@@ -87,7 +87,7 @@ class TestEscaping:
 
     def test_control_characters_show_as_escapes(self, tmp_path: Path) -> None:
         """A stage named with a terminal escape shows as visible text in the page, never as a raw control byte."""
-        rows = [(r[0], "dec\x1b[2Jode" if r[1] == "decode" else r[1], *r[2:]) for r in simple_pipeline()[100]]
+        rows = [dataclasses.replace(r, stage="dec\x1b[2Jode") if r.stage == "decode" else r for r in simple_pipeline()[100]]
         import warnings
 
         with warnings.catch_warnings():  # matplotlib may lack a glyph for ESC in the chart labels

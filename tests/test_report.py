@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import io
 import json
 
@@ -72,7 +73,7 @@ class TestText:
         """A stage named with a clear-screen sequence and a newline prints as visible escapes (common practice)."""
         from _synth import simple_pipeline, write_run
 
-        rows = [(r[0], "dec\x1b[2J\nforged" if r[1] == "decode" else r[1], *r[2:]) for r in simple_pipeline()[100]]
+        rows = [dataclasses.replace(r, stage="dec\x1b[2J\nforged") if r.stage == "decode" else r for r in simple_pipeline()[100]]
         text = format_report(analyze(write_run(tmp_path / "run\x07x", {100: rows})))
         assert (False, False, True) == ("\x1b" in text, "\x07" in text, "dec\\x1b[2J\\x0aforged" in text)
 
