@@ -36,8 +36,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
 from _synth import write_many_spans  # noqa: E402
 
 import pipeprobe  # noqa: E402
-from pipeprobe.replay import build_plan, replay  # noqa: E402
 from pipeprobe.whatif import sweep  # noqa: E402
+from pipeprobe.whatif.engine import replay  # noqa: E402
+from pipeprobe.whatif.plan import build_plan  # noqa: E402
 
 SCENARIOS = (
     [{"faster": {s: k}} for s in ("read", "decode", "augment") for k in (2.0, 4.0, math.inf)]
@@ -82,7 +83,7 @@ def bench_cpu_contention(batches: int, repeat: int) -> None:
     """Replay with CPU times and more CPU-bound workers than cores: the processor-sharing path."""
     import numpy as np
 
-    from pipeprobe.replay import plan_from_durations
+    from pipeprobe.whatif.plan import plan_from_durations
 
     rng = np.random.default_rng(0)
     task, step = rng.exponential(0.001, batches), rng.exponential(0.0003, batches)

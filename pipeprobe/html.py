@@ -114,8 +114,8 @@ def _x(value: float) -> str:
 def _ceilings_section(analysis: Any, dpi: int) -> str:
     """Amdahl ceilings next to the replayed speed-ups, as a table and a chart."""
     from . import plot
-    from .ceilings import ceilings
     from .errors import PipeprobeError
+    from .whatif.ceilings import ceilings
 
     try:
         c = ceilings(analysis.run, analysis=analysis)

@@ -17,8 +17,8 @@ from dataclasses import dataclass
 from typing import Any, Callable, TextIO
 
 from .analysis import Analysis, analyze
-from .ceilings import section_data as _ceilings_data
-from .ceilings import section_lines as _ceilings_text
+from .whatif.ceilings import section_data as _ceilings_data
+from .whatif.ceilings import section_lines as _ceilings_text
 
 __all__ = [
     "Section",

@@ -28,7 +28,7 @@ ARRAYS = ("request_s", "start_s", "end_s", "available_s", "wait_start_s", "ready
 
 
 def _synthetic(seed: int, n: int, cpu: float, epochs: int, **config: Any) -> Any:
-    from pipeprobe.replay import plan_from_durations
+    from pipeprobe.whatif.plan import plan_from_durations
 
     rng = np.random.default_rng(seed)
     task = rng.exponential(0.02, n)
@@ -38,7 +38,7 @@ def _synthetic(seed: int, n: int, cpu: float, epochs: int, **config: Any) -> Any
 
 
 def _staged(seed: int, n: int) -> Any:
-    from pipeprobe.replay import plan_from_durations
+    from pipeprobe.whatif.plan import plan_from_durations
 
     rng = np.random.default_rng(seed)
     stages = {"read": rng.exponential(0.002, n), "decode": rng.exponential(0.01, n), "augment": rng.uniform(0, 0.01, n)}
@@ -50,7 +50,7 @@ def _staged(seed: int, n: int) -> Any:
 
 def _recorded(name: str) -> Any:
     import pipeprobe
-    from pipeprobe.replay import build_plan
+    from pipeprobe.whatif.plan import build_plan
 
     return build_plan(pipeprobe.load(RECORDED / name))
 
@@ -107,7 +107,7 @@ def _plain(x: Any) -> Any:
 
 def replay_case(plan: Any, scenario: dict[str, Any]) -> dict[str, Any]:
     """The replay of one scenario as plain JSON values."""
-    from pipeprobe.replay import replay
+    from pipeprobe.whatif.engine import replay
 
     r = replay(plan, **scenario)
     out = {"wall_s": r.wall_s, "stall_s": r.stall_s, "batch_id": r.batch_id, "worker": r.worker,

@@ -1,4 +1,4 @@
-"""Tests of the per-stage ceilings (pipeprobe.ceilings) and their report section.
+"""Tests of the per-stage ceilings (pipeprobe.whatif.ceilings) and their report section.
 
 Outside references: Amdahl's law (Amdahl 1967), exact for a serial
 pipeline; the bottleneck law (Denning and Buzen 1978) for the worker count
@@ -13,9 +13,9 @@ import pytest
 
 import pipeprobe
 from pipeprobe.analysis import analyze
-from pipeprobe.ceilings import ceilings, format_ceilings
-from pipeprobe.replay import plan_from_durations
 from pipeprobe.report import format_report, report_dict
+from pipeprobe.whatif.ceilings import ceilings, format_ceilings
+from pipeprobe.whatif.plan import plan_from_durations
 
 
 class TestSerialPipeline:

@@ -1,4 +1,4 @@
-"""Tests of the discrete-event replay (pipeprobe.replay).
+"""Tests of the discrete-event replay (pipeprobe.whatif.plan, .engine and their private helpers).
 
 Outside references: hand-computed schedules; a SimPy model of the same
 pipeline (SimPy, the reference discrete-event simulation library); the
@@ -9,25 +9,24 @@ et al. 1984, Quantitative System Performance, ch. 5); Little's law
 
 from __future__ import annotations
 
+import json
 import math
 from pathlib import Path
 
 import numpy as np
 import pytest
 import simpy
+from _replay_cases import CASES, GOLDEN, plan_summary, replay_case
 from _synth import record_pool_run, write_run
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
 import pipeprobe
-from pipeprobe.amdahl import bottleneck_throughput, queue_statistics
 from pipeprobe.errors import ScenarioError
-from pipeprobe.replay import (
-    CONSUMER_OVERHEAD,
-    build_plan,
-    plan_from_durations,
-    replay,
-)
+from pipeprobe.whatif._replay_path import CONSUMER_OVERHEAD
+from pipeprobe.whatif.engine import replay
+from pipeprobe.whatif.laws import bottleneck_throughput, queue_statistics
+from pipeprobe.whatif.plan import build_plan, plan_from_durations
 
 INF = math.inf
 
@@ -288,3 +287,15 @@ class TestDemoRun:
                 break
         assert min(errors) <= 0.03, errors
         assert max(errors) <= 0.10, errors
+
+
+class TestSameResultsAsBefore:
+    @pytest.mark.parametrize("case", sorted(CASES))
+    def test_engine_rewrite_replays_the_same_times(self, case):
+        """Every replayed time, worker and critical-path second equals what the engine of commit a776c4c gave
+        (tests/data/replay_golden.json, written by tests/_replay_cases.py before the rewrite)."""
+        make, scenarios = CASES[case]
+        golden = json.loads(GOLDEN.read_text())[case]
+        plan = make()
+        assert golden["plan"] == plan_summary(plan)
+        assert golden["replays"] == [replay_case(plan, s) for s in scenarios]

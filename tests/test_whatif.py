@@ -1,4 +1,4 @@
-"""Tests of what-if scenarios (pipeprobe.whatif) and the ``pipeprobe whatif`` command.
+"""Tests of what-if scenarios (pipeprobe.whatif.scenario, .predict) and the ``pipeprobe whatif`` command.
 
 Outside references: hand-computed schedules of exact synthetic traces;
 Amdahl's law (Amdahl 1967) for a serial pipeline, where it holds exactly;
@@ -64,12 +64,12 @@ class TestPredictions:
         assert p.measured_wall_s == pytest.approx(p.predicted_wall_s)
         assert 1.0 == pytest.approx(p.predicted_speedup)
 
-    def test_run_method_is_the_same_prediction(self, simple_run_dir):
-        """`run.whatif(...)` gives the same prediction as `pipeprobe.whatif(run, ...)`."""
+    def test_top_level_function_is_the_same_prediction(self, simple_run_dir):
+        """`pipeprobe.whatif(run, ...)` (the function re-exported at the top) is `pipeprobe.whatif.whatif`."""
         run = pipeprobe.load(simple_run_dir)
-        by_method = run.whatif(faster={"decode": math.inf})
-        assert whatif(run, faster={"decode": math.inf}).predicted_wall_s == by_method.predicted_wall_s
-        assert 1.5 == pytest.approx(by_method.predicted_speedup)
+        by_top = pipeprobe.whatif(run, faster={"decode": math.inf})
+        assert whatif(run, faster={"decode": math.inf}).predicted_wall_s == by_top.predicted_wall_s
+        assert 1.5 == pytest.approx(by_top.predicted_speedup)
 
     def test_serial_pipeline_follows_amdahl(self, simple_run_dir):
         """In a serial pipeline Amdahl's law is exact (Amdahl 1967): decode is 18 of 54 ms, free -> 1.5x."""
@@ -193,3 +193,26 @@ class TestRealRerun:
         )
         measured = statistics.median(run.wall_s for run in b)
         assert measured == pytest.approx(predicted, rel=0.30)
+
+
+class TestImportForms:
+    def test_function_and_subpackage_both_reachable(self):
+        """`pipeprobe.whatif(...)` is the function while `from pipeprobe.whatif(.plan) import ...` still finds the
+        subpackage: the documented resolution of the shared name."""
+        import importlib
+
+        from pipeprobe.whatif import Prediction
+        from pipeprobe.whatif.plan import build_plan
+
+        package = importlib.import_module("pipeprobe.whatif")
+        assert (whatif, Prediction, build_plan) == (pipeprobe.whatif, package.Prediction, package.plan.build_plan)
+
+    def test_merge_layer_does_not_import_the_whatif_layer(self):
+        """load.py stands below the what-if layer (no load -> whatif -> load cycle): it imports nothing from it."""
+        import ast
+        from pathlib import Path
+
+        tree = ast.parse((Path(pipeprobe.__file__).parent / "load.py").read_text())
+        imported = [n.module or "" for n in ast.walk(tree) if isinstance(n, ast.ImportFrom)]
+        imported += [a.name for n in ast.walk(tree) if isinstance(n, ast.Import) for a in n.names]
+        assert [] == [m for m in imported if "whatif" in m or "replay" in m or "ceilings" in m]

@@ -6,7 +6,7 @@ For every stage of a run, :func:`ceilings` gives
   ``1 / (1 - p)`` (what making the stage free could give if nothing else
   changed);
 * the replayed speed-up if the stage cost nothing, and if it got 2x and 4x
-  faster (:mod:`pipeprobe.replay`);
+  faster (:mod:`pipeprobe.whatif.engine`);
 * the stage that leads the replayed critical path once this one is free
   (the path shifts);
 
@@ -31,12 +31,14 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from .amdahl import amdahl_ceiling
-from .replay import PSEUDO_STAGES, ReplayPlan, _Work, build_plan, replay
+from ._replay_path import PSEUDO_STAGES
+from .engine import replay
+from .laws import amdahl_ceiling
+from .plan import ReplayPlan, build_plan
 
 if TYPE_CHECKING:  # pragma: no cover
-    from .analysis import Analysis
-    from .load import Run
+    from ..analysis import Analysis
+    from ..load import Run
 
 __all__ = ["StageCeiling", "Ceilings", "ceilings", "format_ceilings", "section_lines", "section_data", "HIDE_TOLERANCE"]
 
@@ -115,7 +117,7 @@ class Ceilings:
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict (infinities as the string "inf")."""
-        from .whatif import _jsonable
+        from .predict import _jsonable
 
         return _jsonable(asdict(self))
 
@@ -146,7 +148,7 @@ def ceilings(run: Run | ReplayPlan, *, analysis: Analysis | None = None,
     Examples
     --------
     >>> import pipeprobe, tempfile, time
-    >>> from pipeprobe.ceilings import ceilings
+    >>> from pipeprobe.whatif.ceilings import ceilings
     >>> d = tempfile.mkdtemp()
     >>> def batches():
     ...     for i in range(4):
@@ -307,8 +309,7 @@ def _head(plan: ReplayPlan, n: int) -> ReplayPlan:
     cut = {f: getattr(plan, f)[:n] for f in ("batch_id", "epoch")}
     notes = plan.notes + [f"ceilings replay the first {n} of {plan.batches} batches"]
     return replace(
-        plan, **cut, loader=_Work(plan.loader.names, plan.loader.io_s[:n], plan.loader.cpu_s[:n]),
-        consumer=_Work(plan.consumer.names, plan.consumer.io_s[:n], plan.consumer.cpu_s[:n]),
+        plan, **cut, loader=plan.loader.head(n), consumer=plan.consumer.head(n),
         epoch_dispatch_s=plan.epoch_dispatch_s[:epochs], notes=notes,
     )
 
