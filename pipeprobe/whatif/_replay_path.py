@@ -46,6 +46,11 @@ class _On(enum.Enum):
     LOADER_TASK = "a batch's loader task"
 
 
+# The members as module names: an enum member lookup costs several times a global one, and the walk
+# tests one at every step (hoisted for speed).
+_CONSUMER_WORK, _TAKE, _WAIT, _LOADER_TASK = _On.CONSUMER_WORK, _On.TAKE, _On.WAIT, _On.LOADER_TASK
+
+
 def critical_path(log: BatchLog, times: dict[str, np.ndarray], *, workers: int, wall: float, tail_s: float,
                   loader: Work, consumer: Work) -> dict[str, float]:
     """Seconds of the replayed wall time on the critical path, per stage.
@@ -82,40 +87,40 @@ def _walk_back(workers: int, log: BatchLog, times: dict[str, np.ndarray],
     position = {b: k for k, b in enumerate(taken)}
     loader_path: list[tuple[int, float]] = []
     consumer_path: list[tuple[int, float]] = []
-    on, x = _On.CONSUMER_WORK, len(taken) - 1
+    on, x = _CONSUMER_WORK, len(taken) - 1
     for _ in range(8 * len(taken) + 8):  # every batch is visited at most once per kind
-        if on is _On.CONSUMER_WORK:  # x: position in the consumer's order
+        if on is _CONSUMER_WORK:  # x: position in the consumer's order
             b = taken[x]
             consumer_path.append((b, done[b] - ready[b]))
-            on, x = _On.TAKE, b
-        elif on is _On.TAKE:  # x: the batch taken, set by its arrival or by the consumer
+            on, x = _TAKE, b
+        elif on is _TAKE:  # x: the batch taken, set by its arrival or by the consumer
             if workers == 0 or log.ready_by_batch[x]:
                 if workers > 0:
                     _add(acc, HANDOFF, ready[x] - end[x])
-                on = _On.LOADER_TASK
+                on = _LOADER_TASK
             else:
                 _add(acc, CONSUMER_OVERHEAD, ready[x] - wstart[x])
-                on, x = _On.WAIT, position[x]
-        elif on is _On.WAIT:  # x: position whose wait began
+                on, x = _WAIT, position[x]
+        elif on is _WAIT:  # x: position whose wait began
             if x == 0:
                 _add(acc, START_UP, wstart[taken[0]])
                 break
-            on, x = _On.CONSUMER_WORK, x - 1
+            on, x = _CONSUMER_WORK, x - 1
         else:  # loader task of batch x
             b = x
             loader_path.append((b, end[b] - start[b]))
             before = log.previous_on_worker[b]
             if workers == 0:
-                on, x = _On.WAIT, position[b]
+                on, x = _WAIT, position[b]
             elif log.started_by_worker[b] and before >= 0:
                 _add(acc, WORKER_OVERHEAD, start[b] - end[before])
                 x = before
             else:
                 _add(acc, DISPATCH, start[b] - req[b])
                 if log.requested_after[b] >= 0:
-                    on, x = _On.TAKE, log.requested_after[b]
+                    on, x = _TAKE, log.requested_after[b]
                 else:
-                    on, x = _On.WAIT, log.requested_at_wait[b]
+                    on, x = _WAIT, log.requested_at_wait[b]
     return loader_path, consumer_path
 
 

@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import enum
 import heapq
+import itertools
 import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Callable, Mapping
@@ -205,6 +206,14 @@ class ConsumerState(enum.Enum):
     LOADING = "loading its batch itself (no workers)"
 
 
+# The members as module names: an enum member lookup costs several times a global one, and the
+# handlers test the state at every event (hoisted for speed).
+_BUSY = ConsumerState.BUSY
+_WAITING_FOR_BATCH = ConsumerState.WAITING_FOR_BATCH
+_WAITING_FOR_ANY = ConsumerState.WAITING_FOR_ANY
+_LOADING = ConsumerState.LOADING
+
+
 class EventQueue:
     """Future events in time order: ``(time, seq, handler, arg)`` on a heap.
 
@@ -221,12 +230,11 @@ class EventQueue:
 
     def __init__(self) -> None:
         self._heap: list[tuple[float, int, Callable[..., None], int]] = []
-        self._seq = 0
+        self._seq = itertools.count()  # ties in time go in the order they were scheduled
 
     def schedule(self, time: float, handler: Callable[..., None], arg: Any) -> None:
         """Call ``handler(time, arg)`` at ``time``, after the events already scheduled for that time."""
-        self._seq += 1
-        heapq.heappush(self._heap, (time, self._seq, handler, arg))
+        heapq.heappush(self._heap, (time, next(self._seq), handler, arg))
 
     def next_time(self) -> float:
         """Time of the next event (``inf`` when none is left)."""
@@ -289,6 +297,12 @@ def _nominal(work: Work) -> tuple[list[float], list[float]]:
 class _Replayer:
     """One replay: the state of the loader, the consumer and the cores, and a handler per event kind."""
 
+    __slots__ = ("plan", "n", "workers", "prefetch", "in_order", "barrier", "loader_work", "consumer_work",
+                 "task_s", "task_u", "work_s", "work_u", "epoch_first", "epoch_list", "epoch_index", "epoch_stop",
+                 "epoch_dispatch", "handoff", "latency", "worker_gap", "dispatch", "policy", "queue", "cpu", "log",
+                 "consumer", "state", "waiting_for", "wait_began", "ready_pool", "next_request", "last_task_of",
+                 "finished_at")
+
     def __init__(self, plan: ReplayPlan, loader: Work, consumer: Work, settings: Settings) -> None:
         self.plan = plan
         self.n = nb = plan.batches
@@ -311,12 +325,13 @@ class _Replayer:
         self.epoch_dispatch = plan.epoch_dispatch_s.tolist()
         self.handoff = plan.handoff_s if W else 0.0
         self.latency = plan.latency_s if W else 0.0
+        self.worker_gap, self.dispatch = plan.worker_gap_s, plan.dispatch_s
         self.policy = make_policy(settings.policy, W, index.tolist())
         self.queue = EventQueue()
         self.cpu = CpuShare(settings.cores, W + 1)
         self.log = BatchLog(nb)
         self.consumer = W  # the consumer's entity on the cores; workers are 0 .. W - 1
-        self.state = ConsumerState.BUSY
+        self.state = _BUSY
         self.waiting_for = -1  # batch the consumer waits for, in order
         self.wait_began = 0.0  # when the consumer began waiting for any batch
         self.ready_pool: list[tuple[float, int]] = []  # out of order: available, not taken
@@ -326,17 +341,25 @@ class _Replayer:
 
     def run(self) -> dict[str, Any]:
         """Replay to the end; the fields of :class:`Replay` but ``config``."""
-        queue, cpu = self.queue, self.cpu
-        queue.schedule(self.plan.start_up_s, self._on_resume, 0)
+        self.queue.schedule(self.plan.start_up_s, self._on_resume, 0)
+        # Inlined for speed (this loop turns a few times per batch): EventQueue.next_time and run_next,
+        # and CpuShare.next_finish, reading the heap and the finish times directly.
+        heap, finish, pop, inf = self.queue._heap, self.cpu.finish, heapq.heappop, math.inf
+        on_task_finished = self._on_task_finished
         while True:
-            t_event = queue.next_time()
-            t_cpu, entity = cpu.next_finish()
-            if t_cpu == math.inf and t_event == math.inf:
+            t_event = heap[0][0] if heap else inf
+            if finish:
+                entity = min(finish, key=finish.__getitem__)
+                t_cpu = finish[entity]
+                if t_cpu <= t_event:  # a task ending on the CPU goes before an event at the same time
+                    if t_cpu == inf:
+                        break
+                    on_task_finished(t_cpu, entity)
+                    continue
+            if t_event == inf:
                 break
-            if t_cpu <= t_event:  # a task ending on the CPU goes before an event at the same time
-                self._on_task_finished(t_cpu, entity)
-            else:
-                queue.run_next()
+            time, _, handler, arg = pop(heap)
+            handler(time, arg)
         return self._result()
 
     # ---- event handlers ------------------------------------------------------------------------
@@ -347,7 +370,7 @@ class _Replayer:
         if self.workers == 0:  # no workers: the consumer loads batch k itself
             log.wait_start_s[k] = log.start_s[k] = log.request_s[k] = now
             self.cpu.start(self.consumer, k, self.task_s[k], self.task_u[k], now)
-            self.state = ConsumerState.LOADING
+            self.state = _LOADING
             return
         if (k == 0 or (self.barrier and self.epoch_first[k])) and self.next_request == k:
             self._fill_at_epoch_start(k, now)
@@ -355,16 +378,16 @@ class _Replayer:
             log.wait_start_s[k] = now
             if log.available_s[k] <= now:  # already there (False while NaN: not yet)
                 self.queue.schedule(now + self.handoff, self._on_handoff, k)
-                self.state = ConsumerState.BUSY
+                self.state = _BUSY
             else:
-                self.state, self.waiting_for = ConsumerState.WAITING_FOR_BATCH, k
+                self.state, self.waiting_for = _WAITING_FOR_BATCH, k
         elif self.ready_pool:
             _, b = heapq.heappop(self.ready_pool)
             log.wait_start_s[b] = now
             self.queue.schedule(now + self.handoff, self._on_handoff, b)
-            self.state = ConsumerState.BUSY
+            self.state = _BUSY
         else:
-            self.state, self.wait_began = ConsumerState.WAITING_FOR_ANY, now
+            self.state, self.wait_began = _WAITING_FOR_ANY, now
 
     def _on_dispatchable(self, now: float, b: int) -> None:
         """The request for batch ``b`` reached the workers."""
@@ -383,17 +406,24 @@ class _Replayer:
         log = self.log
         log.available_s[b] = now
         if self.in_order:
-            if self.state is ConsumerState.WAITING_FOR_BATCH and self.waiting_for == b:
+            if self.state is _WAITING_FOR_BATCH and self.waiting_for == b:
                 self._hand_over(b, now)
-        elif self.state is ConsumerState.WAITING_FOR_ANY:
+        elif self.state is _WAITING_FOR_ANY:
             log.wait_start_s[b] = self.wait_began
             self._hand_over(b, now)
         else:
             heapq.heappush(self.ready_pool, (now, b))
 
     def _on_handoff(self, now: float, b: int) -> None:
-        """The consumer takes batch ``b``."""
-        self._take(b, now)
+        """The consumer takes batch ``b``: request the next batch, then start its work on ``b``."""
+        log = self.log
+        log.ready_s[b] = now
+        log.taken_order.append(b)
+        nr = self.next_request
+        if self.workers and nr < self.n and (not self.barrier or self.epoch_list[nr] == self.epoch_list[b]):
+            self.next_request = nr + 1
+            self._request(nr, now, after=b, at_wait=-1)
+        self.cpu.start(self.consumer, b, self.work_s[b], self.work_u[b], now)
 
     def _on_task_finished(self, now: float, entity: int) -> None:
         """A task ends on the CPU: a worker's loader task, the consumer's work, or its own loading."""
@@ -401,13 +431,14 @@ class _Replayer:
         log = self.log
         if entity != self.consumer:
             log.end_s[b] = now
-            self.queue.schedule(now + self.latency, self._on_available, b)
-            self.queue.schedule(now + self.plan.worker_gap_s, self._on_worker_ready, entity)
-        elif self.state is ConsumerState.LOADING:  # loaded in the loop: take it, then work on it
+            schedule = self.queue.schedule
+            schedule(now + self.latency, self._on_available, b)
+            schedule(now + self.worker_gap, self._on_worker_ready, entity)
+        elif self.state is _LOADING:  # loaded in the loop: take it, then work on it
             log.end_s[b] = log.available_s[b] = now
             log.ready_by_batch[b] = True
-            self.state = ConsumerState.BUSY
-            self._take(b, now)
+            self.state = _BUSY
+            self._on_handoff(now, b)  # taken at once, no handoff
         else:
             log.done_s[b] = now
             k = len(log.taken_order)  # batches taken so far = the position the consumer asks for next
@@ -422,19 +453,8 @@ class _Replayer:
         """The consumer, waiting, gets batch ``b``: after the handoff cost counted from its wait."""
         t = max(now, self.log.wait_start_s[b] + self.handoff)
         self.log.ready_by_batch[b] = t == now
-        self.state = ConsumerState.BUSY
+        self.state = _BUSY
         self.queue.schedule(t, self._on_handoff, b)
-
-    def _take(self, b: int, now: float) -> None:
-        """The consumer has batch ``b``: request the next batch, then start its work on ``b``."""
-        log = self.log
-        log.ready_s[b] = now
-        log.taken_order.append(b)
-        nr = self.next_request
-        if self.workers and nr < self.n and (not self.barrier or self.epoch_list[nr] == self.epoch_list[b]):
-            self.next_request = nr + 1
-            self._request(nr, now, after=b, at_wait=-1)
-        self.cpu.start(self.consumer, b, self.work_s[b], self.work_u[b], now)
 
     def _fill_at_epoch_start(self, k: int, now: float) -> None:
         """At the start of the run (or of an epoch, behind a barrier) request up to ``prefetch`` batches."""
@@ -450,7 +470,7 @@ class _Replayer:
         log.request_s[b] = now
         log.requested_after[b] = after
         log.requested_at_wait[b] = at_wait
-        delay = self.epoch_dispatch[self.epoch_index[b]] if after < 0 else self.plan.dispatch_s
+        delay = self.epoch_dispatch[self.epoch_index[b]] if after < 0 else self.dispatch
         self.policy.request(b)
         self.queue.schedule(now + delay, self._on_dispatchable, b)
 
