@@ -216,3 +216,101 @@ class TestImportForms:
         imported = [n.module or "" for n in ast.walk(tree) if isinstance(n, ast.ImportFrom)]
         imported += [a.name for n in ast.walk(tree) if isinstance(n, ast.Import) for a in n.names]
         assert [] == [m for m in imported if "whatif" in m or "replay" in m or "ceilings" in m]
+
+
+class TestAbsurdNumbers:
+    @pytest.mark.parametrize(
+        "kwargs,limit",
+        [
+            ({"workers": 10_000_000}, "from 0 to 1024"),
+            ({"workers": 10**9}, "from 0 to 1024"),
+            ({"prefetch": 10**9}, "from 1 to 100000"),
+            ({"recorded_workers": 10**9}, "from 0 to 1024"),
+            ({"recorded_prefetch": 10**12}, "from 1 to 100000"),
+            ({"cores": 1e12}, "from 0.01 to 100000"),
+            ({"cores": 1e-6}, "from 0.01 to 100000"),
+            ({"faster": {"decode": 5e-324}}, "at least 0.001"),
+            ({"faster": {"decode": 1e300}}, "write inf"),
+            ({"offload": {"decode": 1e-9}}, "at least 0.001"),
+        ],
+    )
+    def test_out_of_range_is_refused_naming_the_limit(self, simple_run_dir, kwargs, limit):
+        """Counts and factors past the documented limits are refused at once with a one-line error naming them."""
+        with pytest.raises(ScenarioError, match=limit) as e:
+            whatif(simple_run_dir, **kwargs)
+        assert 1 == len(str(e.value).splitlines())
+
+    def test_a_slower_stage_predicts_a_slow_down(self, simple_run_dir):
+        """A factor below 1 makes the stage slower: decode 1000x slower in a serial run (18 of 54 ms) gives
+        54 / (36 + 18000) ms, by hand (Amdahl 1967 with factor 1/1000)."""
+        p = whatif(simple_run_dir, faster={"decode": 0.001})
+        assert pipeprobe.amdahl_speedup(18 / 54, 0.001) == pytest.approx(p.predicted_speedup)
+        assert p.predicted_speedup < 1
+
+    def test_the_largest_factor_stays_below_free(self, simple_run_dir):
+        """A million times faster is just short of free (Amdahl 1967: 1 / (36/54 + 18/54 / 1e6))."""
+        p = whatif(simple_run_dir, faster={"decode": 1e6})
+        assert pipeprobe.amdahl_speedup(18 / 54, 1e6) == pytest.approx(p.predicted_speedup)
+
+    @pytest.mark.parametrize(
+        "args",
+        [
+            ["--workers", "10000000"],
+            ["--recorded-workers", "1000000000"],
+            ["--prefetch", "1000000000"],
+            ["--cores", "1e12"],
+            ["--faster", "decode=5e-324"],
+            ["--faster", "decode=1e300"],
+            ["--prefetch-per-worker", "0"],
+            ["--prefetch", "4", "--prefetch-per-worker", "2"],
+        ],
+    )
+    def test_command_line_refuses_them_with_exit_2(self, simple_run_dir, capsys, args):
+        """On the command line the same limits give one error line and exit code 2."""
+        assert 2 == main(["whatif", str(simple_run_dir), *args])
+        err = capsys.readouterr().err.strip()
+        assert 1 == len(err.splitlines()) and "Traceback" not in err
+
+
+class TestCommandLineForms:
+    def test_options_before_the_run_folder(self, simple_run_dir, capsys):
+        """`pipeprobe whatif --faster decode=inf RUN` works like `pipeprobe whatif RUN --faster decode=inf`."""
+        assert 0 == main(["whatif", "--faster", "decode=inf", "augment=2", str(simple_run_dir), "--json"])
+        before = json.loads(capsys.readouterr().out)
+        assert 0 == main(["whatif", str(simple_run_dir), "--faster", "decode=inf", "augment=2", "--json"])
+        assert json.loads(capsys.readouterr().out) == before
+
+    def test_plain_option_before_the_run_folder(self, simple_run_dir, capsys):
+        """`pipeprobe whatif --workers 2 RUN` works."""
+        assert 0 == main(["whatif", "--workers", "2", "--prefetch", "2", str(simple_run_dir)])
+        assert "workers=2" in capsys.readouterr().out
+
+    def test_missing_run_folder_is_one_line(self, capsys):
+        """Without a run folder the command says how to give one and exits 2."""
+        assert 2 == main(["whatif", "--faster", "decode=2"])
+        assert "give the run folder" in capsys.readouterr().err
+
+    def test_text_shows_the_recorded_configuration(self, tmp_path, capsys):
+        """The text output states the workers, prefetch and cores the prediction assumed."""
+        from _synth import record_pool_run
+
+        run_dir = record_pool_run(tmp_path / "run", workers=2, prefetch=4, epochs=1, batches_per_epoch=6)
+        assert 0 == main(["whatif", str(run_dir), "--workers", "3", "--recorded-prefetch", "4"])
+        recorded = next(line for line in capsys.readouterr().out.splitlines() if "recorded:" in line)
+        assert recorded.strip().startswith("recorded: 2 workers, prefetch 4 batches in flight, ")
+        assert " cores" in recorded
+
+    def test_per_worker_prefetch_is_torch_prefetch_factor(self, simple_run_dir, capsys):
+        """--prefetch-per-worker K means workers x K batches in flight (torch DataLoader's prefetch_factor,
+        common practice: each worker keeps prefetch_factor batches loaded ahead)."""
+        assert 0 == main(["whatif", str(simple_run_dir), "--workers", "3", "--prefetch-per-worker", "2", "--json"])
+        assert 6 == json.loads(capsys.readouterr().out)["scenario"]["prefetch"]
+
+    def test_recorded_per_worker_prefetch(self, tmp_path, capsys):
+        """--recorded-prefetch-per-worker K sets the recorded depth to recorded workers x K."""
+        from _synth import record_pool_run
+
+        run_dir = record_pool_run(tmp_path / "run", workers=2, prefetch=4, epochs=1, batches_per_epoch=6)
+        assert 0 == main(["whatif", str(run_dir), "--recorded-prefetch-per-worker", "2", "--json"])
+        recorded = json.loads(capsys.readouterr().out)["recorded"]
+        assert (2, 4, False) == (recorded["workers"], recorded["prefetch"], recorded["prefetch_inferred"])

@@ -143,6 +143,9 @@ class ReplayPlan:
         keep its share however many threads this run adds.)
     prefetch_inferred : bool
         The recorded prefetch depth was inferred from the trace (not given).
+    folded_stages : tuple of str
+        Stage names replayed together as ``"(other stages)"`` (a side had
+        more than :data:`~pipeprobe.whatif.limits.MAX_PLAN_STAGES` of them).
     """
 
     batch_id: np.ndarray
@@ -167,6 +170,7 @@ class ReplayPlan:
     notes: list[str] = field(default_factory=list)
     background_cores: float = 0.0
     prefetch_inferred: bool = False
+    folded_stages: tuple[str, ...] = ()
 
     @property
     def batches(self) -> int:
@@ -262,6 +266,7 @@ class _StageSeconds:
     dur_s: np.ndarray
     cpu_s: np.ndarray
     notes: tuple[str, ...] = ()
+    folded: tuple[str, ...] = ()  # names sharing the OTHER_STAGES column
 
 
 @dataclass(frozen=True)
@@ -396,6 +401,7 @@ def build_plan(
         notes=[*batches.notes, *spans.notes, *loader.notes, *consumer.seconds.notes, *by_worker.notes,
                *config.notes],
         background_cores=background, prefetch_inferred=config.prefetch_inferred,
+        folded_stages=loader.seconds.folded + consumer.seconds.folded,
     )
 
 
@@ -478,28 +484,30 @@ def _stage_seconds(position: np.ndarray, stage: np.ndarray, dur_s: np.ndarray, c
     not in ``keep``) share one :data:`OTHER_STAGES` column.
     """
     names = list(leading) + [n for n in dict.fromkeys(stage) if n not in leading]
-    notes: tuple[str, ...] = ()
+    folded: tuple[str, ...] = ()
     if len(names) > MAX_PLAN_STAGES:
-        names, notes = _fold_small_stages(names, stage, dur_s, keep, leading)
+        names, folded = _fold_small_stages(names, stage, dur_s, keep, leading)
     index = pd.Index(names)
     code = index.get_indexer(stage) if len(stage) else np.zeros(0, np.int64)
-    if notes:
+    notes: tuple[str, ...] = ()
+    if folded:
         code = np.where(code < 0, len(names) - 1, code)
+        notes = (f"{len(folded)} of {len(folded) + len(names) - 1} stage names with the least time are replayed "
+                 f"together as {OTHER_STAGES!r} (at most {MAX_PLAN_STAGES} columns per side)",)
     return _StageSeconds(tuple(names), _matrix(position, code, dur_s, rows, len(names)),
-                         _matrix(position, code, cpu_s, rows, len(names)), notes)
+                         _matrix(position, code, cpu_s, rows, len(names)), notes, folded)
 
 
 def _fold_small_stages(names: list[str], stage: np.ndarray, dur_s: np.ndarray, keep: frozenset[str],
                        leading: tuple[str, ...]) -> tuple[list[str], tuple[str, ...]]:
-    """The names kept as their own column (most time first, ``keep`` and ``leading`` always), then OTHER_STAGES."""
+    """The columns (the names with most time, ``keep`` and ``leading`` always, then OTHER_STAGES) and the names folded."""
     total = pd.Series(dur_s).groupby(stage).sum()
     must = [n for n in names if n in keep or n in leading]
     room = max(0, MAX_PLAN_STAGES - 1 - len(must))
     biggest = set(total.drop(labels=must, errors="ignore").sort_values(ascending=False, kind="stable").index[:room])
     kept = [n for n in names if n in biggest or n in must]
-    note = (f"{len(names) - len(kept)} of {len(names)} stage names with the least time are replayed together "
-            f"as {OTHER_STAGES!r} (at most {MAX_PLAN_STAGES} columns per side)")
-    return kept + [OTHER_STAGES], (note,)
+    kept_set = set(kept)
+    return kept + [OTHER_STAGES], tuple(n for n in names if n not in kept_set)
 
 
 def _matrix(k: np.ndarray, code: np.ndarray, values: np.ndarray, rows: int, cols: int) -> np.ndarray:
@@ -534,7 +542,7 @@ def _loader_tasks(spans: _UserSpans, batches: _Batches, keep: frozenset[str]) ->
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = np.where(ld.sum(1) > 0, lc.sum(1) / ld.sum(1), 0.0)
     names = (sec.names or (UNSTAGED,)) + (WORKER_OVERHEAD,)
-    seconds = _StageSeconds(names, np.column_stack([ld, gap]), np.column_stack([lc, gap * frac]))
+    seconds = _StageSeconds(names, np.column_stack([ld, gap]), np.column_stack([lc, gap * frac]), (), sec.folded)
     return _LoaderTasks(seconds, first, last, missing, spans.inline, tuple(notes))
 
 
@@ -577,7 +585,7 @@ def _consumer_work(spans: _UserSpans, batches: _Batches, keep: frozenset[str]) -
     with np.errstate(invalid="ignore", divide="ignore"):
         frac = np.where(cd.sum(1) > 0, cc.sum(1) / cd.sum(1), 0.0)
     seconds = _StageSeconds(sec.names + (CONSUMER_OVERHEAD,), np.column_stack([cd, gap]),
-                            np.column_stack([cc, gap * frac]), sec.notes)
+                            np.column_stack([cc, gap * frac]), sec.notes, sec.folded)
     return _ConsumerWork(seconds, end)
 
 
