@@ -107,7 +107,7 @@ def many_stage_names_run(run_dir, names: int, batches: int = 40):
 
 
 class TestManyStageNames:
-    @pytest.mark.parametrize("names", [2_000, 20_000])
+    @pytest.mark.parametrize("names", [2_000, pytest.param(20_000, marks=pytest.mark.slow)])  # writing: ~8 s
     def test_replays_a_few_stages_and_counts_the_rest(self, tmp_path, names):
         """Thousands of stage names: the ceilings replay MAX_CEILING_STAGES of them and account for every other
         name (a row, a member of the '(other stages)' row, or counted as left out) instead of replaying all."""

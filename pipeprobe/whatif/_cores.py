@@ -64,7 +64,9 @@ def cpu_speed(us: list[float], cores: float) -> float:
     r = cores / tot  # exact when every task is all CPU; else an upper bound
     if all(u == 1.0 or u == 0.0 for u in us):
         return r
-    for _ in range(_NEWTON_STEPS):  # Newton on a concave increasing function, from above: monotone
+    # Newton on a concave increasing function: the first step from above lands at or below the root
+    # (the tangent lies above the curve), and from there the steps climb to it monotonically
+    for _ in range(_NEWTON_STEPS):
         use = grad = 0.0
         for u in us:
             den = (1.0 - u) * r + u
@@ -72,7 +74,7 @@ def cpu_speed(us: list[float], cores: float) -> float:
             grad += u * u / (den * den)
         step = (use - cores) / grad if grad > 0 else 0.0
         r -= step
-        if step <= 1e-12 * r:
+        if abs(step) <= 1e-12 * r:
             break
     return max(r, _MIN_SPEED)
 
