@@ -368,3 +368,24 @@ class TestLoaderPolicies:
         assert [0, 1, None, None, None] == [p.dispatchable(b) for b in range(5)]
         assert [3, None, 2, 4] == [p.worker_ready(w) for w in (1, 1, 0, 0)]
 
+
+
+class TestCodeShape:
+    def test_no_long_functions_in_the_whatif_layer(self):
+        """Every function of pipeprobe/whatif has at most 80 lines of code, docstring, blank and comment lines
+        not counted (issue 10: a long algorithm is a short top function calling named steps)."""
+        import ast
+
+        import pipeprobe.whatif.plan as plan_module
+
+        long = []
+        for path in sorted(Path(plan_module.__file__).parent.glob("*.py")):
+            source = path.read_text().splitlines()
+            for node in ast.walk(ast.parse("\n".join(source))):
+                if isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef)):
+                    body = node.body[1:] if ast.get_docstring(node) is not None else node.body
+                    code = [ln for ln in source[body[0].lineno - 1:node.end_lineno]
+                            if ln.strip() and not ln.strip().startswith("#")] if body else []
+                    if len(code) > 80:
+                        long.append(f"{path.name}:{node.name} ({len(code)} lines)")
+        assert [] == long
