@@ -376,7 +376,7 @@ class TestCodeShape:
         not counted (issue 10: a long algorithm is a short top function calling named steps)."""
         import ast
 
-        import pipeprobe.whatif.plan as plan_module
+        from pipeprobe.whatif import plan as plan_module
 
         long = []
         for path in sorted(Path(plan_module.__file__).parent.glob("*.py")):
