@@ -314,3 +314,25 @@ class TestCommandLineForms:
         assert 0 == main(["whatif", str(run_dir), "--recorded-prefetch-per-worker", "2", "--json"])
         recorded = json.loads(capsys.readouterr().out)["recorded"]
         assert (2, 4, False) == (recorded["workers"], recorded["prefetch"], recorded["prefetch_inferred"])
+
+
+class TestModelCheck:
+    def test_a_run_the_replay_reproduces_is_not_flagged(self, simple_run_dir):
+        """The serial synthetic run replays to its measured 54 ms: no flag, a miss of 0."""
+        check = whatif(simple_run_dir, workers=2).model_check
+        assert (False, 0.0) == (check.flagged, pytest.approx(check.miss, abs=1e-9))
+
+    def test_a_miss_over_five_per_cent_is_said_in_text_and_json(self, capsys):
+        """When the unchanged replay misses the measured wall time by more than 5 %, the prediction says so,
+        with a likely cause, in its text and JSON (the replay of this plan is 0.13 s by hand; measured 0.15 s)."""
+        from dataclasses import replace
+
+        from pipeprobe.whatif import format_prediction
+        from pipeprobe.whatif.plan import plan_from_durations
+
+        plan = plan_from_durations([0.03] * 10, [0.01] * 10, workers=3, prefetch=3, cores=4)
+        p = whatif(replace(plan, measured_wall_s=0.15), workers=4)
+        assert 0.13 / 0.15 - 1 == pytest.approx(p.model_check.miss)
+        assert p.model_check.flagged and p.model_check.likely_cause
+        assert "check: that replay is -13.3 % off the measured wall time" in format_prediction(p)
+        assert p.to_dict()["model_check"]["flagged"] is True

@@ -15,6 +15,7 @@ from __future__ import annotations
 import math
 import numbers
 import os
+import textwrap
 from dataclasses import asdict, dataclass, field
 from typing import TYPE_CHECKING, Any, Iterable, Mapping
 
@@ -25,7 +26,8 @@ from .scenario import Scenario
 if TYPE_CHECKING:  # pragma: no cover
     from ..load import Run
 
-__all__ = ["Prediction", "whatif", "sweep", "format_prediction", "JSON_KEYS"]
+__all__ = ["Prediction", "ModelCheck", "whatif", "sweep", "check_model", "format_prediction", "JSON_KEYS",
+           "MODEL_MISS_LIMIT"]
 
 #: Keys of :meth:`Prediction.to_dict` (the ``--json`` output of ``pipeprobe whatif``).
 JSON_KEYS = (
@@ -40,7 +42,70 @@ JSON_KEYS = (
     "critical_path",
     "recorded",
     "notes",
+    "model_check",
 )
+
+#: The replay of the recorded configuration may miss the measured wall time by this share before every
+#: prediction of the run says so (our choice: the misses we saw on quiet machines stayed under 3 %).
+MODEL_MISS_LIMIT = 0.05
+
+
+@dataclass(frozen=True)
+class ModelCheck:
+    """How well the replay reproduces the recorded run: the model's own check.
+
+    Attributes
+    ----------
+    miss : float
+        ``baseline_replay_wall_s / measured_wall_s - 1`` (NaN when the run
+        has no measured wall time, e.g. a plan from durations).
+    flagged : bool
+        ``abs(miss) > MODEL_MISS_LIMIT``: predictions from this run rest on
+        a model that does not reproduce it; they are scaled by the measured
+        time all the same, so read them as rough.
+    likely_cause : str
+        What most likely makes the replay miss (empty when not flagged).
+    """
+
+    miss: float
+    flagged: bool
+    likely_cause: str = ""
+
+
+def check_model(plan: ReplayPlan, base: Replay) -> ModelCheck:
+    """Compare the replay of the recorded configuration with the measured wall time.
+
+    Examples
+    --------
+    >>> from dataclasses import replace
+    >>> from pipeprobe.whatif.plan import plan_from_durations
+    >>> plan = plan_from_durations([0.03] * 10, [0.01] * 10, workers=3, prefetch=3, cores=4)
+    >>> check_model(replace(plan, measured_wall_s=0.13), replay(plan)).flagged  # replays to 0.13 s
+    False
+    """
+    measured = plan.measured_wall_s
+    if not measured > 0:
+        return ModelCheck(math.nan, False)
+    miss = base.wall_s / measured - 1.0
+    if abs(miss) <= MODEL_MISS_LIMIT:
+        return ModelCheck(miss, False)
+    return ModelCheck(miss, True, _likely_cause(plan))
+
+
+def _likely_cause(plan: ReplayPlan) -> str:
+    """The assumption of the plan most likely to make its replay miss the recorded run."""
+    if any("more than one worker" in note for note in plan.notes):
+        return "batches were loaded by more than one worker, and the replay runs each batch as one task"
+    if plan.workers and plan.prefetch_inferred:
+        return (f"the recorded prefetch depth was inferred as {plan.prefetch}; give the real one "
+                "(recorded_prefetch=, --recorded-prefetch)")
+    if plan.background_cores >= 0.25:
+        return (f"other processes used about {plan.background_cores:.1f} of the {plan.cores} cores, and their "
+                "load changed during the run")
+    if any("no CPU times" in note for note in plan.notes):
+        return "no CPU times were recorded (cpu_time=False), so the replay shares no cores between tasks"
+    return ("tasks slowed each other through shared hardware (memory bandwidth, caches, a step's own threads) "
+            "in a way CPU times do not show")
 
 
 @dataclass(frozen=True)
@@ -74,6 +139,8 @@ class Prediction:
         ``epoch_barrier``, ``batches``, ``spans``.
     notes : list of str
         Assumptions the replay had to make.
+    model_check : ModelCheck or None
+        How well the replay reproduces the recorded run (:func:`check_model`).
     """
 
     scenario: Scenario
@@ -87,6 +154,7 @@ class Prediction:
     critical_path: dict[str, float]
     recorded: dict[str, Any]
     notes: list[str] = field(default_factory=list)
+    model_check: ModelCheck | None = None
     replay: Replay | None = field(default=None, repr=False, compare=False)
 
     def to_dict(self) -> dict[str, Any]:
@@ -108,6 +176,8 @@ def _jsonable(x: Any) -> Any:
         return [_jsonable(v) for v in x]
     if isinstance(x, float) and math.isinf(x):
         return "inf" if x > 0 else "-inf"
+    if isinstance(x, float) and math.isnan(x):
+        return None
     if isinstance(x, numbers.Integral) and not isinstance(x, bool):
         return int(x)
     if isinstance(x, numbers.Real) and not isinstance(x, bool):
@@ -236,6 +306,7 @@ def predict(plan: ReplayPlan, base: Replay, scenario: Scenario) -> Prediction:
         critical_path=rep.critical_path_shares,
         recorded=_recorded(plan),
         notes=list(plan.notes),
+        model_check=check_model(plan, base),
         replay=rep,
     )
 
@@ -311,8 +382,14 @@ def format_prediction(p: Prediction) -> str:
         f"speed-up {p.predicted_speedup:.2f}x",
         f"  recorded: {_describe_recorded(p.recorded)}",
         f"  (replay of the recorded configuration: {p.baseline_replay_wall_s:.3f} s)",
-        "  predicted critical path:",
     ]
+    check = p.model_check
+    if check is not None and check.flagged:
+        lines += textwrap.wrap(
+            f"check: that replay is {100 * check.miss:+.1f} % off the measured wall time (more than "
+            f"{100 * MODEL_MISS_LIMIT:.0f} %), so read this prediction as rough; likely cause: {check.likely_cause}",
+            width=100, initial_indent="  ", subsequent_indent="    ")
+    lines.append("  predicted critical path:")
     for name, share in sorted(p.critical_path.items(), key=lambda kv: -kv[1]):
         if share >= 0.005:
             lines.append(f"    {name[:30]:<30} {100 * share:5.1f} %")
