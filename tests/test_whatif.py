@@ -12,6 +12,8 @@ import math
 import statistics
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import pipeprobe
 from pipeprobe.cli import main
@@ -336,3 +338,32 @@ class TestModelCheck:
         assert p.model_check.flagged and p.model_check.likely_cause
         assert "check: that replay is -13.3 % off the measured wall time" in format_prediction(p)
         assert p.to_dict()["model_check"]["flagged"] is True
+
+
+class TestMonotoneSpeedups:
+    @settings(max_examples=50, deadline=None)
+    @given(st.integers(4, 30).flatmap(lambda n: st.tuples(
+        st.lists(st.floats(1e-4, 0.02), min_size=n, max_size=n), st.lists(st.floats(1e-4, 0.02), min_size=n, max_size=n),
+        st.lists(st.floats(0.0, 0.02), min_size=n, max_size=n), st.lists(st.floats(0.0, 1.0), min_size=n, max_size=n),
+        st.integers(1, 4), st.integers(1, 6), st.sampled_from([1, 2, 4]), st.sampled_from(["first-free", "round-robin"]))))
+    def test_a_faster_stage_never_predicts_a_slower_run(self, p):
+        """Speed-ups grow with the factor: 1x <= 2x <= 4x <= free (issue 11; the property the ceilings table
+        relies on), on generated pipelines with CPU sharing and both policies."""
+        from pipeprobe.whatif.plan import plan_from_durations
+
+        a, b, step, cpu, workers, prefetch, cores, policy = p
+        stages = {"a": a, "b": b}
+        total = [x + y for x, y in zip(a, b, strict=True)]
+        plan = plan_from_durations(None, step, stages=stages, task_cpu_s=[t * c for t, c in zip(total, cpu, strict=True)],
+                                   workers=workers, prefetch=prefetch, cores=cores, policy=policy)
+        from pipeprobe.whatif.engine import replay
+
+        walls = [replay(plan, faster={"a": k}).wall_s for k in (1, 2, 4, math.inf)]
+        assert sorted(walls, reverse=True) == pytest.approx(walls, rel=1e-9)
+
+    def test_a_slower_prediction_says_why(self, simple_run_dir):
+        """A change that slows the run names the reason in the text (here: a stage made slower)."""
+        from pipeprobe.whatif import format_prediction
+
+        text = format_prediction(whatif(simple_run_dir, faster={"decode": 0.5}))
+        assert "slower because decode is 2x slower" in text

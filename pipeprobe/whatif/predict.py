@@ -389,6 +389,9 @@ def format_prediction(p: Prediction) -> str:
             f"check: that replay is {100 * check.miss:+.1f} % off the measured wall time (more than "
             f"{100 * MODEL_MISS_LIMIT:.0f} %), so read this prediction as rough; likely cause: {check.likely_cause}",
             width=100, initial_indent="  ", subsequent_indent="    ")
+    if p.predicted_speedup < 0.995:
+        lines += textwrap.wrap(f"slower because {_why_slower(p)}", width=100, initial_indent="  ",
+                               subsequent_indent="    ")
     lines.append("  predicted critical path:")
     for name, share in sorted(p.critical_path.items(), key=lambda kv: -kv[1]):
         if share >= 0.005:
@@ -396,6 +399,26 @@ def format_prediction(p: Prediction) -> str:
     for note in p.notes:
         lines.append(f"  note: {note}")
     return "\n".join(lines)
+
+
+def _why_slower(p: Prediction) -> str:
+    """What in the scenario makes the replay slower than the recorded run."""
+    sc, rec = p.scenario, p.recorded
+    reasons = [f"{stage} is {1 / k:g}x slower" for stage, k in {**sc.faster, **sc.offload}.items() if k < 1]
+    workers, recorded_workers = sc.workers, rec.get("workers")
+    cores = sc.cores if sc.cores is not None else rec.get("cores")
+    if workers is not None and recorded_workers is not None and workers > recorded_workers \
+            and cores is not None and workers + 1 > cores:
+        reasons.append(f"{workers} workers and the training loop share {cores:g} cores, so every task runs slower")
+    elif workers is not None and recorded_workers is not None and workers < recorded_workers:
+        reasons.append(f"fewer workers than the recorded {recorded_workers}")
+    if sc.prefetch is not None and rec.get("prefetch") is not None and sc.prefetch < rec["prefetch"]:
+        reasons.append(f"fewer batches in flight than the recorded {rec['prefetch']}")
+    if sc.cores is not None and rec.get("cores") is not None and sc.cores < rec["cores"]:
+        reasons.append(f"fewer cores than the recorded {rec['cores']}")
+    if sc.policy is not None and sc.policy != rec.get("policy"):
+        reasons.append(f"the {sc.policy} policy hands out batches worse for this run's task times")
+    return "; ".join(reasons) or "of how this run's batches fall on the workers (the replay shows no single cause)"
 
 
 def _describe_recorded(rec: Mapping[str, Any]) -> str:
