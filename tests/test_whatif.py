@@ -367,3 +367,11 @@ class TestMonotoneSpeedups:
 
         text = format_prediction(whatif(simple_run_dir, faster={"decode": 0.5}))
         assert "slower because decode is 2x slower" in text
+
+
+class TestScenarioObject:
+    def test_reads_like_the_earlier_dict(self, simple_run_dir):
+        """Code written against the dict form keeps working: p.scenario["workers"] and .get()."""
+        p = whatif(simple_run_dir, workers=2)
+        assert (2, 2, None, None) == (p.scenario["workers"], p.scenario.workers, p.scenario.get("prefetch"),
+                                      p.scenario.get("no such field"))

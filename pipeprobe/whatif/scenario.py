@@ -158,6 +158,16 @@ class Scenario:
         )
         return loader, consumer
 
+    def __getitem__(self, key: str) -> Any:
+        """A field by name, as in the dict form earlier versions returned (``p.scenario["workers"]``)."""
+        if key not in self.__dataclass_fields__:
+            raise KeyError(key)
+        return getattr(self, key)
+
+    def get(self, key: str, default: Any = None) -> Any:
+        """A field by name, or ``default`` for a name that is no field (the dict form's ``get``)."""
+        return getattr(self, key) if key in self.__dataclass_fields__ else default
+
     def to_dict(self) -> dict[str, Any]:
         """The fields as a plain dict (``None``: as recorded)."""
         return {"faster": dict(self.faster), "offload": dict(self.offload), "workers": self.workers,
