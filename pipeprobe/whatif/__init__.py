@@ -20,10 +20,10 @@ Modules, from the bottom up:
 ``laws``
     Amdahl's law, the bottleneck law and Little's law as plain formulas.
 
-Private helpers: ``_cores`` (processor sharing), ``_contention`` (taking
-the recorded contention out), ``_loader`` (loader policies),
-``_replay_path`` (the replayed critical path), ``_command`` (the
-``pipeprobe whatif`` command).
+Private helpers: ``_recorded`` (the steps of ``build_plan``),
+``_contention`` (taking the recorded contention out), ``_cores``
+(processor sharing), ``_loader`` (loader policies), ``_replay_path`` (the
+replayed critical path), ``_command`` (the ``pipeprobe whatif`` command).
 
 **The name ``pipeprobe.whatif``.** The top-level package re-exports the
 *function* :func:`whatif` under this package's name, so after ``import
