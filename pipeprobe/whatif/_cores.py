@@ -24,8 +24,9 @@ import math
 
 __all__ = ["cpu_speed", "progress_rate", "CpuShare"]
 
-#: Newton steps at most when solving for the common CPU speed; it converges in a handful.
-_NEWTON_STEPS = 30
+#: Steps at most when solving for the common CPU speed: Newton converges in a handful, bisection
+#: (where Newton would leave the bracket) gains a bit per step.
+_NEWTON_STEPS = 60
 #: The slowest CPU speed the solver returns: keeps finish times finite when cores are a sliver.
 _MIN_SPEED = 1e-9
 
@@ -64,15 +65,23 @@ def cpu_speed(us: list[float], cores: float) -> float:
     r = cores / tot  # exact when every task is all CPU; else an upper bound
     if all(u == 1.0 or u == 0.0 for u in us):
         return r
-    # Newton on a concave increasing function: the first step from above lands at or below the root
-    # (the tangent lies above the curve), and from there the steps climb to it monotonically
+    # Newton on a concave increasing function: the first step from above lands below the root (the
+    # tangent lies above the curve) and later steps climb to it. A step that would leave the bracket
+    # [lo, hi] around the root (below 0 when the first tangent is flat) bisects instead.
+    lo, hi = 0.0, r
     for _ in range(_NEWTON_STEPS):
         use = grad = 0.0
         for u in us:
             den = (1.0 - u) * r + u
             use += u * r / den
             grad += u * u / (den * den)
+        if use > cores:
+            hi = r
+        else:
+            lo = r
         step = (use - cores) / grad if grad > 0 else 0.0
+        if not lo <= r - step <= hi:
+            step = r - 0.5 * (lo + hi)
         r -= step
         if abs(step) <= 1e-12 * r:
             break
