@@ -27,6 +27,7 @@ __all__ = ["cpu_speed", "progress_rate", "CpuShare"]
 #: Steps at most when solving for the common CPU speed: Newton converges in a handful, bisection
 #: (where Newton would leave the bracket) gains a bit per step.
 _NEWTON_STEPS = 60
+_ALL_OR_NOTHING = {0.0, 1.0}
 #: The slowest CPU speed the solver returns: keeps finish times finite when cores are a sliver.
 _MIN_SPEED = 1e-9
 
@@ -63,7 +64,7 @@ def cpu_speed(us: list[float], cores: float) -> float:
     if tot <= cores:
         return 1.0
     r = cores / tot  # exact when every task is all CPU; else an upper bound
-    if all(u == 1.0 or u == 0.0 for u in us):
+    if {*us} <= _ALL_OR_NOTHING:  # every task all CPU or none: r is exact
         return r
     # Newton on a concave increasing function: the first step from above lands below the root (the
     # tangent lies above the curve) and later steps climb to it. A step that would leave the bracket
@@ -161,7 +162,9 @@ class CpuShare:
     def _rerate(self, now: float) -> None:
         """New CPU speed for the running set; new finish times."""
         r = cpu_speed(list(self._u.values()), self.cores)
+        u, rho, finish = self._u, self._rho, self.finish
         for e, rem in self._rem.items():
-            rr = progress_rate(self._u[e], r)
-            self._rho[e] = rr
-            self.finish[e] = now + (rem / rr if rem > 0 else 0.0)
+            ue = u[e]
+            rr = 1.0 / (1.0 - ue + ue / r) if r < 1.0 else 1.0  # progress_rate(ue, r), inlined for speed
+            rho[e] = rr
+            finish[e] = now + (rem / rr if rem > 0 else 0.0)
