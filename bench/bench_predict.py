@@ -44,8 +44,8 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
 from _synth import wait_for_quiet_cpu  # noqa: E402
 
 import pipeprobe  # noqa: E402
-from pipeprobe.replay import build_plan  # noqa: E402
 from pipeprobe.whatif import whatif  # noqa: E402
+from pipeprobe.whatif.plan import build_plan  # noqa: E402
 
 #: A run counts as quiet when the machine's other processes used less than this many cores.
 QUIET_CORES = 0.25

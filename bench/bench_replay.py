@@ -36,8 +36,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
 from _synth import write_many_spans  # noqa: E402
 
 import pipeprobe  # noqa: E402
-from pipeprobe.replay import build_plan, replay  # noqa: E402
 from pipeprobe.whatif import sweep  # noqa: E402
+from pipeprobe.whatif.engine import replay  # noqa: E402
+from pipeprobe.whatif.plan import build_plan  # noqa: E402
 
 SCENARIOS = (
     [{"faster": {s: k}} for s in ("read", "decode", "augment") for k in (2.0, 4.0, math.inf)]
@@ -82,7 +83,7 @@ def bench_cpu_contention(batches: int, repeat: int) -> None:
     """Replay with CPU times and more CPU-bound workers than cores: the processor-sharing path."""
     import numpy as np
 
-    from pipeprobe.replay import plan_from_durations
+    from pipeprobe.whatif.plan import plan_from_durations
 
     rng = np.random.default_rng(0)
     task, step = rng.exponential(0.001, batches), rng.exponential(0.0003, batches)
@@ -90,6 +91,34 @@ def bench_cpu_contention(batches: int, repeat: int) -> None:
     busy_s, _ = timed(lambda: replay(plan), repeat)
     print(f"{batches:>9,d} batches with CPU times, 4 workers on 2 cores: replay {busy_s:.3f} s = "
           f"{batches / busy_s:,.0f} batches/s (x 3 spans per batch = {3 * batches / busy_s:,.0f} spans/s)")
+
+
+def many_stage_names_run(run_dir: str, names: int, batches: int = 40) -> str:
+    """A worker running ``names / batches`` distinct one-off stages per batch (1 ms in all), a 2 ms step."""
+    from _synth import write_run
+
+    per_batch = names // batches
+    worker, main = [], []
+    for b in range(batches):
+        t = 3.0 * b
+        for i in range(per_batch):
+            s = t + i / per_batch
+            worker.append(("stage", f"s{b * per_batch + i}", s, s + 1 / per_batch, b, b, 0, 200))
+        main += [("wait", "", t, t + 1, -1, b, 0), ("step", "", t + 1, t + 3, -1, b, 0)]
+    write_run(run_dir, {100: main, 200: worker})
+    return run_dir
+
+
+def bench_many_stage_names(repeat: int) -> None:
+    """The ceilings section of the report on runs with thousands of distinct stage names (issue 14, item 6)."""
+    from pipeprobe.whatif.ceilings import ceilings
+
+    for names in (500, 2_000, 20_000):
+        with tempfile.TemporaryDirectory() as d:
+            run = pipeprobe.load(many_stage_names_run(d, names))
+            secs, c = timed(lambda run=run: ceilings(build_plan(run)), repeat)
+        print(f"{names:>9,d} stage names, 40 batches: plan + ceilings {secs:6.3f} s "
+              f"({len(c.stages)} stages replayed, {c.stages_left_out:,d} counted as left out)")
 
 
 def main() -> None:
@@ -100,6 +129,7 @@ def main() -> None:
     for batch_size in (32, 1):
         bench(args.spans, batch_size, args.repeat)
     bench_cpu_contention(args.spans // 3, args.repeat)
+    bench_many_stage_names(args.repeat)
 
 
 if __name__ == "__main__":

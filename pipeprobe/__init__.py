@@ -17,9 +17,7 @@ Errors
 
 __version__ = "0.1.0"
 
-from .amdahl import amdahl_ceiling, amdahl_speedup  # noqa: E402
 from .analysis import Action, Analysis, analyze  # noqa: E402
-from .ceilings import Ceilings, ceilings  # noqa: E402
 from .compare import Comparison, compare  # noqa: E402
 from .critical import CriticalPath, critical_path, critical_path_length  # noqa: E402
 from .errors import (  # noqa: E402
@@ -36,8 +34,12 @@ from .record import Probe, stage  # noqa: E402
 from .stagestats import StageStats, stage_stats  # noqa: E402
 from .stalls import Stalls, stall_summary  # noqa: E402
 from .timeline import Timeline, build_timeline  # noqa: E402
+
+# the function ``whatif`` takes the name of the subpackage as an attribute (see pipeprobe/whatif/__init__.py)
 from .whatif import Prediction, whatif  # noqa: E402
 from .whatif import sweep as whatif_sweep  # noqa: E402
+from .whatif.ceilings import Ceilings, ceilings  # noqa: E402
+from .whatif.laws import amdahl_ceiling, amdahl_speedup  # noqa: E402
 
 __all__ = [
     # record

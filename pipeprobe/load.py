@@ -133,17 +133,6 @@ class Run:
         first = user.groupby("stage", observed=True)["start_s"].min().sort_values()
         return [str(s) for s in first.index]
 
-    def whatif(self, **scenario: Any) -> Any:
-        """Predict this run under a changed configuration: ``run.whatif(workers=4)``.
-
-        A convenience for :func:`pipeprobe.whatif` (the what-if layer is
-        imported only when called); it takes the same keyword arguments
-        and returns its :class:`~pipeprobe.whatif.Prediction`.
-        """
-        from .whatif import whatif
-
-        return whatif(self, **scenario)
-
     def __repr__(self) -> str:
         return (
             f"<pipeprobe.Run {str(self.run_dir)!r}: {len(self.spans)} spans, "

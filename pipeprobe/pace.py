@@ -32,10 +32,10 @@ import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
-from .amdahl import amdahl_ceiling
 from .critical import PACE_SPEEDUP
 from .errors import PipeprobeError
 from .whatif import whatif
+from .whatif.laws import amdahl_ceiling
 
 if TYPE_CHECKING:  # pragma: no cover
     from .analysis import Analysis
@@ -158,7 +158,7 @@ def judge(analysis: Analysis, plan: Any = None) -> Verdict:
     note = ""
     try:
         if plan is None:
-            from .replay import build_plan
+            from .whatif.plan import build_plan
 
             plan = build_plan(analysis.run)
         s_in, s_step = _free_speedups(plan)

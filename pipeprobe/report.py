@@ -30,9 +30,9 @@ from .pace import Verdict, judge
 
 # isort: split
 # -- the what-if layer (the replay plan and the ceilings); kept together for the move to pipeprobe/whatif/
-from .ceilings import REPORT_MAX_BATCHES, Ceilings, ceilings, format_ceilings
-from .ceilings import _head as _first_batches
-from .replay import build_plan
+from .whatif.ceilings import REPORT_MAX_BATCHES, Ceilings, ceilings, format_ceilings
+from .whatif.ceilings import _head as _first_batches
+from .whatif.plan import build_plan
 
 __all__ = [
     "Section",
@@ -102,7 +102,7 @@ class Report:
 
     @property
     def replay_plan(self) -> Any:
-        """The replay plan of the first :data:`~pipeprobe.ceilings.REPORT_MAX_BATCHES` batches (None: no replay)."""
+        """The replay plan of the first :data:`~pipeprobe.whatif.ceilings.REPORT_MAX_BATCHES` batches (None: no replay)."""
         if not self._plan_made:
             self._plan_made = True
             if self.analysis.batches:

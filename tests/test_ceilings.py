@@ -1,4 +1,4 @@
-"""Tests of the per-stage ceilings (pipeprobe.ceilings) and their report section.
+"""Tests of the per-stage ceilings (pipeprobe.whatif.ceilings) and their report section.
 
 Outside references: Amdahl's law (Amdahl 1967), exact for a serial
 pipeline; the bottleneck law (Denning and Buzen 1978) for the worker count
@@ -13,9 +13,9 @@ import pytest
 
 import pipeprobe
 from pipeprobe.analysis import analyze
-from pipeprobe.ceilings import ceilings, format_ceilings
-from pipeprobe.replay import plan_from_durations
 from pipeprobe.report import format_report, report_dict
+from pipeprobe.whatif.ceilings import ceilings, format_ceilings
+from pipeprobe.whatif.plan import plan_from_durations
 
 
 class TestSerialPipeline:
@@ -89,3 +89,43 @@ class TestReportSection:
         """The JSON report carries the same numbers, without infinities."""
         d = report_dict(analyze(simple_run_dir))["ceilings"]
         assert {"decode", "augment", "step"} == {r["stage"] for r in d["stages"]}
+
+
+def many_stage_names_run(run_dir, names: int, batches: int = 40):
+    """A worker that runs ``names / batches`` distinct one-off stages per batch (1 ms in all), a 2 ms step."""
+    from _synth import write_run
+
+    per_batch = names // batches
+    worker, main = [], []
+    for b in range(batches):
+        t = 3.0 * b
+        for i in range(per_batch):
+            s = t + i / per_batch
+            worker.append(("stage", f"s{b * per_batch + i}", s, s + 1 / per_batch, b, b, 0, 200))
+        main += [("wait", "", t, t + 1, -1, b, 0), ("step", "", t + 1, t + 3, -1, b, 0)]
+    return write_run(run_dir, {100: main, 200: worker})
+
+
+class TestManyStageNames:
+    @pytest.mark.parametrize("names", [2_000, pytest.param(20_000, marks=pytest.mark.slow)])  # writing: ~8 s
+    def test_replays_a_few_stages_and_counts_the_rest(self, tmp_path, names):
+        """Thousands of stage names: the ceilings replay MAX_CEILING_STAGES of them and account for every other
+        name (a row, a member of the '(other stages)' row, or counted as left out) instead of replaying all."""
+        from pipeprobe.whatif.ceilings import MAX_CEILING_STAGES
+        from pipeprobe.whatif.limits import OTHER_STAGES
+        from pipeprobe.whatif.plan import build_plan
+
+        plan = build_plan(pipeprobe.load(many_stage_names_run(tmp_path / "run", names)))
+        c = ceilings(plan)
+        rows = [r.stage for r in c.stages]
+        in_other_row = len(plan.folded_stages) if OTHER_STAGES in rows else 0
+        assert MAX_CEILING_STAGES == len(rows)
+        assert names + 1 == len(rows) - (OTHER_STAGES in rows) + in_other_row + c.stages_left_out  # + the step
+        assert f"{c.stages_left_out} more stages" in " ".join(format_ceilings(c))
+
+    def test_all_stages_on_request(self):
+        """max_stages=None replays every stage of the plan."""
+        stages = {f"s{i}": [0.001] * 8 for i in range(12)}
+        plan = plan_from_durations(None, [0.01] * 8, stages=stages, workers=1, prefetch=2, cores=4)
+        c = ceilings(plan, max_stages=None)
+        assert (13, 0) == (len(c.stages), c.stages_left_out)

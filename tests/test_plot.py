@@ -22,7 +22,7 @@ from matplotlib.figure import Figure
 
 import pipeprobe
 from pipeprobe import plot
-from pipeprobe.ceilings import Ceilings, StageCeiling
+from pipeprobe.whatif.ceilings import Ceilings, StageCeiling
 
 # The hand-built run below (times in ms). Two loader workers make batches of
 # two samples (decode then augment per sample); the consumer waits, then steps.

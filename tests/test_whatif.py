@@ -1,4 +1,4 @@
-"""Tests of what-if scenarios (pipeprobe.whatif) and the ``pipeprobe whatif`` command.
+"""Tests of what-if scenarios (pipeprobe.whatif.scenario, .predict) and the ``pipeprobe whatif`` command.
 
 Outside references: hand-computed schedules of exact synthetic traces;
 Amdahl's law (Amdahl 1967) for a serial pipeline, where it holds exactly;
@@ -12,6 +12,8 @@ import math
 import statistics
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import pipeprobe
 from pipeprobe.cli import main
@@ -64,12 +66,12 @@ class TestPredictions:
         assert p.measured_wall_s == pytest.approx(p.predicted_wall_s)
         assert 1.0 == pytest.approx(p.predicted_speedup)
 
-    def test_run_method_is_the_same_prediction(self, simple_run_dir):
-        """`run.whatif(...)` gives the same prediction as `pipeprobe.whatif(run, ...)`."""
+    def test_top_level_function_is_the_same_prediction(self, simple_run_dir):
+        """`pipeprobe.whatif(run, ...)` (the function re-exported at the top) is `pipeprobe.whatif.whatif`."""
         run = pipeprobe.load(simple_run_dir)
-        by_method = run.whatif(faster={"decode": math.inf})
-        assert whatif(run, faster={"decode": math.inf}).predicted_wall_s == by_method.predicted_wall_s
-        assert 1.5 == pytest.approx(by_method.predicted_speedup)
+        by_top = pipeprobe.whatif(run, faster={"decode": math.inf})
+        assert whatif(run, faster={"decode": math.inf}).predicted_wall_s == by_top.predicted_wall_s
+        assert 1.5 == pytest.approx(by_top.predicted_speedup)
 
     def test_serial_pipeline_follows_amdahl(self, simple_run_dir):
         """In a serial pipeline Amdahl's law is exact (Amdahl 1967): decode is 18 of 54 ms, free -> 1.5x."""
@@ -193,3 +195,183 @@ class TestRealRerun:
         )
         measured = statistics.median(run.wall_s for run in b)
         assert measured == pytest.approx(predicted, rel=0.30)
+
+
+class TestImportForms:
+    def test_function_and_subpackage_both_reachable(self):
+        """`pipeprobe.whatif(...)` is the function while `from pipeprobe.whatif(.plan) import ...` still finds the
+        subpackage: the documented resolution of the shared name."""
+        import importlib
+
+        from pipeprobe.whatif import Prediction
+        from pipeprobe.whatif.plan import build_plan
+
+        package = importlib.import_module("pipeprobe.whatif")
+        assert (whatif, Prediction, build_plan) == (pipeprobe.whatif, package.Prediction, package.plan.build_plan)
+
+    def test_merge_layer_does_not_import_the_whatif_layer(self):
+        """load.py stands below the what-if layer (no load -> whatif -> load cycle): it imports nothing from it."""
+        import ast
+        from pathlib import Path
+
+        tree = ast.parse((Path(pipeprobe.__file__).parent / "load.py").read_text())
+        imported = [n.module or "" for n in ast.walk(tree) if isinstance(n, ast.ImportFrom)]
+        imported += [a.name for n in ast.walk(tree) if isinstance(n, ast.Import) for a in n.names]
+        assert [] == [m for m in imported if "whatif" in m or "replay" in m or "ceilings" in m]
+
+
+class TestAbsurdNumbers:
+    @pytest.mark.parametrize(
+        "kwargs,limit",
+        [
+            ({"workers": 10_000_000}, "from 0 to 1024"),
+            ({"workers": 10**9}, "from 0 to 1024"),
+            ({"prefetch": 10**9}, "from 1 to 100000"),
+            ({"recorded_workers": 10**9}, "from 0 to 1024"),
+            ({"recorded_prefetch": 10**12}, "from 1 to 100000"),
+            ({"cores": 1e12}, "from 0.01 to 100000"),
+            ({"cores": 1e-6}, "from 0.01 to 100000"),
+            ({"faster": {"decode": 5e-324}}, "at least 0.001"),
+            ({"faster": {"decode": 1e300}}, "write inf"),
+            ({"offload": {"decode": 1e-9}}, "at least 0.001"),
+        ],
+    )
+    def test_out_of_range_is_refused_naming_the_limit(self, simple_run_dir, kwargs, limit):
+        """Counts and factors past the documented limits are refused at once with a one-line error naming them."""
+        with pytest.raises(ScenarioError, match=limit) as e:
+            whatif(simple_run_dir, **kwargs)
+        assert 1 == len(str(e.value).splitlines())
+
+    def test_a_slower_stage_predicts_a_slow_down(self, simple_run_dir):
+        """A factor below 1 makes the stage slower: decode 1000x slower in a serial run (18 of 54 ms) gives
+        54 / (36 + 18000) ms, by hand (Amdahl 1967 with factor 1/1000)."""
+        p = whatif(simple_run_dir, faster={"decode": 0.001})
+        assert pipeprobe.amdahl_speedup(18 / 54, 0.001) == pytest.approx(p.predicted_speedup)
+        assert p.predicted_speedup < 1
+
+    def test_the_largest_factor_stays_below_free(self, simple_run_dir):
+        """A million times faster is just short of free (Amdahl 1967: 1 / (36/54 + 18/54 / 1e6))."""
+        p = whatif(simple_run_dir, faster={"decode": 1e6})
+        assert pipeprobe.amdahl_speedup(18 / 54, 1e6) == pytest.approx(p.predicted_speedup)
+
+    @pytest.mark.parametrize(
+        "args",
+        [
+            ["--workers", "10000000"],
+            ["--recorded-workers", "1000000000"],
+            ["--prefetch", "1000000000"],
+            ["--cores", "1e12"],
+            ["--faster", "decode=5e-324"],
+            ["--faster", "decode=1e300"],
+            ["--prefetch-per-worker", "0"],
+            ["--prefetch", "4", "--prefetch-per-worker", "2"],
+        ],
+    )
+    def test_command_line_refuses_them_with_exit_2(self, simple_run_dir, capsys, args):
+        """On the command line the same limits give one error line and exit code 2."""
+        assert 2 == main(["whatif", str(simple_run_dir), *args])
+        err = capsys.readouterr().err.strip()
+        assert 1 == len(err.splitlines()) and "Traceback" not in err
+
+
+class TestCommandLineForms:
+    def test_options_before_the_run_folder(self, simple_run_dir, capsys):
+        """`pipeprobe whatif --faster decode=inf RUN` works like `pipeprobe whatif RUN --faster decode=inf`."""
+        assert 0 == main(["whatif", "--faster", "decode=inf", "augment=2", str(simple_run_dir), "--json"])
+        before = json.loads(capsys.readouterr().out)
+        assert 0 == main(["whatif", str(simple_run_dir), "--faster", "decode=inf", "augment=2", "--json"])
+        assert json.loads(capsys.readouterr().out) == before
+
+    def test_plain_option_before_the_run_folder(self, simple_run_dir, capsys):
+        """`pipeprobe whatif --workers 2 RUN` works."""
+        assert 0 == main(["whatif", "--workers", "2", "--prefetch", "2", str(simple_run_dir)])
+        assert "workers=2" in capsys.readouterr().out
+
+    def test_missing_run_folder_is_one_line(self, capsys):
+        """Without a run folder the command says how to give one and exits 2."""
+        assert 2 == main(["whatif", "--faster", "decode=2"])
+        assert "give the run folder" in capsys.readouterr().err
+
+    def test_text_shows_the_recorded_configuration(self, tmp_path, capsys):
+        """The text output states the workers, prefetch and cores the prediction assumed."""
+        from _synth import record_pool_run
+
+        run_dir = record_pool_run(tmp_path / "run", workers=2, prefetch=4, epochs=1, batches_per_epoch=6)
+        assert 0 == main(["whatif", str(run_dir), "--workers", "3", "--recorded-prefetch", "4"])
+        recorded = next(line for line in capsys.readouterr().out.splitlines() if "recorded:" in line)
+        assert recorded.strip().startswith("recorded: 2 workers, prefetch 4 batches in flight, ")
+        assert " cores" in recorded
+
+    def test_per_worker_prefetch_is_torch_prefetch_factor(self, simple_run_dir, capsys):
+        """--prefetch-per-worker K means workers x K batches in flight (torch DataLoader's prefetch_factor,
+        common practice: each worker keeps prefetch_factor batches loaded ahead)."""
+        assert 0 == main(["whatif", str(simple_run_dir), "--workers", "3", "--prefetch-per-worker", "2", "--json"])
+        assert 6 == json.loads(capsys.readouterr().out)["scenario"]["prefetch"]
+
+    def test_recorded_per_worker_prefetch(self, tmp_path, capsys):
+        """--recorded-prefetch-per-worker K sets the recorded depth to recorded workers x K."""
+        from _synth import record_pool_run
+
+        run_dir = record_pool_run(tmp_path / "run", workers=2, prefetch=4, epochs=1, batches_per_epoch=6)
+        assert 0 == main(["whatif", str(run_dir), "--recorded-prefetch-per-worker", "2", "--json"])
+        recorded = json.loads(capsys.readouterr().out)["recorded"]
+        assert (2, 4, False) == (recorded["workers"], recorded["prefetch"], recorded["prefetch_inferred"])
+
+
+class TestModelCheck:
+    def test_a_run_the_replay_reproduces_is_not_flagged(self, simple_run_dir):
+        """The serial synthetic run replays to its measured 54 ms: no flag, a miss of 0."""
+        check = whatif(simple_run_dir, workers=2).model_check
+        assert (False, 0.0) == (check.flagged, pytest.approx(check.miss, abs=1e-9))
+
+    def test_a_miss_over_five_per_cent_is_said_in_text_and_json(self, capsys):
+        """When the unchanged replay misses the measured wall time by more than 5 %, the prediction says so,
+        with a likely cause, in its text and JSON (the replay of this plan is 0.13 s by hand; measured 0.15 s)."""
+        from dataclasses import replace
+
+        from pipeprobe.whatif import format_prediction
+        from pipeprobe.whatif.plan import plan_from_durations
+
+        plan = plan_from_durations([0.03] * 10, [0.01] * 10, workers=3, prefetch=3, cores=4)
+        p = whatif(replace(plan, measured_wall_s=0.15), workers=4)
+        assert 0.13 / 0.15 - 1 == pytest.approx(p.model_check.miss)
+        assert p.model_check.flagged and p.model_check.likely_cause
+        assert "check: that replay is -13.3 % off the measured wall time" in format_prediction(p)
+        assert p.to_dict()["model_check"]["flagged"] is True
+
+
+class TestMonotoneSpeedups:
+    @settings(max_examples=50, deadline=None)
+    @given(st.integers(4, 30).flatmap(lambda n: st.tuples(
+        st.lists(st.floats(1e-4, 0.02), min_size=n, max_size=n), st.lists(st.floats(1e-4, 0.02), min_size=n, max_size=n),
+        st.lists(st.floats(0.0, 0.02), min_size=n, max_size=n), st.lists(st.floats(0.0, 1.0), min_size=n, max_size=n),
+        st.integers(1, 4), st.integers(1, 6), st.sampled_from([1, 2, 4]), st.sampled_from(["first-free", "round-robin"]))))
+    def test_a_faster_stage_never_predicts_a_slower_run(self, p):
+        """Speed-ups grow with the factor: 1x <= 2x <= 4x <= free (issue 11; the property the ceilings table
+        relies on), on generated pipelines with CPU sharing and both policies."""
+        from pipeprobe.whatif.plan import plan_from_durations
+
+        a, b, step, cpu, workers, prefetch, cores, policy = p
+        stages = {"a": a, "b": b}
+        total = [x + y for x, y in zip(a, b, strict=True)]
+        plan = plan_from_durations(None, step, stages=stages, task_cpu_s=[t * c for t, c in zip(total, cpu, strict=True)],
+                                   workers=workers, prefetch=prefetch, cores=cores, policy=policy)
+        from pipeprobe.whatif.engine import replay
+
+        walls = [replay(plan, faster={"a": k}).wall_s for k in (1, 2, 4, math.inf)]
+        assert sorted(walls, reverse=True) == pytest.approx(walls, rel=1e-9)
+
+    def test_a_slower_prediction_says_why(self, simple_run_dir):
+        """A change that slows the run names the reason in the text (here: a stage made slower)."""
+        from pipeprobe.whatif import format_prediction
+
+        text = format_prediction(whatif(simple_run_dir, faster={"decode": 0.5}))
+        assert "slower because decode is 2x slower" in text
+
+
+class TestScenarioObject:
+    def test_reads_like_the_earlier_dict(self, simple_run_dir):
+        """Code written against the dict form keeps working: p.scenario["workers"] and .get()."""
+        p = whatif(simple_run_dir, workers=2)
+        assert (2, 2, None, None) == (p.scenario["workers"], p.scenario.workers, p.scenario.get("prefetch"),
+                                      p.scenario.get("no such field"))

@@ -330,7 +330,7 @@ def draw_sweep(
             source = source.run
         if values is None:
             if vary == "workers":
-                from ..replay import build_plan
+                from ..whatif.plan import build_plan
 
                 rec = build_plan(source if isinstance(source, Run) else _load(source)).workers
                 values = list(range(0, 2 * int(rec) + 3))
@@ -380,7 +380,7 @@ def draw_ceilings(ceilings: Any, ax: Axes | None = None, stages: int = 8) -> Axe
     Parameters
     ----------
     ceilings : Ceilings, Analysis or Run
-        From :func:`pipeprobe.ceilings.ceilings`; given a run or an
+        From :func:`pipeprobe.whatif.ceilings.ceilings`; given a run or an
         analysis, they are computed here.
     ax : Axes, optional
         Where to draw; a new figure otherwise.
@@ -393,7 +393,7 @@ def draw_ceilings(ceilings: Any, ax: Axes | None = None, stages: int = 8) -> Axe
 
     Examples
     --------
-    >>> from pipeprobe.ceilings import Ceilings, StageCeiling
+    >>> from pipeprobe.whatif.ceilings import Ceilings, StageCeiling
     >>> c = Ceilings([StageCeiling("decode", 0.5, 2.0, 1.6, 1.3, 1.45, "step")], 1.0, 1.0, 2, 3, 0.6, 2, True, 1.2)
     >>> draw_ceilings(c).get_xlabel()
     'speed-up of the whole run (x, 1 = unchanged)'
@@ -404,7 +404,7 @@ def draw_ceilings(ceilings: Any, ax: Axes | None = None, stages: int = 8) -> Axe
     achieving large scale computing capabilities. AFIPS Conference
     Proceedings 30, 483-485.
     """
-    from ..ceilings import ceilings as compute
+    from ..whatif.ceilings import ceilings as compute
 
     c = ceilings
     if not isinstance(getattr(c, "stages", None), list):

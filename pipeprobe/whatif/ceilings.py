@@ -6,7 +6,7 @@ For every stage of a run, :func:`ceilings` gives
   ``1 / (1 - p)`` (what making the stage free could give if nothing else
   changed);
 * the replayed speed-up if the stage cost nothing, and if it got 2x and 4x
-  faster (:mod:`pipeprobe.replay`);
+  faster (:mod:`pipeprobe.whatif.engine`);
 * the stage that leads the replayed critical path once this one is free
   (the path shifts);
 
@@ -31,19 +31,26 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from .amdahl import amdahl_ceiling
-from .replay import PSEUDO_STAGES, ReplayPlan, _Work, build_plan, replay
+from ._replay_path import PSEUDO_STAGES
+from .engine import Replay, replay
+from .laws import amdahl_ceiling
+from .limits import MAX_PLAN_STAGES, OTHER_STAGES, check_count
+from .plan import ReplayPlan, Work, build_plan
 
 if TYPE_CHECKING:  # pragma: no cover
-    from .analysis import Analysis
-    from .load import Run
+    from ..analysis import Analysis
+    from ..load import Run
 
-__all__ = ["StageCeiling", "Ceilings", "ceilings", "format_ceilings", "section_lines", "section_data", "HIDE_TOLERANCE"]
+__all__ = ["StageCeiling", "Ceilings", "ceilings", "format_ceilings", "HIDE_TOLERANCE",
+           "MAX_CEILING_STAGES"]
 
 #: The input pipeline counts as hidden when the replayed wall time is within
 #: this share of the wall time with as many workers as could help (our choice).
 HIDE_TOLERANCE = 0.05
 _MAX_WORKERS = 64
+#: Stages :func:`ceilings` replays by default: three replays each, so a run with thousands of stage
+#: names still closes in a moment; the largest shares come first and the rest are counted, not lost.
+MAX_CEILING_STAGES = 10
 
 
 @dataclass(frozen=True)
@@ -100,6 +107,11 @@ class Ceilings:
     stall_left : float
         Stall fraction left with ``workers_to_hide`` workers (batches a
         worker starts only when an epoch starts, which no worker count hides).
+    stages_left_out : int
+        Stages not replayed one by one (past ``max_stages``, or folded in
+        the plan), to keep the computation short.
+    left_out_share : float
+        Their critical-path shares, summed.
     """
 
     stages: list[StageCeiling]
@@ -112,12 +124,14 @@ class Ceilings:
     has_cores: bool | None
     cores_needed: float
     stall_left: float = 0.0
+    stages_left_out: int = 0
+    left_out_share: float = 0.0
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict (infinities as the string "inf")."""
-        from .whatif import _jsonable
+        from .._jsonnum import json_ready
 
-        return _jsonable(asdict(self))
+        return json_ready(asdict(self))
 
 
 def _leader(cp: dict[str, float], skip: str) -> str:
@@ -126,7 +140,7 @@ def _leader(cp: dict[str, float], skip: str) -> str:
 
 
 def ceilings(run: Run | ReplayPlan, *, analysis: Analysis | None = None,
-             shares: dict[str, float] | None = None) -> Ceilings:
+             shares: dict[str, float] | None = None, max_stages: int | None = MAX_CEILING_STAGES) -> Ceilings:
     """Amdahl ceilings and replayed speed-ups of every stage, and the workers that hide input.
 
     Parameters
@@ -138,6 +152,10 @@ def ceilings(run: Run | ReplayPlan, *, analysis: Analysis | None = None,
         configuration does.
     shares : dict, optional
         Critical-path share per stage, to use instead.
+    max_stages : int or None, default :data:`MAX_CEILING_STAGES`
+        Stages to replay (three replays each): the ones with the largest
+        share, then the most work. ``None``: every stage of the plan. The
+        others are counted in :attr:`Ceilings.stages_left_out`.
 
     Returns
     -------
@@ -146,7 +164,7 @@ def ceilings(run: Run | ReplayPlan, *, analysis: Analysis | None = None,
     Examples
     --------
     >>> import pipeprobe, tempfile, time
-    >>> from pipeprobe.ceilings import ceilings
+    >>> from pipeprobe.whatif.ceilings import ceilings
     >>> d = tempfile.mkdtemp()
     >>> def batches():
     ...     for i in range(4):
@@ -166,64 +184,111 @@ def ceilings(run: Run | ReplayPlan, *, analysis: Analysis | None = None,
     .. [1] G. M. Amdahl, AFIPS 1967.
     .. [2] P. J. Denning and J. P. Buzen, ACM Computing Surveys, 1978.
     """
+    if max_stages is not None:
+        max_stages = check_count("max_stages", max_stages, 1, MAX_PLAN_STAGES)
     plan = run if isinstance(run, ReplayPlan) else build_plan(run)
     base = replay(plan)
     if shares is None and analysis is not None:
         shares = analysis.stage_shares()
     if shares is None:
         shares = base.critical_path_shares
-    names = list(dict.fromkeys(plan.loader_stages + plan.consumer_stages))
-    rows = []
-    for stage in names:
-        p = min(1.0, max(0.0, float(shares.get(stage, 0.0))))
-        free = replay(plan, faster={stage: math.inf})
-        x2 = replay(plan, faster={stage: 2.0})
-        x4 = replay(plan, faster={stage: 4.0})
-        rows.append(StageCeiling(
-            stage=stage,
-            share=p,
-            amdahl_ceiling=amdahl_ceiling(p),
-            free_speedup=base.wall_s / free.wall_s if free.wall_s > 0 else math.inf,
-            speedup_2x=base.wall_s / x2.wall_s if x2.wall_s > 0 else math.inf,
-            speedup_4x=base.wall_s / x4.wall_s if x4.wall_s > 0 else math.inf,
-            next_critical=_leader(free.critical_path, stage),
-        ))
-    rows.sort(key=lambda r: (-r.share, -r.free_speedup))
-    # the worker count that hides the input: more workers than that no longer help
-    best = replay(plan, workers=_MAX_WORKERS, prefetch=max(plan.prefetch, _MAX_WORKERS), cores=math.inf)
-    limit = best.wall_s * (1.0 + HIDE_TOLERANCE)
-    # more workers never slow the replay down at unlimited cores: bisect for the smallest that is enough
-    need: int | None = None
-    stall_left = best.stall_fraction
-    lo, hi = 1, _MAX_WORKERS
-    if best.wall_s <= limit:
-        while lo < hi:
-            mid = (lo + hi) // 2
-            if replay(plan, workers=mid, prefetch=max(plan.prefetch, mid), cores=math.inf).wall_s <= limit:
-                hi = mid
-            else:
-                lo = mid + 1
-        need = lo
-        stall_left = replay(plan, workers=need, prefetch=max(plan.prefetch, need), cores=math.inf).stall_fraction
-    has: bool | None = None
-    if need is not None:
-        here = replay(plan, workers=need, prefetch=max(plan.prefetch, need))
-        has = here.wall_s <= limit
-    hidden = best
+    picked, left_out = _stages_to_replay(plan, shares, max_stages)
+    rows = sorted((_stage_ceiling(plan, base, stage, shares) for stage in picked),
+                  key=lambda r: (-r.share, -r.free_speedup))
+    hide = _workers_to_hide(plan)
     cpu_per_batch = float(plan.loader.cpu_s.sum() + plan.consumer.cpu_s.sum()) / max(1, plan.batches)
-    step_per_batch = hidden.wall_s / max(1, plan.batches)
+    step_per_batch = hide.hidden_wall_s / max(1, plan.batches)
     return Ceilings(
         stages=rows,
         baseline_replay_wall_s=base.wall_s,
         measured_wall_s=plan.measured_wall_s,
         workers=plan.workers,
-        workers_to_hide=need,
-        hidden_wall_s=hidden.wall_s,
+        workers_to_hide=hide.workers,
+        hidden_wall_s=hide.hidden_wall_s,
         cores=plan.cores,
-        has_cores=has,
+        has_cores=hide.has_cores,
         cores_needed=cpu_per_batch / step_per_batch if step_per_batch > 0 else math.inf,
-        stall_left=stall_left,
+        stall_left=hide.stall_left,
+        stages_left_out=len(left_out),
+        left_out_share=float(sum(_share(shares, n) for n in left_out)),
     )
+
+
+def _share(shares: dict[str, float], stage: str) -> float:
+    return min(1.0, max(0.0, float(shares.get(stage, 0.0))))
+
+
+def _stages_to_replay(plan: ReplayPlan, shares: dict[str, float],
+                      max_stages: int | None) -> tuple[list[str], list[str]]:
+    """The stages to replay one by one (largest share first, then most work), and the names left out.
+
+    Names the plan folded into :data:`~pipeprobe.whatif.limits.OTHER_STAGES`
+    count as left out unless that column is replayed.
+    """
+    names = list(dict.fromkeys(plan.loader_stages + plan.consumer_stages))
+    work = {**_work_by_stage(plan.loader), **_work_by_stage(plan.consumer)}
+    ranked = sorted(names, key=lambda n: (-_share(shares, n), -work.get(n, 0.0)))
+    picked = ranked if max_stages is None else ranked[:max_stages]
+    left = [n for n in ranked[len(picked):] if n != OTHER_STAGES]
+    if OTHER_STAGES not in picked:
+        left += list(plan.folded_stages)
+    return [n for n in names if n in set(picked)], left
+
+
+def _work_by_stage(work: Work) -> dict[str, float]:
+    return dict(zip(work.names, (work.io_s.sum(0) + work.cpu_s.sum(0)).tolist(), strict=True))
+
+
+def _stage_ceiling(plan: ReplayPlan, base: Replay, stage: str, shares: dict[str, float]) -> StageCeiling:
+    """One stage's row: Amdahl's ceiling of its share, and three replays (free, 2x, 4x)."""
+    p = _share(shares, stage)
+    free = replay(plan, faster={stage: math.inf})
+    x2 = replay(plan, faster={stage: 2.0})
+    x4 = replay(plan, faster={stage: 4.0})
+    return StageCeiling(
+        stage=stage,
+        share=p,
+        amdahl_ceiling=amdahl_ceiling(p),
+        free_speedup=base.wall_s / free.wall_s if free.wall_s > 0 else math.inf,
+        speedup_2x=base.wall_s / x2.wall_s if x2.wall_s > 0 else math.inf,
+        speedup_4x=base.wall_s / x4.wall_s if x4.wall_s > 0 else math.inf,
+        next_critical=_leader(free.critical_path, stage),
+    )
+
+
+@dataclass(frozen=True)
+class _Hiding:
+    """The smallest worker count that hides the input, what it leaves, and whether the cores allow it."""
+
+    workers: int | None
+    hidden_wall_s: float
+    stall_left: float
+    has_cores: bool | None
+
+
+def _workers_to_hide(plan: ReplayPlan) -> _Hiding:
+    """Bisect for the fewest workers whose replay (unlimited cores) is within HIDE_TOLERANCE of 64 workers'.
+
+    More workers never slow the replay down at unlimited cores, so the
+    wall time is monotone in the worker count and bisection finds the
+    smallest count that is enough.
+    """
+    def with_workers(w: int, cores: float = math.inf) -> Replay:
+        return replay(plan, workers=w, prefetch=max(plan.prefetch, w), cores=cores)
+
+    best = with_workers(_MAX_WORKERS)
+    limit = best.wall_s * (1.0 + HIDE_TOLERANCE)
+    if not best.wall_s <= limit:  # NaN: nothing hides
+        return _Hiding(None, best.wall_s, best.stall_fraction, None)
+    lo, hi = 1, _MAX_WORKERS
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if with_workers(mid).wall_s <= limit:
+            hi = mid
+        else:
+            lo = mid + 1
+    here = replay(plan, workers=lo, prefetch=max(plan.prefetch, lo))
+    return _Hiding(lo, best.wall_s, with_workers(lo).stall_fraction, here.wall_s <= limit)
 
 
 def _wrap(text: str, width: int) -> list[str]:
@@ -284,19 +349,17 @@ def format_ceilings(c: Ceilings, width: int = 100) -> list[str]:
         "is at most the formula when the stage lies on the path, and it can show gains the formula misses "
         "when a stage off the path frees cores for the ones on it."
     )
+    if c.stages_left_out:
+        lines += _wrap(
+            f"{c.stages_left_out} more stage{'s' * (c.stages_left_out != 1)} (together "
+            f"{100 * c.left_out_share:.1f} % of the critical path) were not replayed one by one, to keep this "
+            "section quick; pipeprobe.ceilings(run, max_stages=N) replays more.", width)
     lines += _wrap(advice, width) + _wrap(note, width)
     return [ln[:width] for ln in lines]
 
 
-def _none_if_inf(x: Any) -> Any:
-    if isinstance(x, float) and not math.isfinite(x):
-        return None
-    return x
-
-
 #: The report replays at most this many batches (the first ones) to keep closing a probe quick.
 REPORT_MAX_BATCHES = 5000
-_last: list[Any] = [None, None]  # the analysis the report asked about last, and its ceilings
 
 
 def _head(plan: ReplayPlan, n: int) -> ReplayPlan:
@@ -307,34 +370,6 @@ def _head(plan: ReplayPlan, n: int) -> ReplayPlan:
     cut = {f: getattr(plan, f)[:n] for f in ("batch_id", "epoch")}
     notes = plan.notes + [f"ceilings replay the first {n} of {plan.batches} batches"]
     return replace(
-        plan, **cut, loader=_Work(plan.loader.names, plan.loader.io_s[:n], plan.loader.cpu_s[:n]),
-        consumer=_Work(plan.consumer.names, plan.consumer.io_s[:n], plan.consumer.cpu_s[:n]),
+        plan, **cut, loader=plan.loader.head(n), consumer=plan.consumer.head(n),
         epoch_dispatch_s=plan.epoch_dispatch_s[:epochs], notes=notes,
     )
-
-
-def _report_ceilings(analysis: Analysis) -> Ceilings:
-    if _last[0] is not analysis:
-        plan = _head(build_plan(analysis.run), REPORT_MAX_BATCHES)
-        _last[:] = [analysis, ceilings(plan, analysis=analysis)]
-    return _last[1]
-
-
-def section_lines(analysis: Analysis) -> list[str]:
-    """Lines of the ceilings section of the stall report (none for a run without batches)."""
-    if analysis.batches == 0:
-        return []
-    lines = format_ceilings(_report_ceilings(analysis))
-    if analysis.batches > REPORT_MAX_BATCHES:
-        lines.insert(1, f"  (replayed on the first {REPORT_MAX_BATCHES} of {analysis.batches} batches)")
-    return lines
-
-
-def section_data(analysis: Analysis) -> dict[str, Any]:
-    """``{"ceilings": {...}}`` for the JSON report: :meth:`Ceilings` fields, infinities as None."""
-    if analysis.batches == 0:
-        return {"ceilings": None}
-    c = _report_ceilings(analysis)
-    d = asdict(c)
-    d["stages"] = [{k: _none_if_inf(v) for k, v in row.items()} for row in d["stages"]]
-    return {"ceilings": {k: _none_if_inf(v) for k, v in d.items()}}

@@ -1,4 +1,4 @@
-"""Tests of the formula layer (pipeprobe.amdahl) against published laws and worked examples."""
+"""Tests of the formula layer (pipeprobe.whatif.laws) against published laws and worked examples."""
 
 from __future__ import annotations
 
@@ -9,7 +9,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeprobe.amdahl import (
+from pipeprobe.whatif.laws import (
     amdahl_ceiling,
     amdahl_speedup,
     bottleneck_throughput,

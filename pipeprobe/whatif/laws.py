@@ -1,6 +1,6 @@
 """Closed-form laws behind the what-if answers: Amdahl's law, the bottleneck law, Little's law.
 
-These are the classical formulas the replay (:mod:`pipeprobe.replay`) is
+These are the classical formulas the replay (:mod:`pipeprobe.whatif.engine`) is
 compared with. They take plain numbers, not runs.
 
 References

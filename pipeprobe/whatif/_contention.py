@@ -1,0 +1,124 @@
+"""Taking the recorded CPU contention out of a trace (private; the plan side of processor sharing).
+
+A recorded task that shared the cores with others ran its CPU part slower
+than it would alone. :func:`remove_contention` estimates, per task, the
+mean slow-down it suffered from the overlap of the recorded tasks;
+:func:`split_cpu` splits its wall seconds into off-CPU seconds and
+contention-free CPU seconds. Replaying the recorded configuration puts the
+same contention back (:mod:`pipeprobe.whatif._cores`).
+
+References
+----------
+.. [1] L. Kleinrock, *Queueing Systems, Volume 2*, Wiley, 1976, ch. 4 (processor sharing).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+__all__ = ["remove_contention", "split_cpu", "cores_left", "background_cores", "max_overlap"]
+
+#: Cores a run keeps however busy the machine was (a quarter core: a process is never starved entirely).
+MIN_CORES_LEFT = 0.25
+
+
+def _segments_mean_slowdown(starts: np.ndarray, ends: np.ndarray, weights: np.ndarray, cores: float) -> np.ndarray:
+    """Mean of ``max(1, n(t) / cores)`` over each interval, ``n(t)`` the weighted count of open intervals."""
+    if len(starts) == 0:
+        return np.ones(0)
+    t = np.concatenate([starts, ends])
+    d = np.concatenate([weights, -weights])
+    order = np.argsort(t, kind="stable")
+    t, d = t[order], d[order]
+    n = np.cumsum(d)  # load on [t[i], t[i+1])
+    slow = np.maximum(1.0, n / cores)
+    seg = np.diff(t)
+    integral = np.concatenate([[0.0], np.cumsum(slow[:-1] * seg)])
+    i0 = np.searchsorted(t, starts, side="left")
+    i1 = np.searchsorted(t, ends, side="left")
+    dur = ends - starts
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = (integral[i1] - integral[i0]) / dur
+    return np.where(dur > 0, out, 1.0)
+
+
+def remove_contention(
+    tasks: list[tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]], cores: float
+) -> list[np.ndarray]:
+    """Per task, the mean CPU slowdown it suffered from sharing ``cores`` with the other tasks.
+
+    ``tasks`` holds ``(start_s, end_s, wall_s, cpu_s)`` arrays per task kind.
+    Tasks with CPU time are first assumed to want a whole core; the off-CPU
+    time left over after the contention is taken out lowers that, twice.
+    The CPU part of a task is slowed by the load ``n(t) / cores`` when that
+    exceeds 1; its off-CPU part is not.
+    """
+    starts = np.concatenate([t[0] for t in tasks])
+    ends = np.concatenate([t[1] for t in tasks])
+    wall = np.concatenate([t[2] for t in tasks])
+    cpu = np.concatenate([t[3] for t in tasks])
+    u = np.where(cpu > 0, 1.0, 0.0)
+    slow = np.ones(len(starts))
+    for _ in range(3):
+        slow = _segments_mean_slowdown(starts, ends, u, float(cores))
+        cpu_free = np.minimum(cpu, wall / slow)
+        nominal = wall - cpu_free * (slow - 1.0)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            u = np.where(nominal > 0, cpu_free / nominal, 0.0)
+    out, i = [], 0
+    for t in tasks:
+        out.append(slow[i:i + len(t[0])])
+        i += len(t[0])
+    return out
+
+
+def _split(dur: np.ndarray, cpu: np.ndarray, slow: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Split per-stage wall time into off-CPU and contention-free CPU seconds (CPU parts were slowed)."""
+
+
+def split_cpu(dur: np.ndarray, cpu: np.ndarray, slow: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Split per-stage wall time into off-CPU and contention-free CPU seconds (CPU parts were slowed)."""
+    s = slow[:, None]
+    cpu_free = np.minimum(cpu, dur / s)
+    return np.maximum(0.0, dur - cpu_free * s), cpu_free
+
+
+def cores_left(cores: float, background: float) -> float:
+    """Cores left to the run when other processes used ``background`` of them (at least a quarter core)."""
+    return max(MIN_CORES_LEFT, float(cores) - float(background))
+
+
+def background_cores(resources: Any, rank: int, cores: int) -> float:
+    """Cores the machine's other processes kept busy: system-wide busy cores minus this run's processes.
+
+    ``resources`` is :attr:`pipeprobe.load.Run.resources`. The median over
+    the resource samples, the first one (no interval yet) left out.
+    """
+    res = resources
+    if res is None or len(res) == 0:
+        return 0.0
+    res = res[res["rank"] == rank]
+    times = np.unique(res["t_s"].to_numpy())
+    if len(times) < 3:
+        return 0.0
+    res = res[res["t_s"] > times[0]]
+    system = res[(res["pid"] == 0) & (res["core"] >= 0)].groupby("t_s")["cpu_pct"].sum() / 100.0
+    ours = res[(res["pid"] > 0) & (res["core"] < 0)].groupby("t_s")["cpu_pct"].sum() / 100.0
+    both = pd.concat([system.rename("system"), ours.rename("ours")], axis=1).dropna()
+    if both.empty:
+        return 0.0
+    return float(np.clip(np.median(both["system"] - both["ours"]), 0.0, cores))
+
+
+def max_overlap(starts: np.ndarray, ends: np.ndarray) -> int:
+    """Most intervals open at one instant (an interval ending when another starts does not overlap it)."""
+    ok = np.isfinite(starts) & np.isfinite(ends)
+    if not ok.any():
+        return 0
+    t = np.concatenate([starts[ok], ends[ok]])
+    d = np.concatenate([np.ones(ok.sum()), -np.ones(ok.sum())])
+    order = np.lexsort((d, t))  # ends before starts at the same instant
+    return int(np.cumsum(d[order]).max())

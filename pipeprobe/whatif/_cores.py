@@ -1,0 +1,170 @@
+"""How the replayed tasks share the CPU cores: processor sharing (private).
+
+A task wants ``u`` of a core while it runs (its CPU seconds over its
+contention-free duration). When the running tasks want more than there are
+cores, the CPU parts of all of them run at one common speed ``r < 1``, the
+one at which the CPU they use fills the cores exactly; their off-CPU parts
+(sleeping, reading, waiting on a device) keep full speed. A task of
+nominal duration ``d`` then advances at ``rho(u, r) = 1 / (1 - u + u / r)``
+nominal seconds per second.
+
+:func:`cpu_speed` finds ``r``; :class:`CpuShare` keeps the running tasks
+and their finish times as tasks start and stop. The plan side (taking the
+recorded contention out of a trace) lives in :mod:`pipeprobe.whatif.plan`.
+
+References
+----------
+.. [1] L. Kleinrock, *Queueing Systems, Volume 2: Computer Applications*,
+   Wiley, 1976, ch. 4 (processor sharing).
+"""
+
+from __future__ import annotations
+
+import math
+
+__all__ = ["cpu_speed", "progress_rate", "CpuShare"]
+
+#: Steps at most when solving for the common CPU speed: Newton converges in a handful, bisection
+#: (where Newton would leave the bracket) gains a bit per step.
+_NEWTON_STEPS = 60
+_ALL_OR_NOTHING = {0.0, 1.0}
+#: The slowest CPU speed the solver returns: keeps finish times finite when cores are a sliver.
+_MIN_SPEED = 1e-9
+
+
+def progress_rate(u: float, r: float) -> float:
+    """Nominal seconds per second of a task wanting ``u`` of a core when CPU parts run at speed ``r``.
+
+    Examples
+    --------
+    >>> progress_rate(0.5, 0.5)  # half CPU, CPU at half speed: 1 / (0.5 + 1)
+    0.6666666666666666
+    """
+    return 1.0 / (1.0 - u + u / r) if r < 1.0 else 1.0
+
+
+def cpu_speed(us: list[float], cores: float) -> float:
+    """The common speed ``r`` of the CPU parts of tasks wanting ``us`` of a core each, on ``cores`` cores.
+
+    ``r`` solves ``sum(u r / ((1 - u) r + u)) == cores`` (the CPU used fills
+    the cores exactly); ``r = 1`` when the tasks fit.
+
+    Examples
+    --------
+    >>> cpu_speed([1.0, 1.0, 1.0, 1.0], 2)  # four CPU-bound tasks on two cores: half speed
+    0.5
+    >>> cpu_speed([0.5, 0.5], 1)  # two half-CPU tasks fit on one core
+    1.0
+
+    References
+    ----------
+    .. [1] L. Kleinrock, *Queueing Systems, Volume 2*, 1976, ch. 4.
+    """
+    tot = sum(us)
+    if tot <= cores:
+        return 1.0
+    r = cores / tot  # exact when every task is all CPU; else an upper bound
+    if {*us} <= _ALL_OR_NOTHING:  # every task all CPU or none: r is exact
+        return r
+    # Newton on a concave increasing function: the first step from above lands below the root (the
+    # tangent lies above the curve) and later steps climb to it. A step that would leave the bracket
+    # [lo, hi] around the root (below 0 when the first tangent is flat) bisects instead.
+    lo, hi = 0.0, r
+    for _ in range(_NEWTON_STEPS):
+        use = grad = 0.0
+        for u in us:
+            den = (1.0 - u) * r + u
+            use += u * r / den
+            grad += u * u / (den * den)
+        if use > cores:
+            hi = r
+        else:
+            lo = r
+        step = (use - cores) / grad if grad > 0 else 0.0
+        if not lo <= r - step <= hi:
+            step = r - 0.5 * (lo + hi)
+        r -= step
+        if abs(step) <= 1e-12 * r:
+            break
+    return max(r, _MIN_SPEED)
+
+
+class CpuShare:
+    """The running tasks of a replay and when each finishes, under processor sharing.
+
+    Entities (a worker, the consumer) run one task at a time. Without
+    contention (``cores`` at least the number of entities) a task finishes
+    its nominal duration after it starts; with it, every start and stop
+    advances all running tasks at the old speed and re-rates them.
+
+    Examples
+    --------
+    >>> cpu = CpuShare(cores=1, entities=2)
+    >>> cpu.start(0, batch=7, nominal_s=1.0, u=1.0, now=0.0)
+    >>> cpu.start(1, batch=8, nominal_s=1.0, u=1.0, now=0.0)
+    >>> cpu.next_finish()  # two CPU-bound 1 s tasks on one core
+    (2.0, 0)
+    """
+
+    __slots__ = ("cores", "contended", "finish", "batch", "_u", "_rem", "_rho", "_last_t")
+
+    def __init__(self, cores: float, entities: int) -> None:
+        self.cores = cores
+        self.contended = cores < entities
+        #: entity -> finish time of its running task, in the order the tasks started (ties go to the
+        #: earliest start)
+        self.finish: dict[int, float] = {}
+        #: entity -> batch of its running task
+        self.batch: dict[int, int] = {}
+        self._u: dict[int, float] = {}
+        self._rem: dict[int, float] = {}
+        self._rho: dict[int, float] = {}
+        self._last_t = 0.0
+
+    def start(self, entity: int, batch: int, nominal_s: float, u: float, now: float) -> None:
+        """``entity`` starts a task of ``nominal_s`` contention-free seconds wanting ``u`` of a core."""
+        self._u[entity] = u
+        self.batch[entity] = batch
+        if self.contended:
+            self._advance(now)
+            self._rem[entity] = nominal_s
+            self._rerate(now)
+        else:
+            self.finish[entity] = now + nominal_s
+
+    def stop(self, entity: int, now: float) -> int:
+        """``entity``'s task ends at ``now``; returns its batch."""
+        b = self.batch.pop(entity)
+        del self.finish[entity], self._u[entity]
+        if self.contended:
+            self._advance(now)
+            del self._rem[entity], self._rho[entity]
+            self._rerate(now)
+        return b
+
+    def next_finish(self) -> tuple[float, int]:
+        """``(time, entity)`` of the next task to finish; ``(inf, -1)`` when none runs."""
+        fin = self.finish
+        if not fin:
+            return math.inf, -1
+        e = min(fin, key=fin.__getitem__)
+        return fin[e], e
+
+    def _advance(self, now: float) -> None:
+        """Progress every running task to ``now`` at the current rates."""
+        dt = now - self._last_t
+        if dt > 0:
+            rem, rho = self._rem, self._rho
+            for e in rem:
+                rem[e] -= rho[e] * dt
+        self._last_t = now
+
+    def _rerate(self, now: float) -> None:
+        """New CPU speed for the running set; new finish times."""
+        r = cpu_speed(list(self._u.values()), self.cores)
+        u, rho, finish = self._u, self._rho, self.finish
+        for e, rem in self._rem.items():
+            ue = u[e]
+            rr = 1.0 / (1.0 - ue + ue / r) if r < 1.0 else 1.0  # progress_rate(ue, r), inlined for speed
+            rho[e] = rr
+            finish[e] = now + (rem / rr if rem > 0 else 0.0)

@@ -1,0 +1,451 @@
+"""From a recorded run to per-batch work: the steps of :func:`~pipeprobe.whatif.plan.build_plan` (private).
+
+Each step is a function returning a small frozen record; ``build_plan``
+calls them in this order:
+
+1. :func:`consumer_batches`: the batches of one rank, in the consumer's order;
+2. :func:`user_spans`: the stage spans of those batches, each placed on the
+   loader side or the consumer side;
+3. :func:`loader_tasks`, :func:`batch_workers` and :func:`consumer_work`:
+   per batch and stage, wall and CPU seconds; which worker ran each batch;
+4. :func:`without_contention`: the CPU contention of the recorded run taken
+   out (:mod:`pipeprobe.whatif._contention`);
+5. :func:`loader_config` and :func:`loader_times`: the recorded workers,
+   prefetch depth, policy and epoch barrier, and the loader's constants.
+
+References
+----------
+.. [1] L. Kleinrock, *Queueing Systems, Volume 2*, Wiley, 1976, ch. 4 (processor sharing).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Mapping
+
+import numpy as np
+import pandas as pd
+
+from ..errors import ScenarioError
+from ._contention import max_overlap, remove_contention, split_cpu
+from ._replay_path import CONSUMER_OVERHEAD, UNSTAGED, WORKER_OVERHEAD
+from .limits import MAX_PLAN_STAGES, OTHER_STAGES
+
+if TYPE_CHECKING:  # pragma: no cover
+    from ..load import Run
+
+__all__ = ["Work", "consumer_batches", "user_spans", "loader_tasks", "batch_workers", "consumer_work",
+           "without_contention", "loader_config", "loader_times"]
+
+
+@dataclass(frozen=True)
+class Work:
+    """Per-batch work of one side, per stage: off-CPU seconds and CPU seconds (contention removed)."""
+
+    names: tuple[str, ...]
+    io_s: np.ndarray  # (batches, stages)
+    cpu_s: np.ndarray  # (batches, stages)
+
+    def scaled(self, factors: Mapping[str, float]) -> Work:
+        """The work with each stage ``factors[stage]`` times faster."""
+        f = np.array([1.0 / factors.get(n, 1.0) for n in self.names])
+        return Work(self.names, self.io_s * f, self.cpu_s * f)
+
+    def head(self, n: int) -> Work:
+        """The work of the first ``n`` batches."""
+        return Work(self.names, self.io_s[:n], self.cpu_s[:n])
+
+
+@dataclass(frozen=True)
+class _Batches:
+    """The consumer's batches of one rank, in batch order, with its wait and step times."""
+
+    rank: int
+    batch_id: np.ndarray
+    epoch: np.ndarray
+    wait_start_s: np.ndarray
+    ready_s: np.ndarray
+    wait_s: np.ndarray
+    step_start_s: np.ndarray  # the ready time where a batch has no step
+    step_end_s: np.ndarray
+    no_step: np.ndarray
+    notes: tuple[str, ...]
+
+    @property
+    def n(self) -> int:
+        return len(self.batch_id)
+
+    @property
+    def epoch_first(self) -> np.ndarray:
+        """The batch opens an epoch."""
+        return np.r_[True, self.epoch[1:] != self.epoch[:-1]]
+
+    @property
+    def epoch_start_index(self) -> np.ndarray:
+        """Per batch, the index of the first batch of its epoch."""
+        return np.maximum.accumulate(np.where(self.epoch_first, np.arange(self.n), 0))
+
+
+@dataclass(frozen=True)
+class _UserSpans:
+    """The stage spans of the plan's batches (not waits, not steps) and the side each ran on."""
+
+    position: np.ndarray  # index of the span's batch in _Batches
+    start_s: np.ndarray
+    end_s: np.ndarray
+    dur_s: np.ndarray
+    cpu_s: np.ndarray  # 0 where unknown
+    stage: np.ndarray  # stage names (str)
+    thread: np.ndarray  # pid << 32 + tid
+    in_wait: np.ndarray  # consumer thread, inside the wait for its batch: loading done by the consumer
+    consumer_side: np.ndarray
+    worker_side: np.ndarray
+    cpu_known: bool
+    steps: pd.DataFrame  # the step spans of the plan's batches
+    spans: int  # spans of the rank
+    notes: tuple[str, ...]
+
+    @property
+    def inline(self) -> bool:
+        """No worker ran a stage: the consumer loaded every batch itself."""
+        return not self.worker_side.any()
+
+    @property
+    def load_side(self) -> np.ndarray:
+        """Spans of the loader tasks: the workers', or the consumer's inside its waits when it loaded inline."""
+        return self.in_wait if self.inline else self.worker_side
+
+
+@dataclass(frozen=True)
+class _StageSeconds:
+    """Per batch and stage: wall seconds and CPU seconds of one side."""
+
+    names: tuple[str, ...]
+    dur_s: np.ndarray
+    cpu_s: np.ndarray
+    notes: tuple[str, ...] = ()
+    folded: tuple[str, ...] = ()  # names sharing the OTHER_STAGES column
+
+
+@dataclass(frozen=True)
+class _LoaderTasks:
+    """Per batch: the loader task's seconds per stage (plus the worker's own time) and its span."""
+
+    seconds: _StageSeconds
+    first_s: np.ndarray  # start of the task
+    last_s: np.ndarray  # end of the task
+    missing: np.ndarray  # no loader spans: replayed as a free task
+    inline: bool
+    notes: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class _BatchWorkers:
+    """Which worker ran each batch (-1: none) and how many workers the trace shows."""
+
+    worker: np.ndarray
+    seen: int
+    notes: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class _ConsumerWork:
+    """Per batch: the consumer's seconds per stage from the batch's arrival to the next wait."""
+
+    seconds: _StageSeconds
+    end_s: np.ndarray
+
+
+@dataclass(frozen=True)
+class _LoaderConfig:
+    """The recorded loader's workers, prefetch depth, policy and epoch barrier."""
+
+    workers: int
+    prefetch: int
+    policy: str
+    barrier: bool
+    prefetch_inferred: bool
+    notes: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class _LoaderTimes:
+    """The loader's constants, measured from the trace (means: the replay must add up to the wall time)."""
+
+    dispatch_s: float = 0.0
+    worker_gap_s: float = 0.0
+    latency_s: float = 0.0
+    handoff_s: float = 0.0
+    epoch_dispatch_s: np.ndarray = field(default_factory=lambda: np.zeros(0))
+
+
+def consumer_batches(run: Run, rank: int | None) -> _Batches:
+    """Step 1: the batches of ``rank`` (the lowest by default), sorted by id."""
+    allb = run.batches
+    if len(allb) == 0:
+        raise ScenarioError(
+            f"run {str(run.run_dir)!r} has no batches to replay; record the training loop with "
+            "probe.watch(loader) and probe.step()"
+        )
+    ranks = sorted(int(r) for r in allb["rank"].unique())
+    if rank is None:
+        rank = ranks[0]
+    elif rank not in ranks:
+        raise ScenarioError(f"rank {rank!r} has no batches in this run; choose one of {ranks}")
+    notes = (f"the run has {len(ranks)} ranks; replaying rank {rank} only",) if len(ranks) > 1 else ()
+    b = allb[allb["rank"] == rank].sort_values("batch_id").reset_index(drop=True)
+    ready = b["ready_s"].to_numpy(float)
+    step_start = b["step_start_s"].to_numpy(float)
+    step_end = b["step_end_s"].to_numpy(float)
+    no_step = np.isnan(step_end)
+    return _Batches(
+        rank=rank, batch_id=b["batch_id"].to_numpy(np.int64), epoch=b["epoch"].to_numpy(np.int64),
+        wait_start_s=b["wait_start_s"].to_numpy(float), ready_s=ready, wait_s=b["wait_s"].to_numpy(float),
+        step_start_s=np.where(no_step, ready, step_start), step_end_s=np.where(no_step, ready, step_end),
+        no_step=no_step, notes=notes,
+    )
+
+
+def user_spans(run: Run, batches: _Batches) -> _UserSpans:
+    """Step 2: the stage spans of the batches, on the loader side or the consumer side."""
+    sp = run.spans
+    sp = sp[sp["rank"] == batches.rank]
+    waits = sp[sp["stage"] == "wait"]
+    ck = waits[["pid", "tid"]].value_counts().index[0]  # the consumer: the thread that waits for batches
+    bid = batches.batch_id
+    pos = pd.Series(np.arange(batches.n), index=bid)
+    is_user = ~sp["stage"].isin(["wait", "step"]) & (sp["batch_id"] >= 0)
+    user = sp[is_user & sp["batch_id"].isin(bid)]
+    k = pos.reindex(user["batch_id"].to_numpy()).to_numpy(np.int64)
+    in_cons = ((user["pid"] == int(ck[0])) & (user["tid"] == int(ck[1]))).to_numpy()
+    start = user["start_s"].to_numpy(float)
+    end = user["end_s"].to_numpy(float)
+    # consumer-thread spans inside the wait for their batch are loading done by the consumer
+    in_wait = in_cons & (start >= batches.wait_start_s[k] - 1e-9) & (end <= batches.ready_s[k] + 1e-9)
+    no_step = batches.no_step[k]
+    nested_in_step = in_cons & ~no_step & (start >= batches.step_start_s[k]) & (end <= batches.step_end_s[k])
+    worker_side = ~in_cons
+    notes = []
+    if worker_side.any() and in_wait.any():
+        notes.append("spans in the consumer thread during its waits were folded into the handoff")
+    cpu = user["cpu_s"].to_numpy(float)
+    cpu_known = bool(np.isfinite(cpu).any()) if len(cpu) else False
+    if not cpu_known:
+        notes.append("no CPU times in the trace (cpu_time=False): stages are replayed without CPU contention")
+    return _UserSpans(
+        position=k, start_s=start, end_s=end, dur_s=end - start, cpu_s=np.nan_to_num(cpu, nan=0.0),
+        stage=user["stage"].astype(str).to_numpy(),
+        thread=(user["pid"].to_numpy(np.int64) << 32) + user["tid"].to_numpy(np.int64),
+        in_wait=in_wait, consumer_side=in_cons & ~in_wait & ~nested_in_step, worker_side=worker_side,
+        cpu_known=cpu_known, steps=sp[(sp["stage"] == "step") & sp["batch_id"].isin(bid)], spans=int(len(sp)),
+        notes=tuple(notes),
+    )
+
+
+def _stage_seconds(position: np.ndarray, stage: np.ndarray, dur_s: np.ndarray, cpu_s: np.ndarray, rows: int,
+                   keep: frozenset[str], leading: tuple[str, ...] = ()) -> _StageSeconds:
+    """Per batch and stage, the summed wall and CPU seconds of spans, columns in order of first appearance.
+
+    Past :data:`MAX_PLAN_STAGES` names, the ones with the least time (and
+    not in ``keep``) share one :data:`OTHER_STAGES` column.
+    """
+    names = list(leading) + [n for n in dict.fromkeys(stage) if n not in leading]
+    folded: tuple[str, ...] = ()
+    if len(names) > MAX_PLAN_STAGES:
+        names, folded = _fold_small_stages(names, stage, dur_s, keep, leading)
+    index = pd.Index(names)
+    code = index.get_indexer(stage) if len(stage) else np.zeros(0, np.int64)
+    notes: tuple[str, ...] = ()
+    if folded:
+        code = np.where(code < 0, len(names) - 1, code)
+        notes = (f"{len(folded)} of {len(folded) + len(names) - 1} stage names with the least time are replayed "
+                 f"together as {OTHER_STAGES!r} (at most {MAX_PLAN_STAGES} columns per side)",)
+    return _StageSeconds(tuple(names), _matrix(position, code, dur_s, rows, len(names)),
+                         _matrix(position, code, cpu_s, rows, len(names)), notes, folded)
+
+
+def _fold_small_stages(names: list[str], stage: np.ndarray, dur_s: np.ndarray, keep: frozenset[str],
+                       leading: tuple[str, ...]) -> tuple[list[str], tuple[str, ...]]:
+    """The columns (the names with most time, ``keep`` and ``leading`` always, then OTHER_STAGES) and the names folded."""
+    total = pd.Series(dur_s).groupby(stage).sum()
+    must = [n for n in names if n in keep or n in leading]
+    room = max(0, MAX_PLAN_STAGES - 1 - len(must))
+    biggest = set(total.drop(labels=must, errors="ignore").sort_values(ascending=False, kind="stable").index[:room])
+    kept = [n for n in names if n in biggest or n in must]
+    kept_set = set(kept)
+    return kept + [OTHER_STAGES], tuple(n for n in names if n not in kept_set)
+
+
+def _matrix(k: np.ndarray, code: np.ndarray, values: np.ndarray, rows: int, cols: int) -> np.ndarray:
+    flat = np.bincount(k * cols + code, weights=values, minlength=rows * cols)
+    return flat.astype(float).reshape(rows, cols)  # bincount of nothing is int
+
+
+def loader_tasks(spans: _UserSpans, batches: _Batches, keep: frozenset[str]) -> _LoaderTasks:
+    """Step 3a: per batch, the loader task's seconds per stage, plus the worker's time between its spans."""
+    nb, side = batches.n, spans.load_side
+    k = spans.position[side]
+    sec = _stage_seconds(k, spans.stage[side], spans.dur_s[side], spans.cpu_s[side], nb, keep)
+    notes = list(sec.notes)
+    ld, lc = sec.dur_s, sec.cpu_s
+    if not sec.names:
+        ld, lc = np.zeros((nb, 1)), np.zeros((nb, 1))
+    first, last = np.full(nb, np.nan), np.full(nb, np.nan)
+    if len(k):
+        g = pd.DataFrame({"k": k, "s": spans.start_s[side], "e": spans.end_s[side]}).groupby("k")
+        first[g["s"].min().index.to_numpy()] = g["s"].min().to_numpy()
+        last[g["e"].max().index.to_numpy()] = g["e"].max().to_numpy()
+    if spans.inline:  # the consumer ran the task inside its wait: the whole wait is the task
+        if np.isnan(first).all():
+            ld[:, 0] = batches.wait_s
+            notes.append("no stage spans were recorded: each wait is replayed as unstaged loading in the consumer")
+        first, last = batches.wait_start_s.copy(), batches.ready_s.copy()
+    missing = np.isnan(first)
+    if missing.any():
+        notes.append(f"{int(missing.sum())} batches have no loader spans; replayed as free loader tasks")
+        first, last = np.where(missing, batches.ready_s, first), np.where(missing, batches.ready_s, last)
+    gap = np.maximum(0.0, np.maximum(0.0, last - first) - ld.sum(1))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        frac = np.where(ld.sum(1) > 0, lc.sum(1) / ld.sum(1), 0.0)
+    names = (sec.names or (UNSTAGED,)) + (WORKER_OVERHEAD,)
+    seconds = _StageSeconds(names, np.column_stack([ld, gap]), np.column_stack([lc, gap * frac]), (), sec.folded)
+    return _LoaderTasks(seconds, first, last, missing, spans.inline, tuple(notes))
+
+
+def batch_workers(spans: _UserSpans, loader: _LoaderTasks) -> _BatchWorkers:
+    """Step 3b: the worker (thread) that started each batch's task; how many workers the trace shows."""
+    nb = len(loader.first_s)
+    wk = np.full(nb, -1, np.int64)
+    if loader.inline:
+        return _BatchWorkers(wk, 0, ())
+    side = spans.worker_side
+    k = spans.position[side]
+    codes, uniq = pd.factorize(spans.thread[side])
+    firsts = pd.DataFrame({"k": k, "w": codes, "s": spans.start_s[side]}).sort_values("s").drop_duplicates("k")
+    wk[firsts["k"].to_numpy()] = firsts["w"].to_numpy()
+    spread = pd.DataFrame({"k": k, "w": codes}).groupby("k")["w"].nunique()
+    notes: tuple[str, ...] = ()
+    if (spread > 1).any():
+        notes = (
+            f"{int((spread > 1).sum())} batches were loaded by more than one worker; each is replayed "
+            "as one task (exact only when a batch's samples run one after the other on one worker)",
+        )
+    return _BatchWorkers(wk, len(uniq), notes)
+
+
+def consumer_work(spans: _UserSpans, batches: _Batches, keep: frozenset[str]) -> _ConsumerWork:
+    """Step 3c: per batch, the step, consumer-side stages and loop overhead from its arrival to the next wait."""
+    nb, side = batches.n, spans.consumer_side
+    ready = batches.ready_s
+    nxt_wait = np.append(batches.wait_start_s[1:], np.nan)
+    end = np.maximum(np.where(np.isnan(nxt_wait), batches.step_end_s, nxt_wait), ready)
+    sec = _stage_seconds(spans.position[side], spans.stage[side], spans.dur_s[side], spans.cpu_s[side], nb, keep,
+                         leading=("step",))
+    cd, cc = sec.dur_s, sec.cpu_s
+    steps = spans.steps
+    pos = pd.Series(np.arange(nb), index=batches.batch_id)
+    sk = pos.reindex(steps["batch_id"].to_numpy()).to_numpy(np.int64)
+    cd[:, 0] = np.bincount(sk, weights=steps["dur_s"].to_numpy(float), minlength=nb)
+    cc[:, 0] = np.bincount(sk, weights=np.nan_to_num(steps["cpu_s"].to_numpy(float), nan=0.0), minlength=nb)
+    gap = np.maximum(0.0, (end - ready) - cd.sum(1))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        frac = np.where(cd.sum(1) > 0, cc.sum(1) / cd.sum(1), 0.0)
+    seconds = _StageSeconds(sec.names + (CONSUMER_OVERHEAD,), np.column_stack([cd, gap]),
+                            np.column_stack([cc, gap * frac]), sec.notes, sec.folded)
+    return _ConsumerWork(seconds, end)
+
+
+def without_contention(loader: _LoaderTasks, consumer: _ConsumerWork, batches: _Batches,
+                        cores: float) -> tuple[Work, Work]:
+    """Step 4: both sides' work with the slow-down of sharing the recorded cores taken out of the CPU parts."""
+    ld, lc = loader.seconds.dur_s, loader.seconds.cpu_s
+    cd, cc = consumer.seconds.dur_s, consumer.seconds.cpu_s
+    first, ready = loader.first_s, batches.ready_s
+    task_wall = np.maximum(0.0, loader.last_s - first)
+    lslow, cslow = remove_contention(
+        [(first, first + task_wall, ld.sum(1), lc.sum(1)), (ready, ready + cd.sum(1), cd.sum(1), cc.sum(1))], cores)
+    lio, lcpu = split_cpu(ld, lc, lslow)
+    cio, ccpu = split_cpu(cd, cc, cslow)
+    return Work(loader.seconds.names, lio, lcpu), Work(consumer.seconds.names, cio, ccpu)
+
+
+def loader_config(batches: _Batches, loader: _LoaderTasks, by_worker: _BatchWorkers, workers: int | None,
+                   prefetch: int | None, policy: str | None) -> _LoaderConfig:
+    """Step 5a: workers (counted), epoch barrier, prefetch depth (smallest the trace allows) and policy."""
+    if loader.inline:
+        return _LoaderConfig(0, 1, policy or "first-free", True, False, ())
+    nb, first = batches.n, loader.first_s
+    start_idx = batches.epoch_start_index
+    rec_workers = workers if workers is not None else max(1, by_worker.seen)
+    # did any task of an epoch start before the consumer began that epoch?
+    starts_early = (first < batches.wait_start_s[start_idx] - 1e-6) & (start_idx > 0)
+    barrier = not bool(starts_early.any())
+    notes: tuple[str, ...] = ()
+    if prefetch is not None:
+        rec_prefetch = int(prefetch)
+    else:
+        delivered_before = np.searchsorted(batches.ready_s, first, side="right")
+        lo = start_idx if barrier else np.zeros(nb, np.int64)
+        undelivered = np.arange(nb) - np.maximum(delivered_before, lo)
+        rec_prefetch = int(max(1, undelivered.max() + 1, max_overlap(first, loader.last_s)))
+        notes = (f"recorded prefetch depth inferred as {rec_prefetch} (the smallest the trace allows)",)
+    if policy is None:
+        policy = "first-free"
+        if rec_workers >= 2:
+            idx_in = np.arange(nb) - (start_idx if barrier else 0)
+            wk = by_worker.worker
+            pairs = (idx_in >= rec_workers) & (wk >= 0)
+            prev = np.roll(wk, rec_workers)
+            if pairs.sum() >= 3 and float((wk[pairs] == prev[pairs]).mean()) >= 0.9:
+                policy = "round-robin"
+    return _LoaderConfig(int(rec_workers), rec_prefetch, policy, barrier, prefetch is None, notes)
+
+
+def loader_times(batches: _Batches, loader: _LoaderTasks, by_worker: _BatchWorkers,
+                  config: _LoaderConfig) -> _LoaderTimes:
+    """Step 5b: dispatch delay, busy worker's gap, latency to the consumer, handoff, epoch start-up."""
+    epochs = int(batches.epoch_first.sum())
+    if loader.inline or not by_worker.seen:
+        return _LoaderTimes(epoch_dispatch_s=np.zeros(epochs))
+    nb, first, last, wk = batches.n, loader.first_s, loader.last_s, by_worker.worker
+    req = _request_times(batches, config)
+    order = np.lexsort((first, wk))
+    same = np.r_[False, wk[order][1:] == wk[order][:-1]]
+    prev_end = np.full(nb, np.nan)
+    prev_end[order[same]] = last[order[np.flatnonzero(same) - 1]]
+    delay = first - req
+    busy = np.isfinite(prev_end) & (req < prev_end)
+    idle = ~busy & ~batches.epoch_first & np.isfinite(delay)
+    # means, not medians: the replay must add up to the recorded wall time, jitter included
+    dispatch = float(np.mean(np.maximum(0.0, delay[idle]))) if idle.any() else 0.0
+    gap = float(np.mean(np.maximum(0.0, (first - prev_end)[busy]))) if busy.any() else dispatch
+    # epoch start: the first of the tasks requested when the epoch started (worker start-up)
+    idx_in = np.arange(nb) - (batches.epoch_start_index if config.barrier else 0)
+    at_start = idx_in < config.prefetch
+    d_start = pd.Series(np.where(at_start, np.maximum(0.0, delay), np.nan))
+    by_epoch = d_start.groupby(np.cumsum(batches.epoch_first) - 1).min()
+    epoch_dispatch = by_epoch.reindex(range(epochs)).fillna(dispatch).to_numpy(float)
+    # arrival of a finished batch at a waiting consumer
+    ready, wait0 = batches.ready_s, batches.wait_start_s
+    prev_ready = np.r_[-np.inf, ready[:-1]]
+    blocking = (wait0 < last) & (prev_ready < last) & ~loader.missing
+    latency = float(np.mean(np.maximum(0.0, (ready - last)[blocking]))) if blocking.any() else 0.0
+    early = last + latency < wait0
+    # consumer cost of taking a batch that was already there (0 when no batch ever was)
+    handoff = float(np.median(batches.wait_s[early])) if early.any() else 0.0
+    return _LoaderTimes(dispatch, gap, latency, handoff, epoch_dispatch)
+
+
+def _request_times(batches: _Batches, config: _LoaderConfig) -> np.ndarray:
+    """When the recorded loader asked for each batch: at its epoch's start, or when batch ``i - prefetch`` was taken."""
+    nb, P = batches.n, config.prefetch
+    start_idx = batches.epoch_start_index
+    idx_in = np.arange(nb) - (start_idx if config.barrier else 0)
+    from_start = idx_in < P
+    base = batches.wait_start_s[start_idx] if config.barrier else np.full(nb, batches.wait_start_s[0])
+    req = np.full(nb, np.nan)
+    req[from_start] = base[from_start]
+    prev_i = np.arange(nb) - P
+    ok = ~from_start & (prev_i >= 0)
+    req[ok] = batches.ready_s[prev_i[ok]]
+    return req
