@@ -230,10 +230,11 @@ COMMANDS: dict[str, Command] = {
                 "pipeprobe compare runs/main runs/branch --max-stall-increase 0.05 --max-wall-increase 0.1",
                 _compare_arguments, _compare_run),
         Command("whatif", "predict the wall time of RUN_DIR with faster stages, more workers...",
-                "Replay the recorded pipeline under a changed configuration and predict the wall time, the "
-                "stall share and the critical path.",
+                "Predict the wall time, stall share and critical path of a recorded run under a changed "
+                "configuration, by replaying the recorded pipeline.",
                 "pipeprobe whatif runs/today --faster decode=2 augment=1.5\n"
-                "pipeprobe whatif runs/today --workers 4 --prefetch 8 --json",
+                "pipeprobe whatif runs/today --workers 4 --prefetch 8 --json\n"
+                "pipeprobe whatif --workers 4 --prefetch-per-worker 2 runs/today",
                 _whatif_arguments, _whatif_run),
     ]
 }

@@ -31,11 +31,7 @@ RUN_DIR may come before or after the options.
 
 --prefetch counts batches in flight across all workers. torch's DataLoader counts per worker
 (prefetch_factor): a loader with 4 workers and prefetch_factor=2 keeps 8 batches in flight,
-i.e. --prefetch 8, or --prefetch-per-worker 2.
-
-example:
-  pipeprobe whatif runs/parts-qc --faster decode=2 augment=inf --workers 4
-  pipeprobe whatif --workers 4 --prefetch-per-worker 2 runs/parts-qc"""
+i.e. --prefetch 8, or --prefetch-per-worker 2."""
 
 
 def add_arguments(parser: Any) -> None:
