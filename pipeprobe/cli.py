@@ -99,6 +99,12 @@ def build_parser() -> argparse.ArgumentParser:
     whatif = sub.add_parser("whatif", help="predict the wall time of RUN_DIR with faster stages, more workers...")
     whatif._sub = "whatif"
     _whatif_arguments(whatif)
+
+    from .export import add_arguments as _export_arguments
+
+    export = sub.add_parser("export", help="write a run as parquet or csv tables with a JSON manifest")
+    export._sub = "export"
+    _export_arguments(export)
     return parser
 
 
@@ -163,6 +169,12 @@ def _cmd_whatif(args: argparse.Namespace) -> int:
     return run_command(args)
 
 
+def _cmd_export(args: argparse.Namespace) -> int:
+    from .export import run_command
+
+    return run_command(args)
+
+
 class _UsageError(Exception):
     pass
 
@@ -171,7 +183,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; return the exit code."""
     parser = build_parser()
     args = parser.parse_args(argv)
-    handlers = {"demo": _cmd_demo, "report": _cmd_report, "compare": _cmd_compare, "whatif": _cmd_whatif}
+    handlers = {"demo": _cmd_demo, "report": _cmd_report, "compare": _cmd_compare, "whatif": _cmd_whatif,
+                "export": _cmd_export}
     previous = warnings.showwarning
     warnings.showwarning = _one_line_warning
     try:
