@@ -105,6 +105,12 @@ def build_parser() -> argparse.ArgumentParser:
     export = sub.add_parser("export", help="write a run as parquet or csv tables with a JSON manifest")
     export._sub = "export"
     _export_arguments(export)
+
+    from .launch import add_arguments as _run_arguments
+
+    run = sub.add_parser("run", help="record an unmodified training script: pipeprobe run -- python train.py ARGS")
+    run._sub = "run"
+    _run_arguments(run)
     return parser
 
 
@@ -169,6 +175,12 @@ def _cmd_whatif(args: argparse.Namespace) -> int:
     return run_command(args)
 
 
+def _cmd_run(args: argparse.Namespace) -> int:
+    from .launch import run_command
+
+    return run_command(args)
+
+
 def _cmd_export(args: argparse.Namespace) -> int:
     from .export import run_command
 
@@ -184,7 +196,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     handlers = {"demo": _cmd_demo, "report": _cmd_report, "compare": _cmd_compare, "whatif": _cmd_whatif,
-                "export": _cmd_export}
+                "export": _cmd_export, "run": _cmd_run}
     previous = warnings.showwarning
     warnings.showwarning = _one_line_warning
     try:
