@@ -7,7 +7,6 @@ Runs in the script's interpreter after the script ended (see
 
 from __future__ import annotations
 
-import json
 import sys
 from pathlib import Path
 from typing import Any
