@@ -279,7 +279,8 @@ def _open_session(options: dict[str, Any]) -> _Session | None:
     from .record import Probe
 
     try:
-        probe = Probe(options["out"], report=False, flush_interval_s=float(options.get("flush_s", 1.0)))
+        probe = Probe(options["out"], report=False, flush_interval_s=float(options.get("flush_s", 1.0)),
+                      live=options.get("live_s") or False)
     except Exception as exc:  # noqa: BLE001 - the script runs anyway
         import warnings
 

@@ -168,6 +168,8 @@ def add_arguments(parser: Any) -> None:
     parser.add_argument("--flush", type=_positive_float, default=1.0, metavar="S",
                         help="seconds between writes of the trace; a killed script loses at most this much (1)")
     parser.add_argument("--quiet", action="store_true", help="no status line while the script runs")
+    parser.add_argument("--status-every", type=_positive_float, default=5.0, metavar="S",
+                        help="seconds between status lines on stderr (5)")
     parser.add_argument("--report", metavar="FILE", help="write the report to FILE instead of stderr")
     parser.add_argument("--name", type=_name_pair, action="append", default=[], metavar="AUTO=NAME",
                         help="call a loader NAME instead of its automatic name (dataset class-creation order)")
@@ -187,7 +189,7 @@ def run_command(args: argparse.Namespace) -> int:
     options = {
         "out": str(out),
         "flush_s": args.flush,
-        "quiet": bool(args.quiet),
+        "live_s": None if args.quiet else args.status_every,
         "report": str(Path(args.report).resolve()) if args.report else None,
         "names": dict(args.name),
         "train": args.train,
