@@ -88,7 +88,7 @@ class TestPlainScripts:
         assert (24, 4) == (own["batches"], own["val_batches"])
         report = done.stderr
         assert report.index("SquareDigits-0 (training)") < report.index("CheckDigits-1")
-        assert "not a timed step" in info["step"] or "not timed" in info["step"]
+        assert "between batches" in info["step"] and "not timed" in info["step"]
 
     def test_names_given_by_the_user(self, tmp_path: Path) -> None:
         """--name renames a loader and --train picks the one the report covers first."""
@@ -155,6 +155,17 @@ class TestLeavingAsTheScriptWould:
         assert "KeyboardInterrupt" in err
         run = pipeprobe.load(out)
         assert (True, True) == (run.header["closed"], len(run.batches) >= 2)
+
+    def test_a_module(self, tmp_path: Path) -> None:
+        """python -m MODULE ARGS: argv[0] is the module's file, as python -m gives it; its exit code passes."""
+        (tmp_path / "pkgfit").mkdir()
+        (tmp_path / "pkgfit" / "__init__.py").write_text("")
+        (tmp_path / "pkgfit" / "fit.py").write_text("import sys\nprint(sys.argv, __name__)\nsys.exit(4)\n")
+        done = pipeprobe_run(["--out", str(tmp_path / "run"), "--quiet", "--", sys.executable, "-m", "pkgfit.fit",
+                              "a"], cwd=tmp_path, timeout=60)
+        bare = subprocess.run([sys.executable, "-m", "pkgfit.fit", "a"], capture_output=True, text=True,
+                              env=child_env(), cwd=tmp_path, timeout=60)
+        assert (4, 4, bare.stdout) == (bare.returncode, done.returncode, done.stdout)
 
     def test_a_script_without_a_loader(self, tmp_path: Path) -> None:
         """No DataLoader: a clear message, the script's stdout and its exit code, no traceback."""
