@@ -1,7 +1,7 @@
 """Writing a run as plain tables that other tools read (parquet or csv).
 
 :func:`export_tables` loads a run with :func:`pipeprobe.load`, finds its
-critical path with :func:`pipeprobe.critical_path`, and writes six tables
+critical path with :func:`pipeprobe.critical_path`, and writes seven tables
 into a folder, one file each, plus ``manifest.json`` describing them:
 
 ``run``
@@ -11,6 +11,9 @@ into a folder, one file each, plus ``manifest.json`` describing them:
 ``critical_segments``
     The pieces of the critical path that tile the run's wall time
     (:attr:`pipeprobe.CriticalPath.segments`).
+``loader_epochs``
+    Which DataLoader each epoch iterated (runs recorded by ``pipeprobe
+    run``; no rows otherwise).
 
 Every table starts with a ``run_id`` column, so the files of many runs can
 be read as one table (e.g. by DuckDB with a glob) and grouped by run. The
@@ -27,8 +30,10 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pandas as pd
 
+from .byloader import read_script_info
 from .critical import SEGMENT_COLUMNS, critical_path
 from .errors import PipeprobeError
 from .load import BATCH_COLUMNS, SPAN_COLUMNS, Run, load
@@ -77,6 +82,11 @@ TABLES: dict[str, dict[str, str]] = {
         "read_bytes": "bytes the process read so far (-1 for core rows or unknown)",
     },
     "critical_segments": {**_RUN_ID, **SEGMENT_COLUMNS},
+    "loader_epochs": {
+        **_RUN_ID,
+        "loader": "DataLoader name (runs recorded by pipeprobe run; no rows otherwise)",
+        "epoch": "an epoch of the trace that iterated this loader (join to batches.epoch)",
+    },
 }
 
 
@@ -158,7 +168,7 @@ def export_tables(run: Run | str | os.PathLike, out_dir: str | os.PathLike, *, f
     ...             time.sleep(0.001)
     >>> out = export_tables(d, tempfile.mkdtemp() + "/tables")
     >>> sorted(out.files)
-    ['batches', 'critical_segments', 'resources', 'run', 'samples', 'spans']
+    ['batches', 'critical_segments', 'loader_epochs', 'resources', 'run', 'samples', 'spans']
     >>> pd.read_csv(out.files["batches"])["batch_id"].tolist()
     [0, 1, 2]
     """
@@ -206,7 +216,7 @@ def _prepare_folder(out: Path) -> None:
 
 
 def _collect_tables(run: Run) -> dict[str, pd.DataFrame]:
-    """The six tables, each with the documented columns in order and ``run_id`` first."""
+    """The tables, each with the documented columns in order and ``run_id`` first."""
     run_id = str(run.header.get("run_id", run.run_dir.name))
     segments = critical_path(build_timeline(run)).segments
     frames = {
@@ -216,8 +226,17 @@ def _collect_tables(run: Run) -> dict[str, pd.DataFrame]:
         "samples": run.samples,
         "resources": run.resources,
         "critical_segments": segments,
+        "loader_epochs": _loader_epochs(run),
     }
     return {name: _with_columns(frames[name], TABLES[name], run_id) for name in TABLES}
+
+
+def _loader_epochs(run: Run) -> pd.DataFrame:
+    """Which loader each epoch iterated, from ``script.json`` (``pipeprobe run``); empty otherwise."""
+    info = read_script_info(run.run_dir)
+    rows = [(str(e["name"]), int(epoch)) for e in (info or {}).get("loaders", []) for epoch in e.get("epochs", [])]
+    return pd.DataFrame({"loader": pd.Series([r[0] for r in rows], dtype=object),
+                         "epoch": pd.Series([r[1] for r in rows], dtype=np.int64)})
 
 
 def _run_row(run: Run) -> dict[str, Any]:
@@ -250,6 +269,13 @@ def _with_columns(frame: pd.DataFrame, columns: dict[str, str], run_id: str) -> 
     return out
 
 
+def _step_meaning(run: Run) -> str:
+    info = read_script_info(run.run_dir)
+    if info is not None and info.get("step"):
+        return str(info["step"])
+    return "the training step as timed by probe.step()"
+
+
 def _write_table(frame: pd.DataFrame, path: Path, format: str) -> Path:
     """Write one table through a temporary name, so a half-written file never has the final name."""
     tmp = path.with_name(f".{path.name}.part")
@@ -273,6 +299,7 @@ def _write_manifest(out: Path, run: Run, format: str, files: dict[str, Path], ro
         "run_dir": str(Path(run.run_dir).resolve()),
         "table_format": format,
         "times": "seconds from the run start (see the run table's started_ns)",
+        "step": _step_meaning(run),
         "missing": "-1 for unknown ids and counts, empty (NaN) for unknown numbers",
         "problems": list(run.problems),
         "tables": tables,

@@ -86,6 +86,27 @@ class TestRoundTrip:
         assert 0 == done.rows["spans"]
 
 
+class TestLoaders:
+    def test_loader_epochs_of_a_script_run(self, tmp_path: Path) -> None:
+        """A run recorded by pipeprobe run exports which loader each epoch iterated, and the step's meaning."""
+        rows = [("wait", "", 0, 2, -1, 0, 0), ("step", "", 2, 3, -1, 0, 0), ("wait", "", 3, 4, -1, 1, 1)]
+        d = write_run(tmp_path / "r", {100: rows})
+        script = {"loaders": [{"name": "train", "epochs": [0]}, {"name": "val", "epochs": [1]}],
+                  "step": "loop time between batches (not timed)"}
+        (d / "script.json").write_text(json.dumps(script))
+        done = export_tables(d, tmp_path / "t")
+        loaders = pd.read_csv(done.files["loader_epochs"])
+        batches = pd.read_csv(done.files["batches"]).merge(loaders, on=["run_id", "epoch"])
+        assert [("train", 0), ("val", 1)] == list(zip(batches["loader"], batches["batch_id"], strict=True))
+        assert script["step"] == json.loads(done.manifest.read_text())["step"]
+
+    def test_no_loader_rows_otherwise(self, simple_run_dir: Path, tmp_path: Path) -> None:
+        """A run recorded with a Probe has no loader rows; its step is the timed one."""
+        done = export_tables(simple_run_dir, tmp_path / "t")
+        assert (0, "the training step as timed by probe.step()") == (
+            done.rows["loader_epochs"], json.loads(done.manifest.read_text())["step"])
+
+
 class TestManifest:
     def test_manifest_describes_files(self, simple_run_dir: Path, tmp_path: Path) -> None:
         """The manifest names each table's file, row count and columns, matching the files."""
