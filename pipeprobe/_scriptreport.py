@@ -28,6 +28,7 @@ def finish(probe: Any, loaders: dict[str, dict[str, Any]], batches_taken: int, o
     entries = [{"name": name, **info} for name, info in loaders.items()]
     info = {"format": _FORMAT, "format_version": _VERSION, "command": options.get("command", []),
             "step": STEP_MEANING, "loaders": entries, "training_loader": None}
+    _warn_unmatched(options, entries)
     if batches_taken == 0:
         _write_info(run_dir, info)
         print("pipeprobe: the script took no batch from a torch DataLoader, so there is nothing to report; "
@@ -42,6 +43,20 @@ def finish(probe: Any, loaders: dict[str, dict[str, Any]], batches_taken: int, o
         text = report_text(run, entries, train, options.get("command", []))
         _print_report(text, options.get("report"))
     print(f"pipeprobe: run folder {run_dir}", file=sys.stderr, flush=True)
+
+
+def _warn_unmatched(options: dict[str, Any], entries: list[dict[str, Any]]) -> None:
+    """One line per --name or --train that named no loader, listing the names there were."""
+    autos = {str(e.get("auto_name")) for e in entries}
+    names = {str(e["name"]) for e in entries}
+    there = ", ".join(sorted(autos)) or "none"
+    for auto in options.get("names", {}):
+        if auto not in autos:
+            print(f"pipeprobe: warning: --name {auto}=... matched no loader (loaders: {there})", file=sys.stderr)
+    train = options.get("train")
+    if train and train not in names and entries:
+        print(f"pipeprobe: warning: --train {train} names no loader (loaders: {', '.join(sorted(names))}); "
+              "the report covers the one with most batches", file=sys.stderr)
 
 
 def _write_info(run_dir: Path, info: dict[str, Any]) -> None:

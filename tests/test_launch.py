@@ -100,6 +100,15 @@ class TestPlainScripts:
         assert (0, "holdout") == (done.returncode, info["training_loader"])
         assert "holdout (training)" in done.stderr
 
+    def test_names_that_match_nothing(self, tmp_path: Path) -> None:
+        """A --name or --train that names no loader gets a warning listing the loaders there were."""
+        pytest.importorskip("torch", reason="pipeprobe run watches torch DataLoaders")
+        done = pipeprobe_run(["--out", str(tmp_path / "run"), "--quiet", "--name", "Nope-7=x", "--train", "y",
+                              str(PLAIN), "map", "0", "1", str(tmp_path / "own.json")])
+        warned = [x for x in done.stderr.splitlines() if x.startswith("pipeprobe: warning: ")]
+        assert (0, 2) == (done.returncode, len(warned))
+        assert "CheckDigits-1, SquareDigits-0" in warned[0]
+
     def test_stdout_and_report_place(self, tmp_path: Path) -> None:
         """stdout is the script's, byte for byte; the report goes to stderr with the run folder last."""
         pytest.importorskip("torch", reason="pipeprobe run watches torch DataLoaders")
