@@ -92,15 +92,21 @@ class _LoopSteps:
         self.tls = threading.local()
 
     def open(self) -> None:
-        span = self.probe.step()
-        span.__enter__()
+        try:
+            span = self.probe.step()
+            span.__enter__()
+        except Exception:  # noqa: BLE001 - an untimed step is lost, the loop goes on
+            return
         self.tls.span = span
 
     def close(self) -> None:
         span = getattr(self.tls, "span", None)
         if span is not None:
             self.tls.span = None
-            span.__exit__(None, None, None)
+            try:
+                span.__exit__(None, None, None)
+            except Exception:  # noqa: BLE001
+                pass
 
 
 class _TakenBatches:
@@ -139,16 +145,26 @@ class _Session:
         self.failed = False
 
     def iterate(self, loader: Any, base: type, original_iter: Any) -> Any:
-        """``iter(loader)`` through the probe's watch; falls back to the plain iterator on our own failure."""
+        """``iter(loader)`` through the probe's watch.
+
+        On pipeprobe's own failure before the loader starts, the plain
+        iterator (and one warning); an exception of the loader itself
+        passes through unchanged.
+        """
+        guard = _AsBaseLoader(loader, base, self.tls)
         try:
             name = self.book.name_of(loader)
             self.epoch += 1
             self.book.add_epoch(name, self.epoch)
-            with _AsBaseLoader(loader, base, self.tls):
-                watched = iter(self.probe.watch(loader, epoch=self.epoch))
+            watch = self.probe.watch(loader, epoch=self.epoch)
+            guard.__enter__()
         except Exception as exc:  # noqa: BLE001 - a pipeprobe failure must not stop the script
             self._fail(exc)
             return original_iter(loader)
+        try:
+            watched = iter(watch)
+        finally:
+            guard.__exit__()
         return _TakenBatches(watched, self.steps, loader, self)
 
     def _fail(self, exc: BaseException) -> None:
@@ -174,9 +190,9 @@ class _AsBaseLoader:
         self.cls = type(loader)
 
     def __enter__(self) -> None:
-        self.tls.busy = True
-        if self.cls is not self.base:
+        if self.cls is not self.base:  # a TypeError here (a subclass with slots) leaves everything as it was
             object.__setattr__(self.loader, "__class__", self.base)
+        self.tls.busy = True
 
     def __exit__(self, *exc: Any) -> None:
         if self.cls is not self.base:

@@ -138,6 +138,24 @@ class TestLeavingAsTheScriptWould:
         assert done.stderr.startswith(bare.stderr)
         assert 3 == len(pipeprobe.load(out).batches)
 
+    def test_the_loaders_own_error(self, tmp_path: Path) -> None:
+        """An error raised by the loader itself (a broken sampler) reaches the script unchanged: same exit code,
+        same exception line as without pipeprobe (Python)."""
+        pytest.importorskip("torch", reason="pipeprobe run watches torch DataLoaders")
+        script = tmp_path / "bad_sampler.py"
+        script.write_text(
+            "from torch.utils.data import DataLoader, Sampler\n"
+            "class Broken(Sampler):\n"
+            "    def __len__(self): return 4\n"
+            "    def __iter__(self): raise LookupError('sampler lost its index file')\n"
+            "for batch in DataLoader(list(range(8)), sampler=Broken(), batch_size=2):\n"
+            "    pass\n")
+        done = pipeprobe_run(["--out", str(tmp_path / "run"), "--quiet", str(script)])
+        bare = bare_run([str(script)])
+        last = bare.stderr.strip().splitlines()[-1]
+        assert (1, 1, "LookupError: sampler lost its index file") == (bare.returncode, done.returncode, last)
+        assert last in done.stderr.splitlines()
+
     def test_a_script_that_exits_3(self, tmp_path: Path) -> None:
         """sys.exit(3) gives exit code 3; the bare 'pipeprobe run train.py' form works too."""
         pytest.importorskip("torch", reason="pipeprobe run watches torch DataLoaders")
