@@ -86,7 +86,12 @@ class TestWhereItGoes:
 
 class TestWhileRecording:
     def test_probe_live(self, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
-        """Probe(live=...) prints status lines while recording: batches so far and the busiest stage."""
+        """Probe(live=...) prints status lines while recording: batches so far and the busiest stage, also
+        for a probe that is not the first in its process (a notebook)."""
+        with pipeprobe.Probe(tmp_path / "earlier", report=False, sample_interval_s=0) as probe:
+            for _ in probe.watch([[0]]):
+                pass
+
         def batches():
             for b in range(60):
                 with pipeprobe.stage("decode", sample=b):
