@@ -1,7 +1,8 @@
-"""``python -m pipeprobe``: the command line (see :mod:`pipeprobe.cli`)."""
+"""``python -m pipeprobe``: the same command line as ``pipeprobe``."""
 
 import sys
 
 from .cli import main
 
-sys.exit(main())
+if __name__ == "__main__":
+    sys.exit(main())

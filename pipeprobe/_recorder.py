@@ -147,6 +147,7 @@ class _Recorder:
             mine.limit = _FIELDS * buffer_spans
             mine.ctx = -1
             self.buffers.append(mine)
+            self._start_flusher()  # buffer() starts it for new buffers only
         for name in RESERVED_STAGES + tuple(stages or ()):
             self.stage_id(name)
         self.anchor_mono_ns = monotonic_ns()

@@ -209,6 +209,31 @@ def _whatif_run(args: argparse.Namespace) -> int:
     return run_command(args)
 
 
+# -- export and run ---------------------------------------------------------------------------------------
+def _export_arguments(p: argparse.ArgumentParser) -> None:
+    from .export import add_arguments
+
+    add_arguments(p)
+
+
+def _export_run(args: argparse.Namespace) -> int:
+    from .export import run_command
+
+    return run_command(args)
+
+
+def _launch_arguments(p: argparse.ArgumentParser) -> None:
+    from .launch import add_arguments
+
+    add_arguments(p)
+
+
+def _launch_run(args: argparse.Namespace) -> int:
+    from .launch import run_command
+
+    return run_command(args)
+
+
 #: The subcommands, in the order ``pipeprobe --help`` lists them.
 COMMANDS: dict[str, Command] = {
     c.name: c for c in [
@@ -236,6 +261,16 @@ COMMANDS: dict[str, Command] = {
                 "pipeprobe whatif runs/today --workers 4 --prefetch 8 --json\n"
                 "pipeprobe whatif --workers 4 --prefetch-per-worker 2 runs/today",
                 _whatif_arguments, _whatif_run),
+        Command("export", "write a run as parquet or csv tables with a JSON manifest",
+                "Write the run's spans, batches, sample membership, resources and critical-path segments as "
+                "tables other tools read (csv always; parquet with the 'parquet' extra), plus manifest.json.",
+                "pipeprobe export runs/today tables/today\npipeprobe export runs/today tables/today --format parquet",
+                _export_arguments, _export_run),
+        Command("run", "record an unmodified training script: pipeprobe run -- python train.py ARGS",
+                "Run a training script unchanged while pipeprobe watches every torch DataLoader it iterates; "
+                "the script's output, signals and exit code pass through, the report prints at exit.",
+                "pipeprobe run -- python train.py --epochs 3\npipeprobe run --out runs/today --quiet -- python train.py",
+                _launch_arguments, _launch_run),
     ]
 }
 

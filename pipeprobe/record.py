@@ -20,7 +20,7 @@ from pathlib import Path
 from time import monotonic_ns, thread_time_ns
 from typing import Any, Callable, Iterable, Iterator, TypeVar
 
-from . import __version__, _clocksync
+from . import __version__, _clocksync, _live
 from . import _recorder as _r
 from . import tracefile as tf
 from ._recorder import RECORDER, TLS
@@ -343,6 +343,9 @@ class Probe:
         When ``torch.distributed`` is initialised, measure the clock offsets
         between ranks at start (a few collective rounds; every rank must
         create its probe at the same point) and agree on one run id.
+    live : bool or float, default False
+        Print a status line on stderr every 5 s (or every ``live`` seconds)
+        while recording; see :mod:`pipeprobe._live`.
 
     Raises
     ------
@@ -370,6 +373,7 @@ class Probe:
         report: bool = True,
         buffer_spans: int = 8192,
         sync_clocks: bool = True,
+        live: bool | float = False,
     ) -> None:
         if not isinstance(out_dir, (str, os.PathLike)):
             raise ValueError(f"out_dir must be a path, got {type(out_dir).__name__}")
@@ -382,6 +386,7 @@ class Probe:
             raise ValueError(f"flush_interval_s must be > 0, got {flush_interval_s!r}")
         if not (isinstance(buffer_spans, int) and buffer_spans >= 16):
             raise ValueError(f"buffer_spans must be an int >= 16, got {buffer_spans!r}")
+        live_s = _live.live_interval(live)
         rec = RECORDER
         if rec.on and rec.role == "main":
             raise ProbeStateError("a pipeprobe.Probe is already recording in this process; close it first")
@@ -443,6 +448,7 @@ class Probe:
         except Exception as exc:  # noqa: BLE001 - an unwritable folder must not stop training
             rec.fail(exc)
         _r._SIGNAL_CLOSERS.append(self._close_on_signal)
+        self._live = None if live_s is None else _live.LiveLine(out, self.rank, live_s, lambda: rec.next_batch).start()
 
     # -- recording API -------------------------------------------------------
     def stage(self, name: str, *, sample: int | None = None, batch: int | None = None) -> Any:
@@ -507,6 +513,8 @@ class Probe:
         self.closed = True
         rec = RECORDER
         end = monotonic_ns()
+        if self._live is not None:
+            self._live.stop()
         if self._sampler is not None:
             self._sampler.stop()
         ok = rec.on

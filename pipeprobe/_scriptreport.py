@@ -1,0 +1,97 @@
+"""The end of ``pipeprobe run``: close the probe, describe the loaders, print the report and the run folder.
+
+Runs in the script's interpreter after the script ended (see
+:mod:`pipeprobe._autowatch`). Everything goes to stderr (or the report to
+``--report FILE``): the script's stdout stays the script's.
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+from typing import Any
+
+from . import tracefile as tf
+from ._autowatch import SCRIPT_FILE, STEP_MEANING
+from .byloader import loader_run, loader_table, training_loader
+
+__all__ = ["finish"]
+
+_FORMAT = "pipeprobe-script"
+_VERSION = 1
+
+
+def finish(probe: Any, loaders: dict[str, dict[str, Any]], batches_taken: int, options: dict[str, Any]) -> None:
+    """Close ``probe``, write ``script.json``, print the report (or a clear message) and the run folder last."""
+    probe.close()
+    run_dir = Path(options["out"])
+    entries = [{"name": name, **info} for name, info in loaders.items()]
+    info = {"format": _FORMAT, "format_version": _VERSION, "command": options.get("command", []),
+            "step": STEP_MEANING, "loaders": entries, "training_loader": None}
+    _warn_unmatched(options, entries)
+    if batches_taken == 0:
+        _write_info(run_dir, info)
+        print("pipeprobe: the script took no batch from a torch DataLoader, so there is nothing to report; "
+              "pipeprobe run watches torch.utils.data.DataLoader only", file=sys.stderr)
+    else:
+        from .load import load
+
+        run = load(run_dir)
+        train = training_loader(loader_table(run, entries), options.get("train"))
+        info["training_loader"] = train
+        _write_info(run_dir, info)
+        text = report_text(run, entries, train, options.get("command", []))
+        _print_report(text, options.get("report"))
+    print(f"pipeprobe: run folder {run_dir}", file=sys.stderr, flush=True)
+
+
+def _warn_unmatched(options: dict[str, Any], entries: list[dict[str, Any]]) -> None:
+    """One line per --name or --train that named no loader, listing the names there were."""
+    autos = {str(e.get("auto_name")) for e in entries}
+    names = {str(e["name"]) for e in entries}
+    there = ", ".join(sorted(autos)) or "none"
+    for auto in options.get("names", {}):
+        if auto not in autos:
+            print(f"pipeprobe: warning: --name {auto}=... matched no loader (loaders: {there})", file=sys.stderr)
+    train = options.get("train")
+    if train and train not in names and entries:
+        print(f"pipeprobe: warning: --train {train} names no loader (loaders: {', '.join(sorted(names))}); "
+              "the report covers the one with most batches", file=sys.stderr)
+
+
+def _write_info(run_dir: Path, info: dict[str, Any]) -> None:
+    tf.write_json_atomic(run_dir / SCRIPT_FILE, info)
+
+
+def _print_report(text: str, path: str | None) -> None:
+    if not path:
+        print(text, file=sys.stderr, flush=True)
+        return
+    Path(path).write_text(text + "\n", encoding="utf-8")
+    print(f"pipeprobe: report written to {path}", file=sys.stderr)
+
+
+def report_text(run: Any, entries: list[dict[str, Any]], train: str | None, command: list[str]) -> str:
+    """The loader table, then the usual report on the training loader's batches alone."""
+    from .analysis import analyze
+    from .report import SECTIONS, Section, format_report
+
+    table = loader_table(run, entries, train)
+    epochs = next((e["epochs"] for e in entries if e["name"] == train), [])
+    analysis = analyze(loader_run(run, epochs))
+    head = Section("script", lambda a: _loader_lines(table, train, command))
+    return format_report(analysis, [head, *SECTIONS])
+
+
+def _loader_lines(table: Any, train: str | None, command: list[str]) -> list[str]:
+    lines = [f"pipeprobe run  {' '.join(command)}"[:100],
+             "  'step' here is the loop's time between taking a batch and asking for the next one;",
+             "  nothing timed the training step itself (see README: Recording a script without editing it)",
+             f"  {'loader':<32} {'batches':>8} {'epochs':>7} {'stall s':>9} {'loop s':>9} {'stall share':>12}"]
+    for row in table.itertuples(index=False):
+        name = f"{row.loader} (training)" if row.loader == train else str(row.loader)
+        lines.append(f"  {name[:32]:<32} {row.batches:>8} {row.epochs:>7} {row.stall_s:>9.3f} {row.loop_s:>9.3f} "
+                     f"{100 * row.stall_share:>10.1f} %")
+    if len(table) > 1:
+        lines.append(f"  the report below covers {train} alone; pipeprobe report RUN covers every loader")
+    return lines
