@@ -79,14 +79,13 @@ def _module_name(path: Path) -> str:
 
 
 def _layer_of(path: Path, rows: list[tuple[str, list[str]]]) -> list[int]:
+    """Rows naming the module; a file named exactly wins over a folder holding it."""
     rel = path.relative_to(PACKAGE).as_posix()
-    hits = []
-    for i, (_, patterns) in enumerate(rows):
-        for pat in patterns:
-            if rel == pat or (pat.endswith("/") and rel.startswith(pat)):
-                hits.append(i)
-                break
-    return hits
+    exact = [i for i, (_, patterns) in enumerate(rows) if rel in patterns]
+    if exact:
+        return exact
+    return [i for i, (_, patterns) in enumerate(rows)
+            if any(pat.endswith("/") and rel.startswith(pat) for pat in patterns)]
 
 
 def _is_type_checking(test: ast.expr) -> bool:
