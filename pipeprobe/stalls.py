@@ -93,7 +93,9 @@ class Stalls:
 
 
 def _default_warmup(run: Run) -> int:
-    workers = run.processes.loc[run.processes["role"] == "worker", "pid"].nunique() if len(run.processes) else 0
+    # a loader slot, not a process: workers started anew each epoch fill the same slots
+    column = "slot" if "slot" in run.processes else "pid"
+    workers = run.processes.loc[run.processes["role"] == "worker", column].nunique() if len(run.processes) else 0
     return max(1, int(workers))
 
 
@@ -109,7 +111,7 @@ def stall_summary(run: Run, critical: CriticalPath | None = None, *, warmup_batc
         From :func:`pipeprobe.critical.critical_path`; without it no blame is given.
     warmup_batches : int, optional
         Batches at the start of each epoch counted as warm-up. Default: one
-        per loader worker process (at least 1), the batches a fresh pool
+        per loader worker slot (at least 1), the batches a fresh pool
         delivers before it runs at its steady rate.
     wall_s : float, optional
         Wall time for the fractions; default the critical path's (else ``run.wall_s``).

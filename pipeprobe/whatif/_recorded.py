@@ -206,6 +206,23 @@ def consumer_batches(run: Run, rank: int | None) -> _Batches:
     )
 
 
+def _loader_threads(run: Run, user: pd.DataFrame) -> np.ndarray:
+    """One key per thread that loads; worker processes of one loader slot share their slot's key.
+
+    A loader without persistent workers starts new worker processes each epoch;
+    they fill the same slots (:func:`pipeprobe.load.worker_slots`), so the
+    replay sees the loader's worker count, not the count of processes.
+    """
+    key = (user["pid"].to_numpy(np.int64) << 32) + user["tid"].to_numpy(np.int64)
+    procs = run.processes
+    if "slot" not in procs or procs.empty:
+        return key
+    slot_of = procs.set_index(["rank", "pid"])["slot"]
+    slot_of = slot_of[~slot_of.index.duplicated()]
+    slots = slot_of.reindex(pd.MultiIndex.from_arrays([user["rank"], user["pid"]])).fillna(0).to_numpy(np.int64)
+    return np.where(slots > 0, -slots, key)
+
+
 def user_spans(run: Run, batches: _Batches) -> _UserSpans:
     """Step 2: the stage spans of the batches, on the loader side or the consumer side."""
     sp = run.spans
@@ -235,7 +252,7 @@ def user_spans(run: Run, batches: _Batches) -> _UserSpans:
     return _UserSpans(
         position=k, start_s=start, end_s=end, dur_s=end - start, cpu_s=np.nan_to_num(cpu, nan=0.0),
         stage=user["stage"].astype(str).to_numpy(),
-        thread=(user["pid"].to_numpy(np.int64) << 32) + user["tid"].to_numpy(np.int64),
+        thread=_loader_threads(run, user),
         in_wait=in_wait, consumer_side=in_cons & ~in_wait & ~nested_in_step, worker_side=worker_side,
         cpu_known=cpu_known, steps=sp[(sp["stage"] == "step") & sp["batch_id"].isin(bid)], spans=int(len(sp)),
         notes=tuple(notes),
