@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 import simpy
 from _replay_cases import CASES, GOLDEN, plan_summary, replay_case
-from _synth import record_pool_run, write_run
+from _synth import record_pool_run, three_epoch_rows, write_run
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
@@ -273,6 +273,14 @@ class TestRecordedRuns:
 
 
 @pytest.mark.slow
+class TestWorkerSlots:
+    @pytest.mark.parametrize("persistent", [True, False])
+    def test_workers_started_anew_each_epoch_count_once(self, tmp_path, persistent):
+        """A loader with 2 workers is replayed with 2, whether or not it starts new processes each epoch."""
+        run = pipeprobe.load(write_run(tmp_path / "r", three_epoch_rows(persistent=persistent)))
+        assert 2 == build_plan(run).workers
+
+
 class TestDemoRun:
     def test_demo_replay_reproduces_wall_time(self, tmp_path):
         """The demo's unchanged configuration replays to its measured wall time within 3 %."""
