@@ -34,6 +34,36 @@ ENV_OPTIONS = "PIPEPROBE_OPTIONS"
 RESERVED_STAGES = ("wait", "step")
 _FIELDS = 6  # start, end, cpu, sample, batch, code
 _MAX_STAGES = 65535
+_INT64_MIN, _INT64_MAX = -(2**63), 2**63 - 1
+#: A sample id beyond int64 (an unsigned 64-bit hash, say) keeps its low 63 bits.
+SAMPLE_ID_MASK = 2**63 - 1
+#: The record's batch id is an int32; a batch id beyond it is stored as -1 (unknown).
+BATCH_ID_MAX = 2**31 - 1
+#: The record's epoch is an int32, and the hot path carries ``epoch + 1`` in
+#: the top half of an int64 code: epochs are clipped into this range.
+EPOCH_MIN, EPOCH_MAX = -(2**31), 2**31 - 2
+_BATCH_FIELD = 4  # position of the batch id among a record's fields
+
+
+def _as_int64(values: list[int]) -> np.ndarray:
+    """The buffer's ints as int64; ids out of that range follow the documented rule.
+
+    The fast path is one conversion; only a buffer holding an int beyond
+    int64 takes the slow one: such a sample id keeps its low 63 bits
+    (:data:`SAMPLE_ID_MASK`: the same id always maps to the same stored id,
+    so spans still link to batches), such a batch id becomes -1 (unknown).
+    Times and codes never leave int64.
+    """
+    try:
+        return np.array(values, dtype=np.int64)
+    except OverflowError:
+        pass
+    fitted = []
+    for i, v in enumerate(values):
+        if not _INT64_MIN <= v <= _INT64_MAX:
+            v = -1 if i % _FIELDS == _BATCH_FIELD else v & SAMPLE_ID_MASK
+        fitted.append(v)
+    return np.array(fitted, dtype=np.int64)
 
 
 def detect_rank() -> tuple[int, int]:
@@ -59,10 +89,11 @@ class _Buffer(list):
     so the hot path needs no lock.
     """
 
-    __slots__ = ("ctx", "tid", "limit", "lock")
+    __slots__ = ("ctx", "tid", "limit", "lock", "owner")
 
     def __init__(self, limit: int) -> None:
         super().__init__()
+        self.owner = threading.current_thread()
         self.tid = threading.get_native_id()
         self.ctx = -1  # batch the consumer thread is fetching or working on
         self.limit = limit
@@ -95,6 +126,7 @@ class _Recorder:
         self.next_batch = 0
         self.failed = False
         self.run_id = ""
+        self.session = 0  # counts starts: a probe acts on the recorder only while it is the latest
         self._reset_process_state()
 
     # -- set-up ---------------------------------------------------------
@@ -123,6 +155,7 @@ class _Recorder:
         stages: list[str] | None = None,
         run_id: str = "",
     ) -> None:
+        kept = self._live_buffers()
         self._reset_process_state()
         self.run_dir = run_dir
         self.role = role
@@ -141,18 +174,33 @@ class _Recorder:
         self.stage_names.clear()
         self.stage_ids.clear()
         self.user_codes.clear()
-        mine = getattr(TLS, "buf", None)
-        if mine is not None:  # left over from an earlier probe in this thread
-            mine.clear()
-            mine.limit = _FIELDS * buffer_spans
-            mine.ctx = -1
-            self.buffers.append(mine)
+        for buf in kept:  # threads that recorded under an earlier probe keep their buffers
+            buf.clear()
+            buf.limit = _FIELDS * buffer_spans
+            buf.ctx = -1
+            self.buffers.append(buf)
         for name in RESERVED_STAGES + tuple(stages or ()):
             self.stage_id(name)
         self.anchor_mono_ns = monotonic_ns()
         self.anchor_wall_ns = time_ns()
         self.on = True
+        self.session += 1
+        with self.meta_lock:
+            self._start_flusher()
         install_signal_hooks()
+
+    def _live_buffers(self) -> list[_Buffer]:
+        """The buffers of this process's live threads, this thread's included.
+
+        A thread keeps its buffer (a thread-local) for its whole life, across
+        probes: a new probe must adopt it, or a pool thread that recorded
+        under an earlier probe would record into a buffer nobody flushes.
+        """
+        bufs = [b for b in self.buffers if b.owner.is_alive()]
+        mine = getattr(TLS, "buf", None)
+        if mine is not None and all(b is not mine for b in bufs):
+            bufs.append(mine)
+        return bufs
 
     def stage_id(self, name: str) -> int:
         sid = self.stage_ids.get(name)
@@ -222,23 +270,39 @@ class _Recorder:
             self.spill(buf)
 
     def spill(self, buf: _Buffer) -> None:
-        """Write a full buffer from its own thread."""
-        with buf.lock:
-            chunk = self._take(buf)
-        self._write([chunk])
+        """Write a full buffer from its own thread.
+
+        A spill is a write in progress like a flush: a signal arriving
+        meanwhile waits for it (see :meth:`flush`), and a failure here,
+        even in turning the records into fixed-width ones, is pipeprobe's
+        own: one warning, recording stops, the user's loop goes on.
+        """
+        mine = self.in_flush
+        outer = not getattr(mine, "on", False)
+        mine.on = True
+        try:
+            with buf.lock:
+                chunk = self._take(buf)
+            self._write([chunk])
+        except Exception as exc:  # noqa: BLE001 - never take training down
+            self.fail(exc)
+        finally:
+            if outer:
+                self._end_write(mine)
 
     @staticmethod
     def _take(buf: _Buffer) -> np.ndarray:
         """Move the finished records out of ``buf`` into a structured array (lock held)."""
         k = len(buf)
-        raw = np.array(buf[:k], dtype=np.int64).reshape(-1, _FIELDS)
+        raw = _as_int64(buf[:k]).reshape(-1, _FIELDS)
         del buf[:k]
         out = np.empty(len(raw), dtype=tf.SPAN_RECORD)
         out["start_ns"] = raw[:, 0]
         out["end_ns"] = raw[:, 1]
         out["cpu_ns"] = raw[:, 2]
         out["sample_id"] = raw[:, 3]
-        out["batch_id"] = raw[:, 4]
+        batch = raw[:, 4]
+        out["batch_id"] = np.where((batch < -1) | (batch > BATCH_ID_MAX), -1, batch)
         code = raw[:, 5]
         out["stage"] = code & 0xFFFF
         out["kind"] = (code >> 16) & 0xFF
@@ -262,12 +326,17 @@ class _Recorder:
             self._flush(lock_timeout_s)
         finally:
             if outer:
-                mine.on = False
-                # Signals run in the main thread, and only it may deliver one it held back.
-                if threading.current_thread() is threading.main_thread():
-                    pending, self.pending_signal = self.pending_signal, None
-                    if pending is not None:
-                        _deliver(*pending)
+                self._end_write(mine)
+
+    def _end_write(self, mine: threading.local) -> None:
+        """Leave the outermost write of this thread; deliver a signal it held back."""
+        mine.on = False
+        # Signals run in the main thread, and only it may deliver one it held back:
+        # through the whole signal path, so other threads' buffers are written too.
+        if threading.current_thread() is threading.main_thread():
+            pending, self.pending_signal = self.pending_signal, None
+            if pending is not None:
+                _on_signal(*pending)
 
     def _flush(self, lock_timeout_s: float) -> None:
         # Take the file lock before any records, so records are never taken
@@ -276,14 +345,17 @@ class _Recorder:
             return
         try:
             chunks = []
-            for buf in list(self.buffers):
-                if not buf.lock.acquire(timeout=lock_timeout_s):
-                    continue
-                try:
-                    if len(buf):
-                        chunks.append(self._take(buf))
-                finally:
-                    buf.lock.release()
+            try:
+                for buf in list(self.buffers):
+                    if not buf.lock.acquire(timeout=lock_timeout_s):
+                        continue
+                    try:
+                        if len(buf):
+                            chunks.append(self._take(buf))
+                    finally:
+                        buf.lock.release()
+            except Exception as exc:  # noqa: BLE001 - never take training down (nor the flush thread)
+                self.fail(exc)
             self._write_locked(chunks)
         finally:
             self.io_lock.release()
@@ -389,6 +461,7 @@ class _Recorder:
         mine = getattr(TLS, "buf", None)
         if mine is not None:  # the parent flushes these records, not us
             mine.clear()
+            mine.owner = threading.current_thread()
             mine.tid = threading.get_native_id()
             mine.ctx = -1
             mine.lock = threading.Lock()

@@ -23,7 +23,7 @@ from . import __version__, _clocksync
 from . import _recorder as _r
 from . import tracefile as tf
 from ._recorder import RECORDER, TLS
-from .errors import ProbeStateError
+from .errors import ProbeStateError, StageNameError, StageTargetError
 
 __all__ = ["Probe", "stage"]
 
@@ -34,15 +34,39 @@ _ERROR_BITS = tf.FLAG_ERROR << 24
 
 def _check_stage_name(name: Any) -> str:
     if not isinstance(name, str):
-        raise ValueError(f"stage name must be a str, got {type(name).__name__} {name!r}")
+        raise StageNameError(f"stage name must be a str, got {type(name).__name__} {name!r}")
     if not name or len(name) > 200:
-        raise ValueError(f"stage name must be 1 to 200 characters, got {name!r}")
+        raise StageNameError(f"stage name must be 1 to 200 characters, got {name!r}")
     if name in _r.RESERVED_STAGES:
-        raise ValueError(
+        raise StageNameError(
             f"stage name {name!r} is reserved: use probe.step() for the training step; "
             "the consumer's wait is recorded by probe.watch()"
         )
+    try:
+        name.encode("utf-8")
+    except UnicodeEncodeError as exc:
+        message = (
+            f"stage name {name!r} cannot be written as UTF-8 (character {exc.object[exc.start]!r} "
+            f"at position {exc.start}, a lone surrogate); give the name as plain text"
+        )
+        raise StageNameError(message) from None
     return name
+
+
+def _check_epoch(epoch: int) -> int:
+    """``epoch`` clipped to what a record holds (see ``_recorder.EPOCH_MAX``)."""
+    return min(max(epoch, _r.EPOCH_MIN), _r.EPOCH_MAX)
+
+
+def _check_timeable(fn: Any, name: str) -> None:
+    """Refuse functions whose call only creates the work: generators and coroutines."""
+    if inspect.isgeneratorfunction(fn) or inspect.iscoroutinefunction(fn) or inspect.isasyncgenfunction(fn):
+        kind = "a generator function" if inspect.isgeneratorfunction(fn) else "an async function"
+        message = (
+            f"@pipeprobe.stage({name!r}) cannot time {getattr(fn, '__qualname__', fn)!r}: it is {kind}, "
+            f"so a call only creates it; time the work inside it with `with pipeprobe.stage({name!r}): ...`"
+        )
+        raise StageTargetError(message)
 
 
 def _check_id(value: Any, what: str) -> int:
@@ -119,6 +143,7 @@ class _CpuSpan(_Span):
 
 
 def _timed(fn: Callable[..., T], name: str) -> Callable[..., T]:
+    _check_timeable(fn, name)
     try:
         params = list(inspect.signature(fn).parameters)
     except (TypeError, ValueError):
@@ -207,8 +232,21 @@ def stage(name: str, *, sample: int | None = -1, batch: int | None = -1) -> Any:
 
     Raises
     ------
+    StageNameError
+        ``name`` is not a non-empty str, is reserved, or cannot be written
+        as UTF-8 (a lone surrogate). Also a ``ValueError``.
     ValueError
-        ``name`` is not a non-empty str, is reserved, or an id is not an int.
+        An id is not an int.
+    StageTargetError
+        The decorator form is put on a generator or async function, whose
+        call only creates the work. Also a ``TypeError``.
+
+    Notes
+    -----
+    Any int is accepted as an id. The trace stores a sample id as an int64
+    and a batch id as an int32: a sample id beyond int64 (an unsigned 64-bit
+    hash) is stored as its low 63 bits, a batch id beyond int32 as -1
+    (unknown).
 
     Examples
     --------
@@ -243,13 +281,6 @@ def _stage_slow(name: Any, sample: Any, batch: Any) -> Any:
     return _CpuSpan(code, sample_i, batch_i) if rec.cpu_time else _Span(code, sample_i, batch_i)
 
 
-def _sample_ids_from(item: Any, samples: Callable[[Any], Iterable[int]] | None) -> list[int] | None:
-    if samples is None:
-        return None
-    ids = samples(item)
-    return [int(i) for i in ids]
-
-
 class _Watched:
     """An iterable of batches whose every iteration is recorded as an epoch."""
 
@@ -258,6 +289,27 @@ class _Watched:
         self._iterable = iterable
         self._samples = samples
         self._epoch = epoch
+        self._samples_warned = False
+
+    def _sample_ids(self, item: Any) -> list[int] | None:
+        """The user's ``samples=`` callable on a delivered batch; its failure is its own.
+
+        The callable is user code: when it raises (or returns something
+        that is not ints), that batch is recorded without sample ids, one
+        warning names the callable, and recording goes on.
+        """
+        try:
+            return [int(i) for i in self._samples(item)]
+        except Exception as exc:  # noqa: BLE001 - the user's callable, not pipeprobe, failed
+            if not self._samples_warned:
+                self._samples_warned = True
+                warnings.warn(
+                    f"pipeprobe: the samples= callable given to watch() raised {type(exc).__name__}: {exc}. "
+                    "Batches it fails on are recorded without their sample ids; recording goes on.",
+                    RuntimeWarning,
+                    stacklevel=3,
+                )
+            return None
 
     def __len__(self) -> int:
         return len(self._iterable)  # type: ignore[arg-type]
@@ -265,7 +317,7 @@ class _Watched:
     def __iter__(self) -> Iterator[Any]:
         rec = RECORDER
         if self._epoch is not None:
-            rec.epoch = self._epoch
+            rec.epoch = _check_epoch(self._epoch)
         else:
             rec.epoch += 1
         epoch = rec.epoch
@@ -280,7 +332,6 @@ class _Watched:
 
     def _run(self, it: Iterator[Any], epoch: int, index_queue: deque | None) -> Iterator[Any]:
         rec = RECORDER
-        samples = self._samples
         wait_code = (tf.KIND_WAIT << 16) | ((epoch + 1) << 32)
         member_code = (tf.KIND_MEMBER << 16) | ((epoch + 1) << 32)
         while True:
@@ -309,7 +360,7 @@ class _Watched:
                     if index_queue is not None:
                         ids = index_queue.popleft() if index_queue else None
                     else:
-                        ids = _sample_ids_from(item, samples)
+                        ids = self._sample_ids(item) if self._samples is not None else None
                     if ids:
                         for sid in ids:
                             rec.record(t1, t1, -1, sid, bid, member_code)
@@ -375,6 +426,7 @@ class Probe:
         out = Path(out_dir)
         if out.exists() and not out.is_dir():
             raise ValueError(f"out_dir {str(out)!r} is a file; give a folder for the run")
+        out = out.resolve()  # an os.chdir() during the run must not move it
         if not (isinstance(sample_interval_s, (int, float)) and sample_interval_s >= 0):
             raise ValueError(f"sample_interval_s must be >= 0, got {sample_interval_s!r}")
         if not (isinstance(flush_interval_s, (int, float)) and flush_interval_s > 0):
@@ -421,6 +473,7 @@ class Probe:
             world_size=self.world_size,
             run_id=run_id,
         )
+        self._session = rec.session
         self._header = {
             "format": "pipeprobe-run",
             "format_version": tf.FORMAT_VERSION,
@@ -494,7 +547,8 @@ class Probe:
             spans recorded in worker processes are linked to batches when
             the loader is not a torch ``DataLoader``.
         epoch : int, optional
-            Epoch number to record instead of counting iterations.
+            Epoch number to record instead of counting iterations. The trace
+            holds epochs from -2**31 to 2**31 - 2; one beyond is clipped.
         """
         if samples is not None and not callable(samples):
             raise ValueError("samples must be a callable that returns the sample ids of a batch")
@@ -525,6 +579,11 @@ class Probe:
         end = monotonic_ns()
         if self._sampler is not None:
             self._sampler.stop()
+        if rec.session != self._session:
+            # This probe failed and a newer one records now: its recorder,
+            # signal hooks and environment are not this probe's to touch.
+            _discard(_r._SIGNAL_CLOSERS, self._close_on_signal)
+            return
         ok = rec.on
         if ok:
             try:  # worker processes that outlive the probe flush now
@@ -540,10 +599,7 @@ class Probe:
                 warnings.warn(f"pipeprobe could not flush worker processes: {exc}", RuntimeWarning, stacklevel=2)
         rec.stop()
         _r.restore_signal_hooks()
-        try:
-            _r._SIGNAL_CLOSERS.remove(self._close_on_signal)
-        except ValueError:
-            pass
+        _discard(_r._SIGNAL_CLOSERS, self._close_on_signal)
         for key, value in self._env_before.items():
             if value is None:
                 os.environ.pop(key, None)
@@ -582,6 +638,13 @@ class Probe:
     def __repr__(self) -> str:
         state = "closed" if self.closed else ("recording" if RECORDER.on else "off")
         return f"<pipeprobe.Probe {str(self.run_dir)!r} {state}>"
+
+
+def _discard(items: list[Any], item: Any) -> None:
+    try:
+        items.remove(item)
+    except ValueError:
+        pass
 
 
 class _WorkerProbe:

@@ -221,3 +221,75 @@ def kill_trial(tmp: Path, seed: int, target: str, flush_s: float = 0.2) -> KillO
     b = run.batches
     batches_ok = bool(np.array_equal(b["batch_id"].to_numpy(), np.arange(len(b))) and b["ready_s"].notna().all())
     return KillOutcome(target, len(done), len(kept), invented, loss_s, batches_ok, "")
+
+
+# Raises a signal at itself from inside the third buffer spill, after the
+# spill took 16 spans out of the buffer and before it wrote them: the moment
+# a signal used to lose them. argv: run_dir mode signal_name
+SPILL_SIGNAL_CHILD = r'''
+import os, signal, sys
+import pipeprobe
+from pipeprobe import _recorder
+run_dir, mode, signum = sys.argv[1], sys.argv[2], getattr(signal, sys.argv[3])
+if mode == "user-exit":
+    signal.signal(signal.SIGTERM, lambda s, f: os._exit(7))
+if mode == "user-raise":
+    signal.signal(signal.SIGTERM, lambda s, f: sys.exit(7))
+probe = pipeprobe.Probe(run_dir, report=False, flush_interval_s=60, sample_interval_s=0, buffer_spans=16)
+rec = _recorder.RECORDER
+write, spills = rec._write, []
+def signalled_write(chunks):
+    spills.append(len(chunks[0]))
+    if len(spills) == 3:
+        os.kill(os.getpid(), signum)  # Python runs the handler right here, mid-spill
+    write(chunks)
+rec._write = signalled_write
+for i in range(1000):
+    with pipeprobe.stage("decode", sample=i):
+        pass
+print("the signal did not end the loop", flush=True)
+'''
+
+
+# Records spans in a tight loop (a buffer of 16 spills every 16 spans) and
+# announces each; argv: run_dir progress mode. Used with signals sent at
+# random moments: many land inside a spill.
+TIGHT_SIGNAL_CHILD = r'''
+import os, signal, sys, time
+import pipeprobe
+run_dir, progress, mode = sys.argv[1], sys.argv[2], sys.argv[3]
+PROG = os.open(progress, os.O_WRONLY | os.O_CREAT | os.O_APPEND)
+if mode == "user-exit":
+    signal.signal(signal.SIGTERM, lambda s, f: os._exit(7))
+probe = pipeprobe.Probe(run_dir, report=False, flush_interval_s=60, sample_interval_s=0, buffer_spans=16)
+os.write(PROG, f"ready {os.getpid()} -1 {time.monotonic_ns()}\n".encode())
+try:
+    for i in range(10**7):
+        with pipeprobe.stage("decode", sample=i):
+            pass
+        os.write(PROG, f"decode {os.getpid()} {i} {time.monotonic_ns()}\n".encode())
+except KeyboardInterrupt:
+    print("KeyboardInterrupt", flush=True)
+    os._exit(0)
+'''
+
+
+# Two probes one after the other in one process; the second records in the
+# main thread (whose buffer the first probe made) until it is killed.
+# argv: run_dir_a run_dir_b progress flush_s
+SECOND_PROBE_CHILD = r'''
+import os, sys, time
+import pipeprobe
+run_a, run_b, progress, flush_s = sys.argv[1], sys.argv[2], sys.argv[3], float(sys.argv[4])
+PROG = os.open(progress, os.O_WRONLY | os.O_CREAT | os.O_APPEND)
+with pipeprobe.Probe(run_a, report=False, sample_interval_s=0, flush_interval_s=flush_s):
+    for i in range(10):
+        with pipeprobe.stage("decode", sample=i):
+            pass
+pipeprobe.Probe(run_b, report=False, sample_interval_s=0, flush_interval_s=flush_s)
+os.write(PROG, f"ready {os.getpid()} -1 {time.monotonic_ns()}\n".encode())
+for i in range(10**6):
+    with pipeprobe.stage("decode", sample=i):
+        time.sleep(0.002)
+    os.write(PROG, f"decode {os.getpid()} {i} {time.monotonic_ns()}\n".encode())
+'''

@@ -3,10 +3,13 @@
 from __future__ import annotations
 
 import multiprocessing as mp
+import os
 import sys
 import threading
 import time
 import traceback
+import warnings
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -14,7 +17,7 @@ import pytest
 
 import pipeprobe
 from pipeprobe import stage
-from pipeprobe.errors import ProbeStateError
+from pipeprobe.errors import PipeprobeError, ProbeStateError, StageNameError, StageTargetError
 
 
 @stage("decode")
@@ -180,6 +183,87 @@ class TestErrors:
         assert 1 == len(_user_spans(pipeprobe.load(tmp_path / "a"), "decode"))
 
 
+    @pytest.mark.parametrize("name", ["dec\ud800ode", "\udfff"])
+    def test_unencodable_stage_name_is_refused_where_it_is_named(self, tmp_path: Path, name: str) -> None:
+        """A name with a lone surrogate raises StageNameError at the stage() call, probe or not (RFC 3629, sec. 3)."""
+        with pytest.raises(UnicodeEncodeError):  # the outside fact: UTF-8 cannot encode surrogates
+            name.encode("utf-8")
+        with pytest.raises(StageNameError, match="lone surrogate"):
+            stage(name)
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            with pytest.raises(StageNameError) as info:
+                stage(name)(len)
+        assert isinstance(info.value, ValueError) and isinstance(info.value, PipeprobeError)
+        assert ["wait", "step"] == pipeprobe.load(tmp_path / "r").header["stages"]
+
+    def test_generator_and_async_functions_are_refused(self) -> None:
+        """Decorating a generator or async function raises StageTargetError (a call there only creates the work)."""
+        def gen():
+            yield 1
+
+        async def coro():
+            return 1
+
+        async def agen():
+            yield 1
+
+        for fn in (gen, coro, agen):
+            with pytest.raises(StageTargetError, match="with pipeprobe.stage"):
+                stage("decode")(fn)
+        assert issubclass(StageTargetError, TypeError)
+
+
+class TestProbesOneAfterAnother:
+    def test_a_reused_thread_pool_records_everything_under_each_probe(self, tmp_path: Path) -> None:
+        """Pool threads that recorded under a first probe record all their spans under a second (ground truth: 200 calls each)."""
+        def work(i: int) -> None:
+            with stage("decode", sample=i):
+                pass
+
+        with ThreadPoolExecutor(4) as pool:
+            for name in ("a", "b", "c"):
+                with pipeprobe.Probe(tmp_path / name, report=False, sample_interval_s=0):
+                    list(pool.map(work, range(200)))
+        for name in ("a", "b", "c"):
+            spans = _user_spans(pipeprobe.load(tmp_path / name), "decode")
+            assert list(range(200)) == sorted(spans["sample_id"].astype(int))
+
+    def test_closing_a_failed_probe_leaves_the_next_one_recording(self, tmp_path: Path) -> None:
+        """A probe that failed at start, closed after a newer probe began, does not stop the newer one."""
+        blocker = tmp_path / "file"
+        blocker.write_text("a file where a folder should go")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            failed = pipeprobe.Probe(blocker / "run", report=False, sample_interval_s=0)
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            failed.close()
+            with stage("decode", sample=5):
+                pass
+        assert [5] == _user_spans(pipeprobe.load(tmp_path / "r"), "decode")["sample_id"].tolist()
+
+
+class TestRunFolder:
+    def test_chdir_during_the_run_keeps_recording(self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+        """A relative run folder is fixed at start: an os.chdir() mid-run loses nothing and warns nothing."""
+        (tmp_path / "elsewhere").mkdir()
+        monkeypatch.chdir(tmp_path)
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            with pipeprobe.Probe("rel/run", report=False, sample_interval_s=0.01, flush_interval_s=0.01) as probe:
+                with stage("decode", sample=0):
+                    pass
+                os.chdir(tmp_path / "elsewhere")
+                time.sleep(0.05)
+                with stage("decode", sample=1):
+                    pass
+        assert tmp_path / "rel" / "run" == probe.run_dir
+        assert [] == [str(w.message) for w in seen if "pipeprobe" in str(w.message)]
+        run = pipeprobe.load(tmp_path / "rel" / "run")
+        assert [0, 1] == _user_spans(run, "decode")["sample_id"].tolist()
+        assert run.header["closed"]
+        assert not list((tmp_path / "elsewhere").iterdir())
+
+
 def _batches(n: int, size: int):
     for b in range(n):
         ids = list(range(b * size, (b + 1) * size))
@@ -254,6 +338,25 @@ class TestWatch:
                 for _ in probe.watch(broken()):
                     pass
         assert 1 == len(pipeprobe.load(tmp_path / "r").batches)
+
+    def test_a_raising_samples_callable_is_named_and_recording_goes_on(self, tmp_path: Path) -> None:
+        """A samples= callable that raises costs that batch its ids and one warning naming it; nothing else."""
+        def ids_of(batch: list[int]) -> list[int]:
+            if batch[0] == 2:
+                raise KeyError("no ids here")
+            return batch
+
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+                for _batch in probe.watch([[0, 1], [2, 3], [4, 5], [2, 9]], samples=ids_of):
+                    with probe.step():
+                        pass
+        ours = [str(w.message) for w in seen if "pipeprobe" in str(w.message)]
+        assert 1 == len(ours) and "samples= callable" in ours[0] and "KeyError" in ours[0]
+        run = pipeprobe.load(tmp_path / "r")
+        assert 4 == len(run.batches) and 4 == int((run.spans["stage"] == "step").sum())
+        assert [0, 1, 4, 5] == sorted(run.samples["sample_id"].astype(int))
 
     def test_consumer_side_stage_belongs_to_current_batch(self, tmp_path: Path) -> None:
         """A stage in the training loop after delivery (e.g. a host-to-device copy) gets that batch."""
