@@ -23,8 +23,8 @@ import numpy as np
 import pandas as pd
 
 from . import tracefile as tf
-from ._clocksync import check_ranks, check_step_alignment, plan_alignment
 from .errors import RunNotFoundError, TraceFormatError
+from .record._clocksync import check_ranks, check_step_alignment, plan_alignment
 
 __all__ = ["Run", "load", "SPAN_COLUMNS", "BATCH_COLUMNS"]
 

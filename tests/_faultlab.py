@@ -229,7 +229,7 @@ def kill_trial(tmp: Path, seed: int, target: str, flush_s: float = 0.2) -> KillO
 SPILL_SIGNAL_CHILD = r'''
 import os, signal, sys
 import pipeprobe
-from pipeprobe import _recorder
+from pipeprobe.record import _recorder
 run_dir, mode, signum = sys.argv[1], sys.argv[2], getattr(signal, sys.argv[3])
 if mode == "user-exit":
     signal.signal(signal.SIGTERM, lambda s, f: os._exit(7))

@@ -487,7 +487,7 @@ class _HalfWriter:
 
 def test_short_write_stops_recording_before_records_misalign(tmp_path: Path) -> None:
     """A write that stores part of a chunk stops recording, so later records cannot land misaligned."""
-    from pipeprobe._recorder import RECORDER
+    from pipeprobe.record._recorder import RECORDER
 
     with warnings.catch_warnings(record=True) as seen:
         warnings.simplefilter("always")

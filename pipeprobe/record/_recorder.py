@@ -27,7 +27,7 @@ from typing import Any
 
 import numpy as np
 
-from . import tracefile as tf
+from .. import tracefile as tf
 
 ENV_RUN_DIR = "PIPEPROBE_RUN_DIR"
 ENV_OPTIONS = "PIPEPROBE_OPTIONS"

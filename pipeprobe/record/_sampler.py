@@ -17,7 +17,7 @@ from time import monotonic_ns
 import numpy as np
 import psutil
 
-from . import tracefile as tf
+from .. import tracefile as tf
 
 
 class ResourceSampler:
