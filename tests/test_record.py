@@ -504,3 +504,64 @@ def test_recorded_file_is_48_bytes_per_span(tmp_path: Path) -> None:
     assert 16 + 48 * 500 == bin_file.stat().st_size
     assert np.dtype(pipeprobe.tracefile.SPAN_RECORD).itemsize == 48
     assert sys.byteorder in ("little", "big")
+
+
+_LIGHT_CHILD = r'''
+import os, sys
+import pipeprobe
+if sys.argv[2] == "worker":  # a loader worker joins the parent's run through the environment
+    os.environ["PIPEPROBE_RUN_DIR"] = sys.argv[1]
+    with pipeprobe.stage("decode", sample=1):
+        pass
+    pipeprobe.record._recorder.RECORDER.stop()
+else:
+    with pipeprobe.Probe(sys.argv[1], report=False, sample_interval_s=0.01) as probe:
+        for batch in probe.watch([[1, 2]], samples=lambda b: b):
+            with pipeprobe.stage("decode", sample=1):
+                pass
+            with probe.step():
+                pass
+print(" ".join(sorted({m.split(".")[0] for m in sys.modules} & {"pandas", "matplotlib", "numpy"})))
+'''
+
+
+class TestLayers:
+    @pytest.mark.parametrize("role", ["main", "worker"])
+    def test_recording_imports_neither_pandas_nor_matplotlib(self, tmp_path: Path, role: str) -> None:
+        """A fresh process that imports pipeprobe and records (as the main process or a worker) loads numpy only."""
+        import subprocess
+
+        (tmp_path / "r").mkdir()
+        env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parent.parent))
+        env.pop("PIPEPROBE_RUN_DIR", None)
+        res = subprocess.run([sys.executable, "-c", _LIGHT_CHILD, str(tmp_path / "r"), role], env=env,
+                             capture_output=True, text=True, timeout=60)
+        assert 0 == res.returncode, res.stderr
+        assert "numpy" == res.stdout.strip()
+        files = list((tmp_path / "r").glob("spans-r0-p*.bin"))
+        assert [16 + 48 * (1 if role == "worker" else 5)] == [f.stat().st_size for f in files]  # the span(s) landed
+
+    def test_public_names_resolve_lazily_and_keep_their_meaning(self) -> None:
+        """Every name in pipeprobe.__all__ is in dir() and resolves; functions named like modules stay functions."""
+        import importlib
+
+        assert set(pipeprobe.__all__) <= set(dir(pipeprobe))
+        for name in ("load", "whatif", "compare", "ceilings"):
+            importlib.import_module(f"pipeprobe.{name}")
+            assert callable(getattr(pipeprobe, name)) and not isinstance(getattr(pipeprobe, name), type(sys))
+        assert all(getattr(pipeprobe, name) is not None for name in pipeprobe.__all__)
+        with pytest.raises(AttributeError):
+            pipeprobe.no_such_name  # noqa: B018
+
+    def test_close_prints_the_same_report_as_the_report_module(self, tmp_path: Path, capsys) -> None:
+        """With report=True, close() prints what pipeprobe.report prints for the folder (the facade's printer)."""
+        from pipeprobe.report import print_close_report
+
+        with pipeprobe.Probe(tmp_path / "r", sample_interval_s=0) as probe:
+            for _batch in probe.watch(_batches(3, 2)):
+                with probe.step():
+                    time.sleep(0.002)
+        printed = capsys.readouterr().out
+        print_close_report(tmp_path / "r")
+        assert capsys.readouterr().out == printed
+        assert printed.strip()
