@@ -293,3 +293,94 @@ for i in range(10**6):
         time.sleep(0.002)
     os.write(PROG, f"decode {os.getpid()} {i} {time.monotonic_ns()}\n".encode())
 '''
+
+
+# One misuse case per run, in a fresh process; prints a JSON outcome:
+# {"spans": kept, "expected": announced, "errors": [...], "warnings": [...]}.
+# argv: run_dir case
+MISUSE_CHILD = r'''
+import asyncio, json, os, sys, time, warnings
+from concurrent.futures import ThreadPoolExecutor
+import pipeprobe
+from pipeprobe.errors import PipeprobeError
+run_dir, case = sys.argv[1], sys.argv[2]
+errors, expected, dirs = [], 0, [run_dir]
+
+def count(folder, stage):
+    spans = pipeprobe.load(folder).spans
+    return int((spans["stage"] == stage).sum())
+
+@pipeprobe.stage("decode")
+def decode(sample_hash):
+    return sample_hash
+
+with warnings.catch_warnings(record=True) as seen:
+    warnings.simplefilter("always")
+    if case == "large-ids":
+        with pipeprobe.Probe(run_dir, report=False, sample_interval_s=0, buffer_spans=16,
+                             flush_interval_s=0.01) as probe:
+            batches = [[2**64 - 1 - 2 * b, 2**64 - 2 - 2 * b] for b in range(20)]
+            for batch in probe.watch(batches, samples=lambda b: b, epoch=2**31):
+                for sid in batch:
+                    decode(sid)
+                    with pipeprobe.stage("augment", sample=sid + 2**70, batch=2**40):
+                        pass
+                    expected += 2
+    elif case == "pool-two-probes":
+        def work(i):
+            with pipeprobe.stage("decode", sample=i):
+                pass
+        dirs = [run_dir + "-a", run_dir + "-b"]
+        with ThreadPoolExecutor(4) as pool:
+            for d in dirs:
+                with pipeprobe.Probe(d, report=False, sample_interval_s=0):
+                    list(pool.map(work, range(200)))
+                expected += 200
+    elif case == "chdir":
+        os.makedirs(run_dir + "-elsewhere")
+        os.chdir(os.path.dirname(run_dir))
+        with pipeprobe.Probe(os.path.basename(run_dir), report=False, sample_interval_s=0.01,
+                             flush_interval_s=0.01):
+            for i in range(200):
+                if i == 100:
+                    os.chdir(run_dir + "-elsewhere")
+                    time.sleep(0.05)
+                decode(i)
+                expected += 1
+    elif case == "samples-raises":
+        def ids_of(batch):
+            if batch[0] % 3 == 0:
+                raise KeyError(batch[0])
+            return batch
+        with pipeprobe.Probe(run_dir, report=False, sample_interval_s=0) as probe:
+            for batch in probe.watch([[b, b + 100] for b in range(30)], samples=ids_of):
+                decode(batch[0])
+                expected += 1
+    elif case == "bad-names":
+        for name in ("dec\ud800ode", "\udfff", "x\udcff"):
+            try:
+                pipeprobe.stage(name)
+            except PipeprobeError as exc:
+                errors.append(type(exc).__name__)
+        with pipeprobe.Probe(run_dir, report=False, sample_interval_s=0):
+            decode(1)
+            expected += 1
+    elif case == "generator-async":
+        def gen():
+            yield 1
+        async def coro():
+            return 1
+        async def agen():
+            yield 1
+        for fn in (gen, coro, agen):
+            try:
+                pipeprobe.stage("decode")(fn)
+            except PipeprobeError as exc:
+                errors.append(type(exc).__name__)
+        with pipeprobe.Probe(run_dir, report=False, sample_interval_s=0):
+            decode(1)
+            expected += 1
+spans = sum(count(d, "decode") + (count(d, "augment") if case == "large-ids" else 0) for d in dirs)
+print(json.dumps({"spans": spans, "expected": expected, "errors": errors,
+                  "warnings": [str(w.message) for w in seen if "pipeprobe" in str(w.message)]}))
+'''
