@@ -70,6 +70,15 @@ def one_worker(tree: Path, script: Path, run_dir: Path) -> dict:
     return json.loads(res.stdout.strip().splitlines()[-1])
 
 
+def import_s(tree: Path) -> float:
+    """Seconds ``import pipeprobe`` adds to a fresh interpreter (its own clock, inside the process)."""
+    code = "import time; t = time.perf_counter(); import pipeprobe; print(time.perf_counter() - t)"
+    env = dict(os.environ, PYTHONPATH=str(tree))
+    res = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=120,
+                         check=True)
+    return float(res.stdout)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--baseline-rev", default="a776c4c")
@@ -84,16 +93,19 @@ def main() -> None:
         for i in range(args.pairs):
             order = ("before", "after") if i % 2 == 0 else ("after", "before")
             for name in order:
-                results[name].append(one_worker(trees[name], script, tmp / f"run-{name}-{i}"))
+                row = one_worker(trees[name], script, tmp / f"run-{name}-{i}")
+                row["import_s"] = import_s(trees[name])
+                results[name].append(row)
     print(f"spawned worker that records one stage, {args.pairs} alternating pairs (baseline {args.baseline_rev})")
-    print(f"{'tree':8} {'start-up median':>16} {'peak RSS median':>16}  heavy modules loaded")
+    print(f"{'tree':8} {'start-up median':>16} {'peak RSS median':>16} {'import pipeprobe':>17}  heavy modules loaded")
     med = {}
     for name, rows in results.items():
         start = statistics.median(r["start_s"] for r in rows)
         rss = statistics.median(r["rss_bytes"] for r in rows) / 2**20
+        imp = statistics.median(r["import_s"] for r in rows)
         heavy = sorted({m for r in rows for m in r["heavy"]}) or ["none"]
         med[name] = (start, rss)
-        print(f"{name:8} {start * 1e3:13.0f} ms {rss:12.1f} MiB  {', '.join(heavy)}")
+        print(f"{name:8} {start * 1e3:13.0f} ms {rss:12.1f} MiB {imp * 1e3:14.0f} ms  {', '.join(heavy)}")
     (sb, rb), (sa, ra) = med["before"], med["after"]
     print(f"after/before: start-up {sa / sb:.2f}x, peak RSS {ra / rb:.2f}x ({rb - ra:+.1f} MiB saved per worker)")
 
