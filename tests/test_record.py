@@ -240,6 +240,8 @@ class TestProbesOneAfterAnother:
             with stage("decode", sample=5):
                 pass
         assert [5] == _user_spans(pipeprobe.load(tmp_path / "r"), "decode")["sample_id"].tolist()
+        # the failed probe's flush thread was retired when the next probe started (regression: it flushed on)
+        assert [] == [t.name for t in threading.enumerate() if t.name == "pipeprobe-flush"]
 
 
 class TestRunFolder:

@@ -19,7 +19,7 @@ from typing import Any, Callable, Iterable, Iterator, TypeVar
 from .. import __version__
 from .. import tracefile as tf
 from ..errors import ProbeStateError
-from . import _clocksync
+from . import _clocksync, _closing, _signals
 from . import _recorder as _r
 from ._recorder import RECORDER
 from ._spans import _check_epoch, _check_id, _CpuSpan, _Noop, _Span, stage
@@ -252,7 +252,7 @@ class Probe:
             "closed": False,
         }
         self._open_run(float(sample_interval_s))
-        _r._SIGNAL_CLOSERS.append(self._close_on_signal)
+        _signals._SIGNAL_CLOSERS.append(self._close_on_signal)
 
     def _join_ranks(self, sync_clocks: bool) -> tuple[str, str, dict[str, Any] | None]:
         """Set this probe's rank and world size; return ``(run_id, run_id_source, clock_sync)``.
@@ -370,12 +370,12 @@ class Probe:
         if rec.session != self._session:
             # This probe failed and a newer one records now: its recorder,
             # signal hooks and environment are not this probe's to touch.
-            _discard(_r._SIGNAL_CLOSERS, self._close_on_signal)
+            _discard(_signals._SIGNAL_CLOSERS, self._close_on_signal)
             return
         ok = rec.on
         if ok:
             try:  # worker processes that outlive the probe flush now
-                late = _r.close_workers(self.run_dir.resolve(), self.rank)
+                late = _closing.close_workers(self.run_dir.resolve(), self.rank)
                 if late:
                     warnings.warn(
                         f"pipeprobe: worker processes {late} did not flush within 3 s of close; "
@@ -386,8 +386,8 @@ class Probe:
             except Exception as exc:  # noqa: BLE001 - never take training down
                 warnings.warn(f"pipeprobe could not flush worker processes: {exc}", RuntimeWarning, stacklevel=2)
         rec.stop()
-        _r.restore_signal_hooks()
-        _discard(_r._SIGNAL_CLOSERS, self._close_on_signal)
+        _signals.restore_signal_hooks()
+        _discard(_signals._SIGNAL_CLOSERS, self._close_on_signal)
         for key, value in self._env_before.items():
             if value is None:
                 os.environ.pop(key, None)

@@ -47,7 +47,7 @@ class ResourceSampler:
         self.thread.start()
 
     def _loop(self) -> None:
-        from ._recorder import block_signals_in_this_thread
+        from ._signals import block_signals_in_this_thread
 
         block_signals_in_this_thread()
         while not self.stop_event.wait(self.interval_s):

@@ -15,6 +15,7 @@ from typing import Any, Callable, TypeVar
 from .. import tracefile as tf
 from ..errors import StageNameError, StageTargetError
 from . import _recorder as _r
+from ._buffers import EPOCH_MAX, EPOCH_MIN
 from ._recorder import RECORDER, TLS
 
 __all__ = ["stage"]
@@ -46,8 +47,8 @@ def _check_stage_name(name: Any) -> str:
 
 
 def _check_epoch(epoch: int) -> int:
-    """``epoch`` clipped to what a record holds (see ``_recorder.EPOCH_MAX``)."""
-    return min(max(epoch, _r.EPOCH_MIN), _r.EPOCH_MAX)
+    """``epoch`` clipped to what a record holds (see ``_buffers.EPOCH_MAX``)."""
+    return min(max(epoch, EPOCH_MIN), EPOCH_MAX)
 
 
 def _check_timeable(fn: Any, name: str) -> None:
