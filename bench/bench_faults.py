@@ -34,6 +34,7 @@ from _faultlab import (  # noqa: E402
     TIGHT_SIGNAL_CHILD,
     child_env,
     kill_trial,
+    read_counter,
     read_progress,
     wait_for,
 )
@@ -89,18 +90,20 @@ def spill_signals(tmp: Path, mode: str, signum: int, n: int) -> tuple[str, int, 
     lost_max, lossy, behaved = 0, 0, 0
     for trial in range(n):
         stem = f"spill-{mode}-{signum}-{trial}"
-        run_dir, progress = tmp / stem, tmp / f"{stem}.txt"
-        child = subprocess.Popen([sys.executable, "-c", TIGHT_SIGNAL_CHILD, str(run_dir), str(progress), mode],
+        run_dir, counter = tmp / stem, tmp / f"{stem}.count"
+        child = subprocess.Popen([sys.executable, "-c", TIGHT_SIGNAL_CHILD, str(run_dir), str(counter), mode],
                                  env=child_env(), stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
-        wait_for(progress, lambda ls: any(k == "ready" for k, *_ in ls), 30)
-        time.sleep(rng.uniform(0.2, 0.6))
+        deadline = time.monotonic() + 30
+        while read_counter(counter) < 1000 and time.monotonic() < deadline:
+            time.sleep(0.01)
+        time.sleep(rng.uniform(0.05, 0.3))
         child.send_signal(signum)
         out, _ = child.communicate(timeout=30)
         if signum == signal.SIGINT:
             behaved += child.returncode == 0 and out.startswith("KeyboardInterrupt")
         else:
             behaved += child.returncode == (7 if mode == "user-exit" else -signal.SIGTERM)
-        done = {i for k, _, i, _ in read_progress(progress) if k == "decode"}
+        done = set(range(read_counter(counter) + 1))
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             run = pipeprobe.load(run_dir)
