@@ -496,6 +496,26 @@ class TestTorchDataLoader:
         assert all((b, s) in membership for b, s in zip(decode["batch_id"], decode["sample_id"]))
 
 
+def test_span_cost_is_measured_per_process_without_recording_anything(tmp_path: Path) -> None:
+    """Each process header holds its per-span cost (a float, ns); the calibration spans never reach the run."""
+    import json
+
+    with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+        with mp.get_context("fork").Pool(1) as pool:
+            for _batch in probe.watch(pool.imap(_pool_batch, [[0, 1]]), samples=lambda b: [x // 2 for x in b]):
+                with stage("decode", sample=7):
+                    pass
+            pool.close()
+            pool.join()
+    headers = [json.loads(p.read_text()) for p in sorted((tmp_path / "r").glob("spans-r0-p*.json"))]
+    assert ["main", "worker"] == sorted(h["role"] for h in headers)
+    assert all(isinstance(h["span_cost_ns"], float) and h["span_cost_ns"] > 0 for h in headers)
+    run = pipeprobe.load(tmp_path / "r")
+    # exactly the spans the job made: 1 + 2 decodes, 2 augments (the calibration's 2,000 are not among them)
+    assert {"decode": 3, "augment": 2} == {k: int(v) for k, v in run.spans["stage"].value_counts().items()
+                                          if k in ("decode", "augment")}
+
+
 def test_recorded_file_is_48_bytes_per_span(tmp_path: Path) -> None:
     """A span costs 48 bytes on disk (the issue's limit), plus fixed headers."""
     with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):

@@ -76,6 +76,7 @@ class _Recorder:
         self.failed = False
         self.run_id = ""
         self.session = 0  # counts starts: a probe acts on the recorder only while it is the latest
+        self.span_cost_ns: float | None = None  # measured at start (see _spans.calibrate_span_cost_ns)
         self._reset_process_state()
 
     # -- set-up ---------------------------------------------------------
@@ -153,6 +154,7 @@ class _Recorder:
         self.user_codes.clear()
         for name in RESERVED_STAGES + tuple(stages or ()):
             self.stage_id(name)
+        self.span_cost_ns = _measure_span_cost(cpu_time)
         self.anchor_mono_ns = monotonic_ns()
         self.anchor_wall_ns = time_ns()
         self.on = True
@@ -371,6 +373,7 @@ class _Recorder:
             "cpu_time": self.cpu_time,
             "stages": names,
             "run_id": self.run_id,
+            "span_cost_ns": self.span_cost_ns,
         }
         tf.write_json_atomic(self.run_dir / (self.file_stem() + ".json"), header)
         self.header_stages_written = len(names)
@@ -432,6 +435,16 @@ class _Recorder:
             # The forking thread's buffer came along, so buffer() would never
             # start a flusher here: start it now.
             self._start_flusher()
+
+
+def _measure_span_cost(cpu_time: bool) -> float | None:
+    """This process's per-span cost, for the process header; ``None`` if it cannot be measured."""
+    from ._spans import calibrate_span_cost_ns  # _spans builds on this module
+
+    try:
+        return round(calibrate_span_cost_ns(cpu_time), 1)
+    except Exception:  # noqa: BLE001 - a figure for the report, never a reason to stop recording
+        return None
 
 
 RECORDER = _Recorder()

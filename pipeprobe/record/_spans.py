@@ -9,13 +9,14 @@ from __future__ import annotations
 
 import functools
 import inspect
-from time import monotonic_ns, thread_time_ns
+import statistics
+from time import monotonic_ns, perf_counter_ns, thread_time_ns
 from typing import Any, Callable, TypeVar
 
 from .. import tracefile as tf
 from ..errors import StageNameError, StageTargetError
 from . import _recorder as _r
-from ._buffers import EPOCH_MAX, EPOCH_MIN
+from ._buffers import _FIELDS, EPOCH_MAX, EPOCH_MIN, _Buffer
 from ._recorder import RECORDER, TLS
 
 __all__ = ["stage"]
@@ -272,3 +273,42 @@ def _stage_slow(name: Any, sample: Any, batch: Any) -> Any:
     if code is None:
         code = _CODES[name] = rec.stage_id(name)
     return _CpuSpan(code, sample_i, batch_i) if rec.cpu_time else _Span(code, sample_i, batch_i)
+
+
+#: Spans timed by :func:`calibrate_span_cost_ns`, in five blocks: a few ms.
+CALIBRATION_SPANS = 2000
+
+
+def calibrate_span_cost_ns(cpu_time: bool, spans: int = CALIBRATION_SPANS) -> float:
+    """What one block-form span costs in this thread now, in ns, net of the loop around it.
+
+    Times ``spans`` spans in five blocks, each against an empty loop of the
+    same length, and returns the median difference per span. The spans go
+    to a scratch buffer put in this thread's place for the measurement
+    (large enough never to spill), so the run records nothing from it.
+    A few milliseconds; the report uses it to estimate what recording cost.
+    """
+    span_type = _CpuSpan if cpu_time else _Span
+    per_block = max(1, spans // 5)
+    scratch = _Buffer(_FIELDS * (per_block + 1))
+    saved = getattr(TLS, "buf", None)
+    TLS.buf = scratch
+    costs = []
+    try:
+        for _ in range(5):
+            t0 = perf_counter_ns()
+            for i in range(per_block):
+                with span_type(0, i, -1):
+                    pass
+            t1 = perf_counter_ns()
+            for _i in range(per_block):  # the same loop, empty
+                pass
+            t2 = perf_counter_ns()
+            costs.append(((t1 - t0) - (t2 - t1)) / per_block)
+            scratch.clear()
+    finally:
+        if saved is None:
+            del TLS.buf
+        else:
+            TLS.buf = saved
+    return max(0.0, statistics.median(costs))
