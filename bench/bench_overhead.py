@@ -39,7 +39,10 @@ print(json.dumps({"wall_s": res.wall_s}))
 def one_run(out: str, batches: int, record: bool) -> tuple[float, float]:
     """``(wall_s, cpu_s)`` of one demo run in a fresh process; CPU of the whole process tree."""
     before = resource.getrusage(resource.RUSAGE_CHILDREN)
-    env = dict(os.environ, PYTHONPATH=str(REPO) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    # One BLAS thread: more would spin against the loader workers for the cores, and that spinning,
+    # not recording, would dominate both figures (see the README's Speed notes).
+    env = dict(os.environ, PYTHONPATH=str(REPO) + os.pathsep + os.environ.get("PYTHONPATH", ""),
+               OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1", MKL_NUM_THREADS="1")
     res = subprocess.run([sys.executable, "-c", CHILD, out, str(batches), "1" if record else "0"], env=env,
                          capture_output=True, text=True, check=True, timeout=600)
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
