@@ -8,8 +8,15 @@ and ``pipeprobe.stage``). Private modules, each on one topic:
 ``_spans``
     stage timers: the block form, the decorator, the checks on names and ids
 ``_recorder``
-    the per-process recorder: per-thread buffers, flushing, fork, exit and
-    signal hooks, the close request to worker processes
+    the per-process recorder: its state, flushing, fork and exit hooks,
+    joining a run from the environment in a worker
+``_buffers``
+    per-thread span buffers and their conversion to fixed-width records
+    (where ids too large for the record are fitted by the documented rule)
+``_signals``
+    SIGTERM and SIGINT: write what is recorded, then hand the signal on
+``_closing``
+    the close request to worker processes that outlive the probe
 ``_sampler``
     the background resource sampler (psutil)
 ``_loaders``
