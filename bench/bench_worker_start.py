@@ -74,8 +74,9 @@ def import_s(tree: Path) -> float:
     """Seconds ``import pipeprobe`` adds to a fresh interpreter (its own clock, inside the process)."""
     code = "import time; t = time.perf_counter(); import pipeprobe; print(time.perf_counter() - t)"
     env = dict(os.environ, PYTHONPATH=str(tree))
+    # cwd: "python -c" puts the working folder first on sys.path, which would shadow the tree
     res = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=120,
-                         check=True)
+                         check=True, cwd=str(tree))
     return float(res.stdout)
 
 
