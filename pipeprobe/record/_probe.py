@@ -1,6 +1,6 @@
 """The probe: a recording session's life cycle, the loader watch and the step timer.
 
-Stage timers live in ``_spans.py``, the per-process buffers and flushing in
+Stage timers live in ``_spans.py``, the per-thread buffers in ``_buffers.py``, flushing in
 ``_recorder.py``; see ``tracefile.py`` for what lands on disk.
 """
 

@@ -1,7 +1,7 @@
 """Stage timers: the block form, the decorator and the checks on names and ids.
 
 A span costs two clock reads (four with CPU time on) and one ``list.extend``
-of six ints into the thread's buffer (``_recorder.py``); nothing else runs
+of six ints into the thread's buffer (``_buffers.py``); nothing else runs
 on that path: no locks, no numpy, no dict building.
 """
 
