@@ -28,9 +28,13 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
 
 from _faultlab import (  # noqa: E402
     FAULT_CHILD,
+    MISUSE_CHILD,
+    SECOND_PROBE_CHILD,
     SIGNAL_CHILD,
+    TIGHT_SIGNAL_CHILD,
     child_env,
     kill_trial,
+    read_counter,
     read_progress,
     wait_for,
 )
@@ -78,6 +82,90 @@ def signals(tmp: Path, mode: str, signum: int, n: int) -> tuple[str, int, str, s
     else:
         what = "user's handler ran" if mode == "user-exit" else "process ended by SIGTERM as before"
     return name, n, f"{what} {behaved}/{n}", f"{lost_max} spans"
+
+
+def spill_signals(tmp: Path, mode: str, signum: int, n: int) -> tuple[str, int, str, str]:
+    """Signals at random moments into a tight stage loop whose buffer of 16 spills every 16 spans."""
+    rng = random.Random(11)
+    lost_max, lossy, behaved = 0, 0, 0
+    for trial in range(n):
+        stem = f"spill-{mode}-{signum}-{trial}"
+        run_dir, counter = tmp / stem, tmp / f"{stem}.count"
+        child = subprocess.Popen([sys.executable, "-c", TIGHT_SIGNAL_CHILD, str(run_dir), str(counter), mode],
+                                 env=child_env(), stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+        deadline = time.monotonic() + 30
+        while read_counter(counter) < 1000 and time.monotonic() < deadline:
+            time.sleep(0.01)
+        time.sleep(rng.uniform(0.05, 0.3))
+        child.send_signal(signum)
+        out, _ = child.communicate(timeout=30)
+        if signum == signal.SIGINT:
+            behaved += child.returncode == 0 and out.startswith("KeyboardInterrupt")
+        else:
+            behaved += child.returncode == (7 if mode == "user-exit" else -signal.SIGTERM)
+        done = set(range(read_counter(counter) + 1))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            run = pipeprobe.load(run_dir)
+        kept = set(run.spans.loc[run.spans["stage"] == "decode", "sample_id"].astype(int))
+        lost = len(done - kept)
+        lost_max, lossy = max(lost_max, lost), lossy + (lost > 0)
+    name = {"user-exit": "SIGTERM during buffer spills, user handler exits",
+            "default": "SIGTERM during buffer spills, default action"}[mode]
+    if signum == signal.SIGINT:
+        name = "SIGINT during buffer spills"
+    return (name + " (tight loop, buffer of 16)", n, f"trials losing spans: {lossy}/{n}; handled as without "
+            f"pipeprobe {behaved}/{n}", f"{lost_max} spans")
+
+
+def second_probe(tmp: Path, n: int) -> tuple[str, int, str, str]:
+    """SIGKILL while a second probe of the same process records (the first closed cleanly)."""
+    rng = random.Random(5)
+    flush_s, worst_s, worst_n, intact = 0.1, 0.0, 0, 0
+    for trial in range(n):
+        run_a, run_b, progress = tmp / f"p2-{trial}-a", tmp / f"p2-{trial}-b", tmp / f"p2-{trial}.txt"
+        child = subprocess.Popen([sys.executable, "-c", SECOND_PROBE_CHILD, str(run_a), str(run_b), str(progress),
+                                  str(flush_s)], env=child_env(), stdout=subprocess.DEVNULL,
+                                 stderr=subprocess.DEVNULL)
+        wait_for(progress, lambda ls: any(k == "ready" for k, *_ in ls), 30)
+        time.sleep(rng.uniform(0.8, 1.6))
+        t_kill = time.monotonic_ns()
+        child.kill()
+        child.wait(timeout=30)
+        done = {i: t for k, _, i, t in read_progress(progress) if k == "decode" and t <= t_kill}
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            kept = set(pipeprobe.load(run_b).spans["sample_id"].astype(int))
+            intact += int((pipeprobe.load(run_a).spans["stage"] == "decode").sum()) == 10
+        lost = [t for i, t in done.items() if i not in kept]
+        worst_s = max(worst_s, (t_kill - min(lost)) / 1e9 if lost else 0.0)
+        worst_n = max(worst_n, len(lost))
+    return ("SIGKILL while a second probe records (one process, probes one after another)", n,
+            f"first run whole {intact}/{n}; second run written every {flush_s} s",
+            f"{worst_s:.3f} s of spans ({worst_n} spans)")
+
+
+MISUSE_ROWS = {
+    "large-ids": "ids beyond the record: sample 2**64 + k, a uint64 hash as decorated argument, batch 2**40, "
+                 "watch(epoch=2**31)",
+    "pool-two-probes": "a thread pool reused across two probes, 200 spans each",
+    "chdir": "os.chdir() mid-run with a relative run folder",
+    "samples-raises": "a samples= callable that raises on every third batch",
+    "bad-names": "stage names with a lone surrogate (3 names)",
+    "generator-async": "@stage on a generator, an async function, an async generator",
+}
+
+
+def misuse(tmp: Path, case: str) -> tuple[str, int, str, str]:
+    """One misuse case run in a fresh process: what raised, what warned, what was kept."""
+    res = subprocess.run([sys.executable, "-c", MISUSE_CHILD, str(tmp / f"misuse-{case}"), case],
+                         env=child_env(), capture_output=True, text=True, timeout=120)
+    if res.returncode != 0:
+        return MISUSE_ROWS[case], 1, f"the job failed: {res.stderr.strip().splitlines()[-1]}", "the job"
+    out = json.loads(res.stdout)
+    raised = f"{len(out['errors'])} x {out['errors'][0]} at the call; " if out["errors"] else "nothing raised; "
+    outcome = f"{raised}{len(out['warnings'])} warnings; {out['spans']}/{out['expected']} spans kept"
+    return MISUSE_ROWS[case], 1, outcome, f"{out['expected'] - out['spans']} spans"
 
 
 def own_failures(tmp: Path, fault: str, n: int) -> tuple[str, int, str, str]:
@@ -153,6 +241,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--kills", type=int, default=20, help="kill trials per target (20)")
     ap.add_argument("--signals", type=int, default=5, help="trials per signal case (5)")
+    ap.add_argument("--spill-signals", type=int, default=12, help="trials per signal-during-spill case (12)")
     ap.add_argument("--failures", type=int, default=3, help="trials per own-failure case (3)")
     ap.add_argument("--fuzz", type=int, default=500, help="damaged runs per fuzz case (500)")
     args = ap.parse_args()
@@ -165,6 +254,12 @@ def main() -> None:
         rows.append(signals(tmp, "default", signal.SIGTERM, args.signals))
         rows.append(signals(tmp, "user-exit", signal.SIGTERM, args.signals))
         rows.append(signals(tmp, "default", signal.SIGINT, args.signals))
+        rows.append(spill_signals(tmp, "default", signal.SIGTERM, args.spill_signals))
+        rows.append(spill_signals(tmp, "user-exit", signal.SIGTERM, args.spill_signals))
+        rows.append(spill_signals(tmp, "default", signal.SIGINT, args.spill_signals))
+        rows.append(second_probe(tmp, args.signals))
+        for case in MISUSE_ROWS:
+            rows.append(misuse(tmp, case))
         for fault in ("fsize", "removed", "replaced"):
             rows.append(own_failures(tmp, fault, args.failures))
         base = _base_run(tmp)

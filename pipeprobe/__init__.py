@@ -17,9 +17,12 @@ Errors
 
 __version__ = "0.1.0"
 
-from .analysis import Action, Analysis, analyze  # noqa: E402
-from .compare import Comparison, compare  # noqa: E402
-from .critical import CriticalPath, critical_path, critical_path_length  # noqa: E402
+import importlib  # noqa: E402
+import sys  # noqa: E402
+import types  # noqa: E402
+from pathlib import Path  # noqa: E402
+from typing import Any  # noqa: E402
+
 from .errors import (  # noqa: E402
     PipeprobeError,
     ProbeStateError,
@@ -27,19 +30,81 @@ from .errors import (  # noqa: E402
     ScenarioError,
     TraceFormatError,
 )
-from .load import Run, load  # noqa: E402
-from .pace import Verdict  # noqa: E402
-from .ranks import RankView, rank_view  # noqa: E402
-from .record import Probe, stage  # noqa: E402
-from .stagestats import StageStats, stage_stats  # noqa: E402
-from .stalls import Stalls, stall_summary  # noqa: E402
-from .timeline import Timeline, build_timeline  # noqa: E402
+from .record import Probe, set_close_report, stage  # noqa: E402
 
-# the function ``whatif`` takes the name of the subpackage as an attribute (see pipeprobe/whatif/__init__.py)
-from .whatif import Prediction, whatif  # noqa: E402
-from .whatif import sweep as whatif_sweep  # noqa: E402
-from .whatif.ceilings import Ceilings, ceilings  # noqa: E402
-from .whatif.laws import amdahl_ceiling, amdahl_speedup  # noqa: E402
+# The rest loads on first use (PEP 562): a loader worker that only records
+# imports the recording layer (numpy, no pandas, no matplotlib).
+#: public name -> (module, attribute)
+_LAZY = {
+    "amdahl_ceiling": (".whatif.laws", "amdahl_ceiling"),
+    "amdahl_speedup": (".whatif.laws", "amdahl_speedup"),
+    "Action": (".analysis", "Action"),
+    "Analysis": (".analysis", "Analysis"),
+    "analyze": (".analysis", "analyze"),
+    "Ceilings": (".whatif.ceilings", "Ceilings"),
+    "ceilings": (".whatif.ceilings", "ceilings"),
+    "Comparison": (".compare", "Comparison"),
+    "compare": (".compare", "compare"),
+    "CriticalPath": (".critical", "CriticalPath"),
+    "critical_path": (".critical", "critical_path"),
+    "critical_path_length": (".critical", "critical_path_length"),
+    "Run": (".load", "Run"),
+    "load": (".load", "load"),
+    "RankView": (".ranks", "RankView"),
+    "rank_view": (".ranks", "rank_view"),
+    "StageStats": (".stagestats", "StageStats"),
+    "stage_stats": (".stagestats", "stage_stats"),
+    "Stalls": (".stalls", "Stalls"),
+    "Verdict": (".pace", "Verdict"),
+    "stall_summary": (".stalls", "stall_summary"),
+    "Timeline": (".timeline", "Timeline"),
+    "build_timeline": (".timeline", "build_timeline"),
+    "Prediction": (".whatif", "Prediction"),
+    "whatif": (".whatif", "whatif"),
+    "whatif_sweep": (".whatif", "sweep"),
+}
+
+
+def __getattr__(name: str) -> Any:
+    try:
+        module, attr = _LAZY[name]
+    except KeyError:
+        raise AttributeError(f"module 'pipeprobe' has no attribute {name!r}") from None
+    value = getattr(importlib.import_module(module, __name__), attr)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(__all__))
+
+
+class _Facade(types.ModuleType):
+    """This package's module type: a function keeps its name when its submodule loads.
+
+    ``pipeprobe.load``, ``pipeprobe.whatif``, ``pipeprobe.compare`` and
+    ``pipeprobe.ceilings`` are functions named like the submodules that
+    define them. Importing such a submodule binds it on the package, which
+    would hide the function from :func:`__getattr__`; the binding is skipped.
+    """
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        if name in _LAZY and isinstance(value, types.ModuleType):
+            return
+        super().__setattr__(name, value)
+
+
+sys.modules[__name__].__class__ = _Facade
+
+
+def _print_close_report(run_dir: Path) -> None:
+    """The end-of-run report a probe prints on close: the recording layer is handed it, never imports it."""
+    from .report import print_close_report
+
+    print_close_report(run_dir)
+
+
+set_close_report(_print_close_report)
 
 __all__ = [
     # record

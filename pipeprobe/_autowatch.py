@@ -16,7 +16,7 @@ variable :data:`ENV_LAUNCH`. :func:`main` then
    same signal.
 
 Every ``iter(loader)`` of a patched DataLoader goes through
-``probe.watch(loader)`` (the zero-change hooks of :mod:`pipeprobe._loaders`),
+``probe.watch(loader)`` (the zero-change hooks of :mod:`pipeprobe.record._loaders`),
 so waits, fetches, collates and sample ids are recorded as usual. The step
 is not timed: a script left unedited has no ``probe.step()``. What is
 recorded under ``step`` is the loop's time between taking a batch and

@@ -34,7 +34,7 @@ __all__ = ["LiveLine", "Tally", "format_status", "live_interval", "DEFAULT_INTER
 
 #: Seconds between two status lines unless told otherwise.
 DEFAULT_INTERVAL_S = 5.0
-FETCH = "fetch"  # the DataLoader hooks' stage around dataset[i] (pipeprobe._loaders)
+FETCH = "fetch"  # the DataLoader hooks' stage around dataset[i] (pipeprobe.record._loaders)
 _LOADER_STAGES = {FETCH, "collate"}
 _SPAN_FILE = re.compile(r"^spans-r(\d+)-p(\d+)\.bin$")
 _RECORD = tf.SPAN_RECORD.itemsize

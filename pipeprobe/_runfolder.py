@@ -25,8 +25,8 @@ import numpy as np
 import pandas as pd
 
 from . import tracefile as tf
-from ._clocksync import check_ranks, plan_alignment
 from .errors import RunNotFoundError, TraceFormatError
+from .record._clocksync import check_ranks, plan_alignment
 
 # Names pipeprobe writes: no leading zeros, so one rank or pid has one name.
 _SPAN_FILE = re.compile(r"^spans-r(0|[1-9]\d{0,5})-p([1-9]\d{0,9})\.bin$")

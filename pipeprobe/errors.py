@@ -13,6 +13,8 @@ __all__ = [
     "RunNotFoundError",
     "ProbeStateError",
     "ScenarioError",
+    "StageNameError",
+    "StageTargetError",
 ]
 
 
@@ -34,3 +36,11 @@ class ProbeStateError(PipeprobeError, RuntimeError):
 
 class ScenarioError(PipeprobeError, ValueError):
     """A what-if scenario names an unknown stage or gives an invalid factor."""
+
+
+class StageNameError(PipeprobeError, ValueError):
+    """A stage name cannot be recorded: not a str, empty, too long, reserved or not encodable as UTF-8."""
+
+
+class StageTargetError(PipeprobeError, TypeError):
+    """A stage decorator was put on a function it cannot time (a generator or an async function)."""

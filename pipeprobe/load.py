@@ -34,9 +34,9 @@ import numpy as np
 import pandas as pd
 
 from . import _runfolder as _rf
-from ._clocksync import check_step_alignment
 from ._runfolder import _RUN_HEADER  # noqa: F401 (ranks.py finds run headers by this pattern)
 from .errors import RunNotFoundError
+from .record._clocksync import check_step_alignment
 
 __all__ = ["Run", "load", "worker_slots", "SPAN_COLUMNS", "BATCH_COLUMNS"]
 

@@ -12,7 +12,7 @@ from time import monotonic_ns
 
 import torch.distributed as dist
 
-from pipeprobe import _clocksync
+from pipeprobe.record import _clocksync
 
 
 def main() -> None:

@@ -221,3 +221,181 @@ def kill_trial(tmp: Path, seed: int, target: str, flush_s: float = 0.2) -> KillO
     b = run.batches
     batches_ok = bool(np.array_equal(b["batch_id"].to_numpy(), np.arange(len(b))) and b["ready_s"].notna().all())
     return KillOutcome(target, len(done), len(kept), invented, loss_s, batches_ok, "")
+
+
+# Raises a signal at itself from inside the third buffer spill, after the
+# spill took 16 spans out of the buffer and before it wrote them: the moment
+# a signal used to lose them. argv: run_dir mode signal_name
+SPILL_SIGNAL_CHILD = r'''
+import os, signal, sys
+import pipeprobe
+from pipeprobe.record import _recorder
+run_dir, mode, signum = sys.argv[1], sys.argv[2], getattr(signal, sys.argv[3])
+if mode == "user-exit":
+    signal.signal(signal.SIGTERM, lambda s, f: os._exit(7))
+if mode == "user-raise":
+    signal.signal(signal.SIGTERM, lambda s, f: sys.exit(7))
+probe = pipeprobe.Probe(run_dir, report=False, flush_interval_s=60, sample_interval_s=0, buffer_spans=16)
+rec = _recorder.RECORDER
+write, spills = rec._write, []
+def signalled_write(chunks):
+    spills.append(len(chunks[0]))
+    if len(spills) == 3:
+        os.kill(os.getpid(), signum)  # Python runs the handler right here, mid-spill
+    write(chunks)
+rec._write = signalled_write
+for i in range(1000):
+    with pipeprobe.stage("decode", sample=i):
+        pass
+print("the signal did not end the loop", flush=True)
+'''
+
+
+# Records spans in a tight loop (a buffer of 16 spills every 16 spans) and
+# after each span stores its id in a memory-mapped counter (no system call,
+# so most of the loop's time is spans and spills); argv: run_dir counter mode.
+# Used with signals sent at random moments: many land inside a spill.
+TIGHT_SIGNAL_CHILD = r'''
+import mmap, os, signal, struct, sys
+import pipeprobe
+run_dir, counter, mode = sys.argv[1], sys.argv[2], sys.argv[3]
+fd = os.open(counter, os.O_RDWR | os.O_CREAT)
+os.ftruncate(fd, 8)
+done = mmap.mmap(fd, 8)
+struct.pack_into("<q", done, 0, -1)
+if mode == "user-exit":
+    signal.signal(signal.SIGTERM, lambda s, f: os._exit(7))
+probe = pipeprobe.Probe(run_dir, report=False, flush_interval_s=60, sample_interval_s=0, buffer_spans=16)
+pack = struct.pack_into
+try:
+    for i in range(10**8):
+        with pipeprobe.stage("decode", sample=i):
+            pass
+        pack("<q", done, 0, i)
+except KeyboardInterrupt:
+    print("KeyboardInterrupt", flush=True)
+    os._exit(0)
+'''
+
+
+def read_counter(path: Path) -> int:
+    """The last id a :data:`TIGHT_SIGNAL_CHILD` stored (-1 before its first span, or no file yet)."""
+    import struct
+
+    try:
+        raw = path.read_bytes()
+    except OSError:
+        return -1
+    return struct.unpack("<q", raw[:8])[0] if len(raw) >= 8 else -1
+
+
+# Two probes one after the other in one process; the second records in the
+# main thread (whose buffer the first probe made) until it is killed.
+# argv: run_dir_a run_dir_b progress flush_s
+SECOND_PROBE_CHILD = r'''
+import os, sys, time
+import pipeprobe
+run_a, run_b, progress, flush_s = sys.argv[1], sys.argv[2], sys.argv[3], float(sys.argv[4])
+PROG = os.open(progress, os.O_WRONLY | os.O_CREAT | os.O_APPEND)
+with pipeprobe.Probe(run_a, report=False, sample_interval_s=0, flush_interval_s=flush_s):
+    for i in range(10):
+        with pipeprobe.stage("decode", sample=i):
+            pass
+pipeprobe.Probe(run_b, report=False, sample_interval_s=0, flush_interval_s=flush_s)
+os.write(PROG, f"ready {os.getpid()} -1 {time.monotonic_ns()}\n".encode())
+for i in range(10**6):
+    with pipeprobe.stage("decode", sample=i):
+        time.sleep(0.002)
+    os.write(PROG, f"decode {os.getpid()} {i} {time.monotonic_ns()}\n".encode())
+'''
+
+
+# One misuse case per run, in a fresh process; prints a JSON outcome:
+# {"spans": kept, "expected": announced, "errors": [...], "warnings": [...]}.
+# argv: run_dir case
+MISUSE_CHILD = r'''
+import asyncio, json, os, sys, time, warnings
+from concurrent.futures import ThreadPoolExecutor
+import pipeprobe
+from pipeprobe.errors import PipeprobeError
+run_dir, case = sys.argv[1], sys.argv[2]
+errors, expected, dirs = [], 0, [run_dir]
+
+def count(folder, stage):
+    spans = pipeprobe.load(folder).spans
+    return int((spans["stage"] == stage).sum())
+
+@pipeprobe.stage("decode")
+def decode(sample_hash):
+    return sample_hash
+
+with warnings.catch_warnings(record=True) as seen:
+    warnings.simplefilter("always")
+    if case == "large-ids":
+        with pipeprobe.Probe(run_dir, report=False, sample_interval_s=0, buffer_spans=16,
+                             flush_interval_s=0.01) as probe:
+            batches = [[2**64 - 1 - 2 * b, 2**64 - 2 - 2 * b] for b in range(20)]
+            for batch in probe.watch(batches, samples=lambda b: b, epoch=2**31):
+                for sid in batch:
+                    decode(sid)
+                    with pipeprobe.stage("augment", sample=sid + 2**70, batch=2**40):
+                        pass
+                    expected += 2
+    elif case == "pool-two-probes":
+        def work(i):
+            with pipeprobe.stage("decode", sample=i):
+                pass
+        dirs = [run_dir + "-a", run_dir + "-b"]
+        with ThreadPoolExecutor(4) as pool:
+            for d in dirs:
+                with pipeprobe.Probe(d, report=False, sample_interval_s=0):
+                    list(pool.map(work, range(200)))
+                expected += 200
+    elif case == "chdir":
+        os.makedirs(run_dir + "-elsewhere")
+        os.chdir(os.path.dirname(run_dir))
+        with pipeprobe.Probe(os.path.basename(run_dir), report=False, sample_interval_s=0.01,
+                             flush_interval_s=0.01):
+            for i in range(200):
+                if i == 100:
+                    os.chdir(run_dir + "-elsewhere")
+                    time.sleep(0.05)
+                decode(i)
+                expected += 1
+    elif case == "samples-raises":
+        def ids_of(batch):
+            if batch[0] % 3 == 0:
+                raise KeyError(batch[0])
+            return batch
+        with pipeprobe.Probe(run_dir, report=False, sample_interval_s=0) as probe:
+            for batch in probe.watch([[b, b + 100] for b in range(30)], samples=ids_of):
+                decode(batch[0])
+                expected += 1
+    elif case == "bad-names":
+        for name in ("dec\ud800ode", "\udfff", "x\udcff"):
+            try:
+                pipeprobe.stage(name)
+            except PipeprobeError as exc:
+                errors.append(type(exc).__name__)
+        with pipeprobe.Probe(run_dir, report=False, sample_interval_s=0):
+            decode(1)
+            expected += 1
+    elif case == "generator-async":
+        def gen():
+            yield 1
+        async def coro():
+            return 1
+        async def agen():
+            yield 1
+        for fn in (gen, coro, agen):
+            try:
+                pipeprobe.stage("decode")(fn)
+            except PipeprobeError as exc:
+                errors.append(type(exc).__name__)
+        with pipeprobe.Probe(run_dir, report=False, sample_interval_s=0):
+            decode(1)
+            expected += 1
+spans = sum(count(d, "decode") + (count(d, "augment") if case == "large-ids" else 0) for d in dirs)
+print(json.dumps({"spans": spans, "expected": expected, "errors": errors,
+                  "warnings": [str(w.message) for w in seen if "pipeprobe" in str(w.message)]}))
+'''

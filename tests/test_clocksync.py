@@ -11,7 +11,7 @@ import pytest
 
 import pipeprobe
 from pipeprobe import tracefile as tf
-from pipeprobe._clocksync import offsets_from_stamps
+from pipeprobe.record._clocksync import offsets_from_stamps
 
 sys.path.insert(0, str(Path(__file__).parent))
 from _synth import write_ranks  # noqa: E402

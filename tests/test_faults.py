@@ -14,6 +14,7 @@ import json
 import signal
 import subprocess
 import sys
+import threading
 import time
 import traceback
 import warnings
@@ -26,7 +27,16 @@ import pipeprobe
 from pipeprobe import stage
 
 sys.path.insert(0, str(Path(__file__).parent))
-from _faultlab import FAULT_CHILD, SIGNAL_CHILD, child_env, kill_trial, read_progress, wait_for  # noqa: E402
+from _faultlab import (  # noqa: E402
+    FAULT_CHILD,
+    SECOND_PROBE_CHILD,
+    SIGNAL_CHILD,
+    SPILL_SIGNAL_CHILD,
+    child_env,
+    kill_trial,
+    read_progress,
+    wait_for,
+)
 
 FLUSH_S = 0.2
 # Scheduling slack on a shared 2-core machine: a flusher thread may run late.
@@ -75,6 +85,36 @@ class TestKill:
         assert b["step_s"].iloc[:-1].notna().all()
         assert len(b) <= out.done + 1
         assert result.run is run
+
+
+class TestSecondProbe:
+    @pytest.mark.slow
+    def test_second_probe_flushes_periodically_before_a_kill(self, tmp_path: Path) -> None:
+        """A second probe in one process writes every flush interval: a SIGKILL loses at most the last one."""
+        flush_s = 0.1
+        run_a, run_b, progress = tmp_path / "a", tmp_path / "b", tmp_path / "progress.txt"
+        child = subprocess.Popen([sys.executable, "-c", SECOND_PROBE_CHILD, str(run_a), str(run_b), str(progress),
+                                  str(flush_s)], env=child_env(), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        try:
+            lines = wait_for(progress, lambda ls: any(k == "ready" for k, *_ in ls), 30)
+            t_ready = lines[0][3]
+            # ten flush intervals of the second probe, then the kill
+            wait_for(progress, lambda ls: ls[-1][3] - t_ready > 10 * flush_s * 1e9, 30)
+            t_kill = time.monotonic_ns()
+            child.kill()
+            child.wait(timeout=30)
+        finally:
+            if child.poll() is None:
+                child.kill()
+                child.wait()
+        done = {i: t for k, _, i, t in read_progress(progress) if k == "decode" and t <= t_kill}
+        run = load_quiet(run_b)
+        kept = set(run.spans.loc[run.spans["stage"] == "decode", "sample_id"].astype(int))
+        lost = [t for i, t in done.items() if i not in kept]
+        assert len(done) > 100
+        # README, Reliability: a killed process loses at most its last flush interval (plus scheduling slack).
+        assert (t_kill - min(lost, default=t_kill)) / 1e9 <= flush_s + SLACK_S
+        assert 10 == int((load_quiet(run_a).spans["stage"] == "decode").sum())
 
 
 class TestSignals:
@@ -153,6 +193,24 @@ print(n, len(hits), flush=True)
         # that lands while pipeprobe is writing waits for the write: fewer handler calls than sends.
         assert hits > 10
         assert n == int((load_quiet(tmp_path / "run").spans["stage"] == "x").sum())
+
+    @pytest.mark.parametrize(
+        ("mode", "signame", "expected_rc"),
+        [("default", "SIGTERM", -signal.SIGTERM), ("user-exit", "SIGTERM", 7), ("user-raise", "SIGTERM", 7),
+         ("default", "SIGINT", None)],
+    )
+    def test_signal_during_a_spill_loses_nothing(self, tmp_path: Path, mode: str, signame: str,
+                                                 expected_rc: int | None) -> None:
+        """A signal landing while a full buffer is being written waits for the write: all 48 spans are kept."""
+        res = run_child(SPILL_SIGNAL_CHILD, str(tmp_path / "run"), mode, signame)
+        if expected_rc is None:  # Ctrl-C: KeyboardInterrupt raised in the loop, as without pipeprobe
+            assert "KeyboardInterrupt" in res.stderr, res.stderr
+        else:
+            assert expected_rc == res.returncode, res.stderr
+        assert "" == res.stdout
+        spans = load_quiet(tmp_path / "run").spans
+        # 3 spills of 16 spans each had begun when the signal came (buffer_spans=16, exact count)
+        assert list(range(48)) == sorted(spans.loc[spans["stage"] == "decode", "sample_id"].astype(int))
 
     def test_user_handlers_are_restored_on_close(self, tmp_path: Path) -> None:
         """The user's SIGTERM/SIGINT handlers are back in place after the probe closes (no signal is sent)."""
@@ -300,6 +358,52 @@ for with_probe in (False, True):
 
 
 
+def _hash_id(i: int) -> int:
+    """An unsigned 64-bit id above int64, as a hash of the sample would give."""
+    return 2**64 - 1 - i
+
+
+@pipeprobe.stage("decode")
+def _decode_hashed(sample_hash: int) -> int:
+    return sample_hash & 1
+
+
+def _hashed_batches(n: int):
+    """Batches of 2 samples whose ids are 64-bit hashes, decoded in a loader thread before delivery."""
+    for b in range(n):
+        ids = [_hash_id(2 * b), _hash_id(2 * b + 1)]
+        loader = threading.Thread(target=lambda ids=ids: [_decode_hashed(i) for i in ids])
+        loader.start()
+        loader.join()
+        yield ids
+
+
+class TestLargeIds:
+    def test_ids_beyond_the_record_fields_never_raise_and_follow_the_rule(self, tmp_path: Path) -> None:
+        """Ids beyond int64/int32 raise nothing, warn nothing, lose no span: stored by the documented rule."""
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            # buffer_spans=16 makes the user's loop spill buffers full of such ids; 0.01 s flushes, the flush thread
+            with pipeprobe.Probe(tmp_path / "run", report=False, sample_interval_s=0, buffer_spans=16,
+                                 flush_interval_s=0.01) as probe:
+                for _ in probe.watch(_hashed_batches(2), samples=lambda b: b, epoch=2**31):
+                    for i in range(40):
+                        with stage("augment", sample=2**64 + i, batch=2**40):
+                            pass
+                    time.sleep(0.03)
+        assert [] == [str(w.message) for w in seen if "pipeprobe" in str(w.message)]
+        run = load_quiet(tmp_path / "run")
+        sp = run.spans
+        mask = 2**63 - 1  # the rule in docs/trace-format.md, worked with Python's own ints
+        expected_augment = sorted(((2**64 + i) & mask) for i in range(40)) * 2
+        assert sorted(expected_augment) == sorted(sp.loc[sp["stage"] == "augment", "sample_id"].astype(int))
+        assert [2**31 - 2] * 2 == run.batches["epoch"].astype(int).tolist()  # clipped to the largest epoch held
+        # hashed ids link the loader thread's spans to their batches through the membership rows, like any id
+        decode = sp[sp["stage"] == "decode"].sort_values("start_s")
+        assert [_hash_id(i) & mask for i in range(4)] == decode["sample_id"].astype(int).tolist()
+        assert [0, 0, 1, 1] == decode["batch_id"].astype(int).tolist()
+
+
 class TestOwnFailures:
     @pytest.mark.parametrize("fault", ["fsize", "removed", "replaced"])
     def test_one_warning_and_training_goes_on(self, tmp_path: Path, fault: str) -> None:
@@ -383,7 +487,7 @@ class _HalfWriter:
 
 def test_short_write_stops_recording_before_records_misalign(tmp_path: Path) -> None:
     """A write that stores part of a chunk stops recording, so later records cannot land misaligned."""
-    from pipeprobe._recorder import RECORDER
+    from pipeprobe.record._recorder import RECORDER
 
     with warnings.catch_warnings(record=True) as seen:
         warnings.simplefilter("always")

@@ -3,10 +3,13 @@
 from __future__ import annotations
 
 import multiprocessing as mp
+import os
 import sys
 import threading
 import time
 import traceback
+import warnings
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import numpy as np
@@ -14,7 +17,7 @@ import pytest
 
 import pipeprobe
 from pipeprobe import stage
-from pipeprobe.errors import ProbeStateError
+from pipeprobe.errors import PipeprobeError, ProbeStateError, StageNameError, StageTargetError
 
 
 @stage("decode")
@@ -180,6 +183,89 @@ class TestErrors:
         assert 1 == len(_user_spans(pipeprobe.load(tmp_path / "a"), "decode"))
 
 
+    @pytest.mark.parametrize("name", ["dec\ud800ode", "\udfff"])
+    def test_unencodable_stage_name_is_refused_where_it_is_named(self, tmp_path: Path, name: str) -> None:
+        """A name with a lone surrogate raises StageNameError at the stage() call, probe or not (RFC 3629, sec. 3)."""
+        with pytest.raises(UnicodeEncodeError):  # the outside fact: UTF-8 cannot encode surrogates
+            name.encode("utf-8")
+        with pytest.raises(StageNameError, match="lone surrogate"):
+            stage(name)
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            with pytest.raises(StageNameError) as info:
+                stage(name)(len)
+        assert isinstance(info.value, ValueError) and isinstance(info.value, PipeprobeError)
+        assert ["wait", "step"] == pipeprobe.load(tmp_path / "r").header["stages"]
+
+    def test_generator_and_async_functions_are_refused(self) -> None:
+        """Decorating a generator or async function raises StageTargetError (a call there only creates the work)."""
+        def gen():
+            yield 1
+
+        async def coro():
+            return 1
+
+        async def agen():
+            yield 1
+
+        for fn in (gen, coro, agen):
+            with pytest.raises(StageTargetError, match="with pipeprobe.stage"):
+                stage("decode")(fn)
+        assert issubclass(StageTargetError, TypeError)
+
+
+class TestProbesOneAfterAnother:
+    def test_a_reused_thread_pool_records_everything_under_each_probe(self, tmp_path: Path) -> None:
+        """Pool threads that recorded under a first probe record all their spans under a second (ground truth: 200 calls each)."""
+        def work(i: int) -> None:
+            with stage("decode", sample=i):
+                pass
+
+        with ThreadPoolExecutor(4) as pool:
+            for name in ("a", "b", "c"):
+                with pipeprobe.Probe(tmp_path / name, report=False, sample_interval_s=0):
+                    list(pool.map(work, range(200)))
+        for name in ("a", "b", "c"):
+            spans = _user_spans(pipeprobe.load(tmp_path / name), "decode")
+            assert list(range(200)) == sorted(spans["sample_id"].astype(int))
+
+    def test_closing_a_failed_probe_leaves_the_next_one_recording(self, tmp_path: Path) -> None:
+        """A probe that failed at start, closed after a newer probe began, does not stop the newer one."""
+        blocker = tmp_path / "file"
+        blocker.write_text("a file where a folder should go")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            failed = pipeprobe.Probe(blocker / "run", report=False, sample_interval_s=0)
+        with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            failed.close()
+            with stage("decode", sample=5):
+                pass
+        assert [5] == _user_spans(pipeprobe.load(tmp_path / "r"), "decode")["sample_id"].tolist()
+        # the failed probe's flush thread was retired when the next probe started (regression: it flushed on)
+        assert [] == [t.name for t in threading.enumerate() if t.name == "pipeprobe-flush"]
+
+
+class TestRunFolder:
+    def test_chdir_during_the_run_keeps_recording(self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+        """A relative run folder is fixed at start: an os.chdir() mid-run loses nothing and warns nothing."""
+        (tmp_path / "elsewhere").mkdir()
+        monkeypatch.chdir(tmp_path)
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            with pipeprobe.Probe("rel/run", report=False, sample_interval_s=0.01, flush_interval_s=0.01) as probe:
+                with stage("decode", sample=0):
+                    pass
+                os.chdir(tmp_path / "elsewhere")
+                time.sleep(0.05)
+                with stage("decode", sample=1):
+                    pass
+        assert tmp_path / "rel" / "run" == probe.run_dir
+        assert [] == [str(w.message) for w in seen if "pipeprobe" in str(w.message)]
+        run = pipeprobe.load(tmp_path / "rel" / "run")
+        assert [0, 1] == _user_spans(run, "decode")["sample_id"].tolist()
+        assert run.header["closed"]
+        assert not list((tmp_path / "elsewhere").iterdir())
+
+
 def _batches(n: int, size: int):
     for b in range(n):
         ids = list(range(b * size, (b + 1) * size))
@@ -254,6 +340,25 @@ class TestWatch:
                 for _ in probe.watch(broken()):
                     pass
         assert 1 == len(pipeprobe.load(tmp_path / "r").batches)
+
+    def test_a_raising_samples_callable_is_named_and_recording_goes_on(self, tmp_path: Path) -> None:
+        """A samples= callable that raises costs that batch its ids and one warning naming it; nothing else."""
+        def ids_of(batch: list[int]) -> list[int]:
+            if batch[0] == 2:
+                raise KeyError("no ids here")
+            return batch
+
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+                for _batch in probe.watch([[0, 1], [2, 3], [4, 5], [2, 9]], samples=ids_of):
+                    with probe.step():
+                        pass
+        ours = [str(w.message) for w in seen if "pipeprobe" in str(w.message)]
+        assert 1 == len(ours) and "samples= callable" in ours[0] and "KeyError" in ours[0]
+        run = pipeprobe.load(tmp_path / "r")
+        assert 4 == len(run.batches) and 4 == int((run.spans["stage"] == "step").sum())
+        assert [0, 1, 4, 5] == sorted(run.samples["sample_id"].astype(int))
 
     def test_consumer_side_stage_belongs_to_current_batch(self, tmp_path: Path) -> None:
         """A stage in the training loop after delivery (e.g. a host-to-device copy) gets that batch."""
@@ -391,6 +496,26 @@ class TestTorchDataLoader:
         assert all((b, s) in membership for b, s in zip(decode["batch_id"], decode["sample_id"]))
 
 
+def test_span_cost_is_measured_per_process_without_recording_anything(tmp_path: Path) -> None:
+    """Each process header holds its per-span cost (a float, ns); the calibration spans never reach the run."""
+    import json
+
+    with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0) as probe:
+        with mp.get_context("fork").Pool(1) as pool:
+            for _batch in probe.watch(pool.imap(_pool_batch, [[0, 1]]), samples=lambda b: [x // 2 for x in b]):
+                with stage("decode", sample=7):
+                    pass
+            pool.close()
+            pool.join()
+    headers = [json.loads(p.read_text()) for p in sorted((tmp_path / "r").glob("spans-r0-p*.json"))]
+    assert ["main", "worker"] == sorted(h["role"] for h in headers)
+    assert all(isinstance(h["span_cost_ns"], float) and h["span_cost_ns"] > 0 for h in headers)
+    run = pipeprobe.load(tmp_path / "r")
+    # exactly the spans the job made: 1 + 2 decodes, 2 augments (the calibration's 2,000 are not among them)
+    assert {"decode": 3, "augment": 2} == {k: int(v) for k, v in run.spans["stage"].value_counts().items()
+                                          if k in ("decode", "augment")}
+
+
 def test_recorded_file_is_48_bytes_per_span(tmp_path: Path) -> None:
     """A span costs 48 bytes on disk (the issue's limit), plus fixed headers."""
     with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
@@ -401,3 +526,64 @@ def test_recorded_file_is_48_bytes_per_span(tmp_path: Path) -> None:
     assert 16 + 48 * 500 == bin_file.stat().st_size
     assert np.dtype(pipeprobe.tracefile.SPAN_RECORD).itemsize == 48
     assert sys.byteorder in ("little", "big")
+
+
+_LIGHT_CHILD = r'''
+import os, sys
+import pipeprobe
+if sys.argv[2] == "worker":  # a loader worker joins the parent's run through the environment
+    os.environ["PIPEPROBE_RUN_DIR"] = sys.argv[1]
+    with pipeprobe.stage("decode", sample=1):
+        pass
+    pipeprobe.record._recorder.RECORDER.stop()
+else:
+    with pipeprobe.Probe(sys.argv[1], report=False, sample_interval_s=0.01) as probe:
+        for batch in probe.watch([[1, 2]], samples=lambda b: b):
+            with pipeprobe.stage("decode", sample=1):
+                pass
+            with probe.step():
+                pass
+print(" ".join(sorted({m.split(".")[0] for m in sys.modules} & {"pandas", "matplotlib", "numpy"})))
+'''
+
+
+class TestLayers:
+    @pytest.mark.parametrize("role", ["main", "worker"])
+    def test_recording_imports_neither_pandas_nor_matplotlib(self, tmp_path: Path, role: str) -> None:
+        """A fresh process that imports pipeprobe and records (as the main process or a worker) loads numpy only."""
+        import subprocess
+
+        (tmp_path / "r").mkdir()
+        env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parent.parent))
+        env.pop("PIPEPROBE_RUN_DIR", None)
+        res = subprocess.run([sys.executable, "-c", _LIGHT_CHILD, str(tmp_path / "r"), role], env=env,
+                             capture_output=True, text=True, timeout=60)
+        assert 0 == res.returncode, res.stderr
+        assert "numpy" == res.stdout.strip()
+        files = list((tmp_path / "r").glob("spans-r0-p*.bin"))
+        assert [16 + 48 * (1 if role == "worker" else 5)] == [f.stat().st_size for f in files]  # the span(s) landed
+
+    def test_public_names_resolve_lazily_and_keep_their_meaning(self) -> None:
+        """Every name in pipeprobe.__all__ is in dir() and resolves; functions named like modules stay functions."""
+        import importlib
+
+        assert set(pipeprobe.__all__) <= set(dir(pipeprobe))
+        for name in ("load", "whatif", "compare", "ceilings"):
+            importlib.import_module(f"pipeprobe.{name}")
+            assert callable(getattr(pipeprobe, name)) and not isinstance(getattr(pipeprobe, name), type(sys))
+        assert all(getattr(pipeprobe, name) is not None for name in pipeprobe.__all__)
+        with pytest.raises(AttributeError):
+            pipeprobe.no_such_name  # noqa: B018
+
+    def test_close_prints_the_same_report_as_the_report_module(self, tmp_path: Path, capsys) -> None:
+        """With report=True, close() prints what pipeprobe.report prints for the folder (the facade's printer)."""
+        from pipeprobe.report import print_close_report
+
+        with pipeprobe.Probe(tmp_path / "r", sample_interval_s=0) as probe:
+            for _batch in probe.watch(_batches(3, 2)):
+                with probe.step():
+                    time.sleep(0.002)
+        printed = capsys.readouterr().out
+        print_close_report(tmp_path / "r")
+        assert capsys.readouterr().out == printed
+        assert printed.strip()

@@ -17,7 +17,7 @@ from time import monotonic_ns
 import numpy as np
 import psutil
 
-from . import tracefile as tf
+from .. import tracefile as tf
 
 
 class ResourceSampler:
@@ -47,7 +47,7 @@ class ResourceSampler:
         self.thread.start()
 
     def _loop(self) -> None:
-        from ._recorder import block_signals_in_this_thread
+        from ._signals import block_signals_in_this_thread
 
         block_signals_in_this_thread()
         while not self.stop_event.wait(self.interval_s):

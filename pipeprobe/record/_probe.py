@@ -1,14 +1,11 @@
-"""Recording: the :class:`Probe`, stage timers, the loader watch and the step timer.
+"""The probe: a recording session's life cycle, the loader watch and the step timer.
 
-A span costs two clock reads (four with CPU time on) and six integer
-stores into a preallocated per-thread buffer; see ``_recorder.py`` for the
-buffering and ``tracefile.py`` for what lands on disk.
+Stage timers live in ``_spans.py``, the per-thread buffers in ``_buffers.py``, flushing in
+``_recorder.py``; see ``tracefile.py`` for what lands on disk.
 """
 
 from __future__ import annotations
 
-import functools
-import inspect
 import json
 import os
 import platform
@@ -17,239 +14,22 @@ import warnings
 from collections import deque
 from dataclasses import replace
 from pathlib import Path
-from time import monotonic_ns, thread_time_ns
+from time import monotonic_ns
 from typing import Any, Callable, Iterable, Iterator, TypeVar
 
-from . import __version__, _clocksync, _live
+from .. import __version__, _live
+from .. import tracefile as tf
+from ..errors import ProbeStateError
+from . import _clocksync, _closing, _signals
 from . import _recorder as _r
-from . import tracefile as tf
-from ._recorder import RECORDER, TLS
-from .errors import ProbeStateError
+from ._recorder import RECORDER
+from ._spans import _check_epoch, _check_id, _CpuSpan, _Noop, _Span, stage
 
-__all__ = ["Probe", "stage"]
+__all__ = ["Probe"]
 
 T = TypeVar("T")
 _STEP_CODE = tf.KIND_STEP << 16
 _ERROR_BITS = tf.FLAG_ERROR << 24
-
-
-def _check_stage_name(name: Any) -> str:
-    if not isinstance(name, str):
-        raise ValueError(f"stage name must be a str, got {type(name).__name__} {name!r}")
-    if not name or len(name) > 200:
-        raise ValueError(f"stage name must be 1 to 200 characters, got {name!r}")
-    if name in _r.RESERVED_STAGES:
-        raise ValueError(
-            f"stage name {name!r} is reserved: use probe.step() for the training step; "
-            "the consumer's wait is recorded by probe.watch()"
-        )
-    return name
-
-
-def _check_id(value: Any, what: str) -> int:
-    if value is None:
-        return -1
-    if isinstance(value, bool) or not isinstance(value, int):
-        raise ValueError(f"{what} must be an int, got {type(value).__name__} {value!r}")
-    return value
-
-
-class _Span:
-    """A timed block; also a decorator. Made by :func:`stage` and :meth:`Probe.step`."""
-
-    __slots__ = ("_code", "_sample", "_batch", "_t0")
-
-    def __init__(self, code: int, sample: int, batch: int) -> None:
-        self._code = code
-        self._sample = sample
-        self._batch = batch
-
-    def __enter__(self) -> _Span:
-        self._t0 = monotonic_ns()
-        return self
-
-    def __exit__(self, et: Any, ev: Any, tb: Any) -> bool:
-        t1 = monotonic_ns()
-        try:
-            buf = TLS.buf
-        except AttributeError:
-            buf = RECORDER.buffer()
-        b = self._batch
-        buf.extend(
-            (self._t0, t1, -1, self._sample, b if b >= 0 else buf.ctx,
-             self._code if et is None else self._code | _ERROR_BITS)
-        )
-        if len(buf) >= buf.limit:
-            RECORDER.spill(buf)
-        return False
-
-    def __call__(self, fn: Callable[..., T]) -> Callable[..., T]:
-        """Use as a decorator: time every call of ``fn`` under this stage name."""
-        return _timed(fn, RECORDER.stage_names[self._code & 0xFFFF])
-
-
-class _CpuSpan(_Span):
-    """A :class:`_Span` that also takes the thread's CPU time."""
-
-    __slots__ = ("_c0",)
-
-    # The thread CPU clock is a system call, and the kernel may deschedule
-    # the thread on its way back: reading it inside the wall-clock reads
-    # puts that wait in the span (where cpu_s < dur_s shows it), not in a
-    # gap between spans that nothing recorded.
-    def __enter__(self) -> _CpuSpan:
-        self._t0 = monotonic_ns()
-        self._c0 = thread_time_ns()
-        return self
-
-    def __exit__(self, et: Any, ev: Any, tb: Any) -> bool:
-        cpu = thread_time_ns() - self._c0
-        t1 = monotonic_ns()
-        try:
-            buf = TLS.buf
-        except AttributeError:
-            buf = RECORDER.buffer()
-        b = self._batch
-        buf.extend(
-            (self._t0, t1, cpu, self._sample, b if b >= 0 else buf.ctx,
-             self._code if et is None else self._code | _ERROR_BITS)
-        )
-        if len(buf) >= buf.limit:
-            RECORDER.spill(buf)
-        return False
-
-
-def _timed(fn: Callable[..., T], name: str) -> Callable[..., T]:
-    try:
-        params = list(inspect.signature(fn).parameters)
-    except (TypeError, ValueError):
-        params = []
-    pos = 1 if params and params[0] in ("self", "cls") else 0
-    codes = RECORDER.user_codes
-
-    @functools.wraps(fn)
-    def wrapper(*args: Any, **kwargs: Any) -> T:
-        rec = RECORDER
-        if not rec.on:
-            if rec.checked_env or not _r.attach_from_env():
-                return fn(*args, **kwargs)
-        code = codes.get(name)
-        if code is None:
-            code = codes[name] = rec.stage_id(name)
-        sample = args[pos] if len(args) > pos and type(args[pos]) is int else -1
-        t0 = monotonic_ns()
-        c0 = thread_time_ns() if rec.cpu_time else -1  # inside the wall reads: see _CpuSpan
-        try:
-            return fn(*args, **kwargs)
-        except BaseException:
-            code |= _ERROR_BITS
-            raise
-        finally:
-            cpu = thread_time_ns() - c0 if c0 >= 0 else -1
-            t1 = monotonic_ns()
-            try:
-                buf = TLS.buf
-            except AttributeError:
-                buf = rec.buffer()
-            buf.extend((t0, t1, cpu, sample, buf.ctx, code))
-            if len(buf) >= buf.limit:
-                rec.spill(buf)
-
-    wrapper.__pipeprobe_stage__ = name  # type: ignore[attr-defined]
-    return wrapper
-
-
-class _Noop:
-    """What :func:`stage` returns while nothing records: a free context manager."""
-
-    __slots__ = ("_name",)
-
-    def __init__(self, name: str = "") -> None:
-        self._name = name
-
-    def __enter__(self) -> _Noop:
-        return self
-
-    def __exit__(self, et: Any, ev: Any, tb: Any) -> bool:
-        return False
-
-    def __call__(self, fn: Callable[..., T]) -> Callable[..., T]:
-        return _timed(fn, self._name)
-
-
-_CODES = RECORDER.user_codes  # cleared in place when a probe starts
-
-
-def stage(name: str, *, sample: int | None = -1, batch: int | None = -1) -> Any:
-    """Time a stage: ``with stage("decode", sample=i): ...`` or ``@stage("decode")``.
-
-    Records into the probe active in this process. In loader worker
-    processes (forked or spawned) it joins the parent's run by itself. While
-    no probe is active it costs almost nothing and records nothing.
-
-    Parameters
-    ----------
-    name : str
-        Stage name, e.g. ``"decode"``. ``"step"`` and ``"wait"`` are reserved.
-    sample : int, optional
-        Sample id the work belongs to (-1 or None: unknown). The decorator
-        form takes the first positional ``int`` argument (after ``self``)
-        as the sample id.
-    batch : int, optional
-        Batch id, in the consumer's numbering (0, 1, ... in the order the
-        training loop receives batches). By default, spans in the thread
-        that iterates a watched loader belong to the batch being fetched or
-        worked on; spans elsewhere are linked to batches through the sample
-        ids the watch records.
-
-    Returns
-    -------
-    context manager and decorator
-
-    Raises
-    ------
-    ValueError
-        ``name`` is not a non-empty str, is reserved, or an id is not an int.
-
-    Examples
-    --------
-    >>> import pipeprobe
-    >>> with pipeprobe.stage("decode", sample=3):
-    ...     pass
-    """
-    rec = RECORDER
-    try:
-        code = _CODES[name]
-    except (KeyError, TypeError):
-        return _stage_slow(name, sample, batch)
-    if type(sample) is not int or type(batch) is not int:
-        return _stage_slow(name, sample, batch)
-    if rec.on:
-        return _CpuSpan(code, sample, batch) if rec.cpu_time else _Span(code, sample, batch)
-    if rec.checked_env or not _r.attach_from_env():
-        return _Noop(name)
-    return _stage_slow(name, sample, batch)
-
-
-def _stage_slow(name: Any, sample: Any, batch: Any) -> Any:
-    _check_stage_name(name)
-    sample_i = _check_id(sample, "sample")
-    batch_i = _check_id(batch, "batch")
-    rec = RECORDER
-    if not rec.on and (rec.checked_env or not _r.attach_from_env()):
-        return _Noop(name)
-    code = _CODES.get(name)
-    if code is None:
-        code = _CODES[name] = rec.stage_id(name)
-    return _CpuSpan(code, sample_i, batch_i) if rec.cpu_time else _Span(code, sample_i, batch_i)
-
-
-def _sample_ids_from(item: Any, samples: Callable[[Any], Iterable[int]] | None) -> list[int] | None:
-    if samples is None:
-        return None
-    ids = samples(item)
-    return [int(i) for i in ids]
-
 
 class _Watched:
     """An iterable of batches whose every iteration is recorded as an epoch."""
@@ -259,6 +39,27 @@ class _Watched:
         self._iterable = iterable
         self._samples = samples
         self._epoch = epoch
+        self._samples_warned = False
+
+    def _sample_ids(self, item: Any) -> list[int] | None:
+        """The user's ``samples=`` callable on a delivered batch; its failure is its own.
+
+        The callable is user code: when it raises (or returns something
+        that is not ints), that batch is recorded without sample ids, one
+        warning names the callable, and recording goes on.
+        """
+        try:
+            return [int(i) for i in self._samples(item)]
+        except Exception as exc:  # noqa: BLE001 - the user's callable, not pipeprobe, failed
+            if not self._samples_warned:
+                self._samples_warned = True
+                warnings.warn(
+                    f"pipeprobe: the samples= callable given to watch() raised {type(exc).__name__}: {exc}. "
+                    "Batches it fails on are recorded without their sample ids; recording goes on.",
+                    RuntimeWarning,
+                    stacklevel=3,
+                )
+            return None
 
     def __len__(self) -> int:
         return len(self._iterable)  # type: ignore[arg-type]
@@ -266,7 +67,7 @@ class _Watched:
     def __iter__(self) -> Iterator[Any]:
         rec = RECORDER
         if self._epoch is not None:
-            rec.epoch = self._epoch
+            rec.epoch = _check_epoch(self._epoch)
         else:
             rec.epoch += 1
         epoch = rec.epoch
@@ -281,7 +82,6 @@ class _Watched:
 
     def _run(self, it: Iterator[Any], epoch: int, index_queue: deque | None) -> Iterator[Any]:
         rec = RECORDER
-        samples = self._samples
         wait_code = (tf.KIND_WAIT << 16) | ((epoch + 1) << 32)
         member_code = (tf.KIND_MEMBER << 16) | ((epoch + 1) << 32)
         while True:
@@ -310,13 +110,44 @@ class _Watched:
                     if index_queue is not None:
                         ids = index_queue.popleft() if index_queue else None
                     else:
-                        ids = _sample_ids_from(item, samples)
+                        ids = self._sample_ids(item) if self._samples is not None else None
                     if ids:
                         for sid in ids:
                             rec.record(t1, t1, -1, sid, bid, member_code)
                 except Exception as exc:  # noqa: BLE001 - never take training down
                     rec.fail(exc)
             yield item
+
+
+def _checked_out_dir(out_dir: Any) -> Path:
+    """``out_dir`` as an absolute path (an ``os.chdir()`` during the run must not move it)."""
+    if not isinstance(out_dir, (str, os.PathLike)):
+        raise ValueError(f"out_dir must be a path, got {type(out_dir).__name__}")
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise ValueError(f"out_dir {str(out)!r} is a file; give a folder for the run")
+    return out.resolve()
+
+
+def _check_intervals(sample_interval_s: Any, flush_interval_s: Any, buffer_spans: Any) -> None:
+    if not (isinstance(sample_interval_s, (int, float)) and sample_interval_s >= 0):
+        raise ValueError(f"sample_interval_s must be >= 0, got {sample_interval_s!r}")
+    if not (isinstance(flush_interval_s, (int, float)) and flush_interval_s > 0):
+        raise ValueError(f"flush_interval_s must be > 0, got {flush_interval_s!r}")
+    if not (isinstance(buffer_spans, int) and buffer_spans >= 16):
+        raise ValueError(f"buffer_spans must be an int >= 16, got {buffer_spans!r}")
+
+
+#: Called with the run folder after a clean close of a probe made with
+#: ``report=True``. The recording layer never imports the report: the
+#: package facade installs the printer (see the design note in ``__init__``).
+_CLOSE_REPORT: Callable[[Path], None] | None = None
+
+
+def set_close_report(print_report: Callable[[Path], None] | None) -> None:
+    """Install the end-of-run report a probe prints on close (``None``: no report)."""
+    global _CLOSE_REPORT
+    _CLOSE_REPORT = print_report
 
 
 class Probe:
@@ -375,17 +206,8 @@ class Probe:
         sync_clocks: bool = True,
         live: bool | float = False,
     ) -> None:
-        if not isinstance(out_dir, (str, os.PathLike)):
-            raise ValueError(f"out_dir must be a path, got {type(out_dir).__name__}")
-        out = Path(out_dir)
-        if out.exists() and not out.is_dir():
-            raise ValueError(f"out_dir {str(out)!r} is a file; give a folder for the run")
-        if not (isinstance(sample_interval_s, (int, float)) and sample_interval_s >= 0):
-            raise ValueError(f"sample_interval_s must be >= 0, got {sample_interval_s!r}")
-        if not (isinstance(flush_interval_s, (int, float)) and flush_interval_s > 0):
-            raise ValueError(f"flush_interval_s must be > 0, got {flush_interval_s!r}")
-        if not (isinstance(buffer_spans, int) and buffer_spans >= 16):
-            raise ValueError(f"buffer_spans must be an int >= 16, got {buffer_spans!r}")
+        out = _checked_out_dir(out_dir)
+        _check_intervals(sample_interval_s, flush_interval_s, buffer_spans)
         live_s = _live.live_interval(live)
         rec = RECORDER
         if rec.on and rec.role == "main":
@@ -393,6 +215,43 @@ class Probe:
         self.run_dir = out
         self.report = report
         self.closed = False
+        run_id, run_id_source, clock_sync = self._join_ranks(sync_clocks)
+        header_path = out / f"run-r{self.rank}.json"
+        if header_path.exists():
+            raise ValueError(f"{str(out)!r} already holds a recorded run (rank {self.rank}); give a new folder")
+        self._sampler = None
+        self._env_before = {k: os.environ.get(k) for k in (_r.ENV_RUN_DIR, _r.ENV_OPTIONS)}
+        rec.next_batch = 0
+        rec.epoch = -1
+        rec.start(
+            out,
+            role="main",
+            cpu_time=bool(cpu_time),
+            flush_interval_s=float(flush_interval_s),
+            buffer_spans=int(buffer_spans),
+            rank=self.rank,
+            world_size=self.world_size,
+            run_id=run_id,
+        )
+        self._session = rec.session
+        self._header = tf.RunHeader(
+            run_id=run_id, run_id_source=run_id_source, clock_sync=clock_sync, host=socket.gethostname(),
+            cores=os.cpu_count() or 1, anchor_wall_ns=rec.anchor_wall_ns, anchor_mono_ns=rec.anchor_mono_ns,
+            pipeprobe_version=__version__, python_version=platform.python_version(), platform=platform.platform(),
+            pid=os.getpid(), rank=self.rank, world_size=self.world_size, cpu_time=bool(cpu_time),
+            sample_interval_s=float(sample_interval_s), flush_interval_s=float(flush_interval_s),
+        )
+        self._open_run(float(sample_interval_s))
+        _signals._SIGNAL_CLOSERS.append(self._close_on_signal)
+        self._live = None if live_s is None else _live.LiveLine(
+            self.run_dir, self.rank, live_s, lambda: rec.next_batch).start()
+
+    def _join_ranks(self, sync_clocks: bool) -> tuple[str, str, dict[str, Any] | None]:
+        """Set this probe's rank and world size; return ``(run_id, run_id_source, clock_sync)``.
+
+        With ``torch.distributed`` initialised, every rank takes part in the
+        clock exchange here, before any check that one rank alone could fail.
+        """
         self.rank, self.world_size = _r.detect_rank()
         run_id, run_id_source = _clocksync.local_run_id(self.world_size)
         clock_sync = None
@@ -402,53 +261,36 @@ class Probe:
             agreed = _clocksync.measure(dist, _clocksync.local_run_id(1)[0])  # rank 0's, unique
             if agreed is not None:
                 run_id, run_id_source, clock_sync = agreed["run_id"], "exchange", agreed["clock_sync"]
-        header_path = out / f"run-r{self.rank}.json"
-        if header_path.exists():
-            raise ValueError(f"{str(out)!r} already holds a recorded run (rank {self.rank}); give a new folder")
-        self._sampler = None
-        self._env_before = {k: os.environ.get(k) for k in (_r.ENV_RUN_DIR, _r.ENV_OPTIONS)}
+        return run_id, run_id_source, clock_sync
+
+    def _open_run(self, sample_interval_s: float) -> None:
+        """Create the folder, write the run header, tell workers where the run is, start the sampler.
+
+        Any failure here is pipeprobe's own (an unwritable folder): one
+        warning, and training goes on unrecorded.
+        """
+        rec = RECORDER
         options = {
-            "cpu_time": bool(cpu_time),
-            "flush_interval_s": float(flush_interval_s),
-            "buffer_spans": int(buffer_spans),
+            "cpu_time": rec.cpu_time,
+            "flush_interval_s": rec.flush_interval_s,
+            "buffer_spans": rec.buffer_spans,
             "rank": self.rank,
             "world_size": self.world_size,
-            "run_id": run_id,
+            "run_id": rec.run_id,
         }
-        rec.next_batch = 0
-        rec.epoch = -1
-        rec.start(
-            out.resolve(),
-            role="main",
-            cpu_time=bool(cpu_time),
-            flush_interval_s=float(flush_interval_s),
-            buffer_spans=int(buffer_spans),
-            rank=self.rank,
-            world_size=self.world_size,
-            run_id=run_id,
-        )
-        self._header = tf.RunHeader(
-            run_id=run_id, run_id_source=run_id_source, clock_sync=clock_sync, host=socket.gethostname(),
-            cores=os.cpu_count() or 1, anchor_wall_ns=rec.anchor_wall_ns, anchor_mono_ns=rec.anchor_mono_ns,
-            pipeprobe_version=__version__, python_version=platform.python_version(), platform=platform.platform(),
-            pid=os.getpid(), rank=self.rank, world_size=self.world_size, cpu_time=bool(cpu_time),
-            sample_interval_s=float(sample_interval_s), flush_interval_s=float(flush_interval_s),
-        )
         try:
-            out.mkdir(parents=True, exist_ok=True)
+            self.run_dir.mkdir(parents=True, exist_ok=True)
             self._write_header()
-            os.environ[_r.ENV_RUN_DIR] = str(out.resolve())
+            os.environ[_r.ENV_RUN_DIR] = str(self.run_dir)
             os.environ[_r.ENV_OPTIONS] = json.dumps(options)
             if sample_interval_s > 0:
                 from ._sampler import ResourceSampler
 
-                self._sampler = ResourceSampler(out, self.rank, float(sample_interval_s))
+                self._sampler = ResourceSampler(self.run_dir, self.rank, sample_interval_s)
                 rec.extra_writers.append(self._sampler.write)
                 self._sampler.start()
         except Exception as exc:  # noqa: BLE001 - an unwritable folder must not stop training
             rec.fail(exc)
-        _r._SIGNAL_CLOSERS.append(self._close_on_signal)
-        self._live = None if live_s is None else _live.LiveLine(out, self.rank, live_s, lambda: rec.next_batch).start()
 
     # -- recording API -------------------------------------------------------
     def stage(self, name: str, *, sample: int | None = None, batch: int | None = None) -> Any:
@@ -485,7 +327,8 @@ class Probe:
             spans recorded in worker processes are linked to batches when
             the loader is not a torch ``DataLoader``.
         epoch : int, optional
-            Epoch number to record instead of counting iterations.
+            Epoch number to record instead of counting iterations. The trace
+            holds epochs from -2**31 to 2**31 - 2; one beyond is clipped.
         """
         if samples is not None and not callable(samples):
             raise ValueError("samples must be a callable that returns the sample ids of a batch")
@@ -517,10 +360,15 @@ class Probe:
             self._live.stop()
         if self._sampler is not None:
             self._sampler.stop()
+        if rec.session != self._session:
+            # This probe failed and a newer one records now: its recorder,
+            # signal hooks and environment are not this probe's to touch.
+            _discard(_signals._SIGNAL_CLOSERS, self._close_on_signal)
+            return
         ok = rec.on
         if ok:
             try:  # worker processes that outlive the probe flush now
-                late = _r.close_workers(self.run_dir.resolve(), self.rank)
+                late = _closing.close_workers(self.run_dir.resolve(), self.rank)
                 if late:
                     warnings.warn(
                         f"pipeprobe: worker processes {late} did not flush within 3 s of close; "
@@ -531,11 +379,8 @@ class Probe:
             except Exception as exc:  # noqa: BLE001 - never take training down
                 warnings.warn(f"pipeprobe could not flush worker processes: {exc}", RuntimeWarning, stacklevel=2)
         rec.stop()
-        _r.restore_signal_hooks()
-        try:
-            _r._SIGNAL_CLOSERS.remove(self._close_on_signal)
-        except ValueError:
-            pass
+        _signals.restore_signal_hooks()
+        _discard(_signals._SIGNAL_CLOSERS, self._close_on_signal)
         for key, value in self._env_before.items():
             if value is None:
                 os.environ.pop(key, None)
@@ -551,11 +396,9 @@ class Probe:
                 rec.on = True
                 rec.fail(exc)
             return
-        if self.report and not rec.failed:
+        if self.report and not rec.failed and _CLOSE_REPORT is not None:
             try:
-                from .report import print_close_report
-
-                print_close_report(self.run_dir)
+                _CLOSE_REPORT(self.run_dir)
             except Exception as exc:  # noqa: BLE001 - the report must not break training
                 warnings.warn(f"pipeprobe could not print its report: {exc}", RuntimeWarning, stacklevel=2)
 
@@ -572,6 +415,13 @@ class Probe:
     def __repr__(self) -> str:
         state = "closed" if self.closed else ("recording" if RECORDER.on else "off")
         return f"<pipeprobe.Probe {str(self.run_dir)!r} {state}>"
+
+
+def _discard(items: list[Any], item: Any) -> None:
+    try:
+        items.remove(item)
+    except ValueError:
+        pass
 
 
 class _WorkerProbe:

@@ -38,8 +38,8 @@ from collections import deque
 from time import monotonic_ns, thread_time_ns
 from typing import Any, Iterable, Iterator
 
+from .. import tracefile as tf
 from . import _recorder as _r
-from . import tracefile as tf
 
 FETCH_STAGE = "fetch"
 COLLATE_STAGE = "collate"

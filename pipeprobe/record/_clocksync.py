@@ -204,7 +204,7 @@ def check_ranks(root: Any, headers: dict[int, dict[str, Any]]) -> list[str]:
         Run headers from different runs (their run ids differ) are mixed
         in the folder; the message names the files of each run.
     """
-    from .errors import TraceFormatError
+    from ..errors import TraceFormatError
 
     warn: list[str] = []
     comparable: dict[str, list[int]] = {}

@@ -16,23 +16,24 @@ import atexit
 import errno
 import json
 import os
-import signal
 import socket
 import sys
 import threading
 import warnings
 from pathlib import Path
-from time import monotonic_ns, sleep, time_ns
+from time import monotonic_ns, time_ns
 from typing import Any
 
 import numpy as np
 
-from . import tracefile as tf
+from .. import tracefile as tf
+from . import _signals
+from ._buffers import _FIELDS, TLS, _Buffer, take_records
+from ._closing import CLOSE_POLL_S, close_ack_name, close_request_name, touch
 
 ENV_RUN_DIR = "PIPEPROBE_RUN_DIR"
 ENV_OPTIONS = "PIPEPROBE_OPTIONS"
 RESERVED_STAGES = ("wait", "step")
-_FIELDS = 6  # start, end, cpu, sample, batch, code
 _MAX_STAGES = 65535
 
 
@@ -51,27 +52,6 @@ def detect_rank() -> tuple[int, int]:
     return (rank or 0), (world or 1)
 
 
-class _Buffer(list):
-    """Records of one thread, six ints each, appended by one ``extend``.
-
-    The owning thread only ever appends; a flush copies and deletes a prefix
-    under ``lock``. Under the GIL each ``extend``, copy and delete is atomic,
-    so the hot path needs no lock.
-    """
-
-    __slots__ = ("ctx", "tid", "limit", "lock")
-
-    def __init__(self, limit: int) -> None:
-        super().__init__()
-        self.tid = threading.get_native_id()
-        self.ctx = -1  # batch the consumer thread is fetching or working on
-        self.limit = limit
-        self.lock = threading.Lock()
-
-
-#: One thread-local for the life of the process; a forked child keeps the
-#: forking thread's entry and empties it.
-TLS = threading.local()
 
 
 class _Recorder:
@@ -95,20 +75,43 @@ class _Recorder:
         self.next_batch = 0
         self.failed = False
         self.run_id = ""
+        self.session = 0  # counts starts: a probe acts on the recorder only while it is the latest
+        self.span_cost_ns: float | None = None  # measured at start (see _spans.calibrate_span_cost_ns)
         self._reset_process_state()
 
     # -- set-up ---------------------------------------------------------
     def _reset_process_state(self) -> None:
+        """State of a new process (or a forked child): fresh locks, no threads but this one."""
         self.in_flush = threading.local()  # .on: this thread is inside flush()
-        self.pending_signal: tuple[int, Any] | None = None
-        self.buffers: list[_Buffer] = []
         self.meta_lock = threading.Lock()
         self.io_lock = threading.Lock()
+        self._reset_run_state()
+
+    def _reset_run_state(self) -> None:
+        """State of a new run in this process; the locks stay (other threads may hold them)."""
+        self.pending_signal: tuple[int, Any] | None = None
+        self.buffers: list[_Buffer] = []
         self.flusher: threading.Thread | None = None
         self.stop_event = threading.Event()
         self.span_file = None
         self.header_stages_written = -1
         self.extra_writers: list[Any] = []  # callables flushed with the spans
+
+    def _retire(self) -> None:
+        """Stop what an earlier run left behind: a flusher (a failed run keeps it), an open span file."""
+        flusher, self.flusher = self.flusher, None
+        if flusher is not None:
+            self.stop_event.set()
+            if flusher is not threading.current_thread():
+                flusher.join(timeout=1)
+        if self.span_file is not None and self.io_lock.acquire(timeout=1):
+            try:
+                self.span_file.close()
+            except OSError:
+                pass
+            finally:
+                self.span_file = None
+                self.io_lock.release()
 
     def start(
         self,
@@ -123,7 +126,15 @@ class _Recorder:
         stages: list[str] | None = None,
         run_id: str = "",
     ) -> None:
-        self._reset_process_state()
+        self._retire()
+        with self.meta_lock:
+            kept = self._live_buffers()
+            self._reset_run_state()
+            for buf in kept:  # threads that recorded under an earlier probe keep their buffers
+                buf.clear()
+                buf.limit = _FIELDS * buffer_spans
+                buf.ctx = -1
+                self.buffers.append(buf)
         self.run_dir = run_dir
         self.role = role
         self.cpu_time = cpu_time
@@ -141,19 +152,30 @@ class _Recorder:
         self.stage_names.clear()
         self.stage_ids.clear()
         self.user_codes.clear()
-        mine = getattr(TLS, "buf", None)
-        if mine is not None:  # left over from an earlier probe in this thread
-            mine.clear()
-            mine.limit = _FIELDS * buffer_spans
-            mine.ctx = -1
-            self.buffers.append(mine)
-            self._start_flusher()  # buffer() starts it for new buffers only
         for name in RESERVED_STAGES + tuple(stages or ()):
             self.stage_id(name)
+        self.span_cost_ns = _measure_span_cost(cpu_time)
         self.anchor_mono_ns = monotonic_ns()
         self.anchor_wall_ns = time_ns()
         self.on = True
-        install_signal_hooks()
+        self.session += 1
+        with self.meta_lock:
+            if self.flusher is None:  # a new thread's buffer() may have started it already
+                self._start_flusher()
+        _signals.install_signal_hooks()
+
+    def _live_buffers(self) -> list[_Buffer]:
+        """The buffers of this process's live threads, this thread's included.
+
+        A thread keeps its buffer (a thread-local) for its whole life, across
+        probes: a new probe must adopt it, or a pool thread that recorded
+        under an earlier probe would record into a buffer nobody flushes.
+        """
+        bufs = [b for b in self.buffers if b.owner.is_alive()]
+        mine = getattr(TLS, "buf", None)
+        if mine is not None and all(b is not mine for b in bufs):
+            bufs.append(mine)
+        return bufs
 
     def stage_id(self, name: str) -> int:
         sid = self.stage_ids.get(name)
@@ -183,14 +205,14 @@ class _Recorder:
             return buf
 
     def _start_flusher(self) -> None:
-        self.stop_event = threading.Event()
-        t = threading.Thread(target=self._flush_loop, name="pipeprobe-flush", daemon=True)
+        # The thread gets its own stop event: a later run replaces self.stop_event.
+        stop = self.stop_event = threading.Event()
+        t = threading.Thread(target=self._flush_loop, args=(stop,), name="pipeprobe-flush", daemon=True)
         self.flusher = t
         t.start()
 
-    def _flush_loop(self) -> None:
-        block_signals_in_this_thread()
-        stop = self.stop_event
+    def _flush_loop(self, stop: threading.Event) -> None:
+        _signals.block_signals_in_this_thread()
         if self.role != "worker" or self.run_dir is None:
             while not stop.wait(self.flush_interval_s):
                 self.flush()
@@ -205,7 +227,7 @@ class _Recorder:
         while not stop.wait(tick_ns / 1e9):
             if os.path.exists(request):
                 self.stop()
-                _touch(self.run_dir / close_ack_name(self.rank, self.pid))
+                touch(self.run_dir / close_ack_name(self.rank, self.pid))
                 return
             now = monotonic_ns()
             # Flush early once to write the process header: that registers
@@ -223,30 +245,27 @@ class _Recorder:
             self.spill(buf)
 
     def spill(self, buf: _Buffer) -> None:
-        """Write a full buffer from its own thread."""
-        with buf.lock:
-            chunk = self._take(buf)
-        self._write([chunk])
+        """Write a full buffer from its own thread.
 
-    @staticmethod
-    def _take(buf: _Buffer) -> np.ndarray:
-        """Move the finished records out of ``buf`` into a structured array (lock held)."""
-        k = len(buf)
-        raw = np.array(buf[:k], dtype=np.int64).reshape(-1, _FIELDS)
-        del buf[:k]
-        out = np.empty(len(raw), dtype=tf.SPAN_RECORD)
-        out["start_ns"] = raw[:, 0]
-        out["end_ns"] = raw[:, 1]
-        out["cpu_ns"] = raw[:, 2]
-        out["sample_id"] = raw[:, 3]
-        out["batch_id"] = raw[:, 4]
-        code = raw[:, 5]
-        out["stage"] = code & 0xFFFF
-        out["kind"] = (code >> 16) & 0xFF
-        out["flags"] = (code >> 24) & 0xFF
-        out["epoch"] = (code >> 32) - 1
-        out["tid"] = buf.tid
-        return out
+        A spill is a write in progress like a flush: a signal arriving
+        meanwhile waits for it (see :meth:`flush`), and a failure here,
+        even in turning the records into fixed-width ones, is pipeprobe's
+        own: one warning, recording stops, the user's loop goes on.
+        """
+        mine = self.in_flush
+        outer = not getattr(mine, "on", False)
+        mine.on = True
+        try:
+            with buf.lock:
+                chunk = self._take(buf)
+            self._write([chunk])
+        except Exception as exc:  # noqa: BLE001 - never take training down
+            self.fail(exc)
+        finally:
+            if outer:
+                self._end_write(mine)
+
+    _take = staticmethod(take_records)
 
     def flush(self, lock_timeout_s: float = -1) -> None:
         """Write every thread's finished records and the extra writers' data.
@@ -263,31 +282,40 @@ class _Recorder:
             self._flush(lock_timeout_s)
         finally:
             if outer:
-                mine.on = False
-                # Signals run in the main thread, and only it may deliver one it held back.
-                if threading.current_thread() is threading.main_thread():
-                    pending, self.pending_signal = self.pending_signal, None
-                    if pending is not None:
-                        _deliver(*pending)
+                self._end_write(mine)
+
+    def _end_write(self, mine: threading.local) -> None:
+        """Leave the outermost write of this thread; deliver a signal it held back."""
+        mine.on = False
+        # Signals run in the main thread, and only it may deliver one it held back:
+        # through the whole signal path, so other threads' buffers are written too.
+        if threading.current_thread() is threading.main_thread():
+            pending, self.pending_signal = self.pending_signal, None
+            if pending is not None:
+                _signals._on_signal(*pending)
 
     def _flush(self, lock_timeout_s: float) -> None:
         # Take the file lock before any records, so records are never taken
         # out of a buffer and then dropped because the file is busy.
-        if not self.io_lock.acquire(timeout=lock_timeout_s):
+        io_lock = self.io_lock
+        if not io_lock.acquire(timeout=lock_timeout_s):
             return
         try:
             chunks = []
-            for buf in list(self.buffers):
-                if not buf.lock.acquire(timeout=lock_timeout_s):
-                    continue
-                try:
-                    if len(buf):
-                        chunks.append(self._take(buf))
-                finally:
-                    buf.lock.release()
+            try:
+                for buf in list(self.buffers):
+                    if not buf.lock.acquire(timeout=lock_timeout_s):
+                        continue
+                    try:
+                        if len(buf):
+                            chunks.append(self._take(buf))
+                    finally:
+                        buf.lock.release()
+            except Exception as exc:  # noqa: BLE001 - never take training down (nor the flush thread)
+                self.fail(exc)
             self._write_locked(chunks)
         finally:
-            self.io_lock.release()
+            io_lock.release()
         for writer in list(self.extra_writers):
             try:
                 writer(lock_timeout_s)
@@ -335,6 +363,7 @@ class _Recorder:
             pid=self.pid, ppid=os.getppid(), rank=self.rank, world_size=self.world_size, role=self.role,
             host=socket.gethostname(), anchor_mono_ns=self.anchor_mono_ns, anchor_wall_ns=self.anchor_wall_ns,
             cpu_time=self.cpu_time, stages=tuple(names), run_id=self.run_id,
+            extra={"span_cost_ns": self.span_cost_ns},
         ).to_json()
         tf.write_json_atomic(self.run_dir / (self.file_stem() + ".json"), header)
         self.header_stages_written = len(names)
@@ -380,6 +409,7 @@ class _Recorder:
         mine = getattr(TLS, "buf", None)
         if mine is not None:  # the parent flushes these records, not us
             mine.clear()
+            mine.owner = threading.current_thread()
             mine.tid = threading.get_native_id()
             mine.ctx = -1
             mine.lock = threading.Lock()
@@ -387,7 +417,7 @@ class _Recorder:
         self.pid = os.getpid()
         self.checked_env = True
         self.next_batch = 0
-        _SIGNAL_CLOSERS.clear()  # the parent's probe is not ours to close
+        _signals._SIGNAL_CLOSERS.clear()  # the parent's probe is not ours to close
         if was_on:
             self.role = "worker"
             self.on = True
@@ -397,93 +427,17 @@ class _Recorder:
             self._start_flusher()
 
 
-RECORDER = _Recorder()
+def _measure_span_cost(cpu_time: bool) -> float | None:
+    """This process's per-span cost, for the process header; ``None`` if it cannot be measured."""
+    from ._spans import calibrate_span_cost_ns  # _spans builds on this module
 
-
-# -- closing worker processes that outlive the probe ---------------------------
-CLOSE_POLL_S = 0.2  # worker wake-ups per second stay few: each needs the GIL
-
-
-def close_request_name(rank: int) -> str:
-    return f"close-r{rank}.request"
-
-
-def close_ack_name(rank: int, pid: int) -> str:
-    return f"close-r{rank}-p{pid}.done"
-
-
-def _touch(path: Path) -> None:
     try:
-        with open(path, "ab"):
-            pass
-    except OSError:
-        pass
+        return round(calibrate_span_cost_ns(cpu_time), 1)
+    except Exception:  # noqa: BLE001 - a figure for the report, never a reason to stop recording
+        return None
 
 
-def _live_worker_pids(run_dir: Path, rank: int, me: int) -> tuple[set[int], set[int]]:
-    """``(registered, unregistered)`` live child processes that may hold records of this rank."""
-    import multiprocessing
-
-    import psutil
-
-    prefix = f"spans-r{rank}-p"
-    registered = set()
-    for name in os.listdir(run_dir):
-        if name.startswith(prefix) and name.endswith(".json") and name[len(prefix):-5].isdigit():
-            pid = int(name[len(prefix):-5])
-            if pid != me:
-                registered.add(pid)
-    children = {p.pid for p in multiprocessing.active_children() if p.pid is not None}
-
-    def alive(pid: int) -> bool:
-        try:
-            proc = psutil.Process(pid)
-            return proc.status() != psutil.STATUS_ZOMBIE and (pid in children or proc.ppid() == me)
-        except (psutil.Error, OSError):
-            return False
-
-    live = {pid for pid in registered | children if alive(pid)}
-    return live & registered, live - registered
-
-
-def close_workers(run_dir: Path, rank: int, timeout_s: float = 3.0) -> list[int]:
-    """Ask this rank's live worker processes to flush and stop; wait for their answers.
-
-    Worker processes that outlive the probe (persistent loader workers, a
-    pool still open) otherwise write their last records only at their next
-    flush or on exit. Returns the pids that did not answer within
-    ``timeout_s``.
-    """
-    me = os.getpid()
-    registered, unregistered = _live_worker_pids(run_dir, rank, me)
-    if not registered and not unregistered:
-        return []
-    _touch(run_dir / close_request_name(rank))
-
-    def answered(pid: int) -> bool:
-        return (run_dir / close_ack_name(rank, pid)).exists()
-
-    start = monotonic_ns()
-    deadline = start + int(timeout_s * 1e9)
-    # A child that recorded its first spans in the last tick registers itself
-    # (writes its process header) within one more tick.
-    settle = start + int(3 * CLOSE_POLL_S * 1e9)
-    while True:
-        pending = {p for p in registered if not answered(p)}
-        now = monotonic_ns()
-        if (not pending and (not unregistered or now >= settle)) or now >= deadline:
-            break
-        sleep(0.01)
-        # Re-scan: children that registered meanwhile join, dead ones (they
-        # flushed on exit, or were killed) leave.
-        live, unregistered = _live_worker_pids(run_dir, rank, me)
-        registered = {p for p in registered | live if p in live or answered(p)}
-    for pid in registered:
-        try:
-            os.unlink(run_dir / close_ack_name(rank, pid))
-        except OSError:
-            pass
-    return sorted(pending)
+RECORDER = _Recorder()
 
 
 def attach_from_env() -> bool:
@@ -541,91 +495,6 @@ try:
 except Exception:  # noqa: BLE001
     pass
 
-
-# -- signals ------------------------------------------------------------------
-_PREVIOUS_HANDLERS: dict[int, Any] = {}
-
-
-def _on_signal(signum: int, frame: Any) -> None:
-    rec = RECORDER
-    if getattr(rec.in_flush, "on", False):
-        # The interrupted code is writing records: dying or raising now would
-        # lose them. The flush delivers the signal as soon as it is done.
-        rec.pending_signal = (signum, frame)
-        return
-    try:
-        rec.flush(lock_timeout_s=0.2)
-        for hook in list(_SIGNAL_CLOSERS):
-            hook()
-    except Exception:  # noqa: BLE001 - the signal must still be delivered
-        pass
-    _deliver(signum, frame)
-
-
-def _deliver(signum: int, frame: Any) -> None:
-    """Hand a signal to the handler that was there before pipeprobe's."""
-    rec = RECORDER
-    previous = _PREVIOUS_HANDLERS.get(signum, signal.SIG_DFL)
-    if callable(previous):
-        previous(signum, frame)
-    elif previous == signal.SIG_IGN:
-        return
-    else:
-        # Not rec.stop(): the interrupted code may hold a lock that stop()
-        # takes without a timeout (e.g. inside Event.set() of an exit flush),
-        # and the process is about to end anyway. The span file is
-        # unbuffered, so what flush() wrote is on disk.
-        rec.on = False
-        signal.signal(signum, signal.SIG_DFL)
-        os.kill(os.getpid(), signum)
-
-
-_SIGNAL_CLOSERS: list[Any] = []
-
-
-def block_signals_in_this_thread() -> None:
-    """Keep SIGTERM and SIGINT away from a pipeprobe thread.
-
-    The kernel may hand a process signal to any thread that does not block
-    it. If it lands on one of our background threads while the main thread
-    waits in a call that only a signal would interrupt (a lock, a pipe),
-    Python's handler, which runs in the main thread, waits with it: a pool
-    worker told to terminate would never do so.
-    """
-    try:
-        signal.pthread_sigmask(signal.SIG_BLOCK, {signal.SIGTERM, signal.SIGINT})
-    except (AttributeError, OSError, ValueError):
-        pass
-
-
-def install_signal_hooks() -> None:
-    """Flush on SIGTERM and SIGINT, then hand the signal to what was there before."""
-    if threading.current_thread() is not threading.main_thread():
-        return
-    for signum in (signal.SIGTERM, signal.SIGINT):
-        try:
-            current = signal.getsignal(signum)
-            if current is _on_signal:
-                continue
-            if current is None:  # installed from C; leave it alone
-                continue
-            _PREVIOUS_HANDLERS[signum] = current
-            signal.signal(signum, _on_signal)
-        except (ValueError, OSError):
-            pass
-
-
-def restore_signal_hooks() -> None:
-    """Put back the handlers that were there before :func:`install_signal_hooks`."""
-    if threading.current_thread() is not threading.main_thread():
-        return
-    for signum, previous in list(_PREVIOUS_HANDLERS.items()):
-        try:
-            if signal.getsignal(signum) is _on_signal:
-                signal.signal(signum, previous)
-        except (ValueError, OSError):
-            pass
-    _PREVIOUS_HANDLERS.clear()
 
 
 def python_version() -> str:
