@@ -568,8 +568,9 @@ class TestLayers:
         import importlib
 
         assert set(pipeprobe.__all__) <= set(dir(pipeprobe))
-        for name in ("load", "whatif", "compare", "ceilings"):
-            importlib.import_module(f"pipeprobe.{name}")
+        for name, module in (("load", "load"), ("whatif", "whatif"), ("compare", "compare"),
+                             ("ceilings", "whatif.ceilings")):
+            importlib.import_module(f"pipeprobe.{module}")
             assert callable(getattr(pipeprobe, name)) and not isinstance(getattr(pipeprobe, name), type(sys))
         assert all(getattr(pipeprobe, name) is not None for name in pipeprobe.__all__)
         with pytest.raises(AttributeError):
