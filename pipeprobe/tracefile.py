@@ -471,6 +471,14 @@ def _extra(data: Mapping[str, Any], known: Iterable[str]) -> dict[str, Any]:
     return {k: v for k, v in data.items() if k not in skip}
 
 
+def _header_json(header: Any) -> dict[str, Any]:
+    """A header dataclass as its JSON object: format, version, fields kept from the file, then its fields."""
+    out = {"format": header.FORMAT, "format_version": FORMAT_VERSION, **header.extra}
+    out.update({f.name: getattr(header, f.name) for f in fields(header) if f.name != "extra"})
+    out["stages"] = list(header.stages)
+    return out
+
+
 @dataclass(frozen=True)
 class RunHeader:
     """The run header ``run-rR.json``: one per rank, written by its main process at start and close.
@@ -519,10 +527,7 @@ class RunHeader:
 
     def to_json(self) -> dict[str, Any]:
         """The header as the JSON object written to disk."""
-        out = {"format": self.FORMAT, "format_version": FORMAT_VERSION, **self.extra}
-        out.update({f.name: getattr(self, f.name) for f in fields(self) if f.name != "extra"})
-        out["stages"] = list(self.stages)
-        return out
+        return _header_json(self)
 
     @classmethod
     def from_json(cls, data: Mapping[str, Any], path: Path) -> RunHeader:
@@ -594,10 +599,7 @@ class ProcessHeader:
 
     def to_json(self) -> dict[str, Any]:
         """The header as the JSON object written to disk."""
-        out = {"format": self.FORMAT, "format_version": FORMAT_VERSION, **self.extra}
-        out.update({f.name: getattr(self, f.name) for f in fields(self) if f.name != "extra"})
-        out["stages"] = list(self.stages)
-        return out
+        return _header_json(self)
 
     @classmethod
     def from_json(cls, data: Mapping[str, Any], path: Path, anchors_required: bool = False) -> ProcessHeader:
