@@ -119,22 +119,29 @@ def _table(run: Run, critical: CriticalPath | None, wall_s: float) -> pd.DataFra
 
 
 def _slowest(run: Run) -> pd.DataFrame:
+    """Per stage, its slowest samples (ids, seconds, share of the stage's time); column operations only.
+
+    One pass over all stages at once, not a Python loop per stage: a run
+    with tens of thousands of stage names must not stall the report.
+    """
     sp = run.spans
     sp = sp[(sp["sample_id"] >= 0) & ~sp["stage"].isin(["wait", "step"])]
-    rows = []
-    if len(sp):
-        per = sp.groupby([sp["stage"].astype(str), "sample_id"], sort=False)["dur_s"].sum().reset_index()
-        per = per.sort_values(["stage", "dur_s", "sample_id"], ascending=[True, False, True], kind="stable")
-        for stage, part in per.groupby("stage", sort=True):  # one iteration per stage
-            n = len(part)
-            k = min(_TAIL_MAX, max(1, math.ceil(TAIL_FRACTION * n)))
-            top = part.head(k)
-            total = float(part["dur_s"].sum())
-            secs = float(top["dur_s"].sum())
-            rows.append({"stage": str(stage), "samples": int(k), "of_samples": int(n),
-                         "sample_ids": [int(x) for x in top["sample_id"]], "seconds": secs,
-                         "share": secs / total if total > 0 else 0.0})
-    return pd.DataFrame(rows, columns=list(SLOWEST_COLUMNS))
+    if not len(sp):
+        return pd.DataFrame([], columns=list(SLOWEST_COLUMNS))
+    per = sp.groupby([sp["stage"].astype(str), "sample_id"], sort=False)["dur_s"].sum().reset_index()
+    per = per.sort_values(["stage", "dur_s", "sample_id"], ascending=[True, False, True], kind="stable")
+    by_stage = per.groupby("stage", sort=True)["dur_s"]
+    n = by_stage.transform("size").to_numpy()
+    k = np.minimum(_TAIL_MAX, np.maximum(1, np.ceil(TAIL_FRACTION * n))).astype(np.int64)
+    total = by_stage.transform("sum").to_numpy()
+    top = per.assign(n=n, k=k, total=total)[per.groupby("stage", sort=True).cumcount().to_numpy() < k]
+    out = top.groupby("stage", sort=True).agg(
+        samples=("k", "first"), of_samples=("n", "first"), sample_ids=("sample_id", list),
+        seconds=("dur_s", "sum"), total=("total", "first"))
+    out["share"] = np.where(out["total"] > 0, out["seconds"] / out["total"].where(out["total"] > 0, 1.0), 0.0)
+    out["sample_ids"] = [[int(x) for x in ids] for ids in out["sample_ids"]]
+    out = out.reset_index().astype({"samples": int, "of_samples": int, "seconds": float})
+    return out[list(SLOWEST_COLUMNS)]
 
 
 def _stall_intervals(run: Run) -> tuple[np.ndarray, np.ndarray]:
