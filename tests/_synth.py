@@ -43,14 +43,6 @@ class Row:
     epoch: int | None = None
     tid: int | None = None
 
-    @classmethod
-    def from_tuple(cls, row: tuple) -> Row:
-        """The older positional form ``(kind, stage, start_ms, end_ms, sample, batch, epoch[, tid])``, -1 unknown."""
-        kind, name, start, end, sample, batch, epoch = row[:7]
-        known = [None if v == -1 else v for v in (sample, batch, epoch)]
-        name = {"wait": "wait", "step": "step", "member": "wait"}.get(kind, name)
-        return cls(kind, start, end, name, *known, tid=row[7] if len(row) > 7 else None)
-
 
 def stage(name: str, start_ms: float, end_ms: float, *, sample: int | None = None, batch: int | None = None,
           epoch: int | None = None, tid: int | None = None) -> Row:
@@ -95,7 +87,7 @@ def _write_process(root: Path, rank: int, recs: np.ndarray, header: tf.ProcessHe
 
 def write_run(
     run_dir: str | os.PathLike,
-    processes: dict[int, Iterable[Row | tuple]],
+    processes: dict[int, Iterable[Row]],
     *,
     end_ms: float | None = None,
     rank: int = 0,
@@ -108,7 +100,7 @@ def write_run(
     header_extra: dict | None = None,
     mono_offset_ns: int = 0,
 ) -> Path:
-    """Write a run. ``processes`` maps pid -> rows (:class:`Row`; older positional tuples are converted).
+    """Write a run. ``processes`` maps pid -> rows, each a :class:`Row` (made by stage, wait, step or member).
 
     The lowest pid (or ``main_pid``) is the main process. ``header_extra``
     adds fields to the run header (e.g. ``clock_sync``); ``mono_offset_ns``
@@ -119,7 +111,11 @@ def write_run(
     main = main_pid if main_pid is not None else min(processes)
     last = 0.0
     for pid, rows in processes.items():
-        rows = [r if isinstance(r, Row) else Row.from_tuple(r) for r in rows]
+        rows = list(rows)
+        for r in rows:
+            if not isinstance(r, Row):
+                msg = f"pid {pid}: {r!r} is not a Row; make rows with stage(), wait(), step() or member()"
+                raise TypeError(msg)
         recs, names = _records(rows, pid, mono_offset_ns)
         last = max([last] + [r.end_ms for r in rows])
         _write_process(root, rank, recs, tf.ProcessHeader(

@@ -93,7 +93,7 @@ class TestReportSection:
 
 def many_stage_names_run(run_dir, names: int, batches: int = 40):
     """A worker that runs ``names / batches`` distinct one-off stages per batch (1 ms in all), a 2 ms step."""
-    from _synth import write_run
+    from _synth import stage, step, wait, write_run
 
     per_batch = names // batches
     worker, main = [], []
@@ -101,8 +101,8 @@ def many_stage_names_run(run_dir, names: int, batches: int = 40):
         t = 3.0 * b
         for i in range(per_batch):
             s = t + i / per_batch
-            worker.append(("stage", f"s{b * per_batch + i}", s, s + 1 / per_batch, b, b, 0, 200))
-        main += [("wait", "", t, t + 1, -1, b, 0), ("step", "", t + 1, t + 3, -1, b, 0)]
+            worker.append(stage(f"s{b * per_batch + i}", s, s + 1 / per_batch, sample=b, batch=b, epoch=0, tid=200))
+        main += [wait(t, t + 1, b), step(t + 1, t + 3, b)]
     return write_run(run_dir, {100: main, 200: worker})
 
 

@@ -14,7 +14,7 @@ from pipeprobe import cli
 from pipeprobe.export import TABLES, ExportFolderError, MissingExtraError, export_tables
 
 sys.path.insert(0, str(Path(__file__).parent))
-from _synth import simple_pipeline, write_run  # noqa: E402
+from _synth import simple_pipeline, step, wait, write_run  # noqa: E402
 
 FRAMES = ("spans", "batches", "samples", "resources")
 
@@ -89,7 +89,7 @@ class TestRoundTrip:
 class TestLoaders:
     def test_loader_epochs_of_a_script_run(self, tmp_path: Path) -> None:
         """A run recorded by pipeprobe run exports which loader each epoch iterated, and the step's meaning."""
-        rows = [("wait", "", 0, 2, -1, 0, 0), ("step", "", 2, 3, -1, 0, 0), ("wait", "", 3, 4, -1, 1, 1)]
+        rows = [wait(0, 2, 0), step(2, 3, 0), wait(3, 4, 1, epoch=1)]
         d = write_run(tmp_path / "r", {100: rows})
         script = {"loaders": [{"name": "train", "epochs": [0]}, {"name": "val", "epochs": [1]}],
                   "step": "loop time between batches (not timed)"}

@@ -12,7 +12,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
-from _synth import simple_pipeline, write_run
+from _synth import simple_pipeline, stage, step, wait, write_run
 
 from pipeprobe import html as ppe_html
 from pipeprobe.cli import main
@@ -291,8 +291,9 @@ class TestStageDurationLabels:
 
         from pipeprobe import load, plot
 
-        rows = [("stage", "decode", 2 * i, 2 * i + (1.99 if i < 3 else 0.5) - 0.001 * i, i, 0, 0) for i in range(30)]
-        rows += [("wait", "", 0, 60, -1, 0, 0), ("step", "", 60, 61, -1, 0, 0)]
+        rows = [stage("decode", 2 * i, 2 * i + (1.99 if i < 3 else 0.5) - 0.001 * i, sample=i, batch=0, epoch=0)
+                for i in range(30)]
+        rows += [wait(0, 60, 0), step(60, 61, 0)]
         ax = plot.draw_stage_durations(load(write_run(tmp_path / "r", {100: rows})))
         from matplotlib.backends.backend_agg import FigureCanvasAgg
 

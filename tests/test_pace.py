@@ -8,7 +8,7 @@ import time
 from pathlib import Path
 
 import pytest
-from _synth import pool_schedule, write_run
+from _synth import pool_schedule, stage, write_run
 
 import pipeprobe
 from pipeprobe.pace import PACE_INPUT, PACE_LEVEL, PACE_NONE, PACE_STEP, judge
@@ -49,7 +49,7 @@ class TestExactRuns:
 
     def test_no_batches(self, tmp_path):
         """A run without a watched loop says so instead of guessing."""
-        v = judge(pipeprobe.analyze(write_run(tmp_path / "r", {100: [("stage", "decode", 0, 1, 0, -1, 0)]})))
+        v = judge(pipeprobe.analyze(write_run(tmp_path / "r", {100: [stage("decode", 0, 1, sample=0, epoch=0)]})))
         assert (PACE_NONE, "no batch reached the training loop") == (v.pace, v.heading)
 
     def test_headings_are_lower_case_without_percentages(self):

@@ -13,7 +13,7 @@ from pipeprobe.errors import TraceFormatError
 from pipeprobe.ranks import format_rank_view, rank_view
 
 sys.path.insert(0, str(Path(__file__).parent))
-from _synth import write_ranks, write_run  # noqa: E402
+from _synth import stage, step, wait, write_ranks, write_run  # noqa: E402
 
 
 class TestStraggler:
@@ -47,7 +47,7 @@ class TestStraggler:
             t = 0.0
             for k in range(5):
                 sync = 50.0 if k == 3 else 10.0
-                rows += [("wait", "", t, t + 5, -1, k, 0), ("step", "", t + 5, t + 5 + sync, -1, k, 0)]
+                rows += [wait(t, t + 5, k), step(t + 5, t + 5 + sync, k)]
                 t += 5 + sync
             write_run(d, {100 + r: rows}, rank=r, world_size=2, run_id="job")
         view = rank_view(pipeprobe.load(d))
@@ -109,7 +109,7 @@ class TestBadFolders:
     def test_process_file_of_another_run_is_skipped(self, tmp_path: Path) -> None:
         """A span file whose process header names another run is left out, with a warning naming it."""
         d = write_ranks(tmp_path / "r", {}, ranks=2)
-        write_run(tmp_path / "other", {555: [("stage", "decode", 0, 1, 0, -1, 0)]}, rank=1, run_id="other-run",
+        write_run(tmp_path / "other", {555: [stage("decode", 0, 1, sample=0, epoch=0)]}, rank=1, run_id="other-run",
                   main_pid=1)
         for suffix in (".json", ".bin"):
             (d / f"spans-r1-p555{suffix}").write_bytes((tmp_path / "other" / f"spans-r1-p555{suffix}").read_bytes())
@@ -120,7 +120,7 @@ class TestBadFolders:
     def test_span_file_without_its_rank_header_is_skipped(self, tmp_path: Path) -> None:
         """Span files of a rank with no run header are left out with a warning (they belong to another run)."""
         d = write_ranks(tmp_path / "r", {}, ranks=2)
-        write_run(tmp_path / "other", {777: [("stage", "decode", 0, 1, 0, -1, 0)]}, rank=5)
+        write_run(tmp_path / "other", {777: [stage("decode", 0, 1, sample=0, epoch=0)]}, rank=5)
         for suffix in (".json", ".bin"):
             (d / f"spans-r5-p777{suffix}").write_bytes((tmp_path / "other" / f"spans-r5-p777{suffix}").read_bytes())
         with pytest.warns(UserWarning, match=r"spans-r5-p777.bin: there is no run header run-r5.json"):

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 import simpy
 from _replay_cases import CASES, GOLDEN, plan_summary, replay_case
-from _synth import record_pool_run, three_epoch_rows, write_run
+from _synth import record_pool_run, stage, step, three_epoch_rows, wait, write_run
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
@@ -256,8 +256,8 @@ class TestRecordedRuns:
     def test_consumer_work_between_steps_is_kept(self, tmp_path):
         """Time the loop spends outside the step and the wait is replayed as consumer overhead."""
         rows = [
-            ("stage", "decode", 0, 2, 0, 0, 0), ("wait", "", 0, 2, -1, 0, 0), ("step", "", 2, 5, -1, 0, 0),
-            ("stage", "decode", 10, 12, 1, 1, 0), ("wait", "", 10, 12, -1, 1, 0), ("step", "", 12, 15, -1, 1, 0),
+            stage("decode", 0, 2, sample=0, batch=0, epoch=0), wait(0, 2, 0), step(2, 5, 0),
+            stage("decode", 10, 12, sample=1, batch=1, epoch=0), wait(10, 12, 1), step(12, 15, 1),
         ]
         plan = build_plan(pipeprobe.load(write_run(tmp_path / "gap", {100: rows})))
         # by hand: batch 0 arrives at 2 ms, steps to 5 ms, the loop asks for batch 1 at 10 ms
@@ -267,7 +267,7 @@ class TestRecordedRuns:
 
     def test_run_without_batches_is_refused(self, tmp_path):
         """A run without a watched loop cannot be replayed; the error says what to record."""
-        d = write_run(tmp_path / "empty", {100: [("stage", "decode", 0, 1, 0, -1, 0)]})
+        d = write_run(tmp_path / "empty", {100: [stage("decode", 0, 1, sample=0, epoch=0)]})
         with pytest.raises(ScenarioError, match="probe.watch"):
             build_plan(pipeprobe.load(d))
 

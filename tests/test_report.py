@@ -132,10 +132,9 @@ class TestJson:
 
     def test_infinity_is_one_spelling(self, tmp_path):
         """An infinite speed-up is the string "inf" in the report JSON, as in the what-if JSON; NaN is null."""
-        from _synth import write_run
+        from _synth import step, wait, write_run
 
-        d = report_dict(analyze(write_run(tmp_path / "r", {100: [("wait", "", 0, 5, -1, 0, 0),
-                                                                  ("step", "", 5, 5, -1, 0, 0)]})))
+        d = report_dict(analyze(write_run(tmp_path / "r", {100: [wait(0, 5, 0), step(5, 5, 0)]})))
         text = json.dumps(d, allow_nan=False)
         assert ("inf" in text, "Infinity" in text, "NaN" in text) == (True, False, False)
 
@@ -216,16 +215,15 @@ class TestWarmupAction:
     def _two_epochs(tmp_path, restart: bool):
         """2 epochs x 3 batches; the first batch of each epoch waits 20 ms (18 ms of worker start-up), the rest
         2 ms; each wait ends with a 2 ms decode on the epoch's worker; 5 ms steps. Wall 78 ms."""
-        from _synth import write_run
+        from _synth import member, stage, step, wait, write_run
 
         consumer, workers, t = [], {201: [], 202: []}, 0.0
         for e in range(2):
             pid = 202 if (restart and e == 1) else 201
             for k in range(3):
                 b, w = 3 * e + k, (20.0 if k == 0 else 2.0)
-                workers[pid].append(("stage", "decode", t + w - 2, t + w, b, -1, -1))
-                consumer += [("member", "", t + w, t + w, b, b, e), ("wait", "", t, t + w, -1, b, e),
-                             ("step", "", t + w, t + w + 5, -1, b, e)]
+                workers[pid].append(stage("decode", t + w - 2, t + w, sample=b))
+                consumer += [member(t + w, b, b, epoch=e), wait(t, t + w, b, epoch=e), step(t + w, t + w + 5, b, epoch=e)]
                 t += w + 5
         procs = {100: consumer, **{p: r for p, r in workers.items() if r}}
         return write_run(tmp_path / "r", procs, end_ms=t)

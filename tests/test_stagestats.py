@@ -7,7 +7,7 @@ import time
 
 import numpy as np
 import pytest
-from _synth import pool_schedule, simple_pipeline, write_resources, write_run
+from _synth import pool_schedule, simple_pipeline, stage, write_resources, write_run
 
 import pipeprobe
 from pipeprobe.analysis import analyze
@@ -21,7 +21,7 @@ class TestTable:
         rows = []
         t = 0.0
         for i, d in enumerate(durs):
-            rows.append(("stage", "decode", t, t + d, i, -1, 0))
+            rows.append(stage("decode", t, t + d, sample=i, epoch=0))
             t += d
         st = stage_stats(pipeprobe.load(write_run(tmp_path / "r", {100: rows})))
         assert list(STAGE_COLUMNS) == list(st.table.columns)
@@ -60,7 +60,7 @@ class TestSlowest:
         t = 0.0
         for i in range(100):
             d = 10.0 if i == 37 else 1.0
-            rows.append(("stage", "decode", t, t + d, i, -1, 0))
+            rows.append(stage("decode", t, t + d, sample=i, epoch=0))
             t += d
         st = stage_stats(pipeprobe.load(write_run(tmp_path / "r", {100: rows})))
         tail = st.tail_of("decode")

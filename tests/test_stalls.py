@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import pytest
-from _synth import pool_schedule, write_run
+from _synth import member, pool_schedule, stage, step, wait, write_run
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -79,18 +79,17 @@ class TestBlame:
     def test_shuffled_samples_are_named_not_ranged(self, tmp_path):
         """A batch of samples 379, 1, 200, 5, 42 (shuffled) names the first four and a count, not '1-379'."""
         ids = [379, 1, 200, 5, 42]
-        rows = [("stage", "decode", 2 * i, 2 * i + 2, sid, -1, 0, 201) for i, sid in enumerate(ids)]
-        consumer = [("member", "", 10, 10, sid, 0, 0) for sid in ids]
-        consumer += [("wait", "", 0, 10.5, -1, 0, 0), ("step", "", 10.5, 12, -1, 0, 0)]
+        rows = [stage("decode", 2 * i, 2 * i + 2, sample=sid, epoch=0, tid=201) for i, sid in enumerate(ids)]
+        consumer = [member(10, sid, 0) for sid in ids]
+        consumer += [wait(0, 10.5, 0), step(10.5, 12, 0)]
         _, _, s = _stalls(write_run(tmp_path / "r", {100: consumer, 201: rows}, end_ms=12))
         assert "decode on worker 1, samples 379, 1, 200, 5 and 1 more" == s.per_batch.iloc[0]["blame_text"]
 
     def test_per_batch_stage_names_no_samples(self, tmp_path):
         """A collate span tagged with its batch's first sample (as the DataLoader hook does) names no samples."""
-        rows = [("stage", "decode", 0, 1, 0, -1, 0, 201), ("stage", "decode", 1, 2, 1, -1, 0, 201),
-                ("stage", "collate", 2, 9, 0, 0, 0, 201)]
-        consumer = [("member", "", 9, 9, 0, 0, 0), ("member", "", 9, 9, 1, 0, 0),
-                    ("wait", "", 0, 9.5, -1, 0, 0), ("step", "", 9.5, 10, -1, 0, 0)]
+        rows = [stage("decode", 0, 1, sample=0, epoch=0, tid=201), stage("decode", 1, 2, sample=1, epoch=0, tid=201),
+                stage("collate", 2, 9, sample=0, batch=0, epoch=0, tid=201)]
+        consumer = [member(9, 0, 0), member(9, 1, 0), wait(0, 9.5, 0), step(9.5, 10, 0)]
         _, _, s = _stalls(write_run(tmp_path / "r", {100: consumer, 201: rows}, end_ms=10))
         assert ("collate on worker 1", 0) == (s.per_batch.iloc[0]["blame_text"], s.per_batch.iloc[0]["blame_sample_count"])
 
