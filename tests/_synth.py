@@ -86,8 +86,6 @@ def _records(rows: list[Row], pid: int, offset_ns: int) -> tuple[np.ndarray, lis
     return recs, names
 
 
-
-
 def write_run(
     run_dir: str | os.PathLike,
     processes: dict[int, Iterable[Row | tuple]],
