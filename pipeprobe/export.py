@@ -154,18 +154,10 @@ def export_tables(run: Run | str | os.PathLike, out_dir: str | os.PathLike, *, f
 
     Examples
     --------
-    >>> import pipeprobe, tempfile, time, pandas as pd
+    >>> import tempfile, pandas as pd
     >>> from pipeprobe.export import export_tables
-    >>> d = tempfile.mkdtemp()
-    >>> def batches():
-    ...     for b in range(3):
-    ...         with pipeprobe.stage("decode", sample=b):
-    ...             time.sleep(0.002)
-    ...         yield [b]
-    >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
-    ...     for batch in probe.watch(batches()):
-    ...         with probe.step():
-    ...             time.sleep(0.001)
+    >>> from pipeprobe._example_runs import write_example_run
+    >>> d = write_example_run(tempfile.mkdtemp(), batches=3, decode_ms=2, step_ms=1)
     >>> out = export_tables(d, tempfile.mkdtemp() + "/tables")
     >>> sorted(out.files)
     ['batches', 'critical_segments', 'loader_epochs', 'resources', 'run', 'samples', 'spans']

@@ -592,17 +592,9 @@ def build_timeline(run: Run) -> Timeline:
 
     Examples
     --------
-    >>> import pipeprobe, tempfile, time
-    >>> d = tempfile.mkdtemp()
-    >>> def batches():
-    ...     for b in range(2):
-    ...         with pipeprobe.stage("decode", sample=b):
-    ...             time.sleep(0.002)
-    ...         yield [b]
-    >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
-    ...     for batch in probe.watch(batches()):
-    ...         with probe.step():
-    ...             time.sleep(0.004)
+    >>> import pipeprobe, tempfile
+    >>> from pipeprobe._example_runs import write_example_run
+    >>> d = write_example_run(tempfile.mkdtemp(), batches=2, decode_ms=2, step_ms=4)
     >>> tl = build_timeline(pipeprobe.load(d))
     >>> list(tl.nodes["stage"])
     ['decode', 'delivery', 'step', 'decode', 'delivery', 'step']

@@ -19,6 +19,7 @@ from typing import Iterable
 import numpy as np
 
 from pipeprobe import tracefile as tf
+from pipeprobe._example_runs import write_span_file
 
 T0_NS = 1_000_000_000_000  # monotonic anchor of synthetic runs
 WALL_NS = 1_700_000_000_000_000_000  # wall-clock anchor of synthetic runs
@@ -77,14 +78,6 @@ def _records(rows: list[Row], pid: int, offset_ns: int) -> tuple[np.ndarray, lis
     return recs, names
 
 
-def _write_process(root: Path, rank: int, recs: np.ndarray, header: tf.ProcessHeader) -> None:
-    stem = root / f"spans-r{rank}-p{header.pid}"
-    tf.write_json_atomic(stem.with_suffix(".json"), header.to_json())
-    with open(stem.with_suffix(".bin"), "wb") as fh:
-        fh.write(tf.preamble(tf.CONTENT_SPANS))
-        fh.write(recs.tobytes())
-
-
 def write_run(
     run_dir: str | os.PathLike,
     processes: dict[int, Iterable[Row]],
@@ -118,7 +111,7 @@ def write_run(
                 raise TypeError(msg)
         recs, names = _records(rows, pid, mono_offset_ns)
         last = max([last] + [r.end_ms for r in rows])
-        _write_process(root, rank, recs, tf.ProcessHeader(
+        write_span_file(root, rank, recs, tf.ProcessHeader(
             pid=pid, ppid=1 if pid == main else main, rank=rank, world_size=world_size,
             role="main" if pid == main else "worker", host=host, anchor_mono_ns=T0_NS + mono_offset_ns,
             anchor_wall_ns=WALL_NS, stages=tuple(names), run_id=run_id,
@@ -239,7 +232,7 @@ def write_many_spans(run_dir: str | os.PathLike, n_spans: int = 1_000_000, worke
     main["tid"] = 999
     files[999] = main
     for pid, recs in files.items():
-        _write_process(root, 0, recs, tf.ProcessHeader(
+        write_span_file(root, 0, recs, tf.ProcessHeader(
             pid=pid, ppid=1 if pid == 999 else 999, rank=0, world_size=1, role="main" if pid == 999 else "worker",
             host="synth", anchor_mono_ns=T0_NS, anchor_wall_ns=WALL_NS, stages=tuple(stages),
         ))

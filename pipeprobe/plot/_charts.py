@@ -210,18 +210,12 @@ def draw_stall_fraction(
 
     Examples
     --------
-    >>> import pipeprobe, tempfile, time
-    >>> d = tempfile.mkdtemp()
-    >>> def batches():
-    ...     for b in range(4):
-    ...         time.sleep(0.002)
-    ...         yield [b]
-    >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
-    ...     for batch in probe.watch(batches()):
-    ...         with probe.step():
-    ...             time.sleep(0.002)
-    >>> draw_stall_fraction(pipeprobe.load(d)).get_ylabel()
-    'stall (% of batch cycle)'
+    >>> import pipeprobe, tempfile
+    >>> from pipeprobe._example_runs import write_example_run
+    >>> d = write_example_run(tempfile.mkdtemp(), batches=4, decode_ms=2, step_ms=2)
+    >>> ax = draw_stall_fraction(pipeprobe.load(d))
+    >>> ax.get_ylabel(), ax.lines[0].get_ydata().tolist()
+    ('stall (% of batch cycle)', [50.0, 50.0, 50.0, 50.0])
     """
     from ..stalls import stall_summary
 
@@ -307,19 +301,12 @@ def draw_sweep(
 
     Examples
     --------
-    >>> import pipeprobe, tempfile, time
-    >>> d = tempfile.mkdtemp()
-    >>> def batches():
-    ...     for i in range(4):
-    ...         with pipeprobe.stage("decode", sample=i):
-    ...             time.sleep(0.004)
-    ...         yield [i]
-    >>> with pipeprobe.Probe(d, report=False) as probe:
-    ...     for batch in probe.watch(batches()):
-    ...         with probe.step():
-    ...             time.sleep(0.002)
-    >>> draw_sweep(d, values=[0, 1, 2]).get_ylabel()
-    'wall time (s)'
+    >>> import tempfile
+    >>> from pipeprobe._example_runs import write_example_run
+    >>> d = write_example_run(tempfile.mkdtemp(), batches=4, decode_ms=6, step_ms=2)
+    >>> ax = draw_sweep(d, values=[0, 1])
+    >>> ax.get_ylabel(), ax.lines[0].get_ydata().round(6).tolist()
+    ('wall time (s)', [0.032, 0.026])
     """
     from ..whatif import sweep
 
