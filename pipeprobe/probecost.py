@@ -86,13 +86,15 @@ def recording_cost(run: Run, stage_table: pd.DataFrame, wall_s: float) -> Record
 
     Examples
     --------
-    >>> import sys, tempfile; sys.path.insert(0, "tests")
-    >>> from _synth import simple_pipeline, write_run
-    >>> import pipeprobe
-    >>> a = pipeprobe.analyze(write_run(tempfile.mkdtemp(), simple_pipeline()))
+    A run written without the per-span measurement (as by a version before
+    it) gets no estimate:
+
+    >>> import pipeprobe, tempfile
+    >>> from pipeprobe._example_runs import write_example_run
+    >>> a = pipeprobe.analyze(write_example_run(tempfile.mkdtemp(), batches=3))
     >>> c = recording_cost(a.run, a.stages.table, a.wall_s)
     >>> c.spans, c.measured
-    (18, False)
+    (9, False)
 
     References
     ----------
