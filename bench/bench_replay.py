@@ -33,7 +33,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
 
-from _synth import write_many_spans  # noqa: E402
+from _synth import many_stage_names_run, write_many_spans  # noqa: E402
 
 import pipeprobe  # noqa: E402
 from pipeprobe.whatif import sweep  # noqa: E402
@@ -91,22 +91,6 @@ def bench_cpu_contention(batches: int, repeat: int) -> None:
     busy_s, _ = timed(lambda: replay(plan), repeat)
     print(f"{batches:>9,d} batches with CPU times, 4 workers on 2 cores: replay {busy_s:.3f} s = "
           f"{batches / busy_s:,.0f} batches/s (x 3 spans per batch = {3 * batches / busy_s:,.0f} spans/s)")
-
-
-def many_stage_names_run(run_dir: str, names: int, batches: int = 40) -> str:
-    """A worker running ``names / batches`` distinct one-off stages per batch (1 ms in all), a 2 ms step."""
-    from _synth import stage, step, wait, write_run
-
-    per_batch = names // batches
-    worker, main = [], []
-    for b in range(batches):
-        t = 3.0 * b
-        for i in range(per_batch):
-            s = t + i / per_batch
-            worker.append(stage(f"s{b * per_batch + i}", s, s + 1 / per_batch, sample=b, batch=b, epoch=0, tid=200))
-        main += [wait(t, t + 1, b), step(t + 1, t + 3, b)]
-    write_run(run_dir, {100: main, 200: worker})
-    return run_dir
 
 
 def bench_many_stage_names(repeat: int) -> None:

@@ -359,3 +359,16 @@ def pool_schedule(
 
 # Moved to _recorded.py (they record real runs); kept importable from here for the tests that still do.
 from _recorded import machine_idle_share, record_pool_run, wait_for_quiet_cpu  # noqa: E402, F401
+
+
+def many_stage_names_run(run_dir: str | os.PathLike, names: int, batches: int = 40) -> Path:
+    """A worker that runs ``names / batches`` distinct one-off stages per batch (1 ms in all), a 2 ms step."""
+    per_batch = names // batches
+    worker, main = [], []
+    for b in range(batches):
+        t = 3.0 * b
+        for i in range(per_batch):
+            s = t + i / per_batch
+            worker.append(stage(f"s{b * per_batch + i}", s, s + 1 / per_batch, sample=b, batch=b, epoch=0, tid=200))
+        main += [wait(t, t + 1, b), step(t + 1, t + 3, b)]
+    return write_run(run_dir, {100: main, 200: worker})

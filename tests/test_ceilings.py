@@ -10,6 +10,7 @@ from __future__ import annotations
 import math
 
 import pytest
+from _synth import many_stage_names_run
 
 import pipeprobe
 from pipeprobe.analysis import analyze
@@ -89,21 +90,6 @@ class TestReportSection:
         """The JSON report carries the same numbers, without infinities."""
         d = report_dict(analyze(simple_run_dir))["ceilings"]
         assert {"decode", "augment", "step"} == {r["stage"] for r in d["stages"]}
-
-
-def many_stage_names_run(run_dir, names: int, batches: int = 40):
-    """A worker that runs ``names / batches`` distinct one-off stages per batch (1 ms in all), a 2 ms step."""
-    from _synth import stage, step, wait, write_run
-
-    per_batch = names // batches
-    worker, main = [], []
-    for b in range(batches):
-        t = 3.0 * b
-        for i in range(per_batch):
-            s = t + i / per_batch
-            worker.append(stage(f"s{b * per_batch + i}", s, s + 1 / per_batch, sample=b, batch=b, epoch=0, tid=200))
-        main += [wait(t, t + 1, b), step(t + 1, t + 3, b)]
-    return write_run(run_dir, {100: main, 200: worker})
 
 
 class TestManyStageNames:
