@@ -119,6 +119,16 @@ def load_checked(root: Path) -> tuple[pipeprobe.Run | None, str, list[str]]:
     return run, error, ours
 
 
+def _load_traced(root: Path) -> tuple[tuple[pipeprobe.Run | None, str, list[str]], int]:
+    """:func:`load_checked` under tracemalloc: its result and the peak bytes Python allocated meanwhile."""
+    tracemalloc.start()
+    try:
+        result = load_checked(root)
+        return result, tracemalloc.get_traced_memory()[1]
+    finally:
+        tracemalloc.stop()
+
+
 class TestTruncation:
     @pytest.mark.parametrize("content", [tf.CONTENT_SPANS, tf.CONTENT_RESOURCES])
     def test_binary_files_at_every_offset(self, base_run: Path, tmp_path: Path, content: int) -> None:
@@ -303,12 +313,7 @@ class TestLyingHeaders:
         """A run header claiming 10^12 of something is refused or ignored without allocating for it."""
         root = work()
         path = _edit_header(root, "run-", **fields)
-        tracemalloc.start()
-        try:
-            run, error, ours = load_checked(root)
-            peak = tracemalloc.get_traced_memory()[1]
-        finally:
-            tracemalloc.stop()
+        (run, error, ours), peak = _load_traced(root)
         assert peak < 50 * 2**20
         assert error or [m for m in ours if str(path) in m]
         if run is not None:
@@ -482,12 +487,7 @@ class TestHostileFolders:
         """A run header's world size beyond what rank file names can hold (10^6) is one error naming it."""
         root = work()
         path = _edit_header(root, "run-", **fields)
-        tracemalloc.start()
-        try:
-            run, error, ours = load_checked(root)
-            peak = tracemalloc.get_traced_memory()[1]
-        finally:
-            tracemalloc.stop()
+        (run, error, ours), peak = _load_traced(root)
         assert peak < 50 * 2**20
         assert str(path) in error and "'world_size'" in error and "1 to 1000000" in error
 
@@ -549,12 +549,7 @@ class TestHostileFolders:
         path = file_named(root, "spans-", ".bin")
         with open(path, "r+b") as fh:
             fh.truncate(2**40)
-        tracemalloc.start()
-        try:
-            run, error, ours = load_checked(root)
-            peak = tracemalloc.get_traced_memory()[1]
-        finally:
-            tracemalloc.stop()
+        (run, error, ours), peak = _load_traced(root)
         assert peak < 50 * 2**20
         assert "" == error
         assert [m for m in ours if str(path) in m and "holes of a sparse file" in m]
@@ -577,12 +572,7 @@ class TestHostileFolders:
         h = json.loads(path.read_text())
         body = json.dumps(h)[:-1] + ', "x": [' + ", ".join([filler] * ((tf.MAX_JSON_BYTES - 4096) // 4)) + "]}"
         path.write_text(body)
-        tracemalloc.start()
-        try:
-            run, error, ours = load_checked(root)
-            peak = tracemalloc.get_traced_memory()[1]
-        finally:
-            tracemalloc.stop()
+        (run, error, ours), peak = _load_traced(root)
         assert peak < 3 * tf.MAX_JSON_BYTES
         assert [m for m in [error, *ours] if str(path) in m and "more than a pipeprobe header has" in m]
 
