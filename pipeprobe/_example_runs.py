@@ -4,8 +4,10 @@ A recorded run carries the jitter of the machine it ran on, so an example
 built on one can only assert loose things. :func:`write_example_run`
 writes the run a reader can work out by hand instead: one process that,
 for each batch, decodes its one sample while the consumer waits for it,
-then steps on it, nothing overlapping. :func:`write_span_file` writes one
-process's span file and header (the test fixtures use it too).
+then steps on it, nothing overlapping. :func:`write_example_ranks` writes
+a data-parallel job of that shape, one such process per rank, with one
+rank late by a given time. :func:`write_span_file` writes one process's
+span file and header (the test fixtures use it too).
 """
 
 from __future__ import annotations
@@ -116,4 +118,76 @@ def write_example_run(run_dir: str | os.PathLike, batches: int = 4, decode_ms: f
         python_version="3", platform="example", pid=_PID, rank=0, world_size=1,
         sample_interval_s=0.0, flush_interval_s=1.0, closed=True, batches=batches)
     tf.write_json_atomic(root / "run-r0.json", header.to_json())
+    return root
+
+
+def _rank_records(rank: int, ready_ns: list[dict[int, int]], starts_ns: list[int], compute_ns: int) -> np.ndarray:
+    """One rank's decode, wait, membership and step per step ``k``; every step ends at the last ready time
+    plus ``compute_ns`` (the gradient synchronisation)."""
+    ranks = len(ready_ns[0])
+    recs = np.zeros(4 * len(starts_ns), dtype=tf.SPAN_RECORD)
+    recs["cpu_ns"], recs["epoch"], recs["tid"] = -1, 0, _PID + rank
+    for k, t in enumerate(starts_ns):
+        ready, end, sample = ready_ns[k][rank], max(ready_ns[k].values()) + compute_ns, k * ranks + rank
+        rows = [(t, ready, sample, -1, 2, tf.KIND_STAGE), (t, ready, -1, k, 0, tf.KIND_WAIT),
+                (ready, ready, sample, k, 0, tf.KIND_MEMBER), (ready, end, -1, k, 1, tf.KIND_STEP)]
+        for i, (start, stop, sid, batch, stage, kind) in enumerate(rows):
+            r = recs[4 * k + i]
+            r["start_ns"], r["end_ns"], r["sample_id"], r["batch_id"], r["stage"], r["kind"] = (
+                start, stop, sid, batch, stage, kind)
+    return recs
+
+
+def write_example_ranks(run_dir: str | os.PathLike, late_ms: dict[int, float], ranks: int = 2,
+                        steps: int = 4, wait_ms: float = 5.0, compute_ms: float = 10.0) -> Path:
+    """Write a data-parallel job whose every time follows from a few numbers.
+
+    Each step, rank ``r`` decodes its one sample for ``wait_ms`` plus
+    ``late_ms[r]`` while it waits for it; the gradient synchronisation
+    makes every rank's step end at the last rank's ready time plus
+    ``compute_ms``. So each step the other ranks wait ``max(late_ms)``
+    for the late one, and the job lasts ``steps * (wait_ms +
+    max(late_ms) + compute_ms)`` ms.
+
+    Parameters
+    ----------
+    run_dir : str or os.PathLike
+        The folder to write (created if missing).
+    late_ms : dict
+        Rank -> extra milliseconds of input work per step (others: 0).
+    ranks, steps : int
+        Ranks (one process each, pid ``100 + rank``) and steps.
+    wait_ms, compute_ms : float
+        Every rank's input work and the step's compute, in milliseconds.
+
+    Returns
+    -------
+    Path
+        ``run_dir``, ready for :func:`pipeprobe.load`.
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile
+    >>> run = pipeprobe.load(write_example_ranks(tempfile.mkdtemp(), late_ms={1: 30.0}, steps=2))
+    >>> round(run.wall_s, 6), sorted(set(run.spans["rank"]))
+    (0.09, [0, 1])
+    """
+    root = Path(run_dir)
+    root.mkdir(parents=True, exist_ok=True)
+    wait_ns, compute_ns = round(wait_ms * 1e6), round(compute_ms * 1e6)
+    starts, ready, t = [], [], T0_NS
+    for _ in range(steps):
+        starts.append(t)
+        ready.append({r: t + wait_ns + round(late_ms.get(r, 0.0) * 1e6) for r in range(ranks)})
+        t = max(ready[-1].values()) + compute_ns
+    for r in range(ranks):
+        pid = _PID + r
+        write_span_file(root, r, _rank_records(r, ready, starts, compute_ns), tf.ProcessHeader(
+            pid=pid, ppid=1, rank=r, world_size=ranks, role="main", host="example", anchor_mono_ns=T0_NS,
+            anchor_wall_ns=WALL_NS, stages=("wait", "step", "decode"), run_id="example-job"))
+        header = tf.RunHeader(
+            run_id="example-job", host="example", cores=2, anchor_wall_ns=WALL_NS, anchor_mono_ns=T0_NS,
+            end_mono_ns=t, pipeprobe_version="example", python_version="3", platform="example", pid=pid,
+            rank=r, world_size=ranks, sample_interval_s=0.0, flush_interval_s=1.0, closed=True, batches=steps)
+        tf.write_json_atomic(root / f"run-r{r}.json", header.to_json())
     return root

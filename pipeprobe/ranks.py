@@ -203,9 +203,9 @@ def rank_view(
 
     Examples
     --------
-    >>> import sys, tempfile; sys.path.insert(0, "tests")
-    >>> from _synth import write_ranks
-    >>> d = write_ranks(tempfile.mkdtemp(), late_ms={1: 30.0}, steps=4)
+    >>> import tempfile
+    >>> from pipeprobe._example_runs import write_example_ranks
+    >>> d = write_example_ranks(tempfile.mkdtemp(), late_ms={1: 30.0}, steps=4)
     >>> view = rank_view(d)
     >>> view.straggler_rank, round(view.straggler_cost_s, 3)
     (1, 0.12)
@@ -330,9 +330,9 @@ def rank_count(run: Run) -> int:
 
     Examples
     --------
-    >>> import sys, tempfile; sys.path.insert(0, "tests")
-    >>> from _synth import write_ranks
-    >>> rank_count(load(write_ranks(tempfile.mkdtemp(), late_ms={}, ranks=3, steps=2)))
+    >>> import tempfile
+    >>> from pipeprobe._example_runs import write_example_ranks
+    >>> rank_count(load(write_example_ranks(tempfile.mkdtemp(), late_ms={}, ranks=3, steps=2)))
     3
     """
     present = set(run.spans["rank"].unique().tolist()) | set(run.batches["rank"].unique().tolist())
@@ -346,9 +346,9 @@ def rank_view_dict(view: RankView) -> dict[str, Any]:
 
     Examples
     --------
-    >>> import sys, tempfile; sys.path.insert(0, "tests")
-    >>> from _synth import write_ranks
-    >>> d = rank_view_dict(rank_view(write_ranks(tempfile.mkdtemp(), late_ms={1: 30.0}, steps=4)))
+    >>> import tempfile
+    >>> from pipeprobe._example_runs import write_example_ranks
+    >>> d = rank_view_dict(rank_view(write_example_ranks(tempfile.mkdtemp(), late_ms={1: 30.0}, steps=4)))
     >>> d["straggler_rank"], d["straggler_cause"], [r["rank"] for r in d["per_rank"]]
     (1, 'input', [0, 1])
     """
