@@ -8,9 +8,11 @@ A window is written as text, parsed here and nowhere else
     training loop receives batches, as in a Python slice); ``A:`` runs to
     the end. Several ranges are joined by commas: ``0:50,2000:2100``.
 ``K/N<unit>``
-    a duty cycle: ``K`` batches, then nothing until ``N`` seconds (``s``),
-    minutes (``m``) or hours (``h``) have passed since the previous group
-    began; e.g. ``100/10m``. The first group begins with the first batch.
+    a duty cycle: ``K`` batches in every period of ``N`` seconds (``s``),
+    minutes (``m``) or hours (``h``), e.g. ``100/10m``. Periods count from
+    the start of recording; a group of ``K`` begins with the first batch of
+    a period, at most one group per period (a group that outlasts its
+    period lets the next begin at the batch after it).
 
 The consumer decides per batch (:meth:`Window.admits`), in batch order;
 a torch ``DataLoader``'s index tap asks the same question earlier, when
