@@ -144,7 +144,8 @@ def stall_summary(run: Run, critical: CriticalPath | None = None, *, warmup_batc
     b = run.batches.copy()
     ranks = max(1, int(b["rank"].nunique())) if len(b) else 1
     b = b.sort_values(["rank", "wait_start_s"], kind="stable").reset_index(drop=True)
-    nxt = b.groupby("rank", sort=False)["wait_start_s"].shift(-1).to_numpy(np.float64)
+    cycle_keys = ["rank", "stretch"] if "stretch" in b else "rank"  # no cycle across a window's gap (stretches.py)
+    nxt = b.groupby(cycle_keys, sort=False)["wait_start_s"].shift(-1).to_numpy(np.float64)
     last_end = np.fmax(b["step_end_s"].to_numpy(np.float64), b["ready_s"].to_numpy(np.float64))
     b["cycle_s"] = np.where(np.isnan(nxt), last_end, nxt) - b["wait_start_s"].to_numpy(np.float64)
     pos = b.groupby(["rank", "epoch"], sort=False).cumcount().to_numpy()
