@@ -263,7 +263,7 @@ def timeline_and_path(run: Run) -> tuple[Timeline, CriticalPath]:
     ...         with probe.step():
     ...             time.sleep(0.01)
     >>> tl, cp = timeline_and_path(condense(pipeprobe.load(d)))
-    >>> abs(cp.shares["seconds"].sum() - tl.wall_s) < 1e-9, cp.share_of("unexplained gap") < 0.2
+    >>> bool(abs(cp.shares["seconds"].sum() - tl.wall_s) < 1e-9), cp.share_of("unexplained gap") < 0.2
     (True, True)
 
     References
