@@ -298,18 +298,32 @@ def _side_by_side(tls: list[Timeline], cps: list[CriticalPath], offsets: list[fl
 
 
 def window_words(run: Run) -> list[str]:
-    """The report's lines on a windowed run: which batches were recorded, the duty cycle, the stretches."""
+    """Sentences for the report on a windowed run: which batches were recorded, the duty cycle, the stretches.
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile
+    >>> d = tempfile.mkdtemp()
+    >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0, window="1:3") as probe:
+    ...     for batch in probe.watch(range(4)):
+    ...         pass
+    >>> window_words(condense(pipeprobe.load(d)))[0]
+    'Window 1:3 (fixed batch ranges): 2 of 4 batches recorded, in 1 stretch: batches 1-2.'
+    """
     window: dict[str, Any] = run.header.get("window") or {}
     if not window:
         return []
     rows = window.get("stretches") or []
     shown = ", ".join(f"{r['first_batch']}-{r['last_batch']}" if r["last_batch"] > r["first_batch"]
-                      else f"{r['first_batch']}" for r in rows[:6])
-    more = f" and {len(rows) - 6} more" if len(rows) > 6 else ""
+                      else f"{r['first_batch']}" for r in rows[:8])
+    more = f" and {len(rows) - 8} more" if len(rows) > 8 else ""
     cycle = (f"{window['every_batches']} batches every {window['period_s']:g} s"
              if window.get("every_batches") else "fixed batch ranges")
-    batches = sum(int(r["batches"]) for r in rows)
-    wall = sum(float(r["wall_s"]) for r in rows)
-    return [f"recording window {window.get('spec', '?')!s} ({cycle}): {batches} batches recorded in "
-            f"{len(rows)} stretch(es), {wall:.3f} s of wall time; batches {shown}{more}",
-            "stall, critical path and shares are per stretch, summed; the time between stretches is left out"]
+    of = f" of {run.header['batches']}" if run.header.get("batches") is not None else ""
+    got = sum(int(r["batches"]) for r in rows)
+    words = [f"Window {window.get('spec', '?')} ({cycle}): {got}{of} batches recorded, in {len(rows)} "
+             f"stretch{'es' if len(rows) != 1 else ''}: batches {shown}{more}."]
+    if len(rows) > 1:
+        words.append("Stalls, the critical path and shares are worked out per stretch and summed; the time "
+                     "between stretches, when nothing was recorded, is left out of every figure.")
+    return words
