@@ -18,6 +18,7 @@ import pandas as pd
 
 from .critical import DELIVERY, GAP, CriticalPath
 from .load import Run
+from .stretches import epoch_start_recorded
 
 __all__ = [
     "Stalls",
@@ -149,7 +150,7 @@ def stall_summary(run: Run, critical: CriticalPath | None = None, *, warmup_batc
     last_end = np.fmax(b["step_end_s"].to_numpy(np.float64), b["ready_s"].to_numpy(np.float64))
     b["cycle_s"] = np.where(np.isnan(nxt), last_end, nxt) - b["wait_start_s"].to_numpy(np.float64)
     pos = b.groupby(["rank", "epoch"], sort=False).cumcount().to_numpy()
-    b["warmup"] = pos < warmup_batches
+    b["warmup"] = (pos < warmup_batches) & epoch_start_recorded(b)  # a window may begin mid-epoch
     wait = b["wait_s"].to_numpy(np.float64)
     total = float(wait.sum())
     warm = b["warmup"].to_numpy(bool)

@@ -5,15 +5,20 @@ A run recorded with a window (``Probe(window=...)``, ``pipeprobe run
 recorded batch ids is a *stretch*; between two stretches nothing was
 recorded, so no stall, dependency or critical path may cross that gap.
 
-The steps: find the stretches and the time each covers on the run's axis
-(:func:`stretch_table`: from the first span of its batches' work, which
-may begin before the first wait when a loader prefetched it, to the end
-of its last step); cut the unrecorded gaps out, laying the stretches end
-to end on one axis from 0 (:func:`condense`; the resource samples taken
-inside a stretch come along, those of the gaps stay in the run folder);
-then build each stretch's timeline and critical path by itself and put
-them side by side (:func:`timeline_and_path`). Wall time, stall time,
-critical-path time per stage and per thread are then sums over the
+A stretch covers the training loop's own time: from asking for its first
+batch to the end of its last step (or its last span). Work done for its
+batches before that, a loader's prefetch during the unrecorded time, keeps
+its spans (stage statistics see it whole) but is cut at the stretch start
+for the timeline and critical path: what the loop did not wait for is not
+on its path.
+
+The steps: find the stretches and their extent on the run's axis
+(:func:`stretch_table`); cut the unrecorded gaps out, laying the stretches
+end to end on one axis from 0 (:func:`condense`; the resource samples
+taken inside a stretch come along, those of the gaps stay in the run
+folder); then build each stretch's timeline and critical path by itself
+and put them side by side (:func:`timeline_and_path`). Wall time, stall
+time, critical-path time per stage and per thread are then sums over the
 stretches, and their shares are taken of the summed wall time.
 """
 
@@ -30,7 +35,7 @@ from .critical import CriticalPath, attribute, critical_path
 from .load import Run
 from .timeline import Timeline, build_timeline
 
-__all__ = ["STRETCH_COLUMNS", "stretch_table", "condense", "timeline_and_path", "is_windowed"]
+__all__ = ["STRETCH_COLUMNS", "stretch_table", "condense", "timeline_and_path", "is_windowed", "epoch_start_recorded"]
 
 #: Columns of :func:`stretch_table`, one row per stretch.
 STRETCH_COLUMNS = {
@@ -38,7 +43,7 @@ STRETCH_COLUMNS = {
     "first_batch": "its first batch id",
     "last_batch": "its last batch id",
     "batches": "batches in it",
-    "start_s": "start on the run's time axis (the first span of its batches' work)",
+    "start_s": "start on the run's time axis (the loop asked for its first batch)",
     "end_s": "end on the run's time axis (the last span of its batches)",
     "wall_s": "end_s - start_s",
     "offset_s": "where it starts on the condensed axis (the walls of the stretches before it)",
@@ -64,6 +69,29 @@ def _stretch_of_batches(firsts: np.ndarray, lasts: np.ndarray, batch: np.ndarray
     ok = (k >= 0) & (batch >= 0)
     ok[ok] &= batch[ok] <= lasts[k[ok]]
     return np.where(ok, k, -1)
+
+
+def epoch_start_recorded(batches: pd.DataFrame) -> np.ndarray:
+    """Per row of a batches table: True unless its epoch may have begun before the recording did.
+
+    In a windowed run (a ``stretch`` column) an epoch's first recorded
+    batch is its first batch only when it is batch 0 or the batch before
+    it was recorded too (in another epoch); otherwise the window opened
+    mid-epoch and none of its batches is a warm-up batch.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> b = pd.DataFrame({"rank": [0, 0, 0, 0], "epoch": [0, 0, 1, 1], "batch_id": [5, 6, 7, 8], "stretch": 0})
+    >>> epoch_start_recorded(b).tolist()
+    [False, False, True, True]
+    """
+    if "stretch" not in batches or batches.empty:
+        return np.ones(len(batches), bool)
+    rank = batches["rank"].to_numpy(np.int64)
+    first = batches.groupby(["rank", "epoch"], sort=False)["batch_id"].transform("min").to_numpy(np.int64)
+    recorded = set(zip(rank.tolist(), batches["batch_id"].to_numpy(np.int64).tolist()))
+    return np.array([f == 0 or (r, f - 1) in recorded for r, f in zip(rank.tolist(), first.tolist())], bool)
 
 
 def stretch_table(run: Run) -> pd.DataFrame:
@@ -105,8 +133,7 @@ def stretch_table(run: Run) -> pd.DataFrame:
     b, sp = run.batches, run.spans
     kb = _stretch_of_batches(firsts, lasts, b["batch_id"].to_numpy(np.int64))
     ks = _stretch_of_batches(firsts, lasts, sp["batch_id"].to_numpy(np.int64))
-    starts = pd.concat([pd.Series(b["wait_start_s"].to_numpy(np.float64), index=kb),
-                        pd.Series(sp["start_s"].to_numpy(np.float64)[ks >= 0], index=ks[ks >= 0])])
+    starts = pd.Series(b["wait_start_s"].to_numpy(np.float64), index=kb)
     ends = pd.concat([pd.Series(np.fmax(b["ready_s"], b["step_end_s"]).to_numpy(np.float64), index=kb),
                       pd.Series(sp["end_s"].to_numpy(np.float64)[ks >= 0], index=ks[ks >= 0])])
     start = starts.groupby(level=0).min().reindex(range(len(firsts))).to_numpy(np.float64)
@@ -204,13 +231,15 @@ def condense(run: Run) -> Run:
 
 
 def _part(run: Run, k: int, offset_s: float, wall_s: float) -> Run:
-    """Stretch ``k`` of a condensed run as a run of its own, on an axis from 0."""
+    """Stretch ``k`` of a condensed run as a run of its own, on an axis from 0; spans cut at its start."""
     parts = {}
     for name, cols in _TIME_COLUMNS.items():
         frame = getattr(run, name)
         rows = frame[frame["stretch"].to_numpy() == k].copy()
         for col in cols:
             rows[col] = _on_ns(rows[col].to_numpy(np.float64) - offset_s)
+            if name == "spans":  # work done ahead of the stretch (a prefetch) starts with it
+                rows[col] = np.maximum(rows[col].to_numpy(np.float64), 0.0)
         parts[name] = rows.reset_index(drop=True)
     return replace(run, header={**run.header, "end_mono_ns": run.t0_ns + int(round(wall_s * 1e9))}, **parts)
 
@@ -242,8 +271,8 @@ def timeline_and_path(run: Run) -> tuple[Timeline, CriticalPath]:
     step; the timelines are then put side by side (node ids renumbered,
     times on the condensed axis) and the critical paths one after the
     other, so each stretch's pieces tile its own wall time and the shares
-    are of the summed wall time. A run of one stretch (or recorded
-    without a window) is analysed as usual.
+    are of the summed wall time. A run recorded without a window is
+    analysed as usual.
 
     Parameters
     ----------
@@ -272,12 +301,16 @@ def timeline_and_path(run: Run) -> tuple[Timeline, CriticalPath]:
     scheduling (the critical path method, applied per stretch).
     """
     stretches = run.header.get("window", {}).get("stretches") if is_windowed(run) else None
-    if not stretches or len(stretches) < 2:
+    if not stretches:
         timeline = build_timeline(run)
         return timeline, critical_path(timeline)
     tls, cps = [], []
+    of_stretch = run.spans["stretch"].to_numpy()
     for row in stretches:
-        tl = build_timeline(_part(run, int(row["stretch"]), float(row["offset_s"]), float(row["wall_s"])))
+        k = int(row["stretch"])
+        tl = build_timeline(_part(run, k, float(row["offset_s"]), float(row["wall_s"])))
+        rows = np.flatnonzero(of_stretch == k)  # the part's span rows in the condensed run
+        tl.nodes["span"] = np.where(tl.nodes["span"] >= 0, rows[np.maximum(tl.nodes["span"], 0)], -1)
         tls.append(tl)
         cps.append(critical_path(tl))
     return _side_by_side(tls, cps, [float(r["offset_s"]) for r in stretches])

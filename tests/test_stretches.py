@@ -15,13 +15,13 @@ _WINDOW = {"window": {"spec": "0:2,5:7", "every_batches": 0, "period_s": 0.0, "b
 
 
 def _two_stretches(tmp_path: Path) -> Path:
-    """Batches 0-1 (0 to 26 ms) and 5-6 (995 to 1024 ms); nothing recorded between.
+    """Batches 0-1 (0 to 26 ms) and 5-6 (1000 to 1024 ms); nothing recorded between.
 
     Stretch 0: the consumer decodes each sample in its wait (3 ms), then steps (10 ms): waits 0-3 and
     13-16, steps 3-13 and 16-26; wall 26 ms, stall 6 ms, path decode 6 + step 20.
-    Stretch 1: a worker prefetched sample 5 from 995 to 1008 ms; the consumer waits 1000-1008, steps
-    1008-1012, decodes sample 6 in its wait 1012-1020 and steps 1020-1024; wall 29 ms, stall 16 ms,
-    path decode 13 + 8 = 21, step 8.
+    Stretch 1: a worker began decoding sample 5 at 995 ms, before the loop asked for batch 5 at 1000;
+    the loop waits 1000-1008, steps 1008-1012, decodes sample 6 in its wait 1012-1020 and steps
+    1020-1024; wall 24 ms, stall 16 ms, path decode 8 (cut at the stretch start) + 8 = 16, step 8.
     """
     main = [
         stage("decode", 0, 3, sample=0, batch=0, epoch=0), wait(0, 3, 0), step(3, 13, 0),
@@ -34,27 +34,33 @@ def _two_stretches(tmp_path: Path) -> Path:
 
 
 class TestStretchTable:
-    def test_extent_starts_at_prefetched_work(self, tmp_path: Path) -> None:
-        """A stretch runs from the first span of its batches' work (a worker's prefetch) to its last step."""
+    def test_extent_is_the_loops_time(self, tmp_path: Path) -> None:
+        """A stretch runs from the loop asking for its first batch to its last step, prefetch left out."""
         table = stretch_table(pipeprobe.load(_two_stretches(tmp_path)))
         got = [(int(r.first_batch), int(r.last_batch), int(r.batches), round(r.start_s * 1e3, 6),
                 round(r.end_s * 1e3, 6), round(r.offset_s * 1e3, 6)) for r in table.itertuples()]
-        assert [(0, 1, 2, 0.0, 26.0, 0.0), (5, 6, 2, 995.0, 1024.0, 26.0)] == got
+        assert [(0, 1, 2, 0.0, 26.0, 0.0), (5, 6, 2, 1000.0, 1024.0, 26.0)] == got
 
 
 class TestAnalysis:
     def test_wall_and_stall_are_summed_over_stretches(self, tmp_path: Path) -> None:
-        """Wall 26 + 29 = 55 ms and stall 6 + 16 = 22 ms: fraction 0.4 (worked by hand in _two_stretches)."""
+        """Wall 26 + 24 = 50 ms and stall 6 + 16 = 22 ms: fraction 0.44 (worked by hand in _two_stretches)."""
         a = pipeprobe.analyze(_two_stretches(tmp_path))
-        assert (55.0, 22.0, 0.4) == (round(a.wall_s * 1e3, 6), round(a.stalls.total_s * 1e3, 6),
+        assert (50.0, 22.0, 0.44) == (round(a.wall_s * 1e3, 6), round(a.stalls.total_s * 1e3, 6),
                                      round(a.stalls.fraction, 6))
 
     def test_critical_path_never_crosses_the_gap(self, tmp_path: Path) -> None:
-        """The path gives decode 6 + 21 = 27 ms and step 20 + 8 = 28 ms of 55, and no unexplained gap
+        """The path gives decode 6 + 16 = 22 ms and step 20 + 8 = 28 ms of 50, and no unexplained gap
         (critical path method per stretch, worked by hand)."""
         a = pipeprobe.analyze(_two_stretches(tmp_path))
         got = {str(r.label): round(r.seconds * 1e3, 6) for r in a.critical.shares.itertuples()}
-        assert {"decode": 27.0, "step": 28.0} == got
+        assert {"decode": 22.0, "step": 28.0} == got
+
+    def test_prefetched_span_keeps_its_length_in_stage_figures(self, tmp_path: Path) -> None:
+        """Sample 5's decode counts 13 ms in the stage statistics though only 8 ms lie in the stretch."""
+        a = pipeprobe.analyze(_two_stretches(tmp_path))
+        decode = a.run.spans[(a.run.spans["stage"] == "decode") & (a.run.spans["sample_id"] == 5)]
+        assert [13.0] == [round(x * 1e3, 6) for x in decode["dur_s"]]
 
     def test_last_cycle_of_a_stretch_ends_with_its_step(self, tmp_path: Path) -> None:
         """Batch 1's cycle runs to the end of its own step (13 ms), not to batch 5's wait after the gap."""
@@ -113,3 +119,9 @@ def test_real_windowed_job_report(tmp_path: Path, workers: int) -> None:
     assert [(2, 4), (9, 11)] == [(r["first_batch"], r["last_batch"]) for r in rows]
     assert round(sum(r["wall_s"] for r in rows), 9) == round(a.wall_s, 9)
     assert round(a.wall_s, 9) == round(float(a.critical.shares["seconds"].sum()), 9)
+
+
+def test_window_opened_mid_epoch_has_no_warmup(tmp_path: Path) -> None:
+    """Batch 0 opens its epoch (warm-up); batch 5 follows unrecorded batch 4, so it is no warm-up batch."""
+    pb = pipeprobe.analyze(_two_stretches(tmp_path)).stalls.per_batch
+    assert [True, False, False, False] == pb["warmup"].tolist()
