@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -11,6 +13,9 @@ import pipeprobe
 from pipeprobe import stage
 from pipeprobe.errors import PipeprobeError, WindowSpecError
 from pipeprobe.record._window import parse_window
+
+sys.path.insert(0, str(Path(__file__).parent))
+from _faultlab import child_env  # noqa: E402
 
 
 class _FakeClock:
@@ -199,3 +204,28 @@ class TestTorchLoaders:
         with pipeprobe.Probe(tmp_path, report=False, sample_interval_s=0, window="1:3") as probe:
             assert 8 == _loop(probe, loader, epochs=1)
         _check_only_window(pipeprobe.load(tmp_path), [1, 2], 3, decode=False)
+
+
+class TestRunCommand:
+    def _run(self, args: list[str], cwd: Path) -> subprocess.CompletedProcess:
+        return subprocess.run([sys.executable, "-m", "pipeprobe", "run", *args], capture_output=True, text=True,
+                              env=child_env(), timeout=240, cwd=cwd)
+
+    def test_window_on_an_unmodified_script(self, tmp_path: Path) -> None:
+        """`pipeprobe run --window 2:6` records batches 2 to 5 of a plain script and its report says so."""
+        script = Path(__file__).parent / "_plain_train.py"
+        done = self._run(["--out", str(tmp_path / "run"), "--quiet", "--window", "2:6", "--", sys.executable,
+                          str(script), "map", "2", "2", str(tmp_path / "own.json")], tmp_path)
+        assert 0 == done.returncode, done.stderr[-2000:]
+        run = pipeprobe.load(tmp_path / "run")
+        assert [2, 3, 4, 5] == run.batches["batch_id"].tolist()
+        assert "2:6" == run.header["window"]["spec"]
+        assert "Window 2:6 (fixed batch ranges): 4 of" in done.stderr
+
+    @pytest.mark.parametrize("spec", ["10-20", "5:2", "3/0m"])
+    def test_bad_window_one_line_exit_2(self, tmp_path: Path, spec: str) -> None:
+        """A bad --window: one line on stderr, exit 2 (common practice), the script not started."""
+        done = self._run(["--window", spec, "--", "python", "no_such_script.py"], tmp_path)
+        lines = done.stderr.strip().splitlines()
+        assert (2, 1) == (done.returncode, len(lines))
+        assert "window" in lines[0] and "e.g. 200:400 or 50/10m" in lines[0]
