@@ -196,6 +196,7 @@ class _Noop:
 
 
 _CODES = RECORDER.user_codes  # cleared in place when a probe starts
+_NOOPS: dict[str, _Noop] = {}  # stateless, so one per stage name serves every call
 
 
 def stage(name: str, *, sample: int | None = -1, batch: int | None = -1) -> Any:
@@ -258,7 +259,10 @@ def stage(name: str, *, sample: int | None = -1, batch: int | None = -1) -> Any:
     if rec.spans_on:
         return _CpuSpan(code, sample, batch) if rec.cpu_time else _Span(code, sample, batch)
     if rec.checked_env or not _r.attach_from_env():
-        return _Noop(name)
+        noop = _NOOPS.get(name)  # outside a recording window: one shared no-op per checked name
+        if noop is None:
+            noop = _NOOPS[name] = _Noop(name)
+        return noop
     return _stage_slow(name, sample, batch)
 
 
@@ -268,6 +272,8 @@ def _stage_slow(name: Any, sample: Any, batch: Any) -> Any:
     batch_i = _check_id(batch, "batch")
     rec = RECORDER
     if not rec.spans_on and (rec.checked_env or not _r.attach_from_env()):
+        if rec.on and name not in _CODES:  # outside a recording window: the checked name takes the fast path next time
+            _CODES[name] = rec.stage_id(name)
         return _Noop(name)
     code = _CODES.get(name)
     if code is None:
