@@ -31,6 +31,7 @@ import numpy as np
 import pandas as pd
 from pandas.api.types import union_categoricals
 
+from ._text import printable
 from .critical import CriticalPath, attribute, critical_path
 from .load import Run
 from .timeline import Timeline, build_timeline
@@ -218,16 +219,25 @@ def condense(run: Run) -> Run:
     Denning, P. J. and Buzen, J. P. (1978). The operational analysis of
     queueing network models (each stretch is an observation period of its own).
     """
-    if not is_windowed(run) or "stretches" in run.header["window"]:
+    if not is_windowed(run) or "stretch" in run.batches:  # load() never makes a stretch column
         return run
     table = stretch_table(run)
     shift = (table["offset_s"] - table["start_s"]).to_numpy(np.float64)
     parts = {name: _shifted(name, getattr(run, name), _stretch_of_rows(name, getattr(run, name), table), shift)
              for name in _TIME_COLUMNS}
     wall = float(table["wall_s"].sum())
-    window = {**run.header["window"], "stretches": table.to_dict("records")}
+    window = {**_checked_window(run.header["window"]), "stretches": table.to_dict("records")}
     header = {**run.header, "window": window, "end_mono_ns": run.t0_ns + int(round(wall * 1e9))}
     return replace(run, header=header, **parts)
+
+
+def _checked_window(raw: dict[str, Any]) -> dict[str, Any]:
+    """The header's window description with only fields of the expected types (a header is input, not code)."""
+    spec, every, period = raw.get("spec"), raw.get("every_batches"), raw.get("period_s")
+    ok_num = (lambda v, t: isinstance(v, t) and not isinstance(v, bool) and 0 <= v < 2**31)  # noqa: E731
+    return {"spec": spec[:200] if isinstance(spec, str) else "?",
+            "every_batches": int(every) if ok_num(every, int) else 0,
+            "period_s": float(period) if ok_num(period, (int, float)) else 0.0}
 
 
 def _part(run: Run, k: int, offset_s: float, wall_s: float) -> Run:
@@ -300,7 +310,7 @@ def timeline_and_path(run: Run) -> tuple[Timeline, CriticalPath]:
     Kelley, J. E. and Walker, M. R. (1959). Critical-path planning and
     scheduling (the critical path method, applied per stretch).
     """
-    stretches = run.header.get("window", {}).get("stretches") if is_windowed(run) else None
+    stretches = run.header["window"].get("stretches") if is_windowed(run) and "stretch" in run.batches else None
     if not stretches:
         timeline = build_timeline(run)
         return timeline, critical_path(timeline)
@@ -343,10 +353,12 @@ def window_words(run: Run) -> list[str]:
     >>> window_words(condense(pipeprobe.load(d)))[0]
     'Window 1:3 (fixed batch ranges): 2 of 4 batches recorded, in 1 stretch: batches 1-2.'
     """
-    window: dict[str, Any] = run.header.get("window") or {}
-    if not window:
+    if not is_windowed(run):
         return []
-    rows = window.get("stretches") or []
+    rows = run.header["window"].get("stretches") if "stretch" in run.batches else None
+    if not rows:
+        return [f"Window {printable(str(run.header['window'].get('spec', '?'))[:200])}: no batch was recorded."]
+    window = run.header["window"]
     shown = ", ".join(f"{r['first_batch']}-{r['last_batch']}" if r["last_batch"] > r["first_batch"]
                       else f"{r['first_batch']}" for r in rows[:8])
     more = f" and {len(rows) - 8} more" if len(rows) > 8 else ""
@@ -354,7 +366,8 @@ def window_words(run: Run) -> list[str]:
              if window.get("every_batches") else "fixed batch ranges")
     of = f" of {run.header['batches']}" if run.header.get("batches") is not None else ""
     got = sum(int(r["batches"]) for r in rows)
-    words = [f"Window {window.get('spec', '?')} ({cycle}): {got}{of} batches recorded, in {len(rows)} "
+    noun = "batch" if not of and got == 1 else "batches"
+    words = [f"Window {printable(window['spec'])} ({cycle}): {got}{of} {noun} recorded, in {len(rows)} "
              f"stretch{'es' if len(rows) != 1 else ''}: batches {shown}{more}."]
     if len(rows) > 1:
         words.append("Stalls, the critical path and shares are worked out per stretch and summed; the time "

@@ -8,6 +8,7 @@ import networkx as nx
 import pytest
 
 import pipeprobe
+from pipeprobe.report import format_report
 from pipeprobe.stretches import condense, stretch_table, timeline_and_path
 from tests._synth import member, stage, step, wait, write_run
 
@@ -125,3 +126,24 @@ def test_window_opened_mid_epoch_has_no_warmup(tmp_path: Path) -> None:
     """Batch 0 opens its epoch (warm-up); batch 5 follows unrecorded batch 4, so it is no warm-up batch."""
     pb = pipeprobe.analyze(_two_stretches(tmp_path)).stalls.per_batch
     assert [True, False, False, False] == pb["warmup"].tolist()
+
+
+class TestOddInput:
+    def test_window_that_never_opened(self, tmp_path: Path) -> None:
+        """A window that took no batch analyses to an empty run whose report says nothing was recorded."""
+        with pipeprobe.Probe(tmp_path, report=False, sample_interval_s=0, window="100:") as probe:
+            for _ in probe.watch(range(5)):
+                with probe.step():
+                    pass
+        a = pipeprobe.analyze(tmp_path)
+        text = format_report(a)
+        assert (0, 0.0) == (a.batches, a.stalls.total_s)
+        assert "Window 100:: no batch was recorded." in text
+
+    def test_hostile_window_field(self, tmp_path: Path) -> None:
+        """A header whose window field holds the wrong types is read as data: the report prints, no crash."""
+        bad = {"window": {"spec": "\x1b[31mred", "every_batches": "x", "period_s": [1], "stretches": "junk"}}
+        d = write_run(tmp_path, {100: [wait(0, 3, 4), step(3, 13, 4)]}, header_extra=bad)
+        text = format_report(pipeprobe.analyze(d))
+        line = next(x for x in text.splitlines() if x.startswith("  Window"))
+        assert "  Window \\x1b[31mred (fixed batch ranges): 1 batch recorded, in 1 stretch: batches 4." == line
