@@ -187,13 +187,16 @@ def _check_only_window(run: pipeprobe.Run, recorded: list[int], batch_size: int,
 
 
 class TestTorchLoaders:
-    @pytest.mark.parametrize("workers,persistent", [(0, False), (2, False), (2, True)])
+    @pytest.mark.parametrize("workers,persistent,method", [
+        (0, False, None), (2, False, "fork"), (2, True, "fork"),
+        pytest.param(2, True, "spawn", marks=pytest.mark.slow),
+    ])
     def test_map_dataset_records_window_batches_and_their_samples(self, tmp_path: Path, workers: int,
-                                                                  persistent: bool) -> None:
+                                                                  persistent: bool, method: str | None) -> None:
         """Window '2:4,8:10' over 2 epochs of 6 batches: only batches 2, 3, 8, 9 and their samples' spans
         from the workers are recorded (the window reaches workers with each batch's indices)."""
         loader = DataLoader(GaugePhotos(), batch_size=4, shuffle=True, num_workers=workers,
-                            persistent_workers=persistent, multiprocessing_context="fork" if workers else None)
+                            persistent_workers=persistent, multiprocessing_context=method)
         with pipeprobe.Probe(tmp_path, report=False, sample_interval_s=0, window="2:4,8:10") as probe:
             assert 12 == _loop(probe, loader, epochs=2)
         _check_only_window(pipeprobe.load(tmp_path), [2, 3, 8, 9], 4, decode=True)

@@ -175,6 +175,8 @@ class _Tagged(list):
 
     def __iter__(self) -> Any:
         rec = _r.RECORDER
+        if not rec.checked_env:  # a spawned worker joins the run first, or joining would turn its flag on
+            _r.attach_from_env()
         rec.spans_on = self.keep and rec.on
         return list.__iter__(self)
 
