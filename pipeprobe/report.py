@@ -199,7 +199,7 @@ def _page(name: str) -> Callable[[Any, Any], str]:
 
 #: The default report, in order: what paces the run and what a change would buy first. ``add_section`` adds more.
 SECTIONS: list[Section] = [
-    Section("window", part.window_text, part.window_data),
+    Section("recording window", part.window_text, part.window_data),
     Section("verdict", lambda f: part.verdict_text(*f), lambda f: part.verdict_data(*f), _page("verdict_html"),
             _with_analysis(_verdict_compute)),
     Section("actions", part.action_text, part.action_data, _page("actions_html")),

@@ -120,6 +120,12 @@ def test_real_windowed_job_report(tmp_path: Path, workers: int) -> None:
     assert [(2, 4), (9, 11)] == [(r["first_batch"], r["last_batch"]) for r in rows]
     assert round(sum(r["wall_s"] for r in rows), 9) == round(a.wall_s, 9)
     assert round(a.wall_s, 9) == round(float(a.critical.shares["seconds"].sum()), 9)
+    from pipeprobe.html import render_report
+    from pipeprobe.report import report_dict
+
+    window = report_dict(a)["window"]
+    assert ("2:5,9:12", [2, 9]) == (window["spec"], [r["first_batch"] for r in window["stretches"]])
+    assert "  Window 2:5,9:12 (fixed batch ranges): 6 of 16 batches recorded, in 2 stretches" in render_report(a, dpi=40)
 
 
 def test_window_opened_mid_epoch_has_no_warmup(tmp_path: Path) -> None:
