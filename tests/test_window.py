@@ -234,3 +234,16 @@ class TestRunCommand:
         lines = done.stderr.strip().splitlines()
         assert (2, 1) == (done.returncode, len(lines))
         assert "window" in lines[0] and "e.g. 200:400 or 50/10m" in lines[0]
+
+    def test_duty_cycle_reaches_workers(self, tmp_path: Path) -> None:
+        """'2/0.1s' with 2 workers: the batches handed out early are decided once, so the workers' spans
+        are exactly those of the batches the loop recorded."""
+        loader = DataLoader(GaugePhotos(), batch_size=2, num_workers=2, multiprocessing_context="fork")
+        with pipeprobe.Probe(tmp_path, report=False, sample_interval_s=0, window="2/0.1s") as probe:
+            for _ in probe.watch(loader):
+                with probe.step():
+                    time.sleep(0.01)
+        run = pipeprobe.load(tmp_path)
+        recorded = [b for a, e in run.header["window"]["batches"] for b in range(a, e)]
+        assert len(recorded) < 12
+        _check_only_window(run, recorded, 2, decode=True)
