@@ -2,7 +2,10 @@
 
 Prints medians of repeated measurements, measured side by side in one run:
 a bare loop, a bare Python context manager, two monotonic clock reads, and
-pipeprobe's block and decorator forms with CPU time off and on.
+pipeprobe's block and decorator forms with CPU time off and on; then the
+same forms and ``probe.step()`` outside a recording window (a probe made
+with ``window=`` before its first batch), against the bare context
+manager and the plain call.
 
     python bench/bench_record.py [--spans N] [--repeats R]
 """
@@ -72,6 +75,16 @@ def loop_decorated(n: int) -> None:
         f(i)
 
 
+_STEP_PROBE: list = []  # the probe whose step() loop_step times
+
+
+def loop_step(n: int) -> None:
+    step = _STEP_PROBE[0].step
+    for _ in range(n):
+        with step():
+            pass
+
+
 def loop_plain_call(n: int) -> None:
     for i in range(n):
         _work(i)
@@ -96,6 +109,12 @@ def main() -> None:
                     suffix = "cpu on" if cpu else "cpu off"
                     measure(f"block form ({suffix})", loop_block)
                     measure(f"decorator form ({suffix})", loop_decorated)
+            with pipeprobe.Probe(os.path.join(d, f"w{rep}"), report=False, sample_interval_s=0,
+                                 window="1000000:") as probe:  # no batch taken: outside the window throughout
+                _STEP_PROBE[:] = [probe]
+                measure("block form (outside window)", loop_block)
+                measure("decorator form (outside window)", loop_decorated)
+                measure("probe.step() (outside window)", loop_step)
             measure("empty loop", loop_empty)
             measure("two monotonic clock reads", loop_clock)
             measure("bare Python context manager", loop_bare_cm)
@@ -114,6 +133,11 @@ def main() -> None:
         off, on = med[f"{form} (cpu off)"], med[f"{form} (cpu on)"]
         print(f"  {form}: {off - med['empty loop']:.0f} ns net of the loop; "
               f"{off - med[base]:.0f} ns over {base}; CPU time adds {on - off:.0f} ns")
+    for form, base in (("block form", "bare Python context manager"), ("decorator form", "plain function call"),
+                       ("probe.step()", "bare Python context manager")):
+        out = med[f"{form} (outside window)"]
+        print(f"  {form} outside the window: {out - med['empty loop']:.0f} ns net of the loop, "
+              f"{out / med[base]:.2f}x {base} (same loop)")
     print(f"bytes per span on disk: {size / spans:.1f} ({spans} spans, {size} bytes incl. headers)")
 
 

@@ -296,7 +296,7 @@ def _open_session(options: dict[str, Any]) -> _Session | None:
 
     try:
         probe = Probe(options["out"], report=False, flush_interval_s=float(options.get("flush_s", 1.0)),
-                      live=options.get("live_s") or False)
+                      live=options.get("live_s") or False, window=options.get("window"))
     except Exception as exc:  # noqa: BLE001 - the script runs anyway
         import warnings
 

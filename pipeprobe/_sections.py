@@ -320,3 +320,21 @@ def next_text(a: Analysis) -> list[str]:
             f"  pipeprobe whatif {run} --workers 4",
             f"  pipeprobe report {run} --html report.html   # charts and the timeline",
             "  notebooks/walkthrough.ipynb   # the same steps in a notebook"]
+
+
+# -- the recording window (a long job recorded in stretches: stretches.py) -------------------------------
+def window_text(a: Analysis) -> list[str]:
+    from .stretches import window_words
+
+    words = window_words(a.run)
+    return ["recording window", *(line for w in words for line in wrap(w, "  ", "  "))] if words else []
+
+
+def window_data(a: Analysis) -> dict[str, Any]:
+    window = a.run.header.get("window")
+    if not isinstance(window, dict):
+        return {"window": None}
+    keys = ("stretch", "first_batch", "last_batch", "batches", "start_s", "wall_s")
+    return {"window": {"spec": window.get("spec"), "every_batches": window.get("every_batches"),
+                       "period_s": window.get("period_s"),
+                       "stretches": [{k: r[k] for k in keys} for r in window.get("stretches", [])]}}

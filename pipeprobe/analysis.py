@@ -12,11 +12,12 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass
 
-from .critical import DELIVERY, GAP, PACE_SPEEDUP, CriticalPath, critical_path
+from .critical import DELIVERY, GAP, PACE_SPEEDUP, CriticalPath
 from .load import Run, load
 from .stagestats import StageStats, stage_stats
 from .stalls import Stalls, stall_summary
-from .timeline import Timeline, build_timeline
+from .stretches import condense, timeline_and_path
+from .timeline import Timeline
 
 __all__ = ["Analysis", "Action", "analyze"]
 
@@ -140,8 +141,8 @@ def analyze(run: Run | str | os.PathLike, *, warmup_batches: int | None = None) 
     """
     if not isinstance(run, Run):
         run = load(run)
-    timeline = build_timeline(run)
-    critical = critical_path(timeline)
+    run = condense(run)  # a windowed run: its stretches end to end (stretches.py)
+    timeline, critical = timeline_and_path(run)
     stalls = stall_summary(run, critical, warmup_batches=warmup_batches)
     stages = stage_stats(run, critical, stalls, input_on_path=critical.input_share >= _SIDE_WORTH)
     actions = suggest_actions(critical, stalls, stages, workers_restart=_workers_restart(run))

@@ -214,7 +214,12 @@ def critical_path(timeline: Timeline) -> CriticalPath:
         }
     )
     segments = segments[segments["seconds"] > 0].reset_index(drop=True)
-    wall = end - origin
+    shares, lanes = attribute(segments, end - origin)
+    return CriticalPath(path=path, segments=segments, shares=shares, lanes=lanes, origin_s=origin, end_s=end)
+
+
+def attribute(segments: pd.DataFrame, wall: float) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Critical-path time per label and per thread (:attr:`CriticalPath.shares`, ``.lanes``) from its pieces."""
     shares = (
         segments.groupby(["label", "kind", "side"], sort=False, observed=True)["seconds"].sum().reset_index()
         .sort_values(["seconds", "label"], ascending=[False, True], kind="stable").reset_index(drop=True)
@@ -224,7 +229,7 @@ def critical_path(timeline: Timeline) -> CriticalPath:
     lanes = on.groupby("lane", sort=False)["seconds"].sum().reset_index()
     lanes = lanes.sort_values(["seconds", "lane"], ascending=[False, True], kind="stable").reset_index(drop=True)
     lanes["share"] = lanes["seconds"] / wall if wall > 0 else 0.0
-    return CriticalPath(path=path, segments=segments, shares=shares, lanes=lanes, origin_s=origin, end_s=end)
+    return shares, lanes
 
 
 def critical_path_length(timeline: Timeline) -> float:

@@ -15,6 +15,7 @@ __all__ = [
     "ScenarioError",
     "StageNameError",
     "StageTargetError",
+    "WindowSpecError",
 ]
 
 
@@ -44,3 +45,7 @@ class StageNameError(PipeprobeError, ValueError):
 
 class StageTargetError(PipeprobeError, TypeError):
     """A stage decorator was put on a function it cannot time (a generator or an async function)."""
+
+
+class WindowSpecError(PipeprobeError, ValueError):
+    """A recording window is written wrongly (see ``pipeprobe.record._window.parse_window``)."""

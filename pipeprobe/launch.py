@@ -162,6 +162,17 @@ def _positive_float(text: str) -> float:
     return value
 
 
+def _window_spec(text: str) -> str:
+    """A recording window, checked here so a bad one stops before the script starts."""
+    from .errors import WindowSpecError
+    from .record._window import parse_window
+
+    try:
+        return parse_window(text).spec
+    except WindowSpecError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
 def add_arguments(parser: Any) -> None:
     """The ``pipeprobe run`` arguments."""
     parser.add_argument("--out", metavar="DIR", help=f"run folder (default: a new folder under ./{RUNS_DIR})")
@@ -173,6 +184,9 @@ def add_arguments(parser: Any) -> None:
     parser.add_argument("--report", metavar="FILE", help="write the report to FILE instead of stderr")
     parser.add_argument("--name", type=_name_pair, action="append", default=[], metavar="AUTO=NAME",
                         help="call a loader NAME instead of its automatic name (dataset class-creation order)")
+    parser.add_argument("--window", type=_window_spec, metavar="SPEC",
+                        help="record only some batches of a long job: A:B (batches A to B-1; ranges joined by "
+                             "commas) or K/N[s|m|h] (K batches every N seconds, minutes or hours)")
     parser.add_argument("--train", metavar="NAME", help="the loader the report covers first (default: most batches)")
     parser.add_argument("script_command", nargs=argparse.REMAINDER, metavar="-- python SCRIPT ARGS",
                         help="the command that runs the script, unchanged")
@@ -193,6 +207,7 @@ def run_command(args: argparse.Namespace) -> int:
         "report": str(Path(args.report).resolve()) if args.report else None,
         "names": dict(args.name),
         "train": args.train,
+        "window": args.window,
         "module": command.module,
         "argv": command.argv,
         "command": _shown(list(args.script_command)),

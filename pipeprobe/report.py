@@ -199,6 +199,7 @@ def _page(name: str) -> Callable[[Any, Any], str]:
 
 #: The default report, in order: what paces the run and what a change would buy first. ``add_section`` adds more.
 SECTIONS: list[Section] = [
+    Section("recording window", part.window_text, part.window_data),
     Section("verdict", lambda f: part.verdict_text(*f), lambda f: part.verdict_data(*f), _page("verdict_html"),
             _with_analysis(_verdict_compute)),
     Section("actions", part.action_text, part.action_data, _page("actions_html")),
@@ -251,6 +252,8 @@ JSON_SCHEMA: dict[str, str] = {
     "recording_cost": "{spans, measured, processes: list of {pid, rank, role, spans, span_cost_ns, added_s, "
                       "wall_share}, too_short: list of {stage, p50_s, limit_s}}; span_cost_ns null when the run "
                       "did not measure it",
+    "window": "null, or {spec, every_batches, period_s, stretches: list of {stretch, first_batch, last_batch, "
+              "batches, start_s, wall_s}}: a run recorded in stretches (Probe(window=...))",
     "ranks": "{count, cross_rank_view: false} for one rank; with several: also straggler_rank, straggler_cause, "
              "straggler_stage, straggler_stall_fraction, straggler_cost_s, idle_rank_s, missing_ranks, "
              "per_rank: list of {rank, steps, last_steps, caused_s, waited_s, stall_s, active_s, stall_fraction}",

@@ -18,6 +18,7 @@ import pandas as pd
 
 from .critical import DELIVERY, GAP, CriticalPath
 from .load import Run
+from .stretches import epoch_start_recorded
 
 __all__ = [
     "Stalls",
@@ -144,11 +145,12 @@ def stall_summary(run: Run, critical: CriticalPath | None = None, *, warmup_batc
     b = run.batches.copy()
     ranks = max(1, int(b["rank"].nunique())) if len(b) else 1
     b = b.sort_values(["rank", "wait_start_s"], kind="stable").reset_index(drop=True)
-    nxt = b.groupby("rank", sort=False)["wait_start_s"].shift(-1).to_numpy(np.float64)
+    cycle_keys = ["rank", "stretch"] if "stretch" in b else "rank"  # no cycle across a window's gap (stretches.py)
+    nxt = b.groupby(cycle_keys, sort=False)["wait_start_s"].shift(-1).to_numpy(np.float64)
     last_end = np.fmax(b["step_end_s"].to_numpy(np.float64), b["ready_s"].to_numpy(np.float64))
     b["cycle_s"] = np.where(np.isnan(nxt), last_end, nxt) - b["wait_start_s"].to_numpy(np.float64)
     pos = b.groupby(["rank", "epoch"], sort=False).cumcount().to_numpy()
-    b["warmup"] = pos < warmup_batches
+    b["warmup"] = (pos < warmup_batches) & epoch_start_recorded(b)  # a window may begin mid-epoch
     wait = b["wait_s"].to_numpy(np.float64)
     total = float(wait.sum())
     warm = b["warmup"].to_numpy(bool)

@@ -40,6 +40,7 @@ from typing import Any, Iterable, Iterator
 
 from .. import tracefile as tf
 from . import _recorder as _r
+from ._window import tag_indices
 
 FETCH_STAGE = "fetch"
 COLLATE_STAGE = "collate"
@@ -63,7 +64,7 @@ def _as_id(index: Any) -> int:
 
 def _recording() -> bool:
     rec = _r.RECORDER
-    return rec.on or (not rec.checked_env and _r.attach_from_env())
+    return rec.spans_on or (not rec.checked_env and _r.attach_from_env())
 
 
 def _start() -> tuple[int, int]:
@@ -243,13 +244,14 @@ class _IndexTap:
     def __init__(self, inner: Any) -> None:
         self.inner = inner
         self.queue: deque = deque()
+        self.base = 0  # consumer batch id of this iteration's first batch (for the recording window)
 
     def __iter__(self) -> Iterator[Any]:
         queue = self.queue
-        for index in self.inner:
+        for j, index in enumerate(self.inner):
             ids = index if isinstance(index, (list, tuple)) else [index]
             queue.append([i for i in (_as_id(x) for x in ids if x is not None) if i >= 0])
-            yield index
+            yield tag_indices(index, self.base + j)
 
     def __len__(self) -> int:
         return len(self.inner)
@@ -283,8 +285,8 @@ class _IterableTap(_IndexTap):
             k = counts[w]
             queue.append([(k + i) * workers + w for i in range(n)])
             counts[w] = k + n
+            yield tag_indices(index, self.base + j)
             j += 1
-            yield index
 
 
 def _is_torch_loader(loader: Any) -> bool:
@@ -350,11 +352,13 @@ def iter_with_indices(loader: Iterable[Any]) -> tuple[Iterator[Any], deque | Non
             tap = _IterableTap(tap, loader.num_workers) if iterable else _IndexTap(tap)
             existing._index_sampler = tap
         tap.queue = deque()
+        tap.base = _r.RECORDER.next_batch
         return iter(loader), (tap.queue if ordered else None)
     swaps: list[tuple[str, Any]] = []
     attr = "batch_sampler" if loader.batch_sampler is not None else "sampler"
     original = getattr(loader, attr)
     tap = _IterableTap(original, loader.num_workers) if iterable else _IndexTap(original)
+    tap.base = _r.RECORDER.next_batch
     swaps.append((attr, original))
     object.__setattr__(loader, attr, tap)
     try:

@@ -20,7 +20,7 @@ from typing import Any, Callable, Iterable, Iterator, TypeVar
 from .. import __version__, _live
 from .. import tracefile as tf
 from ..errors import ProbeStateError
-from . import _clocksync, _closing, _signals
+from . import _clocksync, _closing, _signals, _window
 from . import _recorder as _r
 from ._recorder import RECORDER
 from ._spans import _check_epoch, _check_id, _CpuSpan, _Noop, _Span, stage
@@ -30,6 +30,7 @@ __all__ = ["Probe"]
 T = TypeVar("T")
 _STEP_CODE = tf.KIND_STEP << 16
 _ERROR_BITS = tf.FLAG_ERROR << 24
+_NOOP_STEP = _Noop("step")  # shared: outside the window a step costs one flag read
 
 class _Watched:
     """An iterable of batches whose every iteration is recorded as an epoch."""
@@ -89,6 +90,7 @@ class _Watched:
             if on:
                 buf = rec.buffer()
                 bid = rec.next_batch
+                kept = _window.enter_batch(rec, bid)
                 prev_ctx = buf.ctx
                 buf.ctx = bid
             t0 = monotonic_ns()
@@ -99,19 +101,20 @@ class _Watched:
                     buf.ctx = prev_ctx
                 return
             except BaseException:
-                if on and rec.on:
+                if on and rec.on and kept:
                     rec.record(t0, monotonic_ns(), -1, -1, bid, wait_code | _ERROR_BITS)
                 raise
             t1 = monotonic_ns()
             if on and rec.on:
                 rec.next_batch = bid + 1
                 try:
-                    rec.record(t0, t1, -1, -1, bid, wait_code)
+                    if kept:
+                        rec.record(t0, t1, -1, -1, bid, wait_code)
                     if index_queue is not None:
                         ids = index_queue.popleft() if index_queue else None
                     else:
-                        ids = self._sample_ids(item) if self._samples is not None else None
-                    if ids:
+                        ids = self._sample_ids(item) if self._samples is not None and kept else None
+                    if ids and kept:
                         for sid in ids:
                             rec.record(t1, t1, -1, sid, bid, member_code)
                 except Exception as exc:  # noqa: BLE001 - never take training down
@@ -177,11 +180,17 @@ class Probe:
     live : bool or float, default False
         Print a status line on stderr every 5 s (or every ``live`` seconds)
         while recording; see :mod:`pipeprobe._live`.
+    window : str, optional
+        Record only some batches of a long job: ``"200:400"`` (batches 200
+        to 399; ranges joined by commas) or ``"50/10m"`` (50 batches every
+        10 minutes; ``s``, ``m``, ``h``). See :mod:`pipeprobe.record._window`.
 
     Raises
     ------
     ValueError
         A bad argument (``out_dir`` is a file, an interval not positive...).
+    WindowSpecError
+        ``window`` is written wrongly. Also a ``ValueError``.
     ProbeStateError
         Another probe is already recording in this process.
 
@@ -205,8 +214,10 @@ class Probe:
         buffer_spans: int = 8192,
         sync_clocks: bool = True,
         live: bool | float = False,
+        window: str | None = None,
     ) -> None:
         out = _checked_out_dir(out_dir)
+        parsed_window = None if window is None else _window.parse_window(window)
         _check_intervals(sample_interval_s, flush_interval_s, buffer_spans)
         live_s = _live.live_interval(live)
         rec = RECORDER
@@ -240,7 +251,9 @@ class Probe:
             pipeprobe_version=__version__, python_version=platform.python_version(), platform=platform.platform(),
             pid=os.getpid(), rank=self.rank, world_size=self.world_size, cpu_time=bool(cpu_time),
             sample_interval_s=float(sample_interval_s), flush_interval_s=float(flush_interval_s),
+            extra=_window.header_fields(parsed_window),
         )
+        rec.window, rec.spans_on = parsed_window, parsed_window is None  # a window opens at its first batch
         self._open_run(float(sample_interval_s))
         _signals._SIGNAL_CLOSERS.append(self._close_on_signal)
         self._live = None if live_s is None else _live.LiveLine(
@@ -300,8 +313,8 @@ class Probe:
     def step(self) -> Any:
         """Time the training step of the current batch: ``with probe.step(): ...``."""
         rec = RECORDER
-        if not rec.on:
-            return _Noop("step")
+        if not rec.spans_on:
+            return _NOOP_STEP
         code = _STEP_CODE | rec.stage_ids["step"]
         return _CpuSpan(code, -1, -1) if rec.cpu_time else _Span(code, -1, -1)
 
@@ -388,7 +401,9 @@ class Probe:
                 os.environ[key] = value
         if not ok and not rec.failed:
             return
-        self._header = replace(self._header, end_mono_ns=end, closed=True, batches=rec.next_batch)
+        self._header = replace(self._header, end_mono_ns=end, closed=True, batches=rec.next_batch,
+                               extra={**self._header.extra, **_window.header_fields(rec.window, rec.next_batch)})
+        rec.window = None
         try:
             self._write_header()
         except Exception as exc:  # noqa: BLE001

@@ -59,6 +59,8 @@ class _Recorder:
 
     def __init__(self) -> None:
         self.on = False
+        self.spans_on = False  # spans are taken now: on, and inside the recording window (_window.py)
+        self.window = None  # the main process's recording window (_window.Window), None: every batch
         self.checked_env = False
         self.cpu_time = True
         self.run_dir: Path | None = None
@@ -158,6 +160,7 @@ class _Recorder:
         self.anchor_mono_ns = monotonic_ns()
         self.anchor_wall_ns = time_ns()
         self.on = True
+        self.spans_on = True
         self.session += 1
         with self.meta_lock:
             if self.flusher is None:  # a new thread's buffer() may have started it already
@@ -371,7 +374,7 @@ class _Recorder:
     def fail(self, exc: BaseException) -> None:
         """Switch recording off after pipeprobe's own failure, warning once."""
         was_on = self.on
-        self.on = False
+        self.on = self.spans_on = False
         if was_on and not self.failed:
             self.failed = True
             warnings.warn(
@@ -388,7 +391,7 @@ class _Recorder:
             if self.flusher is not threading.current_thread():
                 self.flusher.join(timeout=5 if lock_timeout_s < 0 else lock_timeout_s)
         self.flush(lock_timeout_s)
-        self.on = False
+        self.on = self.spans_on = False
         if not self.io_lock.acquire(timeout=lock_timeout_s):
             return
         try:
@@ -418,9 +421,10 @@ class _Recorder:
         self.checked_env = True
         self.next_batch = 0
         _signals._SIGNAL_CLOSERS.clear()  # the parent's probe is not ours to close
+        self.window = None  # the parent decides; a worker learns from each batch's indices
         if was_on:
             self.role = "worker"
-            self.on = True
+            self.on = self.spans_on = True
             _register_worker_exit()
             # The forking thread's buffer came along, so buffer() would never
             # start a flusher here: start it now.

@@ -46,7 +46,7 @@ def _deliver(signum: int, frame: Any) -> None:
         # takes without a timeout (e.g. inside Event.set() of an exit flush),
         # and the process is about to end anyway. The span file is
         # unbuffered, so what flush() wrote is on disk.
-        rec.on = False
+        rec.on = rec.spans_on = False
         signal.signal(signum, signal.SIG_DFL)
         os.kill(os.getpid(), signum)
 

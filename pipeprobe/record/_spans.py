@@ -148,7 +148,7 @@ def _timed(fn: Callable[..., T], name: str) -> Callable[..., T]:
     @functools.wraps(fn)
     def wrapper(*args: Any, **kwargs: Any) -> T:
         rec = RECORDER
-        if not rec.on:
+        if not rec.spans_on:
             if rec.checked_env or not _r.attach_from_env():
                 return fn(*args, **kwargs)
         code = codes.get(name)
@@ -196,6 +196,7 @@ class _Noop:
 
 
 _CODES = RECORDER.user_codes  # cleared in place when a probe starts
+_NOOPS: dict[str, _Noop] = {}  # stateless, so one per stage name serves every call
 
 
 def stage(name: str, *, sample: int | None = -1, batch: int | None = -1) -> Any:
@@ -255,10 +256,13 @@ def stage(name: str, *, sample: int | None = -1, batch: int | None = -1) -> Any:
         return _stage_slow(name, sample, batch)
     if type(sample) is not int or type(batch) is not int:
         return _stage_slow(name, sample, batch)
-    if rec.on:
+    if rec.spans_on:
         return _CpuSpan(code, sample, batch) if rec.cpu_time else _Span(code, sample, batch)
     if rec.checked_env or not _r.attach_from_env():
-        return _Noop(name)
+        noop = _NOOPS.get(name)  # outside a recording window: one shared no-op per checked name
+        if noop is None:
+            noop = _NOOPS[name] = _Noop(name)
+        return noop
     return _stage_slow(name, sample, batch)
 
 
@@ -267,7 +271,9 @@ def _stage_slow(name: Any, sample: Any, batch: Any) -> Any:
     sample_i = _check_id(sample, "sample")
     batch_i = _check_id(batch, "batch")
     rec = RECORDER
-    if not rec.on and (rec.checked_env or not _r.attach_from_env()):
+    if not rec.spans_on and (rec.checked_env or not _r.attach_from_env()):
+        if rec.on and name not in _CODES:  # outside a recording window: the checked name takes the fast path next time
+            _CODES[name] = rec.stage_id(name)
         return _Noop(name)
     code = _CODES.get(name)
     if code is None:
