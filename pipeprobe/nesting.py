@@ -40,7 +40,7 @@ import pandas as pd
 
 from .record._loaders import COLLATE_STAGE, FETCH_STAGE
 
-__all__ = ["Flat", "flatten_spans", "inherit", "own_label", "span_pieces", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
+__all__ = ["Flat", "flatten_spans", "inherit", "labels_inside", "own_label", "span_pieces", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
 
 #: Stages the DataLoader hooks time by themselves; their own time is what your stages inside them left.
 AUTOMATIC_STAGES = frozenset({FETCH_STAGE, COLLATE_STAGE})
@@ -341,22 +341,60 @@ def span_pieces(spans: pd.DataFrame) -> pd.DataFrame:
     sp = spans.reset_index(drop=True)
     if sp.empty:
         return sp.assign(span=np.zeros(0, np.int64), label=pd.Series([], dtype=object))
-    thread = sp.groupby(["rank", "pid", "tid"], sort=False).ngroup().to_numpy(np.int64)
-    start, end = sp["start_s"].to_numpy(np.float64), sp["end_s"].to_numpy(np.float64)
-    flat = flatten_spans(start, end, thread)
-    stage = sp["stage"].astype(str).to_numpy(object)
-    enclosing = set(stage[flat.children > 0])
-    label_of = {s: (own_label(s) if s in enclosing else s) for s in pd.unique(stage)}
+    flat, stage, label = _flatten_frame(sp)
     out = sp.iloc[flat.span].reset_index(drop=True)
     dur = flat.end - flat.start
     out["span"] = flat.span
-    out["label"] = [label_of[s] for s in stage[flat.span]] if len(enclosing) else stage[flat.span]
+    out["label"] = label[flat.span]
     out["start_s"], out["end_s"], out["dur_s"] = flat.start, flat.end, dur
     out["cpu_s"] = _own_cpu(sp, flat, dur)
     for col in ("sample_id", "batch_id", "epoch"):
         if col in sp:
             out[col] = inherit(sp[col].to_numpy(np.int64), flat.parent, flat.depth)[flat.span]
     return out
+
+
+def labels_inside(spans: pd.DataFrame) -> dict[str, tuple[str, ...]]:
+    """Per stage with stages inside it: the labels of its own time and of every piece inside it.
+
+    What making the stage faster touches: its own time and the time of
+    every stage recorded inside it, at any depth.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> sp = pd.DataFrame({"stage": ["fetch", "augment", "resize"], "start_s": [0.0, 0.2, 0.3],
+    ...                    "end_s": [1.0, 0.8, 0.4], "rank": 0, "pid": 1, "tid": 1})
+    >>> labels_inside(sp)
+    {'augment': ('augment (own time)', 'resize'), 'fetch': ('augment (own time)', 'fetch, outside your stages', 'resize')}
+    """
+    sp = spans.reset_index(drop=True)
+    if sp.empty:
+        return {}
+    flat, stage, label = _flatten_frame(sp)
+    pairs = [(stage[flat.span], label[flat.span])]
+    up = flat.parent[flat.span]
+    while (up >= 0).any():  # one step up per nesting level, all pieces at once
+        has = up >= 0
+        pairs.append((stage[up[has]], label[flat.span[has]]))
+        up = np.where(has, flat.parent[np.maximum(up, 0)], -1)
+    enclosing = set(stage[flat.children > 0])
+    df = pd.DataFrame({"stage": np.concatenate([a for a, _ in pairs]), "label": np.concatenate([b for _, b in pairs])})
+    df = df[df["stage"].isin(enclosing)].drop_duplicates()
+    return {str(k): tuple(sorted(str(x) for x in g)) for k, g in df.groupby("stage", sort=True)["label"]}
+
+
+def _flatten_frame(sp: pd.DataFrame) -> tuple[Flat, np.ndarray, np.ndarray]:
+    """:func:`flatten_spans` of a span frame, with each span's stage and label (the one labelling rule)."""
+    thread = sp.groupby(["rank", "pid", "tid"], sort=False).ngroup().to_numpy(np.int64)
+    flat = flatten_spans(sp["start_s"].to_numpy(np.float64), sp["end_s"].to_numpy(np.float64), thread)
+    stage = sp["stage"].astype(str).to_numpy(object)
+    enclosing = set(stage[flat.children > 0])
+    if not enclosing:
+        return flat, stage, stage
+    code, names = pd.factorize(stage)
+    labels = np.array([own_label(x) if x in enclosing else x for x in names], dtype=object)  # per stage name
+    return flat, stage, labels[code]
 
 
 def _own_cpu(sp: pd.DataFrame, flat: Flat, piece_dur: np.ndarray) -> np.ndarray:
