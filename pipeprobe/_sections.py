@@ -204,7 +204,7 @@ def stage_text(a: Analysis) -> list[str]:
     t = a.stages.table
     if t.empty:
         return ["stages  none recorded"]
-    widths = [8, 9, 9, 9, 8, 8, 8, 8, 8]
+    widths = [7, 8, 8, 8, 7, 7, 7, 8, 8]
     head = " ".join(f"{(n + ' ' + u).strip() if u not in ('', '%') else n:>{w}}" for (n, u), w in
                     zip(STAGE_COLUMNS, widths, strict=True))
     lines = [f"{'stages':<18} {head}"]
