@@ -34,13 +34,14 @@ from __future__ import annotations
 
 import heapq
 from dataclasses import dataclass
+from typing import Sequence
 
 import numpy as np
 import pandas as pd
 
 from .record._loaders import COLLATE_STAGE, FETCH_STAGE
 
-__all__ = ["Flat", "flatten_spans", "inherit", "labels_inside", "own_label", "span_pieces", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
+__all__ = ["Flat", "flatten_spans", "inherit", "labels_inside", "own_label", "span_pieces", "stage_labels", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
 
 #: Stages the DataLoader hooks time by themselves; their own time is what your stages inside them left.
 AUTOMATIC_STAGES = frozenset({FETCH_STAGE, COLLATE_STAGE})
@@ -134,6 +135,9 @@ def flatten_spans(start: np.ndarray, end: np.ndarray, thread: np.ndarray) -> Fla
         z = np.zeros(0, np.int64)
         return Flat(z, np.zeros(0), np.zeros(0), z, z, z)
     order = _thread_order(start, end, thread)
+    if _is_flat(start, end, thread, order):  # nothing nests: each span is one piece (the common case, fast)
+        z = np.zeros(n, np.int64)
+        return Flat(order, start[order], end[order], z - 1, z, z)
     depth = _depths(start, end, thread, order)
     parent = _parents(thread, order, depth)
     bad = _crossing_threads(start, end, thread, parent)
@@ -154,6 +158,14 @@ def flatten_spans(start: np.ndarray, end: np.ndarray, thread: np.ndarray) -> Fla
 def _thread_order(start: np.ndarray, end: np.ndarray, thread: np.ndarray) -> np.ndarray:
     """Spans by thread, then start, the longer first (an enclosing span before what it encloses), then index."""
     return np.lexsort((np.arange(len(start)), -end, start, thread))
+
+
+def _is_flat(start: np.ndarray, end: np.ndarray, thread: np.ndarray, order: np.ndarray) -> bool:
+    """No span of a thread starts before the previous one (in thread order) ended, and none has zero length
+    inside another."""
+    th, s0, e0 = thread[order], start[order], end[order]
+    same = th[1:] == th[:-1]
+    return not bool((same & (s0[1:] < e0[:-1])).any() | (same & (s0[1:] == s0[:-1])).any())
 
 
 def _depths(start: np.ndarray, end: np.ndarray, thread: np.ndarray, order: np.ndarray) -> np.ndarray:
@@ -384,17 +396,39 @@ def labels_inside(spans: pd.DataFrame) -> dict[str, tuple[str, ...]]:
     return {str(k): tuple(sorted(str(x) for x in g)) for k, g in df.groupby("stage", sort=True)["label"]}
 
 
+def stage_labels(names: Sequence[str], code: np.ndarray, children: np.ndarray) -> np.ndarray:
+    """Per stage name: the name, or :func:`own_label` of it when a span of that stage had spans inside.
+
+    One label per stage name for the whole run, so a stage's own time shows
+    under one name everywhere.
+
+    Parameters
+    ----------
+    names : sequence of str
+        Stage names; ``code`` indexes them.
+    code : ndarray of int
+        Per span, its stage's index in ``names``.
+    children : ndarray of int
+        Per span, spans directly inside it (:attr:`Flat.children`).
+
+    Examples
+    --------
+    >>> stage_labels(["fetch", "decode"], np.array([0, 1]), np.array([1, 0])).tolist()
+    ['fetch, outside your stages', 'decode']
+    """
+    enclosing = np.zeros(len(names), bool)
+    enclosing[np.unique(code[children > 0])] = True
+    return np.array([own_label(str(n)) if e else str(n) for n, e in zip(names, enclosing, strict=True)], dtype=object)
+
+
 def _flatten_frame(sp: pd.DataFrame) -> tuple[Flat, np.ndarray, np.ndarray]:
     """:func:`flatten_spans` of a span frame, with each span's stage and label (the one labelling rule)."""
-    thread = sp.groupby(["rank", "pid", "tid"], sort=False).ngroup().to_numpy(np.int64)
+    thread = sp.groupby(["rank", "pid", "tid"], sort=False, observed=True).ngroup().to_numpy(np.int64)
     flat = flatten_spans(sp["start_s"].to_numpy(np.float64), sp["end_s"].to_numpy(np.float64), thread)
-    stage = sp["stage"].astype(str).to_numpy(object)
-    enclosing = set(stage[flat.children > 0])
-    if not enclosing:
-        return flat, stage, stage
-    code, names = pd.factorize(stage)
-    labels = np.array([own_label(x) if x in enclosing else x for x in names], dtype=object)  # per stage name
-    return flat, stage, labels[code]
+    cat = sp["stage"].astype("category").cat
+    names = np.array([str(x) for x in cat.categories], dtype=object)
+    code = cat.codes.to_numpy(np.int64)
+    return flat, names[code], stage_labels(names, code, flat.children)[code]
 
 
 def _own_cpu(sp: pd.DataFrame, flat: Flat, piece_dur: np.ndarray) -> np.ndarray:

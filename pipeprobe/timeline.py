@@ -86,7 +86,7 @@ import numpy as np
 import pandas as pd
 
 from .lanes import thread_lanes
-from .nesting import span_pieces
+from .nesting import flatten_spans, inherit, stage_labels
 
 if TYPE_CHECKING:  # pragma: no cover
     import networkx
@@ -376,33 +376,33 @@ def _inside_steps(s: _Spans) -> np.ndarray:
     return inside
 
 
-def _innermost(s: _Spans, d: _Deliveries, sp: pd.DataFrame) -> _Spans:
+def _innermost(s: _Spans, d: _Deliveries) -> _Spans:
     """Waits and steps as they are; user stages cut into the pieces of the innermost stage running.
 
     Stage spans around a step or a delivery of their thread (umbrellas) and
     stage spans inside a step are left out, as before; the rest become
-    :func:`pipeprobe.nesting.span_pieces`, so nested time is counted once
+    :func:`pipeprobe.nesting.flatten_spans`, so nested time is counted once
     and an enclosing stage keeps its own time under :func:`pipeprobe.nesting.own_label`.
     """
     nest = np.flatnonzero(s.user & ~_umbrellas(s, d) & ~_inside_steps(s))
-    if not len(nest):
-        return s
-    cols = ["stage", "start_s", "end_s", "rank", "pid", "tid", "sample_id", "batch_id", "epoch"]
-    pieces = span_pieces(sp.iloc[nest][cols])
-    rows = np.concatenate([np.flatnonzero(~s.user), nest[pieces["span"].to_numpy(np.int64)]])
-    n_other = len(rows) - len(pieces)
-    labels = pieces["label"].to_numpy(object)
-    stages = list(s.stages) + [x for x in pd.unique(labels) if x not in s.stages]
-    code = np.concatenate([s.code[rows[:n_other]], pd.Index(stages).get_indexer(labels)])
+    flat = flatten_spans(s.start[nest], s.end[nest], s.th[nest])
+    label_of_code = stage_labels(s.stages, s.code[nest], flat.children)
+    stages = list(s.stages) + [x for x in dict.fromkeys(label_of_code) if x not in s.stages]
+    new_code = pd.Index(stages).get_indexer(label_of_code)
+    rows = np.concatenate([np.flatnonzero(~s.user), nest[flat.span]])  # umbrellas and stages in steps left out
+    other = rows[:len(rows) - len(flat.span)]
 
-    def col(per_span: np.ndarray, name: str) -> np.ndarray:
-        return np.concatenate([per_span[rows[:n_other]], pieces[name].to_numpy(per_span.dtype)])
+    def col(per_span: np.ndarray, pieces: np.ndarray) -> np.ndarray:
+        return np.concatenate([per_span[other], pieces])
+
+    def ids(per_span: np.ndarray) -> np.ndarray:
+        return col(per_span, inherit(per_span[nest], flat.parent, flat.depth)[flat.span])
 
     return _Spans(
-        stages=stages, code=code, is_wait=s.is_wait[rows], is_step=s.is_step[rows],
-        start=col(s.start, "start_s"), end=col(s.end, "end_s"), rank=s.rank[rows], pid=s.pid[rows],
-        tid=s.tid[rows], batch=col(s.batch, "batch_id"), sample=col(s.sample, "sample_id"),
-        epoch=col(s.epoch, "epoch"), th=s.th[rows], lane=s.lane[rows], lane_names=s.lane_names, row=s.row[rows],
+        stages=stages, code=col(s.code, new_code[s.code[nest][flat.span]]), is_wait=s.is_wait[rows],
+        is_step=s.is_step[rows], start=col(s.start, flat.start), end=col(s.end, flat.end), rank=s.rank[rows],
+        pid=s.pid[rows], tid=s.tid[rows], batch=ids(s.batch), sample=ids(s.sample), epoch=ids(s.epoch),
+        th=s.th[rows], lane=s.lane[rows], lane_names=s.lane_names, row=s.row[rows],
     )
 
 
@@ -460,7 +460,7 @@ def _span_sides(s: _Spans, d: _Deliveries) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _node_order(s: _Spans, d: _Deliveries) -> _Order:
-    kept = np.flatnonzero(_outermost(s, ~s.is_wait & ~_umbrellas(s, d)))
+    kept = np.flatnonzero(_outermost(s, ~s.is_wait))  # umbrellas are gone already (_innermost)
     n_b = len(d.wait)
     raw = _Order(kept, n_b, np.arange(len(kept) + n_b))
     korder = raw.take(np.where(s.is_step, 2, 0), 1)
@@ -663,7 +663,7 @@ def build_timeline(run: Run) -> Timeline:
     activity network and the longest path).
     """
     s = _span_arrays(run.spans)
-    s = _innermost(s, _deliveries(s), run.spans)
+    s = _innermost(s, _deliveries(s))
     d = _deliveries(s)
     order = _node_order(s, d)
     sides = _span_sides(s, d)
