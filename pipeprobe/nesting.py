@@ -41,7 +41,7 @@ import pandas as pd
 
 from .record._loaders import COLLATE_STAGE, FETCH_STAGE
 
-__all__ = ["Flat", "flatten_spans", "inherit", "labels_inside", "own_label", "span_pieces", "stage_labels", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
+__all__ = ["Flat", "as_text", "flatten_spans", "inherit", "labels_inside", "own_label", "span_pieces", "stage_labels", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
 
 #: Stages the DataLoader hooks time by themselves; their own time is what your stages inside them left.
 AUTOMATIC_STAGES = frozenset({FETCH_STAGE, COLLATE_STAGE})
@@ -352,12 +352,13 @@ def span_pieces(spans: pd.DataFrame) -> pd.DataFrame:
     """
     sp = spans.reset_index(drop=True)
     if sp.empty:
-        return sp.assign(span=np.zeros(0, np.int64), label=pd.Series([], dtype=object))
-    flat, stage, label = _flatten_frame(sp)
+        return sp.assign(span=np.zeros(0, np.int64), label=pd.Categorical([]))
+    flat, code, _, labels = _flatten_frame(sp)
     out = sp.iloc[flat.span].reset_index(drop=True)
     dur = flat.end - flat.start
     out["span"] = flat.span
-    out["label"] = label[flat.span]
+    cats, label_code = np.unique(labels.astype(str), return_inverse=True)
+    out["label"] = pd.Categorical.from_codes(label_code[code[flat.span]], categories=list(cats))
     out["start_s"], out["end_s"], out["dur_s"] = flat.start, flat.end, dur
     out["cpu_s"] = _own_cpu(sp, flat, dur)
     for col in ("sample_id", "batch_id", "epoch"):
@@ -383,17 +384,38 @@ def labels_inside(spans: pd.DataFrame) -> dict[str, tuple[str, ...]]:
     sp = spans.reset_index(drop=True)
     if sp.empty:
         return {}
-    flat, stage, label = _flatten_frame(sp)
-    pairs = [(stage[flat.span], label[flat.span])]
+    flat, code, names, labels = _flatten_frame(sp)
+    if not (flat.children > 0).any():
+        return {}
+    k = len(names)
+    piece_code = code[flat.span]
+    pairs = [piece_code * k + piece_code]  # (stage around, stage of the piece) as one int
     up = flat.parent[flat.span]
     while (up >= 0).any():  # one step up per nesting level, all pieces at once
         has = up >= 0
-        pairs.append((stage[up[has]], label[flat.span[has]]))
+        pairs.append(code[up[has]] * k + piece_code[has])
         up = np.where(has, flat.parent[np.maximum(up, 0)], -1)
-    enclosing = set(stage[flat.children > 0])
-    df = pd.DataFrame({"stage": np.concatenate([a for a, _ in pairs]), "label": np.concatenate([b for _, b in pairs])})
-    df = df[df["stage"].isin(enclosing)].drop_duplicates()
-    return {str(k): tuple(sorted(str(x) for x in g)) for k, g in df.groupby("stage", sort=True)["label"]}
+    pair = np.unique(np.concatenate(pairs))
+    outer, inner = pair // k, pair % k
+    enclosing = np.unique(code[flat.children > 0])
+    return {str(names[c]): tuple(sorted(str(labels[i]) for i in inner[outer == c])) for c in enclosing}
+
+
+def as_text(values: pd.Series) -> np.ndarray:
+    """A column of stage names or labels as an object array of str, fast for categoricals.
+
+    (Converting a categorical with ``astype(str)`` builds one string per
+    row; this takes each category once.)
+
+    Examples
+    --------
+    >>> as_text(pd.Series(pd.Categorical(["fetch", "decode", "fetch"]))).tolist()
+    ['fetch', 'decode', 'fetch']
+    """
+    if isinstance(values.dtype, pd.CategoricalDtype):
+        names = np.array([str(x) for x in values.cat.categories], dtype=object)
+        return names[values.cat.codes.to_numpy(np.int64)] if len(names) else np.zeros(len(values), object)
+    return np.array([str(x) for x in values], dtype=object) if values.dtype != object else values.to_numpy(object)
 
 
 def stage_labels(names: Sequence[str], code: np.ndarray, children: np.ndarray) -> np.ndarray:
@@ -421,14 +443,14 @@ def stage_labels(names: Sequence[str], code: np.ndarray, children: np.ndarray) -
     return np.array([own_label(str(n)) if e else str(n) for n, e in zip(names, enclosing, strict=True)], dtype=object)
 
 
-def _flatten_frame(sp: pd.DataFrame) -> tuple[Flat, np.ndarray, np.ndarray]:
-    """:func:`flatten_spans` of a span frame, with each span's stage and label (the one labelling rule)."""
+def _flatten_frame(sp: pd.DataFrame) -> tuple[Flat, np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`flatten_spans` of a span frame: ``(flat, stage code per span, stage names, label per name)``."""
     thread = sp.groupby(["rank", "pid", "tid"], sort=False, observed=True).ngroup().to_numpy(np.int64)
     flat = flatten_spans(sp["start_s"].to_numpy(np.float64), sp["end_s"].to_numpy(np.float64), thread)
     cat = sp["stage"].astype("category").cat
     names = np.array([str(x) for x in cat.categories], dtype=object)
     code = cat.codes.to_numpy(np.int64)
-    return flat, names[code], stage_labels(names, code, flat.children)[code]
+    return flat, code, names, stage_labels(names, code, flat.children)
 
 
 def _own_cpu(sp: pd.DataFrame, flat: Flat, piece_dur: np.ndarray) -> np.ndarray:

@@ -18,7 +18,7 @@ import pandas as pd
 
 from .critical import CriticalPath
 from .load import Run
-from .nesting import span_pieces
+from .nesting import as_text, span_pieces
 from .stalls import Stalls
 
 __all__ = ["StageStats", "stage_stats", "STAGE_COLUMNS", "SLOWEST_COLUMNS", "SATURATED_FROM", "TAIL_FRACTION"]
@@ -106,8 +106,9 @@ def _own_time(pieces: pd.DataFrame) -> pd.DataFrame:
     """Per stage: its own seconds and the label of its own time."""
     if pieces.empty:
         return pd.DataFrame({"own_s": pd.Series(dtype=float), "label": pd.Series(dtype=object)})
-    g = pieces.groupby(pieces["stage"].astype(str), sort=False)
-    return pd.DataFrame({"own_s": g["dur_s"].sum(), "label": g["label"].first()})
+    g = pieces.groupby("stage", sort=False, observed=True)
+    own = pd.DataFrame({"own_s": g["dur_s"].sum(), "label": g["label"].first().astype(object)})
+    return own.set_axis(own.index.astype(str))
 
 
 def _table(run: Run, critical: CriticalPath | None, wall_s: float, pieces: pd.DataFrame) -> pd.DataFrame:
@@ -149,7 +150,8 @@ def _slowest(pieces: pd.DataFrame) -> pd.DataFrame:
     sp = pieces[pieces["sample_id"] >= 0] if len(pieces) else pieces
     if not len(sp):
         return pd.DataFrame([], columns=list(SLOWEST_COLUMNS))
-    per = sp.groupby([sp["label"].astype(str).rename("stage"), "sample_id"], sort=False)["dur_s"].sum().reset_index()
+    per = sp.groupby([sp["label"].rename("stage"), "sample_id"], sort=False, observed=True)["dur_s"].sum().reset_index()
+    per["stage"] = as_text(per["stage"])
     per = per.sort_values(["stage", "dur_s", "sample_id"], ascending=[True, False, True], kind="stable")
     by_stage = per.groupby("stage", sort=True)["dur_s"]
     n = by_stage.transform("size").to_numpy()

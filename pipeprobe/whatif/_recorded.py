@@ -28,7 +28,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ScenarioError
-from ..nesting import labels_inside, span_pieces
+from ..nesting import as_text, labels_inside, span_pieces
 from ._contention import max_overlap, remove_contention, split_cpu
 from ._replay_path import CONSUMER_OVERHEAD, UNSTAGED, WORKER_OVERHEAD
 from .limits import MAX_PLAN_STAGES, OTHER_STAGES
@@ -256,7 +256,7 @@ def user_spans(run: Run, batches: _Batches) -> _UserSpans:
         notes.append("no CPU times in the trace (cpu_time=False): stages are replayed without CPU contention")
     return _UserSpans(
         position=k, start_s=start, end_s=end, dur_s=end - start, cpu_s=np.nan_to_num(cpu, nan=0.0),
-        stage=user["label"].astype(str).to_numpy() if "label" in user else user["stage"].astype(str).to_numpy(),
+        stage=as_text(user["label"] if "label" in user else user["stage"]),
         thread=_loader_threads(run, user),
         in_wait=in_wait, consumer_side=in_cons & ~in_wait & ~nested_in_step, worker_side=worker_side,
         cpu_known=cpu_known, steps=sp[(sp["stage"] == "step") & sp["batch_id"].isin(bid)], spans=int(len(sp)),
