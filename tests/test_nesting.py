@@ -201,3 +201,20 @@ class TestRealLoader:
             assert pytest.approx(run.wall_s - aug, rel=0.10) == pred
         else:
             assert pred < whatif(run).predicted_wall_s
+
+
+class TestCommandLine:
+    def test_faster_nested_stage_on_the_command_line(self, tmp_path, capsys):
+        """`pipeprobe whatif RUN --faster augment=inf` works when augment ran only inside fetch."""
+        from pipeprobe.cli import main
+
+        assert 0 == main(["whatif", str(_nested_run(tmp_path / "r")), "--faster", "augment=inf"])
+        assert "faster augment=inf" in capsys.readouterr().out
+
+    def test_unknown_stage_exits_2_with_one_line(self, tmp_path, capsys):
+        """A stage recorded nowhere: one error line naming the run's stages, exit code 2."""
+        from pipeprobe.cli import main
+
+        assert 2 == main(["whatif", str(_nested_run(tmp_path / "r")), "--faster", "resize=2"])
+        err = capsys.readouterr().err.strip().splitlines()
+        assert 1 == len(err) and "unknown stage 'resize'" in err[0]
