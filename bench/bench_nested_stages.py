@@ -47,7 +47,7 @@ def make_images(folder: str, count: int, size: int = 96) -> list[str]:
     return paths
 
 
-def build_dataset(paths: list[str], augment_rounds: int):
+def build_dataset(paths: list[str], augment_rounds: int, augment_ids: bool = False):
     import numpy as np
     import torch
     from PIL import Image, ImageFilter
@@ -60,7 +60,7 @@ def build_dataset(paths: list[str], augment_rounds: int):
             return im.convert("RGB")
 
     @pipeprobe.stage("augment")
-    def augment(img: Image.Image) -> Image.Image:
+    def augment(i: int | None, img: Image.Image) -> Image.Image:  # i=None: no sample id recorded
         for _ in range(augment_rounds):  # the costly part: blur and rotate, repeated
             img = img.filter(ImageFilter.GaussianBlur(1.5)).rotate(7)
         return img
@@ -70,21 +70,21 @@ def build_dataset(paths: list[str], augment_rounds: int):
             return len(paths)
 
         def __getitem__(self, i: int):
-            img = augment(decode(i))  # augment's spans carry no id: they take fetch's
+            img = augment(i if augment_ids else None, decode(i))  # without an id augment takes fetch's
             x = torch.from_numpy(np.asarray(img, dtype=np.float32).copy()).permute(2, 0, 1) / 255.0
             return x, i % 4
 
     return Parts()
 
 
-def train(paths: list[str], out: str, augment_rounds: int, epochs: int) -> float:
+def train(paths: list[str], out: str, augment_rounds: int, epochs: int, augment_ids: bool = False) -> float:
     import torch
 
     import pipeprobe
 
     torch.manual_seed(0)
     torch.set_num_threads(1)
-    loader = torch.utils.data.DataLoader(build_dataset(paths, augment_rounds), batch_size=16, num_workers=2)
+    loader = torch.utils.data.DataLoader(build_dataset(paths, augment_rounds, augment_ids), batch_size=16, num_workers=2)
     model = torch.nn.Sequential(torch.nn.Conv2d(3, 8, 3, padding=1), torch.nn.ReLU(), torch.nn.MaxPool2d(4),
                                 torch.nn.Flatten(), torch.nn.Linear(8 * 24 * 24, 4))
     opt = torch.optim.SGD(model.parameters(), lr=0.01)
@@ -126,6 +126,7 @@ def main() -> None:
     ap.add_argument("--epochs", type=int, default=2)
     ap.add_argument("--rounds", type=int, default=8, help="augment repetitions of the base job")
     ap.add_argument("--repeats", type=int, default=2)
+    ap.add_argument("--augment-ids", action="store_true", help="augment records the sample id too")
     ap.add_argument("--flatten", type=int, default=0, help="only time the nesting sweep on this many fetch spans")
     args = ap.parse_args()
     if args.flatten:
@@ -140,9 +141,9 @@ def main() -> None:
     base, half = [], []
     for r in range(args.repeats):  # alternate, so drift in the machine's load hits both alike
         base.append(os.path.join(work, f"base{r}"))
-        train(paths, base[-1], args.rounds, args.epochs)
+        train(paths, base[-1], args.rounds, args.epochs, args.augment_ids)
         half.append(os.path.join(work, f"half{r}"))
-        train(paths, half[-1], args.rounds // 2, args.epochs)
+        train(paths, half[-1], args.rounds // 2, args.epochs, args.augment_ids)
     runs = [pipeprobe.load(d) for d in base]
     measured = statistics.median(r.wall_s for r in runs)
     replayed = statistics.median(whatif(r).baseline_replay_wall_s for r in runs)
