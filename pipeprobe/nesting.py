@@ -14,8 +14,14 @@ ids: a nested span that was recorded without a sample or batch id (a
 decorated function whose first argument is no int) takes them from the
 span around it, so its time still belongs to the right batch.
 
+The timeline's nodes (:mod:`pipeprobe.timeline`), the stage table's own
+time (:mod:`pipeprobe.stagestats`) and the replay plan's columns
+(:mod:`pipeprobe.whatif._recorded`) all come from here, so nested time is
+counted once everywhere and a label is made in one place.
+
 The steps of :func:`flatten_spans`: time order per thread
-(``_thread_order``), each span's depth (``_depths``: a sweep over start and
+(``_thread_order``; when no span of a thread starts before the previous
+one ended, ``_is_flat``, every span is one piece and the rest is skipped), each span's depth (``_depths``: a sweep over start and
 end events), its parent (``_parents``: the last span one level up), the
 check that no span outlives its parent (``_crossing_threads``), and the
 pieces between children (``_pieces_between``). Threads whose spans cross
@@ -24,9 +30,7 @@ pieces between children (``_pieces_between``). Threads whose spans cross
 
 References
 ----------
-.. [1] Kelley, J. E. and Walker, M. R. (1959). Critical-path planning and
-   scheduling (each activity counted once in the network).
-.. [2] Knuth, D. E. (1997). The Art of Computer Programming, Vol. 1, 2.3
+.. [1] Knuth, D. E. (1997). The Art of Computer Programming, Vol. 1, 2.3
    (nested intervals as a forest; a node's own time = its span less its children's).
 """
 
