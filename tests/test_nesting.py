@@ -97,6 +97,11 @@ class TestHandWorkedShares:
         assert pytest.approx(0.006) == t.loc["fetch", "critical_s"]
         assert (0.008, 0.008) == (round(t.loc["augment", "total_s"], 9), round(t.loc["augment", "own_s"], 9))
 
+    def test_stall_blame_names_the_nested_stage(self, tmp_path):
+        """The 22 ms stall is blamed on augment (8 ms of it on the path), not on the fetch around it."""
+        a = pipeprobe.analyze(_nested_run(tmp_path / "r"))
+        assert ["augment"] == a.stalls.per_batch["blame"].astype(str).tolist()
+
     def test_top_action_names_the_nested_stage(self, tmp_path):
         """The leading input stage on the path is augment (8 ms), not the fetch around it."""
         a = pipeprobe.analyze(_nested_run(tmp_path / "r"))
