@@ -120,10 +120,12 @@ class TestWhatIfNested:
         got = whatif(_nested_run(tmp_path / "r"), faster=faster).predicted_wall_s
         assert pytest.approx(wall_ms / 1e3, abs=1e-6) == got
 
-    def test_offload_nested_stage(self, tmp_path):
-        """Offloading augment (4x), hand-worked: the loader task drops to 14 ms, the step side gets 8 + 8/4 ms: 24 ms."""
-        p = whatif(_nested_run(tmp_path / "r"), offload={"augment": 4})
-        assert pytest.approx(0.024, abs=1e-6) == p.predicted_wall_s
+    @pytest.mark.parametrize("offload,wall_ms", [({"augment": 4}, 24.0), ({"fetch": 4}, 15.0)])
+    def test_offload_nested_and_enclosing(self, tmp_path, offload, wall_ms):
+        """Hand-worked: offloading augment (4x) leaves a 14 ms loader task and 8 + 8/4 ms on the step side;
+        offloading fetch (4x) moves all 20 ms of it, insides included: 2 ms collate, then 8 + 20/4 ms."""
+        p = whatif(_nested_run(tmp_path / "r"), offload=offload)
+        assert pytest.approx(wall_ms / 1e3, abs=1e-6) == p.predicted_wall_s
 
     def test_unknown_stage_keeps_the_clear_error(self, tmp_path):
         """A name recorded nowhere is refused with the list of the run's stages."""
