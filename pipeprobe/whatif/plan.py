@@ -67,6 +67,7 @@ from typing import TYPE_CHECKING, Any, Iterable, Mapping
 import numpy as np
 
 from ..errors import ScenarioError
+from ..nesting import own_label
 from ._contention import background_cores, cores_left
 from ._loader import POLICIES
 from ._recorded import (
@@ -190,7 +191,9 @@ class ReplayPlan:
     def stage_names(self) -> list[str]:
         """Every stage a scenario can name: the columns (loader side first) and the stages with stages inside."""
         cols = self.loader_stages + [s for s in self.consumer_stages if s not in self.loader_stages]
-        return list(dict.fromkeys([*cols, *self.inside]))
+        stage_of_own = {own_label(s): s for s in self.inside}
+        # a stage with stages inside comes where its own time does, just before it
+        return list(dict.fromkeys([x for c in cols for x in (stage_of_own.get(c), c) if x] + list(self.inside)))
 
     def columns_of(self, stage: str) -> tuple[str, ...]:
         """The columns holding ``stage``'s time: its own and those of the stages recorded inside it.
