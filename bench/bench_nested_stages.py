@@ -15,7 +15,8 @@ real rerun whose augmentation does the same work in half the repetitions.
 
 ``--flatten N`` times :func:`pipeprobe.nesting.flatten_spans` on ``N`` fetch
 spans with a decode and an augment inside each, on 8 threads (median of 3),
-against one ``np.lexsort`` of the same spans measured in the same run.
+against one ``np.lexsort`` of the same spans measured in the same run, and
+``2 N`` spans that cross (each held open into the next fetch) on one thread.
 """
 
 from __future__ import annotations
@@ -118,6 +119,13 @@ def flatten_speed(fetches: int) -> None:
     med, ref = statistics.median(took), statistics.median(base)
     print(f"flatten_spans: {len(start)} spans -> {len(flat.span)} pieces in {med:.2f} s "
           f"({1e6 * med / len(start):.2f} us per span; {med / ref:.1f}x one lexsort of the spans)")
+    # crossing spans (a stage held open across a yield, into the next fetch): the exact sweep, one thread
+    start, end = np.concatenate([t, t + 5]), np.concatenate([t + 10, t + 12])
+    t0 = time.perf_counter()
+    flat = flatten_spans(start, end, np.zeros(len(start), np.int64))
+    took_s = time.perf_counter() - t0
+    print(f"flatten_spans, crossing spans on one thread: {len(start)} spans in {took_s:.2f} s "
+          f"({1e6 * took_s / len(start):.2f} us per span)")
 
 
 def main() -> None:

@@ -255,28 +255,33 @@ def _sweep_crossing(start: np.ndarray, end: np.ndarray) -> tuple[np.ndarray, np.
     """Pieces of one thread whose spans cross: at each instant, the open span that started last wins.
 
     Returns ``(span, piece_start, piece_end, parent)`` in local indices; a
-    span's parent is the winner when it started. A heap of open spans,
-    latest start on top; ended spans leave it when they reach the top.
+    span's parent is the winner when it started if that one also outlasts
+    it (a span is inside only what contains it, so chains stay as short as
+    the real nesting). A heap of open spans, latest start on top; ended
+    spans leave it when they reach the top. Plain lists: scalar reads of
+    numpy arrays would cost more than the heap.
     """
     n = len(start)
-    order = np.lexsort((np.arange(n), -end, start))
+    order = np.lexsort((np.arange(n), -end, start)).tolist()
+    st, en = start.tolist(), end.tolist()
     bounds = np.unique(np.concatenate([start, end]))
     heap: list[tuple[int, int]] = []  # (-position in start order, span)
-    parent = np.full(n, -1, np.int64)
-    owner = np.full(len(bounds), -1, np.int64)
+    parent = [-1] * n
+    owner = [-1] * len(bounds)
     k = 0
-    for b, t in enumerate(bounds):
-        while heap and end[heap[0][1]] <= t:
+    for b, t in enumerate(bounds.tolist()):
+        while heap and en[heap[0][1]] <= t:
             heapq.heappop(heap)
-        while k < n and start[order[k]] <= t:
-            i = int(order[k])
-            parent[i] = heap[0][1] if heap else -1
+        while k < n and st[order[k]] <= t:
+            i = order[k]
+            if heap and en[heap[0][1]] >= en[i]:
+                parent[i] = heap[0][1]
             heapq.heappush(heap, (-k, i))
             k += 1
-        while heap and end[heap[0][1]] <= t:  # zero-length spans that just started
+        while heap and en[heap[0][1]] <= t:  # zero-length spans that just started
             heapq.heappop(heap)
         owner[b] = heap[0][1] if heap else -1
-    own, a, z = owner[:-1], bounds[:-1], bounds[1:]
+    own, a, z = np.array(owner[:-1], np.int64), bounds[:-1], bounds[1:]
     use = own >= 0
     own, a, z = own[use], a[use], z[use]
     new = np.r_[True, (own[1:] != own[:-1]) | (a[1:] != z[:-1])] if len(own) else np.zeros(0, bool)
@@ -285,7 +290,7 @@ def _sweep_crossing(start: np.ndarray, end: np.ndarray) -> tuple[np.ndarray, np.
     zero = np.flatnonzero(end <= start)
     if len(zero):  # zero-length spans own no segment; they keep a zero-length piece
         span, p0, p1 = np.r_[span, zero], np.r_[p0, start[zero]], np.r_[p1, end[zero]]
-    return span, p0, p1, parent
+    return span, p0, p1, np.array(parent, np.int64)
 
 
 def _depth_from_parents(parent: np.ndarray) -> np.ndarray:
