@@ -130,7 +130,11 @@ def _table(run: Run, critical: CriticalPath | None, wall_s: float, pieces: pd.Da
     if critical is not None and len(critical.segments):
         seg = critical.segments
         crit = seg[seg["kind"].isin(["stage", "step"])].groupby("label")["seconds"].sum()
-        t["critical_s"] = crit.reindex(t["label"].to_numpy()).fillna(0.0).to_numpy()
+        by_label = crit.reindex(t["label"].to_numpy()).fillna(0.0).to_numpy()
+        # a stage that encloses others only where the timeline leaves it out (inside a step, around an epoch)
+        # is on the path under its own name elsewhere
+        by_name = np.where(t["label"].to_numpy() != t.index.to_numpy(), crit.reindex(t.index).fillna(0.0), 0.0)
+        t["critical_s"] = by_label + by_name
     else:
         t["critical_s"] = 0.0
     t["critical_share"] = t["critical_s"] / wall_s if wall_s > 0 else 0.0
