@@ -284,10 +284,11 @@ def _sweep_crossing(start: np.ndarray, end: np.ndarray) -> tuple[np.ndarray, np.
     own, a, z = np.array(owner[:-1], np.int64), bounds[:-1], bounds[1:]
     use = own >= 0
     own, a, z = own[use], a[use], z[use]
-    new = np.r_[True, (own[1:] != own[:-1]) | (a[1:] != z[:-1])] if len(own) else np.zeros(0, bool)
+    zero = np.flatnonzero(end <= start)
+    cut = np.isin(a[1:], start[zero])  # a zero-length span splits the piece it sits in, as a nested one would
+    new = np.r_[True, (own[1:] != own[:-1]) | (a[1:] != z[:-1]) | cut] if len(own) else np.zeros(0, bool)
     last = np.r_[new[1:], True] if len(own) else np.zeros(0, bool)
     span, p0, p1 = own[new], a[new], z[last]
-    zero = np.flatnonzero(end <= start)
     if len(zero):  # zero-length spans own no segment; they keep a zero-length piece
         span, p0, p1 = np.r_[span, zero], np.r_[p0, start[zero]], np.r_[p1, end[zero]]
     return span, p0, p1, np.array(parent, np.int64)

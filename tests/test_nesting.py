@@ -9,6 +9,8 @@ import numpy as np
 import pandas as pd
 import pytest
 from _synth import member, stage, step, wait, write_run
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 import pipeprobe
 from pipeprobe.errors import ScenarioError
@@ -60,6 +62,24 @@ class TestFlatten:
         for a, b in zip(s, e, strict=True):
             covered |= (grid > a) & (grid < b)
         assert pytest.approx(covered.sum() * 0.01, abs=0.05) == float((f.end - f.start).sum())
+
+    @given(st.lists(st.tuples(st.integers(0, 40), st.integers(0, 12), st.integers(0, 2)), min_size=1, max_size=30))
+    @settings(max_examples=150, deadline=None)
+    def test_any_spans_count_once(self, rows):
+        """Any spans, nested, crossing or equal, on up to 3 threads: per thread the pieces never overlap and add
+        up to the length of the union of its spans (measure of a union of intervals, counted on integer cells)."""
+        s = np.array([r[0] for r in rows], float)
+        e = s + np.array([r[1] for r in rows], float)
+        th = np.array([r[2] for r in rows])
+        f = flatten_spans(s, e, th)
+        for t in np.unique(th):
+            mine = th[f.span] == t
+            a, b = f.start[mine], f.end[mine]
+            assert bool((a[1:] >= b[:-1]).all())
+            cells = set()
+            for x, y in zip(s[th == t], e[th == t], strict=True):
+                cells.update(range(int(x), int(y)))
+            assert len(cells) == float((b - a).sum())
 
     def test_crossing_spans_count_once(self):
         """A span open across its parent's end (a stage held over a yield): the later start wins, no time twice.
