@@ -189,14 +189,14 @@ def critical_data(a: Analysis) -> dict[str, Any]:
 
 # -- stages --------------------------------------------------------------------------------------------
 #: Columns of the stage table, in the order text and HTML both show them: (title, unit).
-STAGE_COLUMNS = [("count", ""), ("total", "s"), ("mean", "ms"), ("p50", "ms"), ("p95", "ms"), ("p99", "ms"),
+STAGE_COLUMNS = [("count", ""), ("total", "s"), ("own", "s"), ("mean", "ms"), ("p50", "ms"), ("p95", "ms"), ("p99", "ms"),
                  ("cpu/wall", ""), ("on path", "%")]
 
 
 def stage_cells(r: Any) -> list[str]:
     """One row of the stage table as text cells, in :data:`STAGE_COLUMNS` order."""
     ratio = "n/a" if not math.isfinite(r.cpu_ratio) else f"{r.cpu_ratio:.2f}"
-    return [f"{int(r.count)}", f"{r.total_s:.3f}", f"{1e3 * r.mean_s:.2f}", f"{1e3 * r.p50_s:.2f}",
+    return [f"{int(r.count)}", f"{r.total_s:.3f}", f"{r.own_s:.3f}", f"{1e3 * r.mean_s:.2f}", f"{1e3 * r.p50_s:.2f}",
             f"{1e3 * r.p95_s:.2f}", f"{1e3 * r.p99_s:.2f}", ratio, pct(r.critical_share).strip()]
 
 
@@ -204,13 +204,14 @@ def stage_text(a: Analysis) -> list[str]:
     t = a.stages.table
     if t.empty:
         return ["stages  none recorded"]
-    widths = [8, 9, 9, 8, 8, 8, 8, 8]
+    widths = [7, 8, 8, 8, 7, 7, 7, 8, 8]
     head = " ".join(f"{(n + ' ' + u).strip() if u not in ('', '%') else n:>{w}}" for (n, u), w in
                     zip(STAGE_COLUMNS, widths, strict=True))
     lines = [f"{'stages':<18} {head}"]
     for r in t.head(10).itertuples():
         cells = " ".join(f"{c:>{w}}" for c, w in zip(stage_cells(r), widths, strict=True))
         lines.append(f"  {printable(r.stage)[:16]:<16} {cells}")
+    lines += nesting_note(t)
     for r in _notable_tails(a).itertuples():
         lines.append(f"  slowest: {r.samples} of {r.of_samples} '{r.stage}' samples cost "
                      f"{100 * r.share:.0f} % of its time ({sample_words(list(r.sample_ids), int(r.samples))})")
@@ -219,6 +220,15 @@ def stage_text(a: Analysis) -> list[str]:
     lines += wrap(f"{st.cores} cores, busy during stalls: {busy}. More workers can help: {st.more_workers} - "
                    f"{printable(st.more_workers_reason)}", "  ", "  cpu  ")
     return lines
+
+
+def nesting_note(t: Any) -> list[str]:
+    """What 'total' and 'own' mean, when stages ran inside other stages (nothing otherwise)."""
+    nested = t[t["own_s"] < t["total_s"] - 1e-9]
+    if nested.empty:
+        return []
+    return wrap("total: whole spans, stages inside included; own: the time outside them, shown on the path as "
+                + ", ".join(f"'{printable(x)}'" for x in nested["label"].head(3)), "  ", "  note  ")
 
 
 def _notable_tails(a: Analysis) -> Any:
@@ -233,7 +243,7 @@ def stage_data(a: Analysis) -> dict[str, Any]:
         "stages": [
             {"stage": str(r.stage), "count": int(r.count), "total_s": r.total_s, "mean_s": r.mean_s, "p50_s": r.p50_s,
              "p95_s": r.p95_s, "p99_s": r.p99_s, "max_s": r.max_s, "cpu_s": r.cpu_s, "cpu_ratio": r.cpu_ratio,
-             "critical_s": r.critical_s, "critical_share": r.critical_share}
+             "critical_s": r.critical_s, "critical_share": r.critical_share, "own_s": r.own_s, "label": str(r.label)}
             for r in st.table.itertuples()
         ],
         "slowest_samples": [

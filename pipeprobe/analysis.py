@@ -231,8 +231,8 @@ def _input_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, i
     inp = sh[(sh["side"] == "input") & (sh["kind"] == "stage")]
     if input_on and len(inp):
         top = inp.iloc[0]
-        row = stages.table[stages.table["stage"] == top["label"]]
-        mean = f", {1e3 * float(row['mean_s'].iloc[0]):.2f} ms per span" if len(row) else ""
+        row = stages.table[stages.table["label"] == top["label"]]
+        mean = f", {1e3 * float(row['own_s'].iloc[0] / row['count'].iloc[0]):.2f} ms per span" if len(row) else ""
         out.append(Action("stage", f"Make '{top['label']}' cheaper: it holds {_pct(top['share'])} of the "
                                    f"critical path{mean}", float(top["seconds"])))
         tail = stages.tail_of(str(top["label"]))

@@ -245,7 +245,7 @@ JSON_SCHEMA: dict[str, str] = {
     "critical_path_nodes": "nodes (spans and deliveries) on the critical path",
     "critical_path_batches": "batches with work on the critical path",
     "stages": "list of {stage, count, total_s, mean_s, p50_s, p95_s, p99_s, max_s, cpu_s, cpu_ratio, "
-              "critical_s, critical_share}",
+              "critical_s, critical_share, own_s, label}",
     "slowest_samples": "list of {stage, samples, of_samples, sample_ids, seconds, share}",
     "cpu": "{cores, core_busy_in_stalls, cores_saturated, more_workers: 'yes'|'no'|'unknown', "
            "more_workers_reason}",

@@ -18,6 +18,7 @@ import pandas as pd
 
 from .critical import CriticalPath
 from .load import Run
+from .nesting import as_text, span_pieces
 from .stalls import Stalls
 
 __all__ = ["StageStats", "stage_stats", "STAGE_COLUMNS", "SLOWEST_COLUMNS", "SATURATED_FROM", "TAIL_FRACTION"]
@@ -26,7 +27,8 @@ __all__ = ["StageStats", "stage_stats", "STAGE_COLUMNS", "SLOWEST_COLUMNS", "SAT
 STAGE_COLUMNS = {
     "stage": "stage name ('step' for training steps)",
     "count": "spans",
-    "total_s": "sum of span durations",
+    "total_s": "sum of span durations, stages recorded inside them included (inclusive time)",
+    "own_s": "total_s less the time of stages recorded inside the spans (own time; = total_s when none)",
     "mean_s": "mean duration",
     "p50_s": "median duration",
     "p95_s": "95th percentile",
@@ -34,13 +36,15 @@ STAGE_COLUMNS = {
     "max_s": "longest span",
     "cpu_s": "thread CPU time inside the spans (NaN when CPU time was off)",
     "cpu_ratio": "cpu_s / total_s: near 1 computes, low waits (I/O, locks, descheduled)",
-    "critical_s": "time on the critical path",
+    "critical_s": "time on the critical path (of its own time, when stages ran inside it)",
     "critical_share": "critical_s / wall time",
+    "label": "what its own time is called on the critical path, in the slowest samples and the actions: "
+             "the stage, or pipeprobe.nesting.own_label(stage) when stages ran inside it",
 }
 
 #: Columns of :attr:`StageStats.slowest`, one row per stage that has sample ids.
 SLOWEST_COLUMNS = {
-    "stage": "stage name",
+    "stage": "stage name, or the own-time label of a stage with stages inside (pipeprobe.nesting.own_label)",
     "samples": "how many slowest samples are listed (TAIL_FRACTION of the stage's samples, 1 to 50)",
     "of_samples": "samples the stage worked on",
     "sample_ids": "their ids, slowest first",
@@ -87,17 +91,32 @@ class StageStats:
     more_workers_reason: str
 
     def tail_of(self, stage: str) -> dict | None:
-        """The slowest-samples row of ``stage`` as a dict, or None."""
+        """The slowest-samples row of ``stage`` (a stage or an own-time label) as a dict, or None."""
         hit = self.slowest[self.slowest["stage"] == stage]
         return None if hit.empty else hit.iloc[0].to_dict()
 
 
-def _table(run: Run, critical: CriticalPath | None, wall_s: float) -> pd.DataFrame:
+def _stage_pieces(run: Run) -> pd.DataFrame:
+    """The stage spans (not waits, not steps) cut into the pieces of the innermost stage running."""
+    sp = run.spans
+    return span_pieces(sp[~sp["stage"].isin(["wait", "step"])])
+
+
+def _own_time(pieces: pd.DataFrame) -> pd.DataFrame:
+    """Per stage: its own seconds and the label of its own time."""
+    if pieces.empty:
+        return pd.DataFrame({"own_s": pd.Series(dtype=float), "label": pd.Series(dtype=object)})
+    g = pieces.groupby("stage", sort=False, observed=True)
+    own = pd.DataFrame({"own_s": g["dur_s"].sum(), "label": g["label"].first().astype(object)})
+    return own.set_axis(own.index.astype(str))
+
+
+def _table(run: Run, critical: CriticalPath | None, wall_s: float, pieces: pd.DataFrame) -> pd.DataFrame:
     sp = run.spans
     sp = sp[sp["stage"] != "wait"]
     cols = list(STAGE_COLUMNS)
     if sp.empty:
-        return pd.DataFrame({c: pd.Series(dtype=object if c == "stage" else float) for c in cols})
+        return pd.DataFrame({c: pd.Series(dtype=object if c in ("stage", "label") else float) for c in cols})
     g = sp.groupby(sp["stage"].astype(str), sort=False)["dur_s"]
     t = g.agg(count="size", total_s="sum", mean_s="mean", max_s="max")
     q = g.quantile([0.5, 0.95, 0.99]).unstack()
@@ -105,10 +124,17 @@ def _table(run: Run, critical: CriticalPath | None, wall_s: float) -> pd.DataFra
     cpu = sp.groupby(sp["stage"].astype(str), sort=False)["cpu_s"].sum(min_count=1)
     t["cpu_s"] = cpu
     t["cpu_ratio"] = (t["cpu_s"] / t["total_s"].where(t["total_s"] > 0)).astype(float)
+    own = _own_time(pieces)
+    t["own_s"] = own["own_s"].reindex(t.index).fillna(t["total_s"])
+    t["label"] = own["label"].reindex(t.index).fillna(pd.Series(t.index, index=t.index))
     if critical is not None and len(critical.segments):
         seg = critical.segments
         crit = seg[seg["kind"].isin(["stage", "step"])].groupby("label")["seconds"].sum()
-        t["critical_s"] = crit.reindex(t.index).fillna(0.0)
+        by_label = crit.reindex(t["label"].to_numpy()).fillna(0.0).to_numpy()
+        # a stage that encloses others only where the timeline leaves it out (inside a step, around an epoch)
+        # is on the path under its own name elsewhere
+        by_name = np.where(t["label"].to_numpy() != t.index.to_numpy(), crit.reindex(t.index).fillna(0.0), 0.0)
+        t["critical_s"] = by_label + by_name
     else:
         t["critical_s"] = 0.0
     t["critical_share"] = t["critical_s"] / wall_s if wall_s > 0 else 0.0
@@ -118,17 +144,18 @@ def _table(run: Run, critical: CriticalPath | None, wall_s: float) -> pd.DataFra
     return t.sort_values(["total_s", "stage"], ascending=[False, True], kind="stable")[cols].reset_index(drop=True)
 
 
-def _slowest(run: Run) -> pd.DataFrame:
-    """Per stage, its slowest samples (ids, seconds, share of the stage's time); column operations only.
+def _slowest(pieces: pd.DataFrame) -> pd.DataFrame:
+    """Per label, its slowest samples (ids, seconds, share of the label's time); column operations only.
 
-    One pass over all stages at once, not a Python loop per stage: a run
-    with tens of thousands of stage names must not stall the report.
+    Time is counted once: a stage with stages inside is judged on its own
+    time (its label). One pass over all labels at once, not a Python loop
+    per stage: a run with tens of thousands of stage names must not stall the report.
     """
-    sp = run.spans
-    sp = sp[(sp["sample_id"] >= 0) & ~sp["stage"].isin(["wait", "step"])]
+    sp = pieces[pieces["sample_id"] >= 0] if len(pieces) else pieces
     if not len(sp):
         return pd.DataFrame([], columns=list(SLOWEST_COLUMNS))
-    per = sp.groupby([sp["stage"].astype(str), "sample_id"], sort=False)["dur_s"].sum().reset_index()
+    per = sp.groupby([sp["label"].rename("stage"), "sample_id"], sort=False, observed=True)["dur_s"].sum().reset_index()
+    per["stage"] = as_text(per["stage"])
     per = per.sort_values(["stage", "dur_s", "sample_id"], ascending=[True, False, True], kind="stable")
     by_stage = per.groupby("stage", sort=True)["dur_s"]
     n = by_stage.transform("size").to_numpy()
@@ -276,10 +303,11 @@ def stage_stats(run: Run, critical: CriticalPath | None = None, stalls: Stalls |
     interpolation, their definition 7, for p50/p95/p99).
     """
     wall = critical.wall_s if critical is not None else (stalls.wall_s if stalls is not None else run.wall_s)
-    table = _table(run, critical, wall)
+    pieces = _stage_pieces(run)
+    table = _table(run, critical, wall, pieces)
     cores = int(run.header.get("cores") or 1)
     busy = core_busy_during_stalls(run)
     saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
     more, why = _more_workers(run, stalls, input_on_path, busy, cores, table, critical)
-    return StageStats(table=table, slowest=_slowest(run), cores=cores, core_busy_in_stalls=busy,
+    return StageStats(table=table, slowest=_slowest(pieces), cores=cores, core_busy_in_stalls=busy,
                       cores_saturated=saturated, more_workers=more, more_workers_reason=why)

@@ -43,16 +43,23 @@ and resource edges:
 
 An edge is kept only when the recording agrees with it (``u`` ended at or
 before ``v`` started), so a span linked to the wrong batch cannot create a
-cycle. Spans nested in another span of the same thread are not nodes (the
-outermost span stands for the whole block), and a user stage that encloses
-a step or a delivery of its own thread (e.g. a stage around a whole epoch)
-is not a node either; both still count in the per-stage statistics.
+cycle. Stages nested in other stages of the same thread count once: each
+thread's stage time is cut into pieces, each the time of the innermost
+stage running (:func:`pipeprobe.nesting.span_pieces`), and the pieces are
+the nodes; a stage with stages inside keeps only its own time, under the
+label :func:`pipeprobe.nesting.own_label` gives it (``fetch, outside your
+stages``), and a nested stage recorded without ids takes its sample and
+batch from the stage around it. A user stage that encloses a step or a
+delivery of its own thread (e.g. a stage around a whole epoch) is not a
+node, nor is a stage inside a step (the step stands for it); both still
+count in the per-stage statistics.
 
 :func:`build_timeline` takes these steps, each a function below: the spans
 as arrays with their threads and lanes (``_span_arrays``; lanes named by
 :func:`pipeprobe.lanes.lane_name`, the one rule for lane names), one delivery per batch
 (``_deliveries``), the spans that are nodes and their time order
-(``_node_order``: no waits, no umbrellas, outermost per thread), the node
+(``_innermost``: stage spans cut into the pieces of the innermost stage
+running; ``_node_order``: no waits, no umbrellas, time order), the node
 columns the rules read (``_node_arrays``), one rule per edge kind
 (``_sample_edges``, ``_assembly_edges``, ``_delivery_edges``,
 ``_consumer_edges``, ``_slot_edges``, ``_step_edges``, ``_thread_edges``),
@@ -79,6 +86,7 @@ import numpy as np
 import pandas as pd
 
 from .lanes import thread_lanes
+from .nesting import flatten_spans, inherit, stage_labels
 
 if TYPE_CHECKING:  # pragma: no cover
     import networkx
@@ -100,7 +108,8 @@ SLOT_MIN_IDLE_S = 1e-3
 NODE_COLUMNS = {
     "node": "node id (= row position)",
     "kind": "'stage', 'step' or 'delivery'",
-    "stage": "stage name; 'step' for steps, 'delivery' for delivery nodes",
+    "stage": "stage name ('step' for steps, 'delivery' for delivery nodes); the own-time label "
+             "(pipeprobe.nesting.own_label) for the time a stage with stages inside spent outside them",
     "side": "'input' (producing batches), 'delivery' or 'consumer' (steps, stages after delivery)",
     "start_s": "start, seconds from run start (delivery: the instant the batch reached the consumer)",
     "end_s": "end (delivery: same as start_s)",
@@ -113,7 +122,7 @@ NODE_COLUMNS = {
     "batch_id": "batch id, -1 when the span is linked to no batch",
     "sample_id": "sample id, -1 unknown",
     "epoch": "epoch, -1 unknown",
-    "span": "row of Run.spans, -1 for delivery nodes",
+    "span": "row of Run.spans (for a piece of a stage: that stage's row), -1 for delivery nodes",
     "pred": "last-arriving dependency (node id), -1 when none",
     "ready_s": "when the last dependency ended (origin_s when none)",
     "gap_s": "start_s - ready_s: waited after the last dependency (for delivery nodes: the delivery time)",
@@ -277,6 +286,7 @@ class _Spans:
     th: np.ndarray
     lane: np.ndarray
     lane_names: np.ndarray
+    row: np.ndarray  # row of run.spans (a piece: the row of the span it is part of)
 
     @property
     def user(self) -> np.ndarray:
@@ -346,6 +356,53 @@ def _span_arrays(sp: pd.DataFrame) -> _Spans:
         rank=sp["rank"].to_numpy(np.int64), pid=sp["pid"].to_numpy(np.int64), tid=sp["tid"].to_numpy(np.int64),
         batch=sp["batch_id"].to_numpy(np.int64), sample=sp["sample_id"].to_numpy(np.int64),
         epoch=sp["epoch"].to_numpy(np.int64), th=th, lane=lane, lane_names=lanes["name"].to_numpy(object),
+        row=np.arange(n_sp, dtype=np.int64),
+    )
+
+
+def _inside_steps(s: _Spans) -> np.ndarray:
+    """User stages inside a step of their own thread: the step stands for them (not nodes)."""
+    inside = np.zeros(len(s.start), bool)
+    u_idx, st_idx = np.flatnonzero(s.user), np.flatnonzero(s.is_step)
+    if len(u_idx) and len(st_idx):
+        left = pd.DataFrame({"t": s.start[u_idx], "th": s.th[u_idx], "i": u_idx}).sort_values("t", kind="stable")
+        right = pd.DataFrame({"t": s.start[st_idx], "th": s.th[st_idx], "e": s.end[st_idx]}).sort_values(
+            "t", kind="stable")
+        j = pd.merge_asof(left, right, on="t", by="th", direction="backward")
+        e = j["e"].to_numpy(np.float64)
+        ii = j["i"].to_numpy(np.int64)
+        hit = ~np.isnan(e)
+        inside[ii[hit]] = s.end[ii[hit]] <= e[hit]
+    return inside
+
+
+def _innermost(s: _Spans, d: _Deliveries) -> _Spans:
+    """Waits and steps as they are; user stages cut into the pieces of the innermost stage running.
+
+    Stage spans around a step or a delivery of their thread (umbrellas) and
+    stage spans inside a step are left out, as before; the rest become
+    :func:`pipeprobe.nesting.flatten_spans`, so nested time is counted once
+    and an enclosing stage keeps its own time under :func:`pipeprobe.nesting.own_label`.
+    """
+    nest = np.flatnonzero(s.user & ~_umbrellas(s, d) & ~_inside_steps(s))
+    flat = flatten_spans(s.start[nest], s.end[nest], s.th[nest])
+    label_of_code = stage_labels(s.stages, s.code[nest], flat.children)
+    stages = list(s.stages) + [x for x in dict.fromkeys(label_of_code) if x not in s.stages]
+    new_code = pd.Index(stages).get_indexer(label_of_code)
+    rows = np.concatenate([np.flatnonzero(~s.user), nest[flat.span]])  # umbrellas and stages in steps left out
+    other = rows[:len(rows) - len(flat.span)]
+
+    def col(per_span: np.ndarray, pieces: np.ndarray) -> np.ndarray:
+        return np.concatenate([per_span[other], pieces])
+
+    def ids(per_span: np.ndarray) -> np.ndarray:
+        return col(per_span, inherit(per_span[nest], flat.parent, flat.depth)[flat.span])
+
+    return _Spans(
+        stages=stages, code=col(s.code, new_code[s.code[nest][flat.span]]), is_wait=s.is_wait[rows],
+        is_step=s.is_step[rows], start=col(s.start, flat.start), end=col(s.end, flat.end), rank=s.rank[rows],
+        pid=s.pid[rows], tid=s.tid[rows], batch=ids(s.batch), sample=ids(s.sample), epoch=ids(s.epoch),
+        th=s.th[rows], lane=s.lane[rows], lane_names=s.lane_names, row=s.row[rows],
     )
 
 
@@ -403,7 +460,7 @@ def _span_sides(s: _Spans, d: _Deliveries) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _node_order(s: _Spans, d: _Deliveries) -> _Order:
-    kept = np.flatnonzero(_outermost(s, ~s.is_wait & ~_umbrellas(s, d)))
+    kept = np.flatnonzero(_outermost(s, ~s.is_wait))  # umbrellas are gone already (_innermost)
     n_b = len(d.wait)
     raw = _Order(kept, n_b, np.arange(len(kept) + n_b))
     korder = raw.take(np.where(s.is_step, 2, 0), 1)
@@ -606,6 +663,7 @@ def build_timeline(run: Run) -> Timeline:
     activity network and the longest path).
     """
     s = _span_arrays(run.spans)
+    s = _innermost(s, _deliveries(s))
     d = _deliveries(s)
     order = _node_order(s, d)
     sides = _span_sides(s, d)
@@ -646,7 +704,7 @@ def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np
             "batch_id": o.take(np.where(has_b, s.batch, -1), s.batch[d.wait]),
             "sample_id": n.sample,
             "epoch": o.take(s.epoch, s.epoch[d.wait]),
-            "span": o.take(np.arange(len(s.start)), -1),
+            "span": o.take(s.row, -1),
             "pred": pred,
             "ready_s": ready,
             "gap_s": n.start - ready,

@@ -4,8 +4,9 @@ Each step is a function returning a small frozen record; ``build_plan``
 calls them in this order:
 
 1. :func:`consumer_batches`: the batches of one rank, in the consumer's order;
-2. :func:`user_spans`: the stage spans of those batches, each placed on the
-   loader side or the consumer side;
+2. :func:`user_spans`: the stage spans of those batches, cut into the
+   pieces of the innermost stage running (:func:`pipeprobe.nesting.span_pieces`:
+   nested time counts once), each placed on the loader side or the consumer side;
 3. :func:`loader_tasks`, :func:`batch_workers` and :func:`consumer_work`:
    per batch and stage, wall and CPU seconds; which worker ran each batch;
 4. :func:`without_contention`: the CPU contention of the recorded run taken
@@ -27,6 +28,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ScenarioError
+from ..nesting import as_text, labels_inside, span_pieces
 from ._contention import max_overlap, remove_contention, split_cpu
 from ._replay_path import CONSUMER_OVERHEAD, UNSTAGED, WORKER_OVERHEAD
 from .limits import MAX_PLAN_STAGES, OTHER_STAGES
@@ -104,6 +106,7 @@ class _UserSpans:
     steps: pd.DataFrame  # the step spans of the plan's batches
     spans: int  # spans of the rank
     notes: tuple[str, ...]
+    inside: Mapping[str, tuple[str, ...]] = field(default_factory=dict)  # stage -> labels of its time
 
     @property
     def inline(self) -> bool:
@@ -231,8 +234,10 @@ def user_spans(run: Run, batches: _Batches) -> _UserSpans:
     ck = waits[["pid", "tid"]].value_counts().index[0]  # the consumer: the thread that waits for batches
     bid = batches.batch_id
     pos = pd.Series(np.arange(batches.n), index=bid)
-    is_user = ~sp["stage"].isin(["wait", "step"]) & (sp["batch_id"] >= 0)
-    user = sp[is_user & sp["batch_id"].isin(bid)]
+    # nested stages count once: the time of the innermost stage running, ids taken from the stage around it
+    stage_spans = sp[~sp["stage"].isin(["wait", "step"])]
+    pieces = span_pieces(stage_spans)
+    user = pieces[(pieces["batch_id"] >= 0) & pieces["batch_id"].isin(bid)] if len(pieces) else sp.iloc[:0]
     k = pos.reindex(user["batch_id"].to_numpy()).to_numpy(np.int64)
     in_cons = ((user["pid"] == int(ck[0])) & (user["tid"] == int(ck[1]))).to_numpy()
     start = user["start_s"].to_numpy(float)
@@ -251,11 +256,11 @@ def user_spans(run: Run, batches: _Batches) -> _UserSpans:
         notes.append("no CPU times in the trace (cpu_time=False): stages are replayed without CPU contention")
     return _UserSpans(
         position=k, start_s=start, end_s=end, dur_s=end - start, cpu_s=np.nan_to_num(cpu, nan=0.0),
-        stage=user["stage"].astype(str).to_numpy(),
+        stage=as_text(user["label"] if "label" in user else user["stage"]),
         thread=_loader_threads(run, user),
         in_wait=in_wait, consumer_side=in_cons & ~in_wait & ~nested_in_step, worker_side=worker_side,
         cpu_known=cpu_known, steps=sp[(sp["stage"] == "step") & sp["batch_id"].isin(bid)], spans=int(len(sp)),
-        notes=tuple(notes),
+        notes=tuple(notes), inside=labels_inside(stage_spans),
     )
 
 

@@ -67,6 +67,7 @@ from typing import TYPE_CHECKING, Any, Iterable, Mapping
 import numpy as np
 
 from ..errors import ScenarioError
+from ..nesting import own_label
 from ._contention import background_cores, cores_left
 from ._loader import POLICIES
 from ._recorded import (
@@ -139,6 +140,11 @@ class ReplayPlan:
     folded_stages : tuple of str
         Stage names replayed together as ``"(other stages)"`` (a side had
         more than :data:`~pipeprobe.whatif.limits.MAX_PLAN_STAGES` of them).
+    inside : dict of str to tuple of str
+        Per stage that had stages recorded inside it: the columns its time
+        was replayed as (its own time, :func:`pipeprobe.nesting.own_label`,
+        and the stages inside it). Columns hold each instant once: the
+        innermost stage running (:func:`pipeprobe.nesting.span_pieces`).
     """
 
     batch_id: np.ndarray
@@ -164,6 +170,7 @@ class ReplayPlan:
     background_cores: float = 0.0
     prefetch_inferred: bool = False
     folded_stages: tuple[str, ...] = ()
+    inside: Mapping[str, tuple[str, ...]] = field(default_factory=dict)
 
     @property
     def batches(self) -> int:
@@ -179,6 +186,38 @@ class ReplayPlan:
     def consumer_stages(self) -> list[str]:
         """User stages and the step on the consumer side."""
         return [n for n in self.consumer.names if n not in PSEUDO_STAGES]
+
+    @property
+    def stage_names(self) -> list[str]:
+        """Every stage a scenario can name: the columns (loader side first) and the stages with stages inside."""
+        cols = self.loader_stages + [s for s in self.consumer_stages if s not in self.loader_stages]
+        stage_of_own = {own_label(s): s for s in self.inside}
+        # a stage with stages inside comes where its own time does, just before it
+        return list(dict.fromkeys([x for c in cols for x in (stage_of_own.get(c), c) if x] + list(self.inside)))
+
+    def columns_of(self, stage: str) -> tuple[str, ...]:
+        """The columns holding ``stage``'s time: its own and those of the stages recorded inside it.
+
+        Examples
+        --------
+        >>> plan = plan_from_durations([0.03] * 2, [0.01] * 2)
+        >>> plan.columns_of("task")
+        ('task',)
+        """
+        return tuple(self.inside.get(stage, (stage,)))
+
+    def column_factors(self, factors: Mapping[str, float]) -> dict[str, float]:
+        """Per column, how much faster it runs when the named stages get ``factors``.
+
+        A stage's factor applies to its own time and to every stage recorded
+        inside it (making ``fetch`` twice as fast halves what runs in it);
+        factors of a stage and of one inside it multiply.
+        """
+        out: dict[str, float] = {}
+        for stage, k in factors.items():
+            for col in self.columns_of(stage):
+                out[col] = out.get(col, 1.0) * k
+        return out
 
     @property
     def cores_left(self) -> float:
@@ -266,7 +305,7 @@ def build_plan(
         notes=[*batches.notes, *spans.notes, *loader.notes, *consumer.seconds.notes, *by_worker.notes,
                *config.notes],
         background_cores=background, prefetch_inferred=config.prefetch_inferred,
-        folded_stages=loader.seconds.folded + consumer.seconds.folded,
+        folded_stages=loader.seconds.folded + consumer.seconds.folded, inside=spans.inside,
     )
 
 

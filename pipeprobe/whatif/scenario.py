@@ -23,6 +23,7 @@ from typing import TYPE_CHECKING, Any, Iterable, Mapping
 import numpy as np
 
 from ..errors import ScenarioError
+from ..nesting import own_label
 from ._loader import POLICIES
 from ._replay_path import PSEUDO_STAGES
 from .limits import MAX_PREFETCH, MAX_WORKERS, check_cores, check_count, check_factor
@@ -48,10 +49,13 @@ class Scenario:
     ----------
     faster : dict of str to float
         Stage name (loader stage, consumer stage or ``"step"``) to speed-up
-        factor; ``inf`` makes the stage free.
+        factor; ``inf`` makes the stage free. A stage recorded inside another
+        can be named; the one around it shrinks by the time saved. Naming the
+        stage around others speeds up all of its time, theirs included.
     offload : dict of str to float
         Loader stage to factor: the stage leaves the loader task and runs
-        ``factor`` times faster on the accelerator side of the step, off the CPU.
+        ``factor`` times faster on the accelerator side of the step, off the CPU
+        (a stage with stages inside moves with them; a nested stage moves alone).
     workers : int or None
         Loader workers; 0 loads in the consumer when it asks for a batch.
     prefetch : int or None
@@ -113,15 +117,15 @@ class Scenario:
             A ``faster`` stage the run does not have, or an ``offload``
             stage that is not a loader stage; the message lists the choices.
         """
-        known = plan.loader_stages + [s for s in plan.consumer_stages if s not in plan.loader_stages]
-        known = [s for s in known if s not in PSEUDO_STAGES]
+        known = [s for s in plan.stage_names if s not in PSEUDO_STAGES]
         for stage in self.faster:
             if stage not in known:
-                raise ScenarioError(f"faster: unknown stage {stage!r}; this run's stages are {', '.join(known)}")
+                shown = [s for s in known if s not in _own_labels(plan)]
+                raise ScenarioError(f"faster: unknown stage {stage!r}; this run's stages are {', '.join(shown)}")
         for stage in self.offload:
-            if stage not in plan.loader_stages:
+            if not set(plan.columns_of(stage)) & set(plan.loader_stages):
                 raise ScenarioError(f"offload: {stage!r} is not a loader stage of this run; choose from "
-                                    f"{', '.join(plan.loader_stages)}")
+                                    f"{', '.join(_loader_names(plan))}")
         return self
 
     def settings(self, plan: ReplayPlan) -> Settings:
@@ -137,18 +141,24 @@ class Scenario:
         )
 
     def work(self, plan: ReplayPlan) -> tuple[Work, Work]:
-        """The plan's loader and consumer work with the factors applied and offloaded stages moved."""
-        loader = plan.loader.scaled(self.faster)
-        consumer = plan.consumer.scaled(self.faster)
+        """The plan's loader and consumer work with the factors applied and offloaded stages moved.
+
+        A stage with stages recorded inside it speeds up (or moves) with
+        them: its factor applies to every column of :meth:`ReplayPlan.columns_of`.
+        """
+        faster = plan.column_factors(self.faster)
+        loader = plan.loader.scaled(faster)
+        consumer = plan.consumer.scaled(faster)
         if not self.offload:
             return loader, consumer
         names = list(loader.names)
-        cols = [names.index(s) for s in self.offload]
-        keep = [i for i in range(len(names)) if i not in cols]
+        moved = [[names.index(c) for c in plan.columns_of(s) if c in names] for s in self.offload]
+        gone = {c for cols in moved for c in cols}
+        keep = [i for i in range(len(names)) if i not in gone]
         # the stage leaves the loader task and runs on the accelerator side, off the CPU
         extra = [
-            (plan.loader.io_s[:, c] + plan.loader.cpu_s[:, c]) / (self.faster.get(s, 1.0) * self.offload[s])
-            for s, c in zip(self.offload, cols, strict=True)
+            sum((loader.io_s[:, c] + loader.cpu_s[:, c] for c in cols), np.zeros(plan.batches)) / self.offload[s]
+            for s, cols in zip(self.offload, moved, strict=True)
         ]
         loader = Work(tuple(names[i] for i in keep), loader.io_s[:, keep], loader.cpu_s[:, keep])
         consumer = Work(
@@ -192,6 +202,17 @@ class Scenario:
         if not self.in_order:
             parts.append("any order")
         return ", ".join(parts) or "nothing changes"
+
+
+def _own_labels(plan: ReplayPlan) -> set[str]:
+    """Columns that are a stage's own time: accepted, but messages list the stages themselves."""
+    return {own_label(s) for s in plan.inside}
+
+
+def _loader_names(plan: ReplayPlan) -> list[str]:
+    """Loader stages a scenario can offload: the loader columns and the stages holding them."""
+    enclosing = [s for s in plan.inside if set(plan.inside[s]) & set(plan.loader_stages)]
+    return list(dict.fromkeys([*enclosing, *(s for s in plan.loader_stages if s not in _own_labels(plan))]))
 
 
 def _number(x: float) -> str:
