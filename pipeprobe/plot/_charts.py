@@ -304,9 +304,9 @@ def draw_sweep(
     >>> import tempfile
     >>> from pipeprobe._example_runs import write_example_run
     >>> d = write_example_run(tempfile.mkdtemp(), batches=4, decode_ms=6, step_ms=2)
-    >>> ax = draw_sweep(d, values=[0, 1])
+    >>> ax = draw_sweep(d, values=[0, 1, 2])
     >>> ax.get_ylabel(), ax.lines[0].get_ydata().round(6).tolist()
-    ('wall time (s)', [0.032, 0.026])
+    ('wall time (s)', [0.032, 0.026, 0.016])
     """
     from ..whatif import sweep
 
