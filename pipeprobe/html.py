@@ -231,6 +231,16 @@ def critical_html(a: Any, page: _Page) -> str:
     return out
 
 
+def restarts_html(r: Any, page: _Page) -> str:
+    """The restart cost of new loader workers at each epoch (shown only when worth naming)."""
+    if r is None or not r.worth_naming:
+        return ""
+    from .whatif.restart import format_restarts
+
+    lines = format_restarts(r)
+    return "<h2>Worker restarts</h2>" + "".join(f"<p>{_e(x.strip())}</p>" for x in lines)
+
+
 def stages_html(a: Any, page: _Page) -> str:
     t = a.stages.table
     parts: list[str] = []

@@ -34,6 +34,7 @@ from .whatif.advice import WorkerAdvice, advised_analysis, worker_advice
 from .whatif.ceilings import REPORT_MAX_BATCHES, Ceilings, ceilings, format_ceilings
 from .whatif.ceilings import _head as _first_batches
 from .whatif.plan import build_plan
+from .whatif.restart import WorkerRestarts, format_restarts, worker_restarts
 
 __all__ = [
     "Section",
@@ -99,6 +100,8 @@ class Report:
         self._plan_made = False
         self._advice: WorkerAdvice | None = None
         self._advice_made = False
+        self._restarts: WorkerRestarts | None = None
+        self._restarts_made = False
         self.parts: list[tuple[Section, Any]] = []
         for sec in list(SECTIONS if sections is None else sections):
             self.parts.append((sec, sec.compute(self) if sec.compute is not None else analysis))
@@ -126,6 +129,18 @@ class Report:
                 except PipeprobeError:
                     self._advice = None
         return self._advice
+
+    @property
+    def worker_restarts(self) -> WorkerRestarts | None:
+        """What restarting the loader workers at each epoch cost (:func:`~pipeprobe.whatif.restart.worker_restarts`)."""
+        if not self._restarts_made:
+            self._restarts_made = True
+            if self.replay_plan is not None:
+                try:
+                    self._restarts = worker_restarts(self.replay_plan, self.analysis.run)
+                except PipeprobeError:
+                    self._restarts = None
+        return self._restarts
 
     def figures(self, name: str) -> Any:
         """The figures of the section called ``name``."""
@@ -198,7 +213,11 @@ def _ceilings_data(fig: tuple[Ceilings | str | None, Analysis]) -> dict[str, Any
 
 def _advised(report: Report) -> Analysis:
     """The analysis with its worker action and CPU answer read from the report's one worker advice."""
-    return advised_analysis(report.analysis, report.worker_advice)
+    return advised_analysis(report.analysis, report.worker_advice, report.worker_restarts)
+
+
+def _restarts_data(r: WorkerRestarts | None) -> dict[str, Any]:
+    return {"worker_restarts": r.to_dict() if r is not None else None}
 
 
 def _no_html(fig: Any, page: Any) -> str:
@@ -224,6 +243,8 @@ SECTIONS: list[Section] = [
     Section("actions", part.action_text, part.action_data, _page("actions_html"), _advised),
     Section("ceilings", _ceilings_text, _ceilings_data, _page("ceilings_html"), _with_analysis(_ceilings_compute)),
     Section("stalls", part.stall_text, part.stall_data, _page("stalls_html")),
+    Section("worker restarts", lambda r: format_restarts(r) if r else [], _restarts_data, _page("restarts_html"),
+            lambda report: report.worker_restarts),
     Section("critical path", part.critical_text, part.critical_data, _page("critical_html")),
     Section("stages", part.stage_text, part.stage_data, _page("stages_html"), _advised),
     Section("ranks", part.ranks_text, part.ranks_data, _page("ranks_html"), part.ranks_compute),
@@ -251,6 +272,9 @@ JSON_SCHEMA: dict[str, str] = {
                 "next_critical}, baseline_replay_wall_s, measured_wall_s, workers, advice: {more_workers, "
                 "recorded_workers, workers, prefetch, stall_now, stall_left, speedup, seconds_saved, cores, "
                 "cores_limit, unlimited_workers, unlimited_speedup, cores_busy, reason}}; null without batches",
+    "worker_restarts": "{restarts, epochs, first_start_s, restart_s: per later epoch, restart_total_s, "
+                       "persistent_wall_s, saved_s, measured_wall_s, worth_naming}: new loader workers at each "
+                       "epoch, and the replay with them kept; null without a replay",
     "stall_s": "total time the loop waited for batches, seconds",
     "stall_fraction": "stall_s / wall_s (per rank-second for several ranks)",
     "steady_stall_fraction": "stall share of the loop's time, warm-up batches left out",

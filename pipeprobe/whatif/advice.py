@@ -39,6 +39,7 @@ from ..analysis import Action
 from ..critical import PACE_SPEEDUP
 from .engine import Replay, replay
 from .limits import MAX_PREFETCH
+from .restart import WorkerRestarts, restart_action_text
 from .scenario import recorded_prefetch_for
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -81,6 +82,8 @@ class WorkerAdvice:
         Measured wall time times ``1 - 1 / speedup``.
     cores : float
         Cores the replay gave the run (the machine's less what other processes used).
+    machine_cores : int
+        Cores of the recorded machine.
     cores_limit : bool
         With unlimited cores some worker count would replay at least
         :data:`~pipeprobe.critical.PACE_SPEEDUP` faster than ``workers`` here.
@@ -105,6 +108,7 @@ class WorkerAdvice:
     speedup: float
     seconds_saved: float
     cores: float
+    machine_cores: int
     cores_limit: bool
     unlimited_workers: int | None
     unlimited_speedup: float
@@ -202,7 +206,7 @@ def _decide(plan: ReplayPlan, base: Replay, advised: int, rep: Replay, unlimited
         prefetch=_prefetch_for(plan, advised) if advised != plan.workers else plan.prefetch,
         stall_now=base.stall_fraction, stall_left=rep.stall_fraction, speedup=speedup,
         seconds_saved=measured * (1.0 - 1.0 / speedup) if speedup > 0 else 0.0,
-        cores=float(base.config["cores"]), cores_limit=unlimited_speedup >= speedup * PACE_SPEEDUP,
+        cores=float(base.config["cores"]), machine_cores=plan.cores, cores_limit=unlimited_speedup >= speedup * PACE_SPEEDUP,
         unlimited_workers=unlimited, unlimited_speedup=unlimited_speedup,
         cores_busy=cpu_per_batch / per_batch if per_batch > 0 else math.inf, reason="",
     )
@@ -217,6 +221,12 @@ def _workers(n: int) -> str:
     return f"{n} worker{'s' * (n != 1)}" if n else "loading in the training loop"
 
 
+def _cores(a: WorkerAdvice) -> str:
+    if a.cores < a.machine_cores - 0.05:
+        return f"the {a.cores:.1f} of {a.machine_cores} cores other processes left this run"
+    return f"this machine's {a.cores:g} cores"
+
+
 def _reason(a: WorkerAdvice) -> str:
     """The advice in one sentence (every number from the replay)."""
     more_cores = (f"; with unlimited cores {_workers(a.unlimited_workers or 0)} would replay "
@@ -224,12 +234,12 @@ def _reason(a: WorkerAdvice) -> str:
     if a.more_workers == "yes":
         text = (f"{_workers(a.workers)} (prefetch {a.prefetch}) replay {a.speedup:.2f}x faster than the recorded "
                 f"{_workers(a.recorded_workers)}, stall {_pct(a.stall_now)} -> {_pct(a.stall_left)}")
-        return text + (more_cores + f": this machine's {a.cores:g} cores hold it back" if a.cores_limit else "")
+        return text + (more_cores + f": {_cores(a)} hold it back" if a.cores_limit else "")
     if a.workers < a.recorded_workers:
         return (f"{_workers(a.workers)} replay as fast as the recorded {a.recorded_workers} "
-                f"({a.speedup:.2f}x); more only share the same {a.cores:g} cores")
+                f"({a.speedup:.2f}x); more only share {_cores(a)}")
     if a.cores_limit:
-        return (f"more workers only share this machine's {a.cores:g} cores (no count replays "
+        return (f"more workers only share {_cores(a)} (no count replays "
                 f"{_pct(PACE_SPEEDUP - 1)} faster; it keeps about {a.cores_busy:.1f} cores busy once the input "
                 f"is hidden){more_cores}")
     if a.stall_now < PACE_SPEEDUP - 1:
@@ -262,11 +272,14 @@ def advised_actions(actions: Sequence[Action], advice: WorkerAdvice | None) -> t
     return tuple(out)
 
 
-def advised_analysis(analysis: Analysis, advice: WorkerAdvice | None) -> Analysis:
-    """``analysis`` with its worker action and its CPU view's worker answer taken from ``advice``.
+def advised_analysis(analysis: Analysis, advice: WorkerAdvice | None,
+                     restarts: WorkerRestarts | None = None) -> Analysis:
+    """``analysis`` with its worker and warm-up actions and its CPU line's worker answer read from the replay.
 
     The report shows this one, so its action list and its CPU line say what
-    the advice says (``advice=None``, no replay: the analysis unchanged).
+    the advice says (``advice=None``, no replay: the analysis unchanged),
+    and the warm-up action is the restart cost of ``restarts`` (none when
+    the replay finds keeping the workers saves little).
 
     Examples
     --------
@@ -282,4 +295,10 @@ def advised_analysis(analysis: Analysis, advice: WorkerAdvice | None) -> Analysi
     if advice is None:
         return analysis
     stages = replace(analysis.stages, more_workers=advice.more_workers, more_workers_reason=advice.reason)
-    return replace(analysis, stages=stages, actions=advised_actions(analysis.actions, advice))
+    actions = advised_actions(analysis.actions, advice)
+    if restarts is not None:
+        actions = tuple(a for a in actions if a.kind != "warmup")
+        if restarts.worth_naming:
+            actions = tuple(sorted(actions + (Action("warmup", restart_action_text(restarts), restarts.saved_s),),
+                                   key=lambda a: -a.seconds))
+    return replace(analysis, stages=stages, actions=actions)
