@@ -11,9 +11,9 @@ run without it. Its steps:
    of this one, beyond the loop's ordinary time between two batches (the
    loader stops the old workers and starts the new ones there, when the
    loop calls ``iter()``); and the time from that ask to the epoch's first
-   loader span (the plan's ``epoch_dispatch_s``) beyond the delay a
-   running worker takes to pick up a request (``dispatch_s``): the new
-   workers' own start-up. (Work the loop does between epochs outside any
+   loader span (the plan's ``epoch_dispatch_s``) beyond the delay an idle
+   running worker takes to pick up a request outside an epoch start
+   (``steady_dispatch_s``): the new workers' own start-up. (Work the loop does between epochs outside any
    stage, say an unrecorded validation pass, counts in the first; time it
    with ``pipeprobe.stage`` to keep it apart);
 2. whether the workers did restart (a later epoch's loader spans ran in
@@ -21,7 +21,7 @@ run without it. Its steps:
 3. a replay of the run with persistent workers (:func:`with_persistent_workers`):
    the epochs after the first lose both waits (the loop's time between
    epochs is its ordinary time between batches, and their tasks start after
-   the ordinary dispatch delay); everything else, the epoch barrier included (a new
+   ``steady_dispatch_s``); everything else, the epoch barrier included (a new
    epoch's batches are still asked for only when the loop starts it), is
    as recorded. The saving is scaled by the measured wall time over the
    replay of the recorded run, as every prediction is.
@@ -106,7 +106,7 @@ class WorkerRestarts:
 
 
 def with_persistent_workers(plan: ReplayPlan) -> ReplayPlan:
-    """``plan`` with workers kept across epochs: later epochs start tasks after the ordinary dispatch delay.
+    """``plan`` with workers kept across epochs: no wait between epochs, tasks start after ``steady_dispatch_s``.
 
     Examples
     --------
@@ -119,7 +119,7 @@ def with_persistent_workers(plan: ReplayPlan) -> ReplayPlan:
     [3.0, 0.0]
     """
     ed = np.array(plan.epoch_dispatch_s, float, copy=True)
-    ed[1:] = np.minimum(ed[1:], plan.dispatch_s)
+    ed[1:] = np.minimum(ed[1:], plan.steady_dispatch_s)
     last, extra, _ = _between_epochs(plan)
     c = plan.consumer
     if not len(last) or CONSUMER_OVERHEAD not in c.names:
@@ -188,7 +188,7 @@ def worker_restarts(plan: ReplayPlan, run: Run | None = None, base: Replay | Non
     """
     base = replay(plan) if base is None else base
     ed = np.asarray(plan.epoch_dispatch_s, float)
-    extra = np.maximum(0.0, ed[1:] - plan.dispatch_s) if plan.workers else np.zeros(0)
+    extra = np.maximum(0.0, ed[1:] - plan.steady_dispatch_s) if plan.workers else np.zeros(0)
     _, between, _ = _between_epochs(plan)
     between = between if plan.workers and len(between) == len(extra) else np.zeros(len(extra))
     restarts = _restarted(run) if run is not None else bool(plan.workers and (extra > 0).any())
