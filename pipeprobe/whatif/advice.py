@@ -5,13 +5,15 @@ workers help. The report's text, its JSON, its HTML page and its action
 list all read the :class:`WorkerAdvice` it returns, so they cannot
 disagree. Its steps:
 
-1. replay the recorded configuration (the yardstick);
+1. replay the recorded configuration (the yardstick); steps 2 and 3
+   replay the first :data:`SEARCH_BATCHES` batches;
 2. with unlimited cores, bisect for the fewest workers whose replay is
    within :data:`SETTLE_TOLERANCE` of 64 workers' (more workers never slow
    the replay down there, so the wall time is monotone in the count);
 3. on this machine's cores, replay every count up to that one (counts past
    it only add tasks sharing the same cores) and take the fewest within
-   :data:`SETTLE_TOLERANCE` of the fastest;
+   :data:`SETTLE_TOLERANCE` of the fastest; replay that count, and step 2's
+   with unlimited cores, on the whole plan;
 4. decide: "yes" only when that count is more than the recorded one, its
    replay is at least :data:`~pipeprobe.critical.PACE_SPEEDUP` faster *and*
    leaves less stall than the recorded configuration's replay; the stall
@@ -54,6 +56,9 @@ __all__ = ["WorkerAdvice", "worker_advice", "advised_actions", "advised_analysis
 SETTLE_TOLERANCE = 0.02
 #: Most workers the advice replays.
 MAX_ADVISED_WORKERS = 64
+#: The search replays the first this many batches (a few dozen replays stay quick on long runs); the
+#: counts it finds are then replayed on the whole plan, and every figure the advice states is from those.
+SEARCH_BATCHES = 1000
 #: The answers of :attr:`WorkerAdvice.more_workers`.
 MORE_WORKERS = ("yes", "no", "unknown")
 
@@ -151,15 +156,20 @@ def worker_advice(plan: ReplayPlan, base: Replay | None = None) -> WorkerAdvice:
     .. [1] G. S. Fishman, *Discrete-Event Simulation*, Springer, 2001.
     .. [2] P. J. Denning and J. P. Buzen, ACM Computing Surveys, 1978.
     """
+    from .ceilings import _head  # the first batches of a plan (ceilings imports this module)
+
     base = replay(plan) if base is None else base
-    unlimited, unlimited_wall = _settled_count(plan)
-    walls = {plan.workers: base}
+    head = _head(plan, SEARCH_BATCHES)
+    unlimited = _settled_count(head)
+    walls = {plan.workers: replay(head) if head is not plan else base}
     for w in range(1, max(unlimited, 1) + 1):
         if w not in walls:
-            walls[w] = _with_workers(plan, w)
+            walls[w] = _with_workers(head, w)
     fastest = min(r.wall_s for r in walls.values())
     advised = min(w for w, r in walls.items() if r.wall_s <= fastest * (1 + SETTLE_TOLERANCE))
-    return _decide(plan, base, advised, walls[advised], unlimited, unlimited_wall)
+    rep = base if advised == plan.workers else _with_workers(plan, advised)
+    unlimited_wall = _with_workers(plan, unlimited, math.inf).wall_s
+    return _decide(plan, base, advised, rep, unlimited, unlimited_wall)
 
 
 def _prefetch_for(plan: ReplayPlan, workers: int) -> int:
@@ -173,21 +183,19 @@ def _with_workers(plan: ReplayPlan, workers: int, cores: float | None = None) ->
     return replay(plan, workers=workers, prefetch=_prefetch_for(plan, workers), cores=cores)
 
 
-def _settled_count(plan: ReplayPlan) -> tuple[int, float]:
-    """Step 2: fewest workers within SETTLE_TOLERANCE of 64 workers' replay at unlimited cores, and its wall."""
+def _settled_count(plan: ReplayPlan) -> int:
+    """Step 2: fewest workers within SETTLE_TOLERANCE of 64 workers' replay at unlimited cores."""
     best = _with_workers(plan, MAX_ADVISED_WORKERS, math.inf).wall_s
     if not math.isfinite(best):
-        return MAX_ADVISED_WORKERS, best
+        return MAX_ADVISED_WORKERS
     lo, hi = 1, MAX_ADVISED_WORKERS
-    walls = {MAX_ADVISED_WORKERS: best}
     while lo < hi:
         mid = (lo + hi) // 2
-        walls[mid] = _with_workers(plan, mid, math.inf).wall_s
-        if walls[mid] <= best * (1 + SETTLE_TOLERANCE):
+        if _with_workers(plan, mid, math.inf).wall_s <= best * (1 + SETTLE_TOLERANCE):
             hi = mid
         else:
             lo = mid + 1
-    return lo, walls[lo]
+    return lo
 
 
 def _decide(plan: ReplayPlan, base: Replay, advised: int, rep: Replay, unlimited: int,
