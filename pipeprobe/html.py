@@ -179,7 +179,8 @@ def ceilings_html(fig: Any, page: _Page) -> str:
 
     rows = [[_e(r.stage), _e(_pct(r.share)), _e(_x(r.amdahl_ceiling)), _e(_x(r.free_speedup)),
              _e(_x(r.speedup_2x)), _e(_x(r.speedup_4x)), _e(r.next_critical or "-")] for r in c.stages]
-    workers = f"More loader workers can help: {c.advice.more_workers} &mdash; {_e(c.advice.reason)}."
+    workers = (f"More loader workers can help: {c.advice.more_workers} &mdash; {_e(c.advice.reason)}."
+               if c.advice is not None else "")
     return (
         "<h2>What a faster stage would buy</h2>"
         "<p>Amdahl's law gives the ceiling 1 / (1 &minus; p) from the stage's share p of the critical path, "

@@ -381,7 +381,7 @@ def draw_ceilings(ceilings: Any, ax: Axes | None = None, stages: int = 8) -> Axe
     Examples
     --------
     >>> from pipeprobe.whatif.ceilings import Ceilings, StageCeiling
-    >>> c = Ceilings([StageCeiling("decode", 0.5, 2.0, 1.6, 1.3, 1.45, "step")], 1.0, 1.0, 2, 3, 0.6, 2, True, 1.2)
+    >>> c = Ceilings([StageCeiling("decode", 0.5, 2.0, 1.6, 1.3, 1.45, "step")], 1.0, 1.0, 2, None)
     >>> draw_ceilings(c).get_xlabel()
     'speed-up of the whole run (x, 1 = unchanged)'
 

@@ -86,8 +86,9 @@ class Ceilings:
     baseline_replay_wall_s, measured_wall_s : float
     workers : int
         Recorded loader workers (0: loading in the training loop).
-    advice : WorkerAdvice
-        The worker advice (:func:`~pipeprobe.whatif.advice.worker_advice`).
+    advice : WorkerAdvice or None
+        The worker advice (:func:`~pipeprobe.whatif.advice.worker_advice`;
+        :func:`ceilings` always gives one).
     stages_left_out : int
         Stages not replayed one by one (past ``max_stages``, or folded in
         the plan), to keep the computation short.
@@ -99,7 +100,7 @@ class Ceilings:
     baseline_replay_wall_s: float
     measured_wall_s: float
     workers: int
-    advice: WorkerAdvice
+    advice: WorkerAdvice | None
     stages_left_out: int = 0
     left_out_share: float = 0.0
 
@@ -258,7 +259,7 @@ def format_ceilings(c: Ceilings, width: int = 100) -> list[str]:
             f"{_x(r.speedup_2x):>7}  {_x(r.speedup_4x):>7}   {r.next_critical or '-'}"
         )
     a = c.advice
-    advice = f"Loader workers: more can help: {a.more_workers} - {a.reason}."
+    advice = f"Loader workers: more can help: {a.more_workers} - {a.reason}." if a is not None else ""
     note = (
         "Why they differ: the formula assumes the stage's share of the critical path shrinks and nothing "
         "else moves. The replay re-runs the pipeline: once a stage is cheaper another one (or the step) sets "
