@@ -86,7 +86,7 @@ def start_worker(init_ms: float, worker_id: int) -> None:
     time.sleep(init_ms / 1e3)
 
 
-def train(jpegs: list[bytes], out: Path, persistent: bool, epochs: int, init_ms: float) -> float:
+def train(jpegs: list[bytes], out: Path, persistent: bool, epochs: int, init_ms: float, workers: int = 2) -> float:
     """One recorded training run; returns its measured wall time."""
     torch.manual_seed(0)
     net = torch.nn.Sequential(
@@ -94,7 +94,7 @@ def train(jpegs: list[bytes], out: Path, persistent: bool, epochs: int, init_ms:
         torch.nn.Conv2d(8, 16, 3, padding=1), torch.nn.ReLU(), torch.nn.AdaptiveAvgPool2d(1),
         torch.nn.Flatten(), torch.nn.Linear(16, 4))
     opt = torch.optim.SGD(net.parameters(), lr=0.05)
-    loader = DataLoader(Parts(jpegs), batch_size=16, shuffle=True, num_workers=2,
+    loader = DataLoader(Parts(jpegs), batch_size=16, shuffle=True, num_workers=workers,
                         persistent_workers=persistent, worker_init_fn=functools.partial(start_worker, init_ms))
     with pipeprobe.Probe(out, report=False) as probe:
         for epoch in range(epochs):
@@ -106,12 +106,26 @@ def train(jpegs: list[bytes], out: Path, persistent: bool, epochs: int, init_ms:
     return pipeprobe.load(out).wall_s
 
 
+def check_advice(jpegs: list[bytes], root: Path, a: argparse.Namespace, kept_dir: Path) -> None:
+    """Rerun the kept-workers job with the count the advice gives for it, and compare the speed-ups."""
+    adv = worker_advice(build_plan(pipeprobe.load(kept_dir)))
+    if adv.workers == adv.recorded_workers:
+        print(f"        advice on the kept run: keep {adv.workers} workers ({adv.reason}); nothing to rerun")
+        return
+    wall_before = train(jpegs, root / "before", True, a.epochs, a.init_ms, adv.recorded_workers)
+    wall_after = train(jpegs, root / "after", True, a.epochs, a.init_ms, adv.workers)
+    print(f"        advice on the kept run: {adv.workers} workers, replayed {adv.speedup:.2f}x; rerun "
+          f"{adv.recorded_workers} -> {adv.workers} workers: {wall_before:.3f} s -> {wall_after:.3f} s, "
+          f"measured {wall_before / wall_after:.2f}x")
+
+
 def main() -> None:
     p = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     p.add_argument("--images", type=int, default=320)
     p.add_argument("--epochs", type=int, default=3)
     p.add_argument("--init-ms", type=float, default=300.0)
     p.add_argument("--pairs", type=int, default=1)
+    p.add_argument("--check-advice", action="store_true", help="rerun with the advised worker count")
     a = p.parse_args()
     torch.set_num_threads(1)
     jpegs = make_images(a.images)
@@ -134,6 +148,8 @@ def main() -> None:
             print(f"        gain: predicted {r.saved_s:.3f} s, measured {wall_new - wall_kept:.3f} s; "
                   f"epoch barrier {plan.epoch_barrier}, prefetch {plan.prefetch}, dispatch {plan.dispatch_s:.4f} s")
             print(f"        worker advice: more workers {adv.more_workers}: {adv.reason}")
+            if a.check_advice:
+                check_advice(jpegs, Path(tmp) / f"advice{k}", a, kept_dir)
     if len(rows) > 1:
         med = [statistics.median(c) for c in zip(*rows, strict=True)]
         print(f"medians: new {med[0]:.3f} s, kept {med[1]:.3f} s, predicted kept {med[2]:.3f} s")
