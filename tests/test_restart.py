@@ -93,3 +93,11 @@ class TestReport:
         assert (True, 0.016) == (data["worth_naming"], pytest.approx(data["restart_total_s"], abs=1e-9))
         acts = [a for a in report_dict(report)["actions"] if a["kind"] == "warmup"]
         assert 1 == len(acts) and "persistent_workers=True" in acts[0]["text"]
+
+
+class TestWhatif:
+    def test_whatif_persistent_workers(self, restarting_run):
+        """pipeprobe.whatif(run, persistent_workers=True) predicts the kept run's 39 ms (by hand, above)."""
+        p = pipeprobe.whatif(restarting_run, persistent_workers=True)
+        assert 0.039 == pytest.approx(p.predicted_wall_s, abs=1e-6)
+        assert any("persistent workers" in n for n in p.notes)

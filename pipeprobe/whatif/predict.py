@@ -15,7 +15,7 @@ from __future__ import annotations
 import math
 import os
 import textwrap
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 from typing import TYPE_CHECKING, Any, Iterable, Mapping
 
 from .._jsonnum import json_ready
@@ -195,6 +195,7 @@ def whatif(
     recorded_workers: int | None = None,
     recorded_prefetch: int | None = None,
     recorded_policy: str | None = None,
+    persistent_workers: bool = False,
 ) -> Prediction:
     """Predict the run's wall time under a changed configuration.
 
@@ -223,6 +224,11 @@ def whatif(
     recorded_workers, recorded_prefetch, recorded_policy : optional
         The recorded run's loader settings when you know them (prefetch is
         otherwise inferred as the smallest depth the trace allows).
+    persistent_workers : bool, default False
+        Keep the loader workers across epochs: the recorded waits for new
+        workers at each later epoch are replayed away
+        (:func:`~pipeprobe.whatif.restart.with_persistent_workers`); the
+        note says so.
 
     Returns
     -------
@@ -254,7 +260,12 @@ def whatif(
     scenario = Scenario(faster=faster or {}, offload=offload or {}, workers=workers, prefetch=prefetch, cores=cores,
                         policy=policy, in_order=in_order)
     plan = _plan_of(run, scenario.stages, recorded_workers, recorded_prefetch, recorded_policy)
-    return predict(plan, replay(plan), scenario)
+    if not persistent_workers:
+        return predict(plan, replay(plan), scenario)
+    from .restart import with_persistent_workers
+
+    p = predict(with_persistent_workers(plan), replay(plan), scenario)
+    return replace(p, notes=[*p.notes, "persistent workers: no wait for new workers at later epochs"])
 
 
 def predict(plan: ReplayPlan, base: Replay, scenario: Scenario) -> Prediction:
