@@ -101,3 +101,12 @@ class TestWhatif:
         p = pipeprobe.whatif(restarting_run, persistent_workers=True)
         assert 0.039 == pytest.approx(p.predicted_wall_s, abs=1e-6)
         assert any("persistent workers" in n for n in p.notes)
+
+    def test_cli_persistent_workers(self, restarting_run, capsys):
+        """`pipeprobe whatif RUN --persistent-workers --json` predicts the kept run's 39 ms (by hand, above)."""
+        import json
+
+        from pipeprobe.cli import main
+
+        assert 0 == main(["whatif", str(restarting_run), "--persistent-workers", "--json"])
+        assert 0.039 == pytest.approx(json.loads(capsys.readouterr().out)["predicted_wall_s"], abs=1e-6)

@@ -15,7 +15,7 @@ from __future__ import annotations
 import math
 import os
 import textwrap
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, dataclass, field
 from typing import TYPE_CHECKING, Any, Iterable, Mapping
 
 from .._jsonnum import json_ready
@@ -260,21 +260,23 @@ def whatif(
     scenario = Scenario(faster=faster or {}, offload=offload or {}, workers=workers, prefetch=prefetch, cores=cores,
                         policy=policy, in_order=in_order)
     plan = _plan_of(run, scenario.stages, recorded_workers, recorded_prefetch, recorded_policy)
-    if not persistent_workers:
-        return predict(plan, replay(plan), scenario)
-    from .restart import with_persistent_workers
-
-    p = predict(with_persistent_workers(plan), replay(plan), scenario)
-    return replace(p, notes=[*p.notes, "persistent workers: no wait for new workers at later epochs"])
+    return predict(plan, replay(plan), scenario, persistent_workers=persistent_workers)
 
 
-def predict(plan: ReplayPlan, base: Replay, scenario: Scenario) -> Prediction:
+def predict(plan: ReplayPlan, base: Replay, scenario: Scenario, *, persistent_workers: bool = False) -> Prediction:
     """The prediction of ``scenario`` for ``plan``, whose unchanged replay is ``base``.
 
     The predicted wall time is the measured one times the ratio of the two
     replays, so a small bias of the model in the recorded configuration
-    cancels out.
+    cancels out. ``persistent_workers``: replay with the loader workers kept
+    across epochs (:func:`~pipeprobe.whatif.restart.with_persistent_workers`).
     """
+    notes = list(plan.notes)
+    if persistent_workers:
+        from .restart import with_persistent_workers
+
+        plan = with_persistent_workers(plan)
+        notes.append("persistent workers: no wait for new workers at later epochs")
     rep = replay(plan, scenario.check_stages(plan))
     measured = plan.measured_wall_s
     if base.wall_s > 0:
@@ -292,7 +294,7 @@ def predict(plan: ReplayPlan, base: Replay, scenario: Scenario) -> Prediction:
         predicted_stall_fraction=rep.stall_fraction,
         critical_path=rep.critical_path_shares,
         recorded=_recorded(plan),
-        notes=list(plan.notes),
+        notes=notes,
         model_check=check_model(plan, base),
         replay=rep,
     )
