@@ -93,6 +93,9 @@ class TestReport:
         assert (True, 0.016) == (data["worth_naming"], pytest.approx(data["restart_total_s"], abs=1e-9))
         acts = [a for a in report_dict(report)["actions"] if a["kind"] == "warmup"]
         assert 1 == len(acts) and "persistent_workers=True" in acts[0]["text"]
+        from pipeprobe.html import render_report
+
+        assert "Worker restarts" in render_report(report)
 
 
 class TestWhatif:
