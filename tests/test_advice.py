@@ -54,6 +54,17 @@ class TestDecision:
         assert ("no", 1) == (a.more_workers, a.workers)
         assert "Fewer workers" in advised_actions([], a)[0].text
 
+    def test_a_run_that_barely_waits_gets_no(self):
+        """Workers only remove waiting: a run that waited 2 % of its time cannot get 5 % faster (common
+        practice), whatever the replay of it says; the advice then names the measured 2 %."""
+        from dataclasses import replace
+
+        plan = plan_from_durations([0.03] * 100, [0.01] * 100, workers=1, prefetch=2, cores=8)
+        plan = replace(plan, measured_wall_s=3.0, measured_stall_s=0.06)
+        a = worker_advice(plan)
+        assert ("no", 1) == (a.more_workers, a.workers)
+        assert "2.0 %" in a.reason and "Do not add workers" not in "".join(x.text for x in advised_actions([], a))
+
     @settings(max_examples=25, deadline=None)
     @given(task_ms=st.lists(st.integers(1, 40), min_size=4, max_size=30), step_ms=st.integers(1, 20),
            workers=st.integers(0, 4), cores=st.integers(1, 4), cpu=st.booleans())

@@ -81,6 +81,10 @@ class WorkerAdvice:
     stall_now, stall_left : float
         Replayed stall fraction of the recorded configuration and with
         ``workers`` (``stall_left <= stall_now`` whenever the answer is "yes").
+    measured_stall : float
+        Stall fraction of the recorded run (NaN when not measured). Workers
+        can save at most the time the loop waited, so the answer is "yes"
+        only when it is at least ``1 - 1 / PACE_SPEEDUP`` (4.8 %).
     speedup : float
         Replayed wall time of the recorded configuration over that with ``workers``.
     seconds_saved : float
@@ -110,6 +114,7 @@ class WorkerAdvice:
     prefetch: int
     stall_now: float
     stall_left: float
+    measured_stall: float
     speedup: float
     seconds_saved: float
     cores: float
@@ -203,7 +208,10 @@ def _decide(plan: ReplayPlan, base: Replay, advised: int, rep: Replay, unlimited
     """Step 4: the answer, its numbers and its sentence, consistent by construction."""
     speedup = base.wall_s / rep.wall_s if rep.wall_s > 0 else 1.0
     unlimited_speedup = base.wall_s / unlimited_wall if unlimited_wall > 0 else 1.0
-    helps = advised > plan.workers and speedup >= PACE_SPEEDUP and rep.stall_fraction < base.stall_fraction
+    measured_stall = plan.measured_stall_s / plan.measured_wall_s if plan.measured_wall_s > 0 else math.nan
+    waits_enough = not measured_stall < 1.0 - 1.0 / PACE_SPEEDUP  # NaN (not measured): the replay decides
+    helps = (advised > plan.workers and speedup >= PACE_SPEEDUP and rep.stall_fraction < base.stall_fraction
+             and waits_enough)
     if not helps and advised > plan.workers:
         advised, rep, speedup = plan.workers, base, 1.0
     cpu_per_batch = float(plan.loader.cpu_s.sum() + plan.consumer.cpu_s.sum()) / max(1, plan.batches)
@@ -212,7 +220,8 @@ def _decide(plan: ReplayPlan, base: Replay, advised: int, rep: Replay, unlimited
     advice = WorkerAdvice(
         more_workers="yes" if helps else "no", recorded_workers=plan.workers, workers=advised,
         prefetch=_prefetch_for(plan, advised) if advised != plan.workers else plan.prefetch,
-        stall_now=base.stall_fraction, stall_left=rep.stall_fraction, speedup=speedup,
+        stall_now=base.stall_fraction, stall_left=rep.stall_fraction, measured_stall=measured_stall,
+        speedup=speedup,
         seconds_saved=measured * (1.0 - 1.0 / speedup) if speedup > 0 else 0.0,
         cores=float(base.config["cores"]), machine_cores=plan.cores, cores_limit=unlimited_speedup >= speedup * PACE_SPEEDUP,
         unlimited_workers=unlimited, unlimited_speedup=unlimited_speedup,
@@ -241,17 +250,18 @@ def _reason(a: WorkerAdvice) -> str:
                   f"{a.unlimited_speedup:.2f}x faster than recorded")
     if a.more_workers == "yes":
         text = (f"{_workers(a.workers)} (prefetch {a.prefetch}) replay {a.speedup:.2f}x faster than the recorded "
-                f"{_workers(a.recorded_workers)}, stall {_pct(a.stall_now)} -> {_pct(a.stall_left)}")
+                f"{_workers(a.recorded_workers)}, replayed stall {_pct(a.stall_now)} -> {_pct(a.stall_left)}")
         return text + (more_cores + f": {_cores(a)} hold it back" if a.cores_limit else "")
     if a.workers < a.recorded_workers:
         return (f"{_workers(a.workers)} replay as fast as the recorded {a.recorded_workers} "
                 f"({a.speedup:.2f}x); more only share {_cores(a)}")
+    if a.measured_stall < 1.0 - 1.0 / PACE_SPEEDUP:
+        return (f"the loop waited for batches {_pct(a.measured_stall)} of the time, so no worker count can make "
+                f"it {_pct(PACE_SPEEDUP - 1)} faster")
     if a.cores_limit:
         return (f"more workers only share {_cores(a)} (no count replays "
                 f"{_pct(PACE_SPEEDUP - 1)} faster; it keeps about {a.cores_busy:.1f} cores busy once the input "
                 f"is hidden){more_cores}")
-    if a.stall_now < PACE_SPEEDUP - 1:
-        return f"the loop waits only {_pct(a.stall_now)} of the time (replayed); no worker count gains 5 %"
     return (f"no worker count replays {_pct(PACE_SPEEDUP - 1)} faster, even with unlimited cores: the stall left "
             f"({_pct(a.stall_now)}) is the step's pace and each epoch's first batches, which more workers "
             "do not shorten")
@@ -274,8 +284,8 @@ def advised_actions(actions: Sequence[Action], advice: WorkerAdvice | None) -> t
         out.append(Action("workers", f"Add loader workers: {advice.reason}", advice.seconds_saved))
     elif advice.workers < advice.recorded_workers:
         out.append(Action("workers", f"Fewer workers do as well: {advice.reason}", 0.0))
-    elif advice.stall_now >= PACE_SPEEDUP - 1:
-        out.append(Action("workers", f"Do not add workers: {advice.reason}", 0.0))
+    elif (advice.stall_now if math.isnan(advice.measured_stall) else advice.measured_stall) >= 1 - 1 / PACE_SPEEDUP:
+        out.append(Action("workers", f"Do not add workers: {advice.reason}", 0.0))  # the loop waits, yet no count helps
     out.sort(key=lambda a: -a.seconds)
     return tuple(out)
 
