@@ -270,8 +270,9 @@ JSON_SCHEMA: dict[str, str] = {
     "actions": "up to 3 of {kind, text, seconds}: suggested changes, largest time at stake first",
     "ceilings": "{stages: list of {stage, share, amdahl_ceiling, free_speedup, speedup_2x, speedup_4x, "
                 "next_critical}, baseline_replay_wall_s, measured_wall_s, workers, advice: {more_workers, "
-                "recorded_workers, workers, prefetch, stall_now, stall_left, speedup, seconds_saved, cores, "
-                "cores_limit, unlimited_workers, unlimited_speedup, cores_busy, reason}}; null without batches",
+                "recorded_workers, workers, prefetch, stall_now, stall_left, measured_stall, speedup, seconds_saved, "
+                "cores, machine_cores, cores_limit, unlimited_workers, unlimited_speedup, cores_busy, reason}}; "
+                "null without batches",
     "worker_restarts": "{restarts, epochs, first_start_s, restart_s: per later epoch, restart_total_s, "
                        "persistent_wall_s, saved_s, measured_wall_s, worth_naming}: new loader workers at each "
                        "epoch, and the replay with them kept; null without a replay",
