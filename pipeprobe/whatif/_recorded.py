@@ -177,8 +177,6 @@ class _LoaderTimes:
     latency_s: float = 0.0
     handoff_s: float = 0.0
     epoch_dispatch_s: np.ndarray = field(default_factory=lambda: np.zeros(0))
-    #: request-to-start delay of idle workers outside epoch starts (what kept workers take at an epoch start)
-    steady_dispatch_s: float = 0.0
 
 
 def consumer_batches(run: Run, rank: int | None) -> _Batches:
@@ -444,8 +442,6 @@ def loader_times(batches: _Batches, loader: _LoaderTasks, by_worker: _BatchWorke
     d_start = pd.Series(np.where(at_start, np.maximum(0.0, delay), np.nan))
     by_epoch = d_start.groupby(np.cumsum(batches.epoch_first) - 1).min()
     epoch_dispatch = by_epoch.reindex(range(epochs)).fillna(dispatch).to_numpy(float)
-    steady = idle & ~at_start
-    steady_dispatch = float(np.mean(np.maximum(0.0, delay[steady]))) if steady.any() else 0.0
     # arrival of a finished batch at a waiting consumer
     ready, wait0 = batches.ready_s, batches.wait_start_s
     prev_ready = np.r_[-np.inf, ready[:-1]]
@@ -454,7 +450,7 @@ def loader_times(batches: _Batches, loader: _LoaderTasks, by_worker: _BatchWorke
     early = last + latency < wait0
     # consumer cost of taking a batch that was already there (0 when no batch ever was)
     handoff = float(np.median(batches.wait_s[early])) if early.any() else 0.0
-    return _LoaderTimes(dispatch, gap, latency, handoff, epoch_dispatch, steady_dispatch)
+    return _LoaderTimes(dispatch, gap, latency, handoff, epoch_dispatch)
 
 
 def _request_times(batches: _Batches, config: _LoaderConfig) -> np.ndarray:

@@ -139,9 +139,6 @@ class ReplayPlan:
     folded_stages : tuple of str
         Stage names replayed together as ``"(other stages)"`` (a side had
         more than :data:`~pipeprobe.whatif.limits.MAX_PLAN_STAGES` of them).
-    steady_dispatch_s : float
-        Request-to-start delay of an idle worker for requests made outside
-        an epoch start (no worker start-up in it; :mod:`pipeprobe.whatif.restart`).
     """
 
     batch_id: np.ndarray
@@ -167,7 +164,6 @@ class ReplayPlan:
     background_cores: float = 0.0
     prefetch_inferred: bool = False
     folded_stages: tuple[str, ...] = ()
-    steady_dispatch_s: float = 0.0
 
     @property
     def batches(self) -> int:
@@ -271,7 +267,6 @@ def build_plan(
                *config.notes],
         background_cores=background, prefetch_inferred=config.prefetch_inferred,
         folded_stages=loader.seconds.folded + consumer.seconds.folded,
-        steady_dispatch_s=times.steady_dispatch_s,
     )
 
 

@@ -11,17 +11,18 @@ run without it. Its steps:
    of this one, beyond the loop's ordinary time between two batches (the
    loader stops the old workers and starts the new ones there, when the
    loop calls ``iter()``); and the time from that ask to the epoch's first
-   loader span (the plan's ``epoch_dispatch_s``) beyond the delay an idle
-   running worker takes to pick up a request outside an epoch start
-   (``steady_dispatch_s``): the new workers' own start-up. (Work the loop does between epochs outside any
+   loader span (the plan's ``epoch_dispatch_s``): the new workers' own
+   start-up. Kept workers get an epoch's first requests when the loop calls
+   ``iter()``, just before it asks for the first batch, so they start at
+   once (in the recordings we made, within a millisecond of the ask or before it). (Work the loop does between epochs outside any
    stage, say an unrecorded validation pass, counts in the first; time it
    with ``pipeprobe.stage`` to keep it apart);
 2. whether the workers did restart (a later epoch's loader spans ran in
    processes no earlier epoch used);
 3. a replay of the run with persistent workers (:func:`with_persistent_workers`):
    the epochs after the first lose both waits (the loop's time between
-   epochs is its ordinary time between batches, and their tasks start after
-   ``steady_dispatch_s``); everything else, the epoch barrier included (a new
+   epochs is its ordinary time between batches, and their first tasks start
+   when the loop asks); everything else, the epoch barrier included (a new
    epoch's batches are still asked for only when the loop starts it), is
    as recorded. The saving is scaled by the measured wall time over the
    replay of the recorded run, as every prediction is.
@@ -106,7 +107,7 @@ class WorkerRestarts:
 
 
 def with_persistent_workers(plan: ReplayPlan) -> ReplayPlan:
-    """``plan`` with workers kept across epochs: no wait between epochs, tasks start after ``steady_dispatch_s``.
+    """``plan`` with workers kept across epochs: no extra wait between epochs, first tasks start when asked for.
 
     Examples
     --------
@@ -119,7 +120,7 @@ def with_persistent_workers(plan: ReplayPlan) -> ReplayPlan:
     [3.0, 0.0]
     """
     ed = np.array(plan.epoch_dispatch_s, float, copy=True)
-    ed[1:] = np.minimum(ed[1:], plan.steady_dispatch_s)
+    ed[1:] = 0.0
     last, extra, _ = _between_epochs(plan)
     c = plan.consumer
     if not len(last) or CONSUMER_OVERHEAD not in c.names:
@@ -188,7 +189,7 @@ def worker_restarts(plan: ReplayPlan, run: Run | None = None, base: Replay | Non
     """
     base = replay(plan) if base is None else base
     ed = np.asarray(plan.epoch_dispatch_s, float)
-    extra = np.maximum(0.0, ed[1:] - plan.steady_dispatch_s) if plan.workers else np.zeros(0)
+    extra = np.maximum(0.0, ed[1:]) if plan.workers else np.zeros(0)
     _, between, _ = _between_epochs(plan)
     between = between if plan.workers and len(between) == len(extra) else np.zeros(len(extra))
     restarts = _restarted(run) if run is not None else bool(plan.workers and (extra > 0).any())
