@@ -113,3 +113,12 @@ class TestWhatif:
 
         assert 0 == main(["whatif", str(restarting_run), "--persistent-workers", "--json"])
         assert 0.039 == pytest.approx(json.loads(capsys.readouterr().out)["predicted_wall_s"], abs=1e-6)
+
+    def test_gap_action_names_the_workers_starting(self, restarting_run):
+        """No span covers a worker's start-up: the unrecorded-gap action says how much of it is workers starting
+        (3 ms at each of 3 epoch starts plus 5 ms between epochs twice = 19 ms, by hand) and keeps the rest."""
+        a = pipeprobe.analyze(restarting_run)
+        before = next(x for x in a.actions if x.kind == "gap")
+        after = [x for x in build_report(a).figures("actions").actions if x.kind == "gap"]
+        assert ["loader workers starting"] == [x.text.split("s is ")[-1].split(" at each")[0] for x in after]
+        assert max(0.0, before.seconds - 0.019) == pytest.approx(after[0].seconds, abs=1e-9)

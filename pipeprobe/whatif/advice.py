@@ -315,8 +315,24 @@ def advised_analysis(analysis: Analysis, advice: WorkerAdvice | None,
     stages = replace(analysis.stages, more_workers=advice.more_workers, more_workers_reason=advice.reason)
     actions = advised_actions(analysis.actions, advice)
     if restarts is not None:
-        actions = tuple(a for a in actions if a.kind != "warmup")
-        if restarts.worth_naming:
-            actions = tuple(sorted(actions + (Action("warmup", restart_action_text(restarts), restarts.saved_s),),
-                                   key=lambda a: -a.seconds))
+        actions = _restart_actions(actions, restarts)
     return replace(analysis, stages=stages, actions=actions)
+
+
+def _restart_actions(actions: tuple[Action, ...], restarts: WorkerRestarts) -> tuple[Action, ...]:
+    """The warm-up action from the restart replay; the unrecorded-gap action says how much of it is workers starting.
+
+    No span covers a worker's start-up, so the critical path counts the
+    waits for new workers as time when nothing recorded ran: the gap action
+    names them and keeps only the rest at stake.
+    """
+    out = [a for a in actions if a.kind != "warmup"]
+    if restarts.worth_naming:
+        out.append(Action("warmup", restart_action_text(restarts), restarts.saved_s))
+    starting = restarts.first_start_s + restarts.restart_total_s if restarts.restarts else 0.0
+    for i, a in enumerate(out):
+        if a.kind == "gap" and starting > 0.0 and "nothing recorded ran" in a.text:
+            out[i] = Action("gap", f"{a.text} (of it, {min(starting, a.seconds):.3f} s is loader workers starting "
+                                   "at each epoch's start)", max(0.0, a.seconds - starting))
+    out.sort(key=lambda a: -a.seconds)
+    return tuple(out)
