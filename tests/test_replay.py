@@ -421,3 +421,11 @@ class TestWorkersAddedToAnInProcessLoader:
 
         d = write_example_run(Path(__import__("tempfile").mkdtemp()), batches=4, decode_ms=6, step_ms=2)
         assert 0.026 == round(replay(build_plan(pipeprobe.load(d)), workers=2, prefetch=1).wall_s, 9)
+
+    def test_the_prediction_says_which_prefetch_it_took(self):
+        """A prediction that added workers to an in-loop run notes the batches in flight it assumed (4 for 2)."""
+        from pipeprobe._example_runs import write_example_run
+
+        d = write_example_run(Path(__import__("tempfile").mkdtemp()), batches=4, decode_ms=6, step_ms=2)
+        notes = pipeprobe.whatif(d, workers=2).notes
+        assert 1 == sum("prefetch: 4 batches in flight, 2 per worker" in n for n in notes)

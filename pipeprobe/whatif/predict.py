@@ -21,7 +21,7 @@ from typing import TYPE_CHECKING, Any, Iterable, Mapping
 from .._jsonnum import json_ready
 from .engine import Replay, replay
 from .plan import ReplayPlan, build_plan
-from .scenario import Scenario
+from .scenario import PREFETCH_PER_WORKER, Scenario
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..load import Run
@@ -278,6 +278,9 @@ def predict(plan: ReplayPlan, base: Replay, scenario: Scenario, *, persistent_wo
         plan = with_persistent_workers(plan)
         notes.append("persistent workers: no wait for new workers at later epochs")
     rep = replay(plan, scenario.check_stages(plan))
+    if plan.workers == 0 and scenario.prefetch is None and rep.config["workers"] > 0:
+        notes.append(f"prefetch: {rep.config['prefetch']} batches in flight, {PREFETCH_PER_WORKER} per worker "
+                     "(torch's default; the recorded run loaded in the training loop); set it with prefetch=")
     measured = plan.measured_wall_s
     if base.wall_s > 0:
         predicted = measured * rep.wall_s / base.wall_s if measured > 0 else rep.wall_s
