@@ -276,6 +276,10 @@ def advised_actions(actions: Sequence[Action], advice: WorkerAdvice | None) -> t
     >>> plan = plan_from_durations([0.03] * 100, [0.01] * 100, workers=1, prefetch=2, cores=8)
     >>> [a.kind for a in advised_actions([Action("workers", "old", 9.0)], worker_advice(plan))]
     ['workers']
+
+    References
+    ----------
+    .. [1] G. M. Amdahl, AFIPS 1967 (the time at stake: what the change can save of the whole run).
     """
     if advice is None:
         return tuple(actions)
@@ -309,6 +313,10 @@ def advised_analysis(analysis: Analysis, advice: WorkerAdvice | None,
     >>> advice = worker_advice(build_plan(a.run))
     >>> advised_analysis(a, advice).stages.more_workers, advice.workers
     ('yes', 3)
+
+    References
+    ----------
+    .. [1] G. S. Fishman, *Discrete-Event Simulation*, Springer, 2001 (the replays the advice rests on).
     """
     if advice is None:
         return analysis

@@ -118,6 +118,10 @@ def with_persistent_workers(plan: ReplayPlan) -> ReplayPlan:
     >>> plan = replace(plan, epoch_dispatch_s=np.array([3.0, 3.0]))
     >>> with_persistent_workers(plan).epoch_dispatch_s.tolist()
     [3.0, 0.0]
+
+    References
+    ----------
+    .. [1] G. S. Fishman, *Discrete-Event Simulation*, Springer, 2001 (a scenario as a changed model input).
     """
     ed = np.array(plan.epoch_dispatch_s, float, copy=True)
     ed[1:] = 0.0
