@@ -232,17 +232,19 @@ def format_restarts(r: WorkerRestarts) -> list[str]:
     >>> for line in format_restarts(r):
     ...     print(line)
     worker restarts  each of the 3 epochs started new loader workers
-      the loop waited 1.000 s for them after the first epoch (per epoch, s: 0.500, 0.500)
-      keep them (DataLoader(persistent_workers=True)): 10.000 s -> 9.100 s predicted, 0.900 s saved
+      the loop waited 1.000 s for them after the first epoch
+      per later epoch (s): 0.500, 0.500
+      keep them, DataLoader(persistent_workers=True): 10.000 s -> 9.100 s predicted, 0.900 s saved
     """
     if not r.worth_naming:
         return []
-    each = ", ".join(f"{s:.3f}" for s in r.restart_s[:5]) + (", ..." if len(r.restart_s) > 5 else "")
+    each = ", ".join(f"{s:.3f}" for s in r.restart_s[:8]) + (", ..." if len(r.restart_s) > 8 else "")
     return [
         f"worker restarts  each of the {r.epochs} epochs started new loader workers",
-        f"  the loop waited {r.restart_total_s:.3f} s for them after the first epoch (per epoch, s: {each})",
-        f"  keep them (DataLoader(persistent_workers=True)): {r.measured_wall_s:.3f} s -> "
-        f"{r.persistent_wall_s:.3f} s predicted, {r.saved_s:.3f} s saved",
+        f"  the loop waited {r.restart_total_s:.3f} s for them after the first epoch",
+        f"  per later epoch (s): {each}",
+        "  keep them, DataLoader(persistent_workers=True): "
+        f"{r.measured_wall_s:.3f} s -> {r.persistent_wall_s:.3f} s predicted, {r.saved_s:.3f} s saved",
     ]
 
 
