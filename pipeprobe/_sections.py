@@ -318,16 +318,19 @@ def cost_data(c: Any) -> dict[str, Any]:
 _NEXT_PATH_MAX = 40
 
 
-def next_text(a: Analysis) -> list[str]:
+def next_text(a: Analysis, advice: Any = None) -> list[str]:
+    """The commands to try next; the worker line is the worker advice's count (none when it says keep them)."""
     if not a.batches:
         return []
     run = printable(a.run.run_dir)
     run = run if len(run) <= _NEXT_PATH_MAX else "RUN_DIR"  # a command cut at 100 columns would mislead
     top = next((str(r.label) for r in a.critical.shares.itertuples() if r.side == "input" and r.kind == "stage"),
                "step")
+    workers = ([f"  pipeprobe whatif {run} --workers {advice.workers} --prefetch {advice.prefetch}   # the worker "
+                "advice"] if advice is not None and advice.workers != advice.recorded_workers else [])
     return ["next",
             f"  pipeprobe whatif {run} --faster {printable(top)}=2   # what a faster stage would buy",
-            f"  pipeprobe whatif {run} --workers 4",
+            *workers,
             f"  pipeprobe report {run} --html report.html   # charts and the timeline",
             "  notebooks/walkthrough.ipynb   # the same steps in a notebook"]
 

@@ -179,13 +179,8 @@ def ceilings_html(fig: Any, page: _Page) -> str:
 
     rows = [[_e(r.stage), _e(_pct(r.share)), _e(_x(r.amdahl_ceiling)), _e(_x(r.free_speedup)),
              _e(_x(r.speedup_2x)), _e(_x(r.speedup_4x)), _e(r.next_critical or "-")] for r in c.stages]
-    if c.workers_to_hide is None:
-        workers = "No loader worker count up to 64 hides the input behind the step in the replay."
-    else:
-        where = ("this machine has the cores for it" if c.has_cores
-                 else f"this machine's {c.cores} cores are not enough for it")
-        workers = (f"Loader workers needed to hide the input behind the step: {c.workers_to_hide} "
-                   f"(recorded: {c.workers}); {where}.")
+    workers = (f"More loader workers can help: {c.advice.more_workers} &mdash; {_e(c.advice.reason)}."
+               if c.advice is not None else "")
     return (
         "<h2>What a faster stage would buy</h2>"
         "<p>Amdahl's law gives the ceiling 1 / (1 &minus; p) from the stage's share p of the critical path, "
@@ -193,7 +188,7 @@ def ceilings_html(fig: Any, page: _Page) -> str:
         "faster, so it sees the next stage take over and the cores the workers share.</p>"
         + _table([("stage", False), ("share", True), ("Amdahl ceiling", True), ("replay free", True),
                   ("replay 2x", True), ("replay 4x", True), ("then critical", False)], rows)
-        + f"<p>{_e(workers)}</p>"
+        + f"<p>{workers}</p>"
         + _img(_png(plot.draw_ceilings(c).figure, page.dpi), "speed-up ceilings per stage")
     )
 
@@ -235,6 +230,16 @@ def critical_html(a: Any, page: _Page) -> str:
         out += _table([("thread", False), ("time", True), ("share", True)],
                       ([_e(x.lane), _e(f"{x.seconds:.3f} s"), _e(_pct(x.share))] for x in cp.lanes.itertuples()))
     return out
+
+
+def restarts_html(r: Any, page: _Page) -> str:
+    """The restart cost of new loader workers at each epoch (shown only when worth naming)."""
+    if r is None or not r.worth_naming:
+        return ""
+    from .whatif.restart import format_restarts
+
+    lines = format_restarts(r)
+    return "<h2>Worker restarts</h2>" + "".join(f"<p>{_e(x.strip())}</p>" for x in lines)
 
 
 def stages_html(a: Any, page: _Page) -> str:

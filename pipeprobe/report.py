@@ -30,9 +30,11 @@ from .pace import Verdict, judge
 
 # isort: split
 # -- the what-if layer (the replay plan and the ceilings); kept together for the move to pipeprobe/whatif/
+from .whatif.advice import WorkerAdvice, advised_analysis, worker_advice
 from .whatif.ceilings import REPORT_MAX_BATCHES, Ceilings, ceilings, format_ceilings
 from .whatif.ceilings import _head as _first_batches
 from .whatif.plan import build_plan
+from .whatif.restart import WorkerRestarts, format_restarts, worker_restarts
 
 __all__ = [
     "Section",
@@ -96,6 +98,10 @@ class Report:
         self.analysis = analysis
         self._plan: Any = None
         self._plan_made = False
+        self._advice: WorkerAdvice | None = None
+        self._advice_made = False
+        self._restarts: WorkerRestarts | None = None
+        self._restarts_made = False
         self.parts: list[tuple[Section, Any]] = []
         for sec in list(SECTIONS if sections is None else sections):
             self.parts.append((sec, sec.compute(self) if sec.compute is not None else analysis))
@@ -111,6 +117,30 @@ class Report:
                 except PipeprobeError:
                     self._plan = None
         return self._plan
+
+    @property
+    def worker_advice(self) -> WorkerAdvice | None:
+        """The run's one worker advice (:func:`~pipeprobe.whatif.advice.worker_advice`; None: no replay)."""
+        if not self._advice_made:
+            self._advice_made = True
+            if self.replay_plan is not None:
+                try:
+                    self._advice = worker_advice(self.replay_plan)
+                except PipeprobeError:
+                    self._advice = None
+        return self._advice
+
+    @property
+    def worker_restarts(self) -> WorkerRestarts | None:
+        """What restarting the loader workers at each epoch cost (:func:`~pipeprobe.whatif.restart.worker_restarts`)."""
+        if not self._restarts_made:
+            self._restarts_made = True
+            if self.replay_plan is not None:
+                try:
+                    self._restarts = worker_restarts(self.replay_plan, self.analysis.run)
+                except PipeprobeError:
+                    self._restarts = None
+        return self._restarts
 
     def figures(self, name: str) -> Any:
         """The figures of the section called ``name``."""
@@ -159,7 +189,7 @@ def _ceilings_compute(report: Report) -> Ceilings | str | None:
     if report.replay_plan is None:
         return "no replay: the run's batches could not be laid out for the replay"
     try:
-        return ceilings(report.replay_plan, analysis=report.analysis)
+        return ceilings(report.replay_plan, analysis=report.analysis, advice=report.worker_advice)
     except PipeprobeError as exc:
         return f"no replay: {exc}"
 
@@ -179,6 +209,15 @@ def _ceilings_text(fig: tuple[Ceilings | str | None, Analysis]) -> list[str]:
 def _ceilings_data(fig: tuple[Ceilings | str | None, Analysis]) -> dict[str, Any]:
     c = fig[0]
     return {"ceilings": asdict(c) if isinstance(c, Ceilings) else None}
+
+
+def _advised(report: Report) -> Analysis:
+    """The analysis with its worker action and CPU answer read from the report's one worker advice."""
+    return advised_analysis(report.analysis, report.worker_advice, report.worker_restarts)
+
+
+def _restarts_data(r: WorkerRestarts | None) -> dict[str, Any]:
+    return {"worker_restarts": r.to_dict() if r is not None else None}
 
 
 def _no_html(fig: Any, page: Any) -> str:
@@ -202,15 +241,17 @@ SECTIONS: list[Section] = [
     Section("recording window", part.window_text, part.window_data),
     Section("verdict", lambda f: part.verdict_text(*f), lambda f: part.verdict_data(*f), _page("verdict_html"),
             _with_analysis(_verdict_compute)),
-    Section("actions", part.action_text, part.action_data, _page("actions_html")),
+    Section("actions", part.action_text, part.action_data, _page("actions_html"), _advised),
     Section("ceilings", _ceilings_text, _ceilings_data, _page("ceilings_html"), _with_analysis(_ceilings_compute)),
     Section("stalls", part.stall_text, part.stall_data, _page("stalls_html")),
+    Section("worker restarts", lambda r: format_restarts(r) if r else [], _restarts_data, _page("restarts_html"),
+            lambda report: report.worker_restarts),
     Section("critical path", part.critical_text, part.critical_data, _page("critical_html")),
-    Section("stages", part.stage_text, part.stage_data, _page("stages_html")),
+    Section("stages", part.stage_text, part.stage_data, _page("stages_html"), _advised),
     Section("ranks", part.ranks_text, part.ranks_data, _page("ranks_html"), part.ranks_compute),
     Section("timeline", lambda a: [], None, _page("timeline_html")),
     Section("recording cost", part.cost_text, part.cost_data, _page("cost_html"), part.cost_compute),
-    Section("next", part.next_text, None, _no_html),
+    Section("next", lambda f: part.next_text(*f), None, _no_html, lambda r: (r.analysis, r.worker_advice)),
 ]
 
 #: Keys of the JSON report (``pipeprobe report RUN --json``), with their meaning.
@@ -229,8 +270,13 @@ JSON_SCHEMA: dict[str, str] = {
                 "replayed_batches, threshold_speedup}: what freeing each side would buy",
     "actions": "up to 3 of {kind, text, seconds}: suggested changes, largest time at stake first",
     "ceilings": "{stages: list of {stage, share, amdahl_ceiling, free_speedup, speedup_2x, speedup_4x, "
-                "next_critical}, baseline_replay_wall_s, measured_wall_s, workers, workers_to_hide, "
-                "hidden_wall_s, cores, has_cores, cores_needed, stall_left}; null without batches",
+                "next_critical}, baseline_replay_wall_s, measured_wall_s, workers, advice: {more_workers, "
+                "recorded_workers, workers, prefetch, stall_now, stall_left, measured_stall, speedup, seconds_saved, "
+                "cores, machine_cores, cores_limit, unlimited_workers, unlimited_speedup, cores_busy, reason}}; "
+                "null without batches",
+    "worker_restarts": "{restarts, epochs, first_start_s, restart_s: per later epoch, restart_total_s, "
+                       "persistent_wall_s, saved_s, measured_wall_s, worth_naming}: new loader workers at each "
+                       "epoch, and the replay with them kept; null without a replay",
     "stall_s": "total time the loop waited for batches, seconds",
     "stall_fraction": "stall_s / wall_s (per rank-second for several ranks)",
     "steady_stall_fraction": "stall share of the loop's time, warm-up batches left out",
@@ -248,7 +294,7 @@ JSON_SCHEMA: dict[str, str] = {
               "critical_s, critical_share, own_s, label}",
     "slowest_samples": "list of {stage, samples, of_samples, sample_ids, seconds, share}",
     "cpu": "{cores, core_busy_in_stalls, cores_saturated, more_workers: 'yes'|'no'|'unknown', "
-           "more_workers_reason}",
+           "more_workers_reason}; with a replay, the same answer as ceilings.advice",
     "recording_cost": "{spans, measured, processes: list of {pid, rank, role, spans, span_cost_ns, added_s, "
                       "wall_share}, too_short: list of {stage, p50_s, limit_s}}; span_cost_ns null when the run "
                       "did not measure it",

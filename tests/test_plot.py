@@ -212,7 +212,7 @@ class TestFigures:
         """Drawing every picture, with and without an Axes, leaves pyplot's open-figure count unchanged."""
         before = len(plt.get_fignums())
         run = plot_two_worker_run
-        c = Ceilings([StageCeiling("decode", 0.5, 2.0, 1.6, 1.3, 1.45, "step")], 1.0, 1.0, 2, 3, 0.6, 2, True, 1.2)
+        c = Ceilings([StageCeiling("decode", 0.5, 2.0, 1.6, 1.3, 1.45, "step")], 1.0, 1.0, 2, None)
         made = [
             plot.draw_timeline(run, path=True),
             plot.draw_stall_fraction(run),
@@ -302,7 +302,7 @@ class TestCeilings:
         # Amdahl's law (Amdahl 1967): p = 0.5 gives a ceiling of 1 / (1 - 0.5) = 2.
         c = Ceilings([StageCeiling("decode", 0.5, 1 / (1 - 0.5), 1.6, 1.3, 1.45, "step"),
                       StageCeiling("augment", 0.2, 1.25, 1.2, 1.1, 1.15, "decode")],
-                     1.0, 1.0, 2, 3, 0.6, 2, True, 1.2)
+                     1.0, 1.0, 2, None)
         ax = plot.draw_ceilings(c)
         ends = sorted(round(p.get_x() + p.get_width(), 6) for p in ax.patches if p.get_x() == pytest.approx(1.0))
         assert sorted([2.0, 1.3, 1.45, 1.6, 1.25, 1.1, 1.15, 1.2]) == ends
@@ -310,7 +310,7 @@ class TestCeilings:
 
     def test_unbounded_ceiling_reaches_the_edge(self) -> None:
         """A stage holding the whole path has no finite ceiling: its bar runs to the right edge, marked ∞."""
-        c = Ceilings([StageCeiling("step", 1.0, math.inf, 2.0, 1.5, 1.8, "")], 1.0, 1.0, 2, 3, 0.6, 2, True, 1.2)
+        c = Ceilings([StageCeiling("step", 1.0, math.inf, 2.0, 1.5, 1.8, "")], 1.0, 1.0, 2, None)
         ax = plot.draw_ceilings(c)
         assert "∞" in [t.get_text() for t in ax.texts]
 

@@ -397,3 +397,35 @@ class TestCodeShape:
                     if len(code) > 80:
                         long.append(f"{path.name}:{node.name} ({len(code)} lines)")
         assert [] == long
+
+
+class TestWorkersAddedToAnInProcessLoader:
+    def test_two_workers_overlap_two_batches(self):
+        """A run recorded with loading in the loop, replayed with 2 workers, keeps 2 per worker in flight.
+
+        Worked by hand (torch's default prefetch_factor=2 per worker, from memory): decode 6 ms, step 2 ms,
+        4 batches; batches 0 and 1 decode in [0, 6], batches 2 and 3 in [6, 12] (requested at the
+        start); steps [6, 8], [8, 10], [12, 14], [14, 16] -> 16 ms. One worker: decodes end at 6, 12,
+        18, 24, the last step ends at 26 ms.
+        """
+        from pipeprobe._example_runs import write_example_run
+
+        d = write_example_run(Path(__import__("tempfile").mkdtemp()), batches=4, decode_ms=6, step_ms=2)
+        plan = build_plan(pipeprobe.load(d))
+        assert 0 == plan.workers
+        assert [0.032, 0.026, 0.016] == [round(replay(plan, workers=w).wall_s, 9) for w in (0, 1, 2)]
+
+    def test_a_given_prefetch_is_kept(self):
+        """A prefetch the scenario gives wins over the default per worker: 2 workers, 1 in flight -> 26 ms."""
+        from pipeprobe._example_runs import write_example_run
+
+        d = write_example_run(Path(__import__("tempfile").mkdtemp()), batches=4, decode_ms=6, step_ms=2)
+        assert 0.026 == round(replay(build_plan(pipeprobe.load(d)), workers=2, prefetch=1).wall_s, 9)
+
+    def test_the_prediction_says_which_prefetch_it_took(self):
+        """A prediction that added workers to an in-loop run notes the batches in flight it assumed (4 for 2)."""
+        from pipeprobe._example_runs import write_example_run
+
+        d = write_example_run(Path(__import__("tempfile").mkdtemp()), batches=4, decode_ms=6, step_ms=2)
+        notes = pipeprobe.whatif(d, workers=2).notes
+        assert 1 == sum("prefetch: 4 batches in flight, 2 per worker" in n for n in notes)

@@ -304,9 +304,9 @@ def draw_sweep(
     >>> import tempfile
     >>> from pipeprobe._example_runs import write_example_run
     >>> d = write_example_run(tempfile.mkdtemp(), batches=4, decode_ms=6, step_ms=2)
-    >>> ax = draw_sweep(d, values=[0, 1])
+    >>> ax = draw_sweep(d, values=[0, 1, 2])
     >>> ax.get_ylabel(), ax.lines[0].get_ydata().round(6).tolist()
-    ('wall time (s)', [0.032, 0.026])
+    ('wall time (s)', [0.032, 0.026, 0.016])
     """
     from ..whatif import sweep
 
@@ -381,7 +381,7 @@ def draw_ceilings(ceilings: Any, ax: Axes | None = None, stages: int = 8) -> Axe
     Examples
     --------
     >>> from pipeprobe.whatif.ceilings import Ceilings, StageCeiling
-    >>> c = Ceilings([StageCeiling("decode", 0.5, 2.0, 1.6, 1.3, 1.45, "step")], 1.0, 1.0, 2, 3, 0.6, 2, True, 1.2)
+    >>> c = Ceilings([StageCeiling("decode", 0.5, 2.0, 1.6, 1.3, 1.45, "step")], 1.0, 1.0, 2, None)
     >>> draw_ceilings(c).get_xlabel()
     'speed-up of the whole run (x, 1 = unchanged)'
 

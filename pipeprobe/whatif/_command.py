@@ -52,6 +52,8 @@ def add_arguments(parser: Any) -> None:
     parser.add_argument("--cores", metavar="N", help="CPU cores the work shares (inf = no contention)")
     parser.add_argument("--policy", choices=POLICIES, help="how the loader hands batches to workers")
     parser.add_argument("--any-order", action="store_true", help="the loader delivers batches as they finish")
+    parser.add_argument("--persistent-workers", action="store_true",
+                        help="keep the loader workers across epochs (no wait for new ones at each epoch)")
     parser.add_argument("--recorded-workers", metavar="N", help="workers of the recorded run (default: counted)")
     parser.add_argument("--recorded-prefetch", metavar="N",
                         help="batches in flight in the recorded run (default: the smallest the trace allows)")
@@ -87,7 +89,7 @@ def run_command(args: Any) -> int:
         prefetch = max(1, plan.workers if workers is None else workers) * per_worker
     scenario = Scenario(faster=faster, offload=offload, workers=args.workers, prefetch=prefetch, cores=args.cores,
                         policy=args.policy, in_order=not args.any_order)
-    p = predict(plan, replay(plan), scenario)
+    p = predict(plan, replay(plan), scenario, persistent_workers=args.persistent_workers)
     if args.json:
         print(json.dumps(p.to_dict(), allow_nan=False))
     else:

@@ -10,8 +10,8 @@ For every stage of a run, :func:`ceilings` gives
 * the stage that leads the replayed critical path once this one is free
   (the path shifts);
 
-plus the smallest number of loader workers that hides the input pipeline
-behind the training step, and whether this machine has the cores for it.
+plus the worker advice of :func:`pipeprobe.whatif.advice.worker_advice`
+(the one function that decides it; the report's other parts read the same).
 :func:`format_ceilings` writes the report section, with a note on why the
 formula and the replay differ.
 
@@ -32,6 +32,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from ._replay_path import PSEUDO_STAGES
+from .advice import WorkerAdvice, worker_advice
 from .engine import Replay, replay
 from .laws import amdahl_ceiling
 from .limits import MAX_PLAN_STAGES, OTHER_STAGES, check_count
@@ -41,13 +42,8 @@ if TYPE_CHECKING:  # pragma: no cover
     from ..analysis import Analysis
     from ..load import Run
 
-__all__ = ["StageCeiling", "Ceilings", "ceilings", "format_ceilings", "HIDE_TOLERANCE",
-           "MAX_CEILING_STAGES"]
+__all__ = ["StageCeiling", "Ceilings", "ceilings", "format_ceilings", "MAX_CEILING_STAGES"]
 
-#: The input pipeline counts as hidden when the replayed wall time is within
-#: this share of the wall time with as many workers as could help (our choice).
-HIDE_TOLERANCE = 0.05
-_MAX_WORKERS = 64
 #: Stages :func:`ceilings` replays by default: three replays each, so a run with thousands of stage
 #: names still closes in a moment; the largest shares come first and the rest are counted, not lost.
 MAX_CEILING_STAGES = 10
@@ -90,23 +86,9 @@ class Ceilings:
     baseline_replay_wall_s, measured_wall_s : float
     workers : int
         Recorded loader workers (0: loading in the training loop).
-    workers_to_hide : int or None
-        Smallest worker count whose replay (cores unlimited, prefetch at
-        least the worker count) is within :data:`HIDE_TOLERANCE` of the
-        replay with 64 workers: more workers than that no longer help.
-    hidden_wall_s : float
-        Replayed wall time with 64 workers and unlimited cores.
-    cores : int
-        Cores of the recorded machine.
-    has_cores : bool or None
-        The replay with ``workers_to_hide`` workers on this machine's cores
-        also hides the input.
-    cores_needed : float
-        CPU seconds per batch (loader and consumer) divided by the step-bound
-        time per batch: cores kept busy when the input is hidden.
-    stall_left : float
-        Stall fraction left with ``workers_to_hide`` workers (batches a
-        worker starts only when an epoch starts, which no worker count hides).
+    advice : WorkerAdvice or None
+        The worker advice (:func:`~pipeprobe.whatif.advice.worker_advice`;
+        :func:`ceilings` always gives one).
     stages_left_out : int
         Stages not replayed one by one (past ``max_stages``, or folded in
         the plan), to keep the computation short.
@@ -118,12 +100,7 @@ class Ceilings:
     baseline_replay_wall_s: float
     measured_wall_s: float
     workers: int
-    workers_to_hide: int | None
-    hidden_wall_s: float
-    cores: int
-    has_cores: bool | None
-    cores_needed: float
-    stall_left: float = 0.0
+    advice: WorkerAdvice | None
     stages_left_out: int = 0
     left_out_share: float = 0.0
 
@@ -140,7 +117,8 @@ def _leader(cp: dict[str, float], skip: str) -> str:
 
 
 def ceilings(run: Run | ReplayPlan, *, analysis: Analysis | None = None,
-             shares: dict[str, float] | None = None, max_stages: int | None = MAX_CEILING_STAGES) -> Ceilings:
+             shares: dict[str, float] | None = None, max_stages: int | None = MAX_CEILING_STAGES,
+             advice: WorkerAdvice | None = None) -> Ceilings:
     """Amdahl ceilings and replayed speed-ups of every stage, and the workers that hide input.
 
     Parameters
@@ -156,6 +134,8 @@ def ceilings(run: Run | ReplayPlan, *, analysis: Analysis | None = None,
         Stages to replay (three replays each): the ones with the largest
         share, then the most work. ``None``: every stage of the plan. The
         others are counted in :attr:`Ceilings.stages_left_out`.
+    advice : WorkerAdvice, optional
+        The run's worker advice, when already decided (else decided here).
 
     Returns
     -------
@@ -187,20 +167,12 @@ def ceilings(run: Run | ReplayPlan, *, analysis: Analysis | None = None,
     picked, left_out = _stages_to_replay(plan, shares, max_stages)
     rows = sorted((_stage_ceiling(plan, base, stage, shares) for stage in picked),
                   key=lambda r: (-r.share, -r.free_speedup))
-    hide = _workers_to_hide(plan)
-    cpu_per_batch = float(plan.loader.cpu_s.sum() + plan.consumer.cpu_s.sum()) / max(1, plan.batches)
-    step_per_batch = hide.hidden_wall_s / max(1, plan.batches)
     return Ceilings(
         stages=rows,
         baseline_replay_wall_s=base.wall_s,
         measured_wall_s=plan.measured_wall_s,
         workers=plan.workers,
-        workers_to_hide=hide.workers,
-        hidden_wall_s=hide.hidden_wall_s,
-        cores=plan.cores,
-        has_cores=hide.has_cores,
-        cores_needed=cpu_per_batch / step_per_batch if step_per_batch > 0 else math.inf,
-        stall_left=hide.stall_left,
+        advice=worker_advice(plan, base) if advice is None else advice,
         stages_left_out=len(left_out),
         left_out_share=float(sum(_share(shares, n) for n in left_out)),
     )
@@ -248,41 +220,6 @@ def _stage_ceiling(plan: ReplayPlan, base: Replay, stage: str, shares: dict[str,
     )
 
 
-@dataclass(frozen=True)
-class _Hiding:
-    """The smallest worker count that hides the input, what it leaves, and whether the cores allow it."""
-
-    workers: int | None
-    hidden_wall_s: float
-    stall_left: float
-    has_cores: bool | None
-
-
-def _workers_to_hide(plan: ReplayPlan) -> _Hiding:
-    """Bisect for the fewest workers whose replay (unlimited cores) is within HIDE_TOLERANCE of 64 workers'.
-
-    More workers never slow the replay down at unlimited cores, so the
-    wall time is monotone in the worker count and bisection finds the
-    smallest count that is enough.
-    """
-    def with_workers(w: int, cores: float = math.inf) -> Replay:
-        return replay(plan, workers=w, prefetch=max(plan.prefetch, w), cores=cores)
-
-    best = with_workers(_MAX_WORKERS)
-    limit = best.wall_s * (1.0 + HIDE_TOLERANCE)
-    if not best.wall_s <= limit:  # NaN: nothing hides
-        return _Hiding(None, best.wall_s, best.stall_fraction, None)
-    lo, hi = 1, _MAX_WORKERS
-    while lo < hi:
-        mid = (lo + hi) // 2
-        if with_workers(mid).wall_s <= limit:
-            hi = mid
-        else:
-            lo = mid + 1
-    here = replay(plan, workers=lo, prefetch=max(plan.prefetch, lo))
-    return _Hiding(lo, best.wall_s, with_workers(lo).stall_fraction, here.wall_s <= limit)
-
-
 def _wrap(text: str, width: int) -> list[str]:
     out, cur = [], " "
     for w in text.split():
@@ -306,7 +243,9 @@ def format_ceilings(c: Ceilings, width: int = 100) -> list[str]:
 
     Examples
     --------
-    >>> c = Ceilings([StageCeiling("decode", 0.5, 2.0, 1.6, 1.3, 1.45, "step")], 1.0, 1.0, 2, 3, 0.6, 2, True, 1.2)
+    >>> from pipeprobe.whatif.plan import plan_from_durations
+    >>> advice = worker_advice(plan_from_durations([0.03] * 4, [0.01] * 4, workers=2, prefetch=4, cores=4))
+    >>> c = Ceilings([StageCeiling("decode", 0.5, 2.0, 1.6, 1.3, 1.45, "step")], 1.0, 1.0, 2, advice)
     >>> print(format_ceilings(c)[2])
       decode                50.0 %   2.00x    1.60x    1.30x    1.45x   step
     """
@@ -319,21 +258,8 @@ def format_ceilings(c: Ceilings, width: int = 100) -> list[str]:
             f"  {r.stage[:20]:<20} {100 * r.share:5.1f} % {_x(r.amdahl_ceiling):>7}  {_x(r.free_speedup):>7}  "
             f"{_x(r.speedup_2x):>7}  {_x(r.speedup_4x):>7}   {r.next_critical or '-'}"
         )
-    if c.workers_to_hide is None:
-        advice = f"No worker count up to {_MAX_WORKERS} hides the input pipeline behind the step."
-    else:
-        where = ("this machine has the cores for it" if c.has_cores else
-                 f"this machine's {c.cores} cores are not enough for it")
-        advice = (
-            f"Workers to hide the input behind the step: {c.workers_to_hide} (recorded {c.workers}), "
-            f"leaving {100 * c.stall_left:.1f} % stall; {where} (it keeps about {c.cores_needed:.1f} cores busy)."
-        )
-        if c.stall_left >= 0.05:
-            advice += (
-                " The stall left is the wait for the first batches of each epoch and for one batch's "
-                "loading time, which more workers cannot shorten: start the next epoch's batches before "
-                "this one ends, or split a batch's loading across workers."
-            )
+    a = c.advice
+    advice = f"Loader workers: more can help: {a.more_workers} - {a.reason}." if a is not None else ""
     note = (
         "Why they differ: the formula assumes the stage's share of the critical path shrinks and nothing "
         "else moves. The replay re-runs the pipeline: once a stage is cheaper another one (or the step) sets "

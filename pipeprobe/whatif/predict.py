@@ -21,7 +21,7 @@ from typing import TYPE_CHECKING, Any, Iterable, Mapping
 from .._jsonnum import json_ready
 from .engine import Replay, replay
 from .plan import ReplayPlan, build_plan
-from .scenario import Scenario
+from .scenario import PREFETCH_PER_WORKER, Scenario
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..load import Run
@@ -195,6 +195,7 @@ def whatif(
     recorded_workers: int | None = None,
     recorded_prefetch: int | None = None,
     recorded_policy: str | None = None,
+    persistent_workers: bool = False,
 ) -> Prediction:
     """Predict the run's wall time under a changed configuration.
 
@@ -223,6 +224,11 @@ def whatif(
     recorded_workers, recorded_prefetch, recorded_policy : optional
         The recorded run's loader settings when you know them (prefetch is
         otherwise inferred as the smallest depth the trace allows).
+    persistent_workers : bool, default False
+        Keep the loader workers across epochs: the recorded waits for new
+        workers at each later epoch are replayed away
+        (:func:`~pipeprobe.whatif.restart.with_persistent_workers`); the
+        note says so.
 
     Returns
     -------
@@ -254,17 +260,27 @@ def whatif(
     scenario = Scenario(faster=faster or {}, offload=offload or {}, workers=workers, prefetch=prefetch, cores=cores,
                         policy=policy, in_order=in_order)
     plan = _plan_of(run, scenario.stages, recorded_workers, recorded_prefetch, recorded_policy)
-    return predict(plan, replay(plan), scenario)
+    return predict(plan, replay(plan), scenario, persistent_workers=persistent_workers)
 
 
-def predict(plan: ReplayPlan, base: Replay, scenario: Scenario) -> Prediction:
+def predict(plan: ReplayPlan, base: Replay, scenario: Scenario, *, persistent_workers: bool = False) -> Prediction:
     """The prediction of ``scenario`` for ``plan``, whose unchanged replay is ``base``.
 
     The predicted wall time is the measured one times the ratio of the two
     replays, so a small bias of the model in the recorded configuration
-    cancels out.
+    cancels out. ``persistent_workers``: replay with the loader workers kept
+    across epochs (:func:`~pipeprobe.whatif.restart.with_persistent_workers`).
     """
+    notes = list(plan.notes)
+    if persistent_workers:
+        from .restart import with_persistent_workers
+
+        plan = with_persistent_workers(plan)
+        notes.append("persistent workers: no wait for new workers at later epochs")
     rep = replay(plan, scenario.check_stages(plan))
+    if plan.workers == 0 and scenario.prefetch is None and rep.config["workers"] > 0:
+        notes.append(f"prefetch: {rep.config['prefetch']} batches in flight, {PREFETCH_PER_WORKER} per worker "
+                     "(torch's default; the recorded run loaded in the training loop); set it with prefetch=")
     measured = plan.measured_wall_s
     if base.wall_s > 0:
         predicted = measured * rep.wall_s / base.wall_s if measured > 0 else rep.wall_s
@@ -281,7 +297,7 @@ def predict(plan: ReplayPlan, base: Replay, scenario: Scenario) -> Prediction:
         predicted_stall_fraction=rep.stall_fraction,
         critical_path=rep.critical_path_shares,
         recorded=_recorded(plan),
-        notes=list(plan.notes),
+        notes=notes,
         model_check=check_model(plan, base),
         replay=rep,
     )

@@ -33,7 +33,31 @@ if TYPE_CHECKING:  # pragma: no cover
     from .engine import Settings
     from .plan import ReplayPlan
 
-__all__ = ["Scenario", "check_scenario", "parse_factors"]
+__all__ = ["Scenario", "check_scenario", "parse_factors", "recorded_prefetch_for", "PREFETCH_PER_WORKER"]
+
+#: Batches in flight per worker when the recorded run had none to copy (it loaded in the training loop):
+#: torch's DataLoader default ``prefetch_factor=2`` (from memory; torch.utils.data.DataLoader docs).
+PREFETCH_PER_WORKER = 2
+
+
+def recorded_prefetch_for(plan: ReplayPlan, workers: int) -> int:
+    """Prefetch depth a scenario without one replays with ``workers`` workers.
+
+    The recorded depth, except when the recorded run loaded in the training
+    loop (``plan.workers == 0``): its depth of one batch says nothing about a
+    loader with workers, which keeps :data:`PREFETCH_PER_WORKER` batches per
+    worker in flight by default.
+
+    Examples
+    --------
+    >>> from pipeprobe.whatif.plan import plan_from_durations
+    >>> plan = plan_from_durations([0.006] * 4, [0.002] * 4, workers=0, prefetch=1)
+    >>> recorded_prefetch_for(plan, 0), recorded_prefetch_for(plan, 2)
+    (1, 4)
+    """
+    if plan.workers == 0 and workers > 0:
+        return PREFETCH_PER_WORKER * workers
+    return plan.prefetch
 
 
 @dataclass(frozen=True)
@@ -132,9 +156,10 @@ class Scenario:
         """The configuration to replay: this scenario's values, the recorded ones where it has none."""
         from .engine import Settings
 
+        workers = plan.workers if self.workers is None else self.workers
         return Settings(
-            workers=plan.workers if self.workers is None else self.workers,
-            prefetch=plan.prefetch if self.prefetch is None else self.prefetch,
+            workers=workers,
+            prefetch=self.prefetch if self.prefetch is not None else recorded_prefetch_for(plan, workers),
             cores=float(plan.cores_left if self.cores is None else self.cores),
             policy=plan.policy if self.policy is None else self.policy,
             in_order=self.in_order,
