@@ -62,3 +62,51 @@ class TestWaitAgainstTheLoopsClock:
         pytest.importorskip("torch", reason="pipeprobe run watches torch DataLoaders")
         outside, _, _ = outside_the_wait_us(tmp_path)
         assert 0 == int((outside < 0).sum())
+
+
+class Batch:
+    """A stand-in batch whose freeing can be watched."""
+
+
+class TestBatchesLetGo:
+    def test_the_batch_before_last_is_freed_inside_the_next_wait(self, tmp_path: Path) -> None:
+        """Batch k is freed inside the recorded wait for batch k + 2, where the loop's clock sees it (the loop's clock)."""
+        import time
+        import weakref
+
+        freed: dict[int, int] = {}
+
+        def batches():
+            for k in range(6):
+                b = Batch()
+                weakref.finalize(b, lambda k=k: freed.setdefault(k, time.monotonic_ns()))
+                yield b
+
+        with pipeprobe.Probe(tmp_path / "run", report=False) as probe:
+            for _batch in probe.watch(batches()):
+                with probe.step():
+                    pass
+        run = pipeprobe.load(tmp_path / "run")
+        waits = run.spans[run.spans["stage"] == "wait"].sort_values("start_s")
+        start = (waits["start_s"].to_numpy() * 1e9 + run.t0_ns).astype(np.int64)
+        end = (waits["end_s"].to_numpy() * 1e9 + run.t0_ns).astype(np.int64)
+        inside = [bool(start[k + 2] - 1000 <= freed[k] <= end[k + 2] + 1000) for k in range(4)]
+        assert [True] * 4 == inside
+
+    def test_at_most_two_batches_alive_in_the_step(self, tmp_path: Path) -> None:
+        """The watch keeps one batch beyond the loop's own: two alive in a step, as during next() (common practice)."""
+        import weakref
+
+        alive: weakref.WeakSet = weakref.WeakSet()
+
+        def batches():
+            for _ in range(5):
+                b = Batch()
+                alive.add(b)
+                yield b
+
+        seen = []
+        with pipeprobe.Probe(tmp_path / "run", report=False) as probe:
+            for _batch in probe.watch(batches()):
+                seen.append(len(alive))
+        assert [1, 2, 2, 2, 2] == seen
