@@ -109,7 +109,7 @@ class Row:
     """What the repetitions of one scenario gave."""
 
     scenario: Scenario
-    predicted: list[tuple[float, float, Any]] = field(default_factory=list)  # (s, other cores, range or None)
+    predicted: list[tuple[float, float, Any, float]] = field(default_factory=list)  # (s, other cores, range, miss)
     measured: list[tuple[float, float]] = field(default_factory=list)  # (s, other cores)
     refused: str = ""
 
@@ -219,8 +219,11 @@ def run_job(config: Config, data: dict[str, Path], *, record: Path | None = None
 
 # -- predictions ---------------------------------------------------------------------------------------------
 
-def predict(run_dir: Path, scenario: Scenario) -> tuple[float, Any]:
-    """The replay's predicted loop time of the target, and its range when it gives one.
+def predict(run_dir: Path, scenario: Scenario) -> tuple[float, Any, float]:
+    """The replay's predicted loop time of the target, its range when it gives one, and the model's own miss.
+
+    The miss is how far the replay of the unchanged base lands from the base's measured wall time
+    (``Prediction.model_check``): a large one says the model does not reproduce the base run.
 
     Raises ``LookupError`` with :data:`NOT_SUPPORTED` when this pipeprobe does not know the change.
     """
@@ -230,7 +233,8 @@ def predict(run_dir: Path, scenario: Scenario) -> tuple[float, Any]:
         raise LookupError(f"{NOT_SUPPORTED} ({exc})") from exc
     except PipeprobeError as exc:
         raise LookupError(f"{NOT_SUPPORTED} ({exc})") from exc
-    return p.predicted_wall_s, prediction_range(p.to_dict())
+    miss = p.model_check.miss if p.model_check is not None else float("nan")
+    return p.predicted_wall_s, prediction_range(p.to_dict()), miss
 
 
 def prediction_range(d: dict[str, Any]) -> tuple[float, float] | None:
@@ -296,11 +300,11 @@ def one_repetition(rows: list[Row], stalls: list[Stall], data: dict[str, Path], 
             continue
         folder, other = recorded[row.scenario.base]
         try:
-            seconds, span = predict(folder, row.scenario)
+            seconds, span, miss = predict(folder, row.scenario)
         except LookupError as exc:
             row.refused = str(exc)
             continue
-        row.predicted.append((seconds, other, span))
+        row.predicted.append((seconds, other, span, miss))
         row.measured.append(measured[row.scenario.target])
 
 
@@ -375,10 +379,11 @@ def print_report(rows: list[Row], stalls: list[Stall], reps: int) -> None:
     print("\nrecorded stall against the job's own time in next(loader)\n")
     print("\n".join(lines))
     print(f"\n{verdict(errors, STALL_ERROR)} (target: each within 5 %)")
-    print("\nevery run: predicted (other load of the base run) / measured (other load)")
+    print("\nevery run: predicted (other load of the base run, the replay's miss on the base run) / measured (other load)")
     for row in rows:
         print(f"  {row.scenario.name}: " + (row.refused or ", ".join(
-            f"{p:.2f} ({po:.2f}) / {m:.2f} ({mo:.2f})" for (p, po, _), (m, mo) in zip(row.predicted, row.measured))))
+            f"{p:.2f} ({po:.2f}, {100 * miss:+.0f} %) / {m:.2f} ({mo:.2f})"
+            for (p, po, _, miss), (m, mo) in zip(row.predicted, row.measured))))
     for s in stalls:
         print(f"  stall {s.label}: {s.recorded_s:.3f} / {s.own_s:.3f} (other load {s.other_cores:.2f})")
 
