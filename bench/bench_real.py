@@ -276,7 +276,7 @@ def one_repetition(rows: list[Row], stalls: list[Stall], data: dict[str, Path], 
     bases = list(dict.fromkeys(r.scenario.base for r in rows if not r.refused))
     targets = list(dict.fromkeys(r.scenario.target for r in rows if not r.refused))
     plan = [("base", c) for c in bases] + [("target", c) for c in targets]
-    plan += [("launch", Config.of(job, workers=2, threads=1)) for job in sorted({c.job for c in bases})]
+    plan += [("launch", c) for c in launched(sorted({c.job for c in bases}))]
     if rep % 2:
         plan.reverse()
     recorded: dict[Config, tuple[Path, float]] = {}
@@ -306,6 +306,14 @@ def one_repetition(rows: list[Row], stalls: list[Stall], data: dict[str, Path], 
             continue
         row.predicted.append((seconds, other, span, miss))
         row.measured.append(measured[row.scenario.target])
+
+
+def launched(jobs: list[str]) -> list[Config]:
+    """The runs recorded unchanged under ``pipeprobe run``: 2 workers each, and photos once with persistent workers."""
+    runs = [Config.of(job, workers=2, threads=1) for job in jobs]
+    if "photos" in jobs:
+        runs.append(Config.of("photos", workers=2, threads=1, persistent=True))
+    return runs
 
 
 def _short(config: Config) -> str:
@@ -395,13 +403,21 @@ def main() -> None:
                     help="seconds to wait for a quiet machine before each run (60)")
     ap.add_argument("--only", nargs="+", choices=["photos", "shards", "steps"], help="only these jobs")
     args = ap.parse_args()
-    rows = [Row(s) for s in scenarios() if not args.only or s.base.job in args.only]
+    jobs = set(args.only or ["photos", "shards", "steps"])
+    try:
+        import webdataset  # noqa: F401
+    except ImportError:
+        print("bench_real: the shards job needs webdataset (pip install -e '.[bench]'); leaving it out",
+              file=sys.stderr)
+        jobs.discard("shards")
+    rows = [Row(s) for s in scenarios() if s.base.job in jobs]
     stalls: list[Stall] = []
     with tempfile.TemporaryDirectory(prefix="bench-real-") as tmp:
         work = Path(tmp)
         data = {"photos": work / "photos", "shards": work / "shards", "steps": work}
         write_photos(data["photos"])
-        write_shards(data["photos"], data["shards"])
+        if "shards" in jobs:
+            write_shards(data["photos"], data["shards"])
         for rep in range(args.reps):
             started = time.monotonic()
             one_repetition(rows, stalls, data, work, rep, args.quiet_wait)
