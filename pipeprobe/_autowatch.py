@@ -35,7 +35,11 @@ import sys
 import threading
 import weakref
 from pathlib import Path
-from typing import Any, Iterator
+from time import monotonic_ns, thread_time_ns
+from typing import Any, Generator
+
+from .record._probe import step_code
+from .record._recorder import RECORDER
 
 __all__ = ["main", "ENV_LAUNCH", "SCRIPT_FILE", "STEP_MEANING"]
 
@@ -83,8 +87,11 @@ class _LoaderBook:
 class _LoopSteps:
     """One open loop step per thread: opened when a batch is taken, closed when any loader is asked again.
 
-    A step left open when the script ends (a loop that broke off) is
-    dropped, not recorded.
+    A step ends at the instant the loop asks for the next batch, and that
+    instant is where the batch's wait begins (:class:`_TakenBatches`), so
+    the loop's own clock around ``next(loader)`` sees the wait and nothing
+    of the step's bookkeeping. A step left open when the script ends (a
+    loop that broke off) is dropped, not recorded.
     """
 
     def __init__(self, probe: Any) -> None:
@@ -92,38 +99,53 @@ class _LoopSteps:
         self.tls = threading.local()
 
     def open(self) -> None:
-        try:
-            span = self.probe.step()
-            span.__enter__()
-        except Exception:  # noqa: BLE001 - an untimed step is lost, the loop goes on
-            return
-        self.tls.span = span
+        """Start this thread's step now (wall clock first, so reading the CPU clock lands inside it)."""
+        t0 = monotonic_ns()
+        self.tls.start = (t0, thread_time_ns() if RECORDER.cpu_time else -1)
 
-    def close(self) -> None:
-        span = getattr(self.tls, "span", None)
-        if span is not None:
-            self.tls.span = None
-            try:
-                span.__exit__(None, None, None)
-            except Exception:  # noqa: BLE001
-                pass
+    def close(self, end_ns: int) -> None:
+        """End this thread's open step at ``end_ns`` and record it (never raises)."""
+        start = getattr(self.tls, "start", None)
+        if start is None:
+            return
+        self.tls.start = None
+        t0, c0 = start
+        rec = RECORDER
+        if not rec.on:
+            return
+        try:
+            cpu = thread_time_ns() - c0 if c0 >= 0 else -1
+            rec.record(t0, end_ns, cpu, -1, rec.buffer().ctx, step_code())
+        except Exception as exc:  # noqa: BLE001 - an untimed step is lost, the loop goes on
+            rec.fail(exc)
 
 
 class _TakenBatches:
-    """The iterator a patched ``iter(loader)`` returns: the watched batches, with loop steps around them."""
+    """The iterator a patched ``iter(loader)`` returns: the watched batches, with loop steps around them.
 
-    def __init__(self, watched: Iterator[Any], steps: _LoopSteps, loader: Any, session: _Session) -> None:
+    The watch's generator is driven with ``send(t)``: ``t``, read first
+    thing in ``__next__``, ends the step and starts the wait.
+    """
+
+    def __init__(self, watched: Generator[Any, int, None], steps: _LoopSteps, loader: Any,
+                 session: _Session) -> None:
         self._watched = watched
         self._steps = steps
         self._loader = loader
         self._session = session
+        self._started = False
 
     def __iter__(self) -> _TakenBatches:
         return self
 
     def __next__(self) -> Any:
-        self._steps.close()
-        item = next(self._watched)  # StopIteration ends the loop as it would without us
+        asked = monotonic_ns()
+        self._steps.close(asked)
+        if self._started:
+            item = self._watched.send(asked)  # StopIteration ends the loop as it would without us
+        else:  # a generator takes a value only once it has started
+            self._started = True
+            item = next(self._watched)
         self._session.batches += 1
         self._steps.open()
         return item

@@ -1,0 +1,429 @@
+"""Predicted against real reruns of real torch jobs, and recorded stalls against the jobs' own clocks.
+
+Three job shapes written for this bench (``bench/realjobs/``; not the demo):
+
+  photos  a map-style dataset over invented JPEG photos, PIL ``decode`` and
+          ``augment`` timed by ``@pipeprobe.stage`` decorators;
+  shards  an iterable dataset over tar shards read with webdataset, split
+          across loader workers;
+  steps   a convolutional step at torch's default intra-op threads and at
+          one thread, over a light in-memory loader.
+
+Every job times itself (wall time of its training loop, total time inside
+``next(loader)``) and runs 3 epochs with torch's default
+``persistent_workers=False`` unless a row says otherwise. For each
+scenario the base configuration is recorded (``--record``: a
+``pipeprobe.Probe`` opened right before the loop, ``probe.watch`` and
+``probe.step``), the replay predicts the changed configuration from that
+recording, and the changed configuration is rerun for real WITHOUT
+pipeprobe. Base and rerun alternate, ``--reps`` times each, each in a fresh
+process, each started when the machine is quiet if it gets quiet within
+``--quiet-wait`` seconds; the table compares the median prediction with the
+median measured loop time, over all runs and over the quiet runs (other
+processes used less than a quarter core while it ran).
+
+Stalls: every recorded base run, and every job once per repetition under
+``python -m pipeprobe run`` (unchanged but for its stage decorators), give
+the recorded stall seconds next to the job's own time in ``next(loader)``.
+
+Scenarios the installed pipeprobe refuses (a keyword it does not know,
+e.g. persistent workers before the replay models worker restarts) print
+"not supported by this pipeprobe" instead of a number. Where a prediction
+carries a range, the table shows it and whether the rerun fell inside.
+
+    python bench/bench_real.py [--reps N] [--quiet-wait S] [--only JOB ...]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+HERE = Path(__file__).resolve().parent
+JOBS = HERE / "realjobs"
+sys.path.insert(0, str(HERE.parent / "tests"))
+
+from _recorded import wait_for_quiet_cpu  # noqa: E402
+
+import pipeprobe  # noqa: E402
+from pipeprobe.errors import PipeprobeError  # noqa: E402
+from pipeprobe.stalls import stall_summary  # noqa: E402
+from pipeprobe.whatif import whatif  # noqa: E402
+
+#: A run counts as quiet when the machine's other processes used less than this many cores (as bench_predict).
+QUIET_CORES = 0.25
+#: Targets of issue #11 section 4: every error within 10 %, the median within 5 %, stalls within 5 %.
+MAX_ERROR, MEDIAN_ERROR, STALL_ERROR = 0.10, 0.05, 0.05
+#: Photos the bench invents (the photos and shards jobs read the same ones).
+PHOTOS, SHARDS = 160, 8
+NOT_SUPPORTED = "not supported by this pipeprobe"
+
+
+@dataclass(frozen=True)
+class Config:
+    """One job configuration: the job script and its command-line options."""
+
+    job: str
+    options: tuple[tuple[str, Any], ...]
+
+    @classmethod
+    def of(cls, job: str, **options: Any) -> Config:
+        return cls(job, tuple(sorted(options.items())))
+
+    def argv(self) -> list[str]:
+        out = []
+        for key, value in self.options:
+            flag = "--" + key.replace("_", "-")
+            if value is True:
+                out.append(flag)
+            elif value is not False:
+                out += [flag, str(value)]
+        return out
+
+    def get(self, key: str, default: Any = None) -> Any:
+        return dict(self.options).get(key, default)
+
+
+@dataclass(frozen=True)
+class Scenario:
+    """A row: record ``base``, predict with ``change`` (whatif keywords), rerun ``target`` for real."""
+
+    name: str
+    base: Config
+    target: Config
+    change: dict[str, Any]
+
+
+@dataclass
+class Row:
+    """What the repetitions of one scenario gave."""
+
+    scenario: Scenario
+    predicted: list[tuple[float, float, Any, float]] = field(default_factory=list)  # (s, other cores, range, miss)
+    measured: list[tuple[float, float]] = field(default_factory=list)  # (s, other cores)
+    refused: str = ""
+
+
+def scenarios() -> list[Scenario]:
+    """The rows of the table: workers, persistence, a nested stage removed or cheaper, prefetch, threads."""
+    ph = dict(threads=1, epochs=3)
+    p2 = Config.of("photos", workers=2, **ph)
+    sh = dict(threads=1, epochs=3)
+    s2 = Config.of("shards", workers=2, **sh)
+    rows = [
+        Scenario("photos: workers 1 -> 2", Config.of("photos", workers=1, **ph), p2, dict(workers=2, prefetch=4)),
+        Scenario("photos: workers 0 -> 2", Config.of("photos", workers=0, **ph), p2, dict(workers=2, prefetch=4)),
+        Scenario("photos: persistent workers on", p2, Config.of("photos", workers=2, persistent=True, **ph),
+                 dict(persistent_workers=True)),
+        Scenario("photos: augment 2x cheaper", p2, Config.of("photos", workers=2, cost=0.5, **ph),
+                 dict(faster={"augment": 2})),
+        Scenario("photos: augment removed", p2, Config.of("photos", workers=2, remove="augment", **ph),
+                 dict(faster={"augment": float("inf")})),
+        Scenario("photos: prefetch 1 -> 4 per worker", Config.of("photos", workers=2, prefetch=1, **ph),
+                 Config.of("photos", workers=2, prefetch=4, **ph), dict(prefetch=8)),
+        Scenario("shards: workers 0 -> 2", Config.of("shards", workers=0, **sh), s2, dict(workers=2, prefetch=4)),
+        Scenario("shards: persistent workers on", s2, Config.of("shards", workers=2, persistent=True, **sh),
+                 dict(persistent_workers=True)),
+    ]
+    for threads, label in ((0, "default threads"), (1, "1 thread")):
+        rows.append(Scenario(f"steps ({label}): workers 0 -> 2", Config.of("steps", workers=0, threads=threads),
+                             Config.of("steps", workers=2, threads=threads), dict(workers=2, prefetch=4)))
+    return rows
+
+
+def recorded_settings(config: Config) -> dict[str, Any]:
+    """The recorded loader's settings, as the bench knows them (prefetch: all workers together)."""
+    workers = int(config.get("workers", 0))
+    if workers == 0:
+        return {"recorded_workers": 0}
+    return {"recorded_workers": workers, "recorded_prefetch": workers * int(config.get("prefetch", 2))}
+
+
+# -- the input files -----------------------------------------------------------------------------------------
+
+def write_photos(folder: Path, count: int = PHOTOS) -> None:
+    """Invented shelf-label photos: a grey shelf with coloured labels, 256x256 JPEG."""
+    import random
+
+    from PIL import Image, ImageDraw
+
+    folder.mkdir(parents=True, exist_ok=True)
+    rng = random.Random(11)
+    for i in range(count):
+        img = Image.new("RGB", (256, 256), (rng.randrange(170, 235),) * 3)
+        draw = ImageDraw.Draw(img)
+        for _ in range(12):
+            x, y = rng.randrange(0, 230), rng.randrange(0, 230)
+            draw.rectangle([x, y, x + rng.randrange(10, 60), y + rng.randrange(5, 30)],
+                           fill=tuple(rng.randrange(0, 255) for _ in range(3)))
+        img.save(folder / f"label-{i:04d}.jpg", quality=90)
+
+
+def write_shards(photos: Path, folder: Path, shards: int = SHARDS) -> None:
+    """The photos as webdataset tar shards (``NNNN.jpg``, ``NNNN.cls``), dealt round-robin."""
+    import webdataset as wds
+
+    folder.mkdir(parents=True, exist_ok=True)
+    files = sorted(photos.glob("*.jpg"))
+    for s in range(shards):
+        with wds.TarWriter(str(folder / f"shelf-{s:02d}.tar")) as sink:
+            for k in range(s, len(files), shards):
+                sink.write({"__key__": f"{k:04d}", "jpg": files[k].read_bytes(), "cls": str(k % 5).encode()})
+
+
+# -- running a job -------------------------------------------------------------------------------------------
+
+def _cpu_snapshot() -> tuple[float, float]:
+    """(busy CPU seconds of the whole machine, CPU seconds of our finished children)."""
+    with open("/proc/stat", encoding="ascii") as fh:
+        fields = [int(x) for x in fh.readline().split()[1:]]
+    busy = (sum(fields) - fields[3] - (fields[4] if len(fields) > 4 else 0)) / os.sysconf("SC_CLK_TCK")
+    kids = resource.getrusage(resource.RUSAGE_CHILDREN)
+    return busy, kids.ru_utime + kids.ru_stime
+
+
+def run_job(config: Config, data: dict[str, Path], *, record: Path | None = None, launch: Path | None = None,
+            quiet_wait: float) -> dict[str, Any]:
+    """Run the job in a fresh process; its JSON plus ``other_cores`` (what other processes used meanwhile).
+
+    ``record``: the job records itself into that folder; ``launch``: it runs
+    unchanged under ``python -m pipeprobe run --out FOLDER``.
+    """
+    wait_for_quiet_cpu(max_wait_s=quiet_wait)
+    cmd = [sys.executable, str(JOBS / f"{config.job}.py"), "--data", str(data[config.job]), *config.argv()]
+    if record is not None:
+        cmd += ["--record", str(record)]
+    if launch is not None:
+        cmd = [sys.executable, "-m", "pipeprobe", "run", "--out", str(launch), "--quiet", "--", *cmd]
+    busy0, kids0 = _cpu_snapshot()
+    t0 = time.monotonic()
+    done = subprocess.run(cmd, capture_output=True, text=True, timeout=600)
+    wall = time.monotonic() - t0
+    busy1, kids1 = _cpu_snapshot()
+    if done.returncode != 0:
+        raise RuntimeError(f"{config.job} {config.argv()} failed:\n{done.stderr[-2000:]}")
+    out = json.loads(done.stdout.strip().splitlines()[-1])
+    out["other_cores"] = max(0.0, ((busy1 - busy0) - (kids1 - kids0)) / wall)
+    return out
+
+
+# -- predictions ---------------------------------------------------------------------------------------------
+
+def predict(run_dir: Path, scenario: Scenario) -> tuple[float, Any, float]:
+    """The replay's predicted loop time of the target, its range when it gives one, and the model's own miss.
+
+    The miss is how far the replay of the unchanged base lands from the base's measured wall time
+    (``Prediction.model_check``): a large one says the model does not reproduce the base run.
+
+    Raises ``LookupError`` with :data:`NOT_SUPPORTED` when this pipeprobe does not know the change.
+    """
+    try:
+        p = whatif(run_dir, **scenario.change, **recorded_settings(scenario.base))
+    except TypeError as exc:  # an unknown keyword: a feature this pipeprobe does not have
+        raise LookupError(f"{NOT_SUPPORTED} ({exc})") from exc
+    except PipeprobeError as exc:
+        raise LookupError(f"{NOT_SUPPORTED} ({exc})") from exc
+    miss = p.model_check.miss if p.model_check is not None else float("nan")
+    return p.predicted_wall_s, prediction_range(p.to_dict()), miss
+
+
+def prediction_range(d: dict[str, Any]) -> tuple[float, float] | None:
+    """A (low, high) range of predicted wall seconds when the prediction has one.
+
+    Looks for a two-number key whose name says range (``predicted_wall_range_s``)
+    or for ``..._low_s`` / ``..._high_s`` keys next to the predicted wall time.
+    """
+    for key, value in d.items():
+        if "range" in key and "wall" in key and isinstance(value, (list, tuple)) and len(value) == 2:
+            return float(value[0]), float(value[1])
+    low = [v for k, v in d.items() if "wall" in k and k.endswith(("low_s", "min_s"))]
+    high = [v for k, v in d.items() if "wall" in k and k.endswith(("high_s", "max_s"))]
+    if low and high:
+        return float(low[0]), float(high[0])
+    return None
+
+
+def recorded_stall(run_dir: Path) -> float:
+    """The stall seconds pipeprobe reports for a run (all batches of all loaders)."""
+    return float(stall_summary(pipeprobe.load(run_dir)).total_s)
+
+
+# -- one repetition ------------------------------------------------------------------------------------------
+
+@dataclass
+class Stall:
+    """One run's recorded stall against the job's own time in ``next(loader)``."""
+
+    label: str
+    recorded_s: float
+    own_s: float
+    other_cores: float
+
+
+def one_repetition(rows: list[Row], stalls: list[Stall], data: dict[str, Path], work: Path, rep: int,
+                   quiet_wait: float) -> None:
+    """Record every base once, rerun every target once (order reversed on odd repetitions), predict."""
+    bases = list(dict.fromkeys(r.scenario.base for r in rows if not r.refused))
+    targets = list(dict.fromkeys(r.scenario.target for r in rows if not r.refused))
+    plan = [("base", c) for c in bases] + [("target", c) for c in targets]
+    plan += [("launch", c) for c in launched(sorted({c.job for c in bases}))]
+    if rep % 2:
+        plan.reverse()
+    recorded: dict[Config, tuple[Path, float]] = {}
+    measured: dict[Config, tuple[float, float]] = {}
+    for n, (kind, config) in enumerate(plan):
+        folder = work / f"rep{rep}-{n}-{kind}-{config.job}"
+        if kind == "base":
+            out = run_job(config, data, record=folder, quiet_wait=quiet_wait)
+            recorded[config] = (folder, out["other_cores"])
+            stalls.append(Stall(f"{config.job} {_short(config)} (Probe.watch)", recorded_stall(folder),
+                                out["next_s"], out["other_cores"]))
+        elif kind == "launch":
+            out = run_job(config, data, launch=folder, quiet_wait=quiet_wait)
+            stalls.append(Stall(f"{config.job} {_short(config)} (pipeprobe run)", recorded_stall(folder),
+                                out["next_s"], out["other_cores"]))
+        else:
+            out = run_job(config, data, quiet_wait=quiet_wait)
+            measured[config] = (out["wall_s"], out["other_cores"])
+    for row in rows:
+        if row.refused:
+            continue
+        folder, other = recorded[row.scenario.base]
+        try:
+            seconds, span, miss = predict(folder, row.scenario)
+        except LookupError as exc:
+            row.refused = str(exc)
+            continue
+        row.predicted.append((seconds, other, span, miss))
+        row.measured.append(measured[row.scenario.target])
+
+
+def launched(jobs: list[str]) -> list[Config]:
+    """The runs recorded unchanged under ``pipeprobe run``: 2 workers each, and photos once with persistent workers."""
+    runs = [Config.of(job, workers=2, threads=1) for job in jobs]
+    if "photos" in jobs:
+        runs.append(Config.of("photos", workers=2, threads=1, persistent=True))
+    return runs
+
+
+def _short(config: Config) -> str:
+    return " ".join(f"{k}={v}" for k, v in config.options if k not in ("epochs",))
+
+
+# -- the tables ----------------------------------------------------------------------------------------------
+
+def _fmt_range(spans: list[Any]) -> str:
+    spans = [s for s in spans if s is not None]
+    if not spans:
+        return "-"
+    return f"{statistics.median(s[0] for s in spans):.2f} to {statistics.median(s[1] for s in spans):.2f}"
+
+
+def scenario_table(rows: list[Row], keep: Any) -> tuple[list[str], list[float]]:
+    """Markdown lines of the prediction table over the runs ``keep(other_cores)`` admits, and the errors."""
+    lines = ["| job and scenario | predicted s | range s | measured s | error | in range | runs A/B |",
+             "|---|---|---|---|---|---|---|"]
+    errors = []
+    for row in rows:
+        name = row.scenario.name
+        if row.refused:
+            lines.append(f"| {name} | {NOT_SUPPORTED} | - | - | - | - | - |")
+            continue
+        p = [x for x in row.predicted if keep(x[1])]
+        m = [x[0] for x in row.measured if keep(x[1])]
+        if not p or not m:
+            lines.append(f"| {name} | - | - | - | - | - | {len(p)}/{len(m)} |")
+            continue
+        pm, mm = statistics.median(x[0] for x in p), statistics.median(m)
+        errors.append(pm / mm - 1)
+        spans = [x[2] for x in p]
+        inside = "-" if all(s is None for s in spans) else (
+            "yes" if any(s is not None and s[0] <= mm <= s[1] for s in spans) else "no")
+        lines.append(f"| {name} | {pm:.3f} | {_fmt_range(spans)} | {mm:.3f} | {100 * (pm / mm - 1):+.1f} % | "
+                     f"{inside} | {len(p)}/{len(m)} |")
+    return lines, errors
+
+
+def stall_table(stalls: list[Stall]) -> tuple[list[str], list[float]]:
+    """Markdown lines of the stall table (medians per run kind) and the errors."""
+    lines = ["| job, how recorded | recorded stall s | job's own next() s | error | runs |", "|---|---|---|---|---|"]
+    errors = []
+    for label in dict.fromkeys(s.label for s in stalls):
+        mine = [s for s in stalls if s.label == label]
+        rec, own = statistics.median(s.recorded_s for s in mine), statistics.median(s.own_s for s in mine)
+        err = statistics.median(s.recorded_s / s.own_s - 1 for s in mine if s.own_s > 0)
+        errors.append(err)
+        lines.append(f"| {label} | {rec:.3f} | {own:.3f} | {100 * err:+.1f} % | {len(mine)} |")
+    return lines, errors
+
+
+def verdict(errors: list[float], limit: float, median_limit: float | None = None) -> str:
+    if not errors:
+        return "no rows to judge"
+    worst, med = max(abs(e) for e in errors), statistics.median(abs(e) for e in errors)
+    ok = worst <= limit and (median_limit is None or med <= median_limit)
+    return f"median |error| {100 * med:.1f} %, max {100 * worst:.1f} %: {'PASS' if ok else 'FAIL'}"
+
+
+def print_report(rows: list[Row], stalls: list[Stall], reps: int) -> None:
+    print(f"\nreal jobs, {reps} alternating repetitions, {os.cpu_count()} cores, pipeprobe {pipeprobe.__version__}")
+    for title, keep in (("all runs", lambda other: True),
+                        (f"quiet runs (other load < {QUIET_CORES} core)", lambda other: other < QUIET_CORES)):
+        lines, errors = scenario_table(rows, keep)
+        print(f"\npredicted (replay of the recorded base) against measured (rerun without pipeprobe), {title}\n")
+        print("\n".join(lines))
+        print(f"\n{verdict(errors, MAX_ERROR, MEDIAN_ERROR)} (targets: each within 10 %, median within 5 %)")
+    lines, errors = stall_table(stalls)
+    print("\nrecorded stall against the job's own time in next(loader)\n")
+    print("\n".join(lines))
+    print(f"\n{verdict(errors, STALL_ERROR)} (target: each within 5 %)")
+    print("\nevery run: predicted (other load of the base run, the replay's miss on the base run) / measured (other load)")
+    for row in rows:
+        print(f"  {row.scenario.name}: " + (row.refused or ", ".join(
+            f"{p:.2f} ({po:.2f}, {100 * miss:+.0f} %) / {m:.2f} ({mo:.2f})"
+            for (p, po, _, miss), (m, mo) in zip(row.predicted, row.measured))))
+    for s in stalls:
+        print(f"  stall {s.label}: {s.recorded_s:.3f} / {s.own_s:.3f} (other load {s.other_cores:.2f})")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--reps", type=int, default=3, help="alternating repetitions of every run (3)")
+    ap.add_argument("--quiet-wait", type=float, default=60.0,
+                    help="seconds to wait for a quiet machine before each run (60)")
+    ap.add_argument("--only", nargs="+", choices=["photos", "shards", "steps"], help="only these jobs")
+    args = ap.parse_args()
+    jobs = set(args.only or ["photos", "shards", "steps"])
+    try:
+        import webdataset  # noqa: F401
+    except ImportError:
+        print("bench_real: the shards job needs webdataset (pip install -e '.[bench]'); leaving it out",
+              file=sys.stderr)
+        jobs.discard("shards")
+    rows = [Row(s) for s in scenarios() if s.base.job in jobs]
+    stalls: list[Stall] = []
+    with tempfile.TemporaryDirectory(prefix="bench-real-") as tmp:
+        work = Path(tmp)
+        data = {"photos": work / "photos", "shards": work / "shards", "steps": work}
+        write_photos(data["photos"])
+        if "shards" in jobs:
+            write_shards(data["photos"], data["shards"])
+        for rep in range(args.reps):
+            started = time.monotonic()
+            one_repetition(rows, stalls, data, work, rep, args.quiet_wait)
+            print(f"  repetition {rep + 1}/{args.reps} done in {time.monotonic() - started:.0f} s", file=sys.stderr)
+    print_report(rows, stalls, args.reps)
+
+
+if __name__ == "__main__":
+    main()
