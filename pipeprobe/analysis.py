@@ -12,6 +12,7 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass
 
+from ._progress import progress, step
 from .critical import DELIVERY, GAP, PACE_SPEEDUP, CriticalPath, critical_path
 from .load import Run, load
 from .stagestats import StageStats, stage_stats
@@ -138,13 +139,18 @@ def analyze(run: Run | str | os.PathLike, *, warmup_batches: int | None = None) 
     the single processor approach to achieving large scale computing
     capabilities (the share of time a change touches bounds its gain).
     """
-    if not isinstance(run, Run):
-        run = load(run)
-    timeline = build_timeline(run)
-    critical = critical_path(timeline)
-    stalls = stall_summary(run, critical, warmup_batches=warmup_batches)
-    stages = stage_stats(run, critical, stalls, input_on_path=critical.input_share >= _SIDE_WORTH)
-    actions = suggest_actions(critical, stalls, stages, workers_restart=_workers_restart(run))
+    with progress("analysis"):  # one line on stderr when this takes more than a couple of seconds
+        if not isinstance(run, Run):
+            run = load(run)
+        step("timeline")
+        timeline = build_timeline(run)
+        step("critical path")
+        critical = critical_path(timeline)
+        step("stalls")
+        stalls = stall_summary(run, critical, warmup_batches=warmup_batches)
+        step("stage table")
+        stages = stage_stats(run, critical, stalls, input_on_path=critical.input_share >= _SIDE_WORTH)
+        actions = suggest_actions(critical, stalls, stages, workers_restart=_workers_restart(run))
     return Analysis(run=run, timeline=timeline, critical=critical, stalls=stalls, stages=stages,
                     actions=tuple(actions))
 

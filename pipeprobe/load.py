@@ -36,6 +36,7 @@ import pandas as pd
 
 from . import _runfolder as _rf
 from . import tracefile as tf
+from ._progress import step
 from ._runfolder import _RUN_HEADER  # noqa: F401 (ranks.py finds run headers by this pattern)
 from .errors import RunNotFoundError
 from .record._clocksync import check_step_alignment
@@ -205,6 +206,7 @@ def load(run_dir: str | os.PathLike, *, ranks: Iterable[int] | None = None) -> R
     2
     """
     problems = _rf.Problems()
+    step("reading span files")
     try:
         folder = _rf.list_folder(_check_folder(run_dir), problems)
         headers = _rf.read_run_headers(folder)
@@ -214,10 +216,12 @@ def load(run_dir: str | os.PathLike, *, ranks: Iterable[int] | None = None) -> R
         procs = _rf.read_processes(folder, headers, axis, wanted, problems)
         processes = _process_table(procs)
         samples = _members(procs)
+        step("merging spans")
         cols = _span_columns(_take_records(procs))
         batches = _batches(_consumer_frame(cols), samples)
         for message in check_step_alignment(folder.root, batches, axis.clock):
             problems.add(message)
+        step("linking worker spans")
         _link(cols, samples, batches)
         spans = _time_ordered_frame(cols)
         resources = _rf.read_resources(folder, headers, axis, wanted, problems)
