@@ -164,7 +164,7 @@ def _workers_restart(run: Run) -> bool:
     sp = run.spans
     if sp.empty or "role" not in sp:
         return False
-    w = sp[(sp["role"] == "worker") & (sp["epoch"] >= 0)]
+    w = sp.loc[(sp["role"] == "worker") & (sp["epoch"] >= 0), ["epoch", "pid"]]  # two columns, not all
     seen: set[int] = set()
     for i, (_, pids) in enumerate(w.groupby("epoch", sort=True)["pid"]):
         now = set(int(p) for p in pids.unique())
