@@ -493,4 +493,4 @@ def _time_ordered_frame(cols: _Columns) -> pd.DataFrame:
             out[c] = pd.Categorical.from_codes(a.pop(c)[order].astype(np.int64), categories=cols.roles)
         else:
             out[c] = a.pop(c)[order]
-    return pd.DataFrame(out, copy=False)
+    return pd.DataFrame(out)  # one block per dtype, as pandas keeps a frame it built itself
