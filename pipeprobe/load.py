@@ -15,9 +15,12 @@ without following links (``list_folder``), read and check the run headers
 every rank's clock on one axis and bound the times a record may have
 (``align_clocks``), read each process's header and span records in bounded
 pieces (``read_processes``), and read the resource samples
-(``read_resources``). The rest are below: merge the processes' spans
-(``_merge_spans``), form the batches (``_batches``), link worker spans to
-them (``_link``), and give each worker process its loader slot
+(``read_resources``). The rest are below: copy every process's span
+records once into compact merged columns (``_span_columns``: numpy arrays,
+stage and role as codes, no per-process frames), form the batches from the
+waits and steps (``_batches``), link worker spans to them in place
+(``_link``), build :attr:`Run.spans` in time order, one column at a time
+(``_time_ordered_frame``), and give each worker process its loader slot
 (:func:`worker_slots`). What was missing or damaged is collected on the way
 and issued as warnings when ``load`` returns.
 """
