@@ -1,20 +1,24 @@
-"""Benchmark: merge + critical path + stall analysis of about 1,000,000 spans.
+"""Benchmark: the analysis of a large run, phase by phase, with the peak resident memory.
 
 Writes a synthetic run (4 loader workers x read/decode/augment per sample,
-one consumer; ``tests/_synth.write_many_spans``), then times, per repeat:
-``load`` (merge), ``build_timeline`` + ``critical_path`` (critical path),
-and ``stall_summary`` (stalls). Prints the median of the repeats and the
-peak memory: Python/numpy allocations traced by tracemalloc in one extra
-run, and the process's peak resident set size. Target: at most 10 s on
-the 2-core development machine.
+one consumer; ``tests/_synth.write_many_spans``), then times, per repeat,
+each phase of ``pipeprobe report --json``: ``load`` (merge), ``build_timeline``
+(timeline), ``critical_path``, ``stall_summary`` (stalls), ``stage_stats``
+(stage table) and the report's replays and Amdahl ceilings. Prints the
+median of the repeats, the process's peak resident set size, and
+optionally (``--traced``) the peak of the Python/numpy allocations traced
+by tracemalloc in one extra run. Targets (issue #15), on the 2-core
+development machine: at 10 M spans, at most 60 s and 4 GiB peak resident
+memory for the whole report.
 
-Run: ``python bench/bench_analysis.py [--spans N] [--repeats R]``
+Run: ``python bench/bench_analysis.py [--spans N] [--repeats R] [--traced] [--run DIR]``
 """
 
 from __future__ import annotations
 
 import argparse
 import gc
+import io
 import resource
 import statistics
 import sys
@@ -28,48 +32,74 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 from _synth import write_many_spans  # noqa: E402
 
 import pipeprobe  # noqa: E402
+from pipeprobe import analysis as _analysis  # noqa: E402
 from pipeprobe.critical import critical_path  # noqa: E402
+from pipeprobe.report import Report, print_report  # noqa: E402
+from pipeprobe.stagestats import stage_stats  # noqa: E402
 from pipeprobe.stalls import stall_summary  # noqa: E402
 from pipeprobe.timeline import build_timeline  # noqa: E402
 
+PHASES = ("merge", "timeline", "critical path", "stalls", "stage table", "replays+ceilings", "total")
+TARGET_SPANS, TARGET_S, TARGET_GIB = 10_000_000, 60.0, 4.0
+
 
 def one(run_dir: Path) -> dict[str, float]:
-    t0 = time.perf_counter()
+    """One report, as ``pipeprobe report --json`` makes it, timed phase by phase."""
+    marks = [time.perf_counter()]
     run = pipeprobe.load(run_dir)
-    t1 = time.perf_counter()
+    marks.append(time.perf_counter())
     tl = build_timeline(run)
+    marks.append(time.perf_counter())
     cp = critical_path(tl)
-    t2 = time.perf_counter()
-    stall_summary(run, cp)
-    t3 = time.perf_counter()
-    return {"merge": t1 - t0, "critical path": t2 - t1, "stalls": t3 - t2, "total": t3 - t0,
-            "spans": len(run.spans), "path nodes": len(cp.path)}
+    marks.append(time.perf_counter())
+    st = stall_summary(run, cp)
+    marks.append(time.perf_counter())
+    stages = stage_stats(run, cp, st, input_on_path=cp.input_share >= _analysis._SIDE_WORTH)
+    actions = _analysis.suggest_actions(cp, st, stages, workers_restart=_analysis._workers_restart(run))
+    marks.append(time.perf_counter())
+    analysis = _analysis.Analysis(run=run, timeline=tl, critical=cp, stalls=st, stages=stages,
+                                  actions=tuple(actions))
+    print_report(Report(analysis), io.StringIO(), as_json=True)
+    marks.append(time.perf_counter())
+    out = {name: b - a for name, a, b in zip(PHASES, marks, marks[1:])}
+    out.update(total=marks[-1] - marks[0], spans=len(run.spans), nodes=len(cp.path))
+    return out
 
 
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--spans", type=int, default=1_000_000)
     ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--traced", action="store_true", help="one extra run under tracemalloc (slow)")
+    ap.add_argument("--run", type=Path, help="analyse this run folder instead of writing one")
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        run_dir = write_many_spans(Path(tmp) / "run", n_spans=args.spans)
+        run_dir = args.run or write_many_spans(Path(tmp) / "run", n_spans=args.spans)
         results = []
         for _ in range(args.repeats):
             gc.collect()
             results.append(one(run_dir))
-        gc.collect()
-        tracemalloc.start()
-        one(run_dir)
-        _, peak = tracemalloc.get_traced_memory()
-        tracemalloc.stop()
-    rss_mib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+        rss_gib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20
+        peak = None
+        if args.traced:
+            gc.collect()
+            tracemalloc.start()
+            one(run_dir)
+            peak = tracemalloc.get_traced_memory()[1]
+            tracemalloc.stop()
     first = results[0]
-    print(f"spans loaded: {first['spans']:,} (stage spans + waits + steps); critical path: {first['path nodes']:,} nodes")
-    for key in ("merge", "critical path", "stalls", "total"):
+    print(f"spans loaded: {first['spans']:,} (stage spans + waits + steps); critical path: {first['nodes']:,} nodes")
+    for key in PHASES:
         vals = [r[key] for r in results]
-        print(f"  {key:<14} median {statistics.median(vals):6.2f} s   (runs: {', '.join(f'{v:.2f}' for v in vals)})")
-    print(f"  peak traced allocations {peak / 2**20:,.0f} MiB; peak RSS of the process {rss_mib:,.0f} MiB")
-    print(f"  target: total <= 10 s -> {'met' if statistics.median(r['total'] for r in results) <= 10 else 'MISSED'}")
+        print(f"  {key:<17} median {statistics.median(vals):6.2f} s   (runs: {', '.join(f'{v:.2f}' for v in vals)})")
+    print(f"  peak RSS of the process {rss_gib:.2f} GiB ({rss_gib * 2**30 / max(1, first['spans']):.0f} bytes a span)")
+    if peak is not None:
+        print(f"  peak traced allocations {peak / 2**30:.2f} GiB")
+    total = statistics.median(r["total"] for r in results)
+    if first["spans"] >= TARGET_SPANS:
+        met = total <= TARGET_S and rss_gib <= TARGET_GIB
+        print(f"  target at {TARGET_SPANS:,} spans: <= {TARGET_S:.0f} s and <= {TARGET_GIB:.0f} GiB -> "
+              f"{'met' if met else 'MISSED'}")
 
 
 if __name__ == "__main__":

@@ -100,14 +100,23 @@ class Records:
 
 @dataclass(frozen=True)
 class Process:
-    """What one process contributed: its spans (None when its stage table was unusable) and membership rows."""
+    """What one process contributed: its span records (None when its stage table was unusable) and membership rows.
+
+    ``spans`` holds the raw records of its spans (no membership rows) and their times: about 64 bytes a
+    span, less than the merged frame, so that :func:`pipeprobe.load.load` can build each column of
+    :attr:`~pipeprobe.load.Run.spans` once, straight from the records.
+    """
 
     rank: int
     pid: int
     name: str
     header: tf.ProcessHeader
-    spans: pd.DataFrame | None
+    spans: Records | None
     members: pd.DataFrame | None
+
+    @property
+    def span_count(self) -> int:
+        return 0 if self.spans is None else len(self.spans.recs)
 
 
 def _short(value: Any) -> str:
@@ -256,7 +265,7 @@ def read_process(folder: Folder, name: str, rank: int, pid: int, headers: dict[i
     if len(set(ph.stages)) != len(ph.stages):
         problems.add(f"{bin_path.with_suffix('.json')}: the stage table repeats a name; skipped this process")
         return Process(rank, pid, name, ph, None, members)
-    return Process(rank, pid, name, ph, _span_frame(rank, pid, ph, got, ~is_member), members)
+    return Process(rank, pid, name, ph, _only_spans(got, is_member), members)
 
 
 def _process_header(folder: Folder, bin_path: Path, rank: int, headers: dict[int, tf.RunHeader],
@@ -297,10 +306,14 @@ def read_span_records(path: Path, ph: tf.ProcessHeader, axis: TimeAxis, problems
     if rf.unwritten:
         problems.add(tf.unwritten_message(rf))
     digest = hashlib.blake2b(digest_size=16)
-    kept: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
-    unknown = outside = reversed_ = 0
+    # the kept records go straight into arrays sized for the whole file (no list of pieces to join)
+    size = rf.count - rf.unwritten  # records in holes of a sparse file are never read
+    recs_out = np.empty(size, dtype=tf.SPAN_RECORD)
+    start_out, end_out = np.empty(size, np.int64), np.empty(size, np.int64)
+    n = unknown = outside = reversed_ = 0
+    seen = False
     for recs in rf.chunks():
-        digest.update(recs.tobytes())
+        digest.update(recs)  # the buffer itself: no copy
         bad = (recs["stage"] >= len(ph.stages)) | (recs["kind"] > tf.KIND_MEMBER)
         start_ns = axis.to_axis(recs["start_ns"], ph) - axis.t0_ns
         end_ns = axis.to_axis(recs["end_ns"], ph) - axis.t0_ns
@@ -308,7 +321,10 @@ def read_span_records(path: Path, ph: tf.ProcessHeader, axis: TimeAxis, problems
         rev = ~bad & ~out & (end_ns < start_ns)
         unknown, outside, reversed_ = unknown + int(bad.sum()), outside + int(out.sum()), reversed_ + int(rev.sum())
         keep = ~(bad | out | rev)
-        kept.append((recs[keep], start_ns[keep], end_ns[keep]))
+        k = int(keep.sum())
+        recs_out[n:n + k], start_out[n:n + k], end_out[n:n + k] = recs[keep], start_ns[keep], end_ns[keep]
+        n += k
+        seen = True
     if unknown:
         problems.add(f"{path}: {unknown} records name unknown stages or kinds; dropped them")
     if outside:
@@ -318,11 +334,15 @@ def read_span_records(path: Path, ph: tf.ProcessHeader, axis: TimeAxis, problems
         )
     if reversed_:
         problems.add(f"{path}: {reversed_} spans end before they start; dropped them")
-    if not kept:
+    if not seen:
         empty = np.zeros(0, np.int64)
         return Records(np.zeros(0, dtype=tf.SPAN_RECORD), empty, empty, None)
-    recs, start_ns, end_ns = (np.concatenate(parts) for parts in zip(*kept, strict=True))
-    return Records(recs, start_ns, end_ns, digest.digest())
+    return Records(_fit(recs_out, n), _fit(start_out, n), _fit(end_out, n), digest.digest())
+
+
+def _fit(a: np.ndarray, n: int) -> np.ndarray:
+    """The first ``n`` entries; a copy when many were dropped, so the unused rest is freed."""
+    return a[:n] if n >= 0.9 * len(a) else a[:n].copy()
 
 
 def _member_frame(rank: int, got: Records, is_member: np.ndarray) -> pd.DataFrame:
@@ -338,26 +358,12 @@ def _member_frame(rank: int, got: Records, is_member: np.ndarray) -> pd.DataFram
     )
 
 
-def _span_frame(rank: int, pid: int, ph: tf.ProcessHeader, got: Records, is_span: np.ndarray) -> pd.DataFrame:
-    sr = got.recs[is_span]
-    cpu = sr["cpu_ns"].astype(np.float64)
-    cpu[sr["cpu_ns"] < 0] = np.nan
-    return pd.DataFrame(
-        {
-            "stage": pd.Categorical.from_codes(sr["stage"].astype(np.int64), categories=list(ph.stages)),
-            "start_s": got.start_ns[is_span] / 1e9,
-            "end_s": got.end_ns[is_span] / 1e9,
-            "sample_id": sr["sample_id"].astype(np.int64),
-            "batch_id": sr["batch_id"].astype(np.int64),
-            "epoch": sr["epoch"].astype(np.int64),
-            "pid": pid,
-            "tid": sr["tid"].astype(np.int64),
-            "rank": rank,
-            "cpu_s": cpu / 1e9,
-            "error": (sr["flags"] & tf.FLAG_ERROR).astype(bool),
-            "role": ph.role,
-        }
-    )
+def _only_spans(got: Records, is_member: np.ndarray) -> Records:
+    """The records without the membership rows (no copy when there are none)."""
+    if not is_member.any():
+        return got
+    keep = ~is_member
+    return Records(got.recs[keep], got.start_ns[keep], got.end_ns[keep], got.digest)
 
 
 def read_resources(folder: Folder, headers: dict[int, tf.RunHeader], axis: TimeAxis, wanted: set[int] | None,

@@ -12,6 +12,7 @@ from __future__ import annotations
 import os
 from dataclasses import dataclass
 
+from ._progress import progress, step
 from .critical import DELIVERY, GAP, PACE_SPEEDUP, CriticalPath
 from .load import Run, load
 from .stagestats import StageStats, stage_stats
@@ -139,13 +140,17 @@ def analyze(run: Run | str | os.PathLike, *, warmup_batches: int | None = None) 
     the single processor approach to achieving large scale computing
     capabilities (the share of time a change touches bounds its gain).
     """
-    if not isinstance(run, Run):
-        run = load(run)
-    run = condense(run)  # a windowed run: its stretches end to end (stretches.py)
-    timeline, critical = timeline_and_path(run)
-    stalls = stall_summary(run, critical, warmup_batches=warmup_batches)
-    stages = stage_stats(run, critical, stalls, input_on_path=critical.input_share >= _SIDE_WORTH)
-    actions = suggest_actions(critical, stalls, stages, workers_restart=_workers_restart(run))
+    with progress("analysis"):  # one line on stderr when this takes more than a couple of seconds
+        if not isinstance(run, Run):
+            run = load(run)
+        run = condense(run)  # a windowed run: its stretches end to end (stretches.py)
+        step("timeline and critical path")
+        timeline, critical = timeline_and_path(run)
+        step("stalls")
+        stalls = stall_summary(run, critical, warmup_batches=warmup_batches)
+        step("stage table")
+        stages = stage_stats(run, critical, stalls, input_on_path=critical.input_share >= _SIDE_WORTH)
+        actions = suggest_actions(critical, stalls, stages, workers_restart=_workers_restart(run))
     return Analysis(run=run, timeline=timeline, critical=critical, stalls=stalls, stages=stages,
                     actions=tuple(actions))
 
@@ -159,7 +164,7 @@ def _workers_restart(run: Run) -> bool:
     sp = run.spans
     if sp.empty or "role" not in sp:
         return False
-    w = sp[(sp["role"] == "worker") & (sp["epoch"] >= 0)]
+    w = sp.loc[(sp["role"] == "worker") & (sp["epoch"] >= 0), ["epoch", "pid"]]  # two columns, not all
     seen: set[int] = set()
     for i, (_, pids) in enumerate(w.groupby("epoch", sort=True)["pid"]):
         now = set(int(p) for p in pids.unique())

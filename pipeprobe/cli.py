@@ -156,17 +156,25 @@ def _report_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--json", action="store_true", help="print one JSON object (keys: pipeprobe.report.JSON_SCHEMA)")
     p.add_argument("--html", metavar="FILE",
                    help="also write the report with its pictures as one self-contained HTML file")
+    p.add_argument("--quiet", action="store_true", help="no progress line on stderr while a long run is analysed")
 
 
 def _report_run(args: argparse.Namespace) -> int:
+    from ._progress import progress, step
     from .analysis import analyze
     from .report import Report, print_report
 
-    report = Report(analyze(args.run_dir))
-    if args.html:
-        from .html import write_report
+    path = None
+    with progress("report", enabled=not args.quiet):  # shown only past a couple of seconds
+        analysis = analyze(args.run_dir)
+        step("replays and ceilings")
+        report = Report(analysis)
+        if args.html:
+            from .html import write_report
 
-        path = write_report(report, args.html)
+            step("writing the HTML page")
+            path = write_report(report, args.html)
+    if path is not None:
         print(f"pipeprobe: wrote {printable(path)}", file=sys.stderr)
     print_report(report, as_json=args.json)
     return EXIT_OK

@@ -13,10 +13,12 @@ its end, so the attribution adds up to the wall time exactly.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
 
+from ._coded import Names, codes_of, text_column
 from .timeline import Timeline, sink_node
 
 __all__ = ["CriticalPath", "critical_path", "critical_path_length", "GAP", "DELIVERY", "SEGMENT_COLUMNS",
@@ -178,58 +180,85 @@ def critical_path(timeline: Timeline) -> CriticalPath:
     sink = sink_node(timeline)
     ids = _walk(nodes["pred"].to_numpy(np.int64), sink) if sink >= 0 else np.zeros(0, np.int64)
     path = nodes.iloc[ids].reset_index(drop=True)
-
-    k = len(path)
-    ready = path["ready_s"].to_numpy(np.float64)
-    start = path["start_s"].to_numpy(np.float64)
-    stop = path["end_s"].to_numpy(np.float64)
-    kind = path["kind"].astype(str).to_numpy(object)
-    stage = path["stage"].astype(str).to_numpy(object)
-    side = path["side"].astype(str).to_numpy(object)
-    lane = path["lane"].astype(str).to_numpy(object)
-    is_deliv = kind == "delivery"
-    tail_start = float(stop[-1]) if k else origin
-    # per node: the wait before it (gap or delivery), then the node itself; then the tail
-    seg_start = np.concatenate([np.ravel(np.column_stack([ready, start])), [tail_start]])
-    seg_end = np.concatenate([np.ravel(np.column_stack([start, stop])), [end]])
-    label = np.concatenate([np.ravel(np.column_stack([np.where(is_deliv, DELIVERY, GAP), stage])), [GAP]])
-    skind = np.concatenate([np.ravel(np.column_stack([np.where(is_deliv, "delivery", "gap"), kind])), ["gap"]])
-    sside = np.concatenate([np.ravel(np.column_stack([np.where(is_deliv, "delivery", "gap"), side])), ["gap"]])
-    slane = np.concatenate([np.ravel(np.column_stack([np.where(is_deliv, lane, ""), lane])), [""]])
-    node_ids = np.concatenate([np.repeat(ids, 2), [-1]])
-    batch = np.concatenate([np.repeat(path["batch_id"].to_numpy(np.int64), 2), [-1]])
-    sample = np.concatenate([np.repeat(path["sample_id"].to_numpy(np.int64), 2), [-1]])
-    segments = pd.DataFrame(
-        {
-            "start_s": seg_start,
-            "end_s": seg_end,
-            "seconds": seg_end - seg_start,
-            "label": label.astype(object),
-            "kind": skind.astype(object),
-            "side": sside.astype(object),
-            "node": node_ids,
-            "lane": slane.astype(object),
-            "batch_id": batch,
-            "sample_id": sample,
-        }
-    )
-    segments = segments[segments["seconds"] > 0].reset_index(drop=True)
-    shares, lanes = attribute(segments, end - origin)
+    seg = _segment_arrays(path, ids, origin, end)
+    names = seg.pop("names")
+    keep = seg.pop("seconds") > 0
+    seg = {k: v[keep] for k, v in seg.items()}
+    segments = pd.DataFrame({
+        "start_s": seg["start_s"], "end_s": seg["end_s"], "seconds": seg["end_s"] - seg["start_s"],
+        **{c: text_column(seg[c], names) for c in ("label", "kind", "side")},
+        "node": seg["node"], "lane": text_column(seg["lane"], names),
+        "batch_id": seg["batch_id"], "sample_id": seg["sample_id"],
+    })
+    codes = pd.DataFrame({c: seg[c] for c in ("label", "kind", "side", "lane")}).assign(seconds=segments["seconds"])
+    shares, lanes = _attribute_codes(codes, names, end - origin)
     return CriticalPath(path=path, segments=segments, shares=shares, lanes=lanes, origin_s=origin, end_s=end)
 
 
 def attribute(segments: pd.DataFrame, wall: float) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Critical-path time per label and per thread (:attr:`CriticalPath.shares`, ``.lanes``) from its pieces."""
-    shares = (
-        segments.groupby(["label", "kind", "side"], sort=False, observed=True)["seconds"].sum().reset_index()
-        .sort_values(["seconds", "label"], ascending=[False, True], kind="stable").reset_index(drop=True)
-    )
+    """Critical-path time per label and per thread (:attr:`CriticalPath.shares`, ``.lanes``) from its pieces.
+
+    Used where pieces of several paths are put side by side (the stretches of
+    a windowed run, :mod:`pipeprobe.stretches`); shares are of ``wall``.
+    """
+    names = Names([""])
+    codes = pd.DataFrame({c: names.recode(*codes_of(segments[c])) for c in ("label", "kind", "side", "lane")})
+    return _attribute_codes(codes.assign(seconds=segments["seconds"].to_numpy(np.float64)), names.names, wall)
+
+
+def _attribute_codes(codes: pd.DataFrame, names: list[str], wall: float) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Shares per (label, kind, side) and per lane from coded pieces (``names`` spell the codes)."""
+    shares = codes.groupby(["label", "kind", "side"], sort=False)["seconds"].sum().reset_index()
+    shares = _named(shares, names, ["label", "kind", "side"])
+    shares = shares.sort_values(["seconds", "label"], ascending=[False, True], kind="stable").reset_index(drop=True)
     shares["share"] = shares["seconds"] / wall if wall > 0 else 0.0
-    on = segments[segments["lane"] != ""]
-    lanes = on.groupby("lane", sort=False)["seconds"].sum().reset_index()
+    on = codes[codes["lane"].to_numpy() != names.index("")]
+    lanes = _named(on.groupby("lane", sort=False)["seconds"].sum().reset_index(), names, ["lane"])
     lanes = lanes.sort_values(["seconds", "lane"], ascending=[False, True], kind="stable").reset_index(drop=True)
     lanes["share"] = lanes["seconds"] / wall if wall > 0 else 0.0
     return shares, lanes
+
+
+def _named(frame: pd.DataFrame, names: list[str], columns: list[str]) -> pd.DataFrame:
+    """Code columns of a small frame turned back into text, in place of the codes."""
+    return frame.assign(**{c: text_column(frame[c].to_numpy(np.int64), names) for c in columns})
+
+
+def _segment_arrays(path: pd.DataFrame, ids: np.ndarray, origin: float, end: float) -> dict[str, Any]:
+    """The pieces tiling ``[origin, end]``, as arrays: per path node the wait before it (a gap, or the
+    delivery before a delivery node) and the node itself, then the tail after the last node. Text
+    columns are codes into ``names`` (see :mod:`pipeprobe._coded`)."""
+    names = Names([GAP, DELIVERY, "gap", "delivery", ""])
+    k = len(path)
+    ready = path["ready_s"].to_numpy(np.float64)
+    start = path["start_s"].to_numpy(np.float64)
+    stop = path["end_s"].to_numpy(np.float64)
+    kind = names.recode(*codes_of(path["kind"])) if k else np.zeros(0, np.int64)
+    stage = names.recode(*codes_of(path["stage"])) if k else np.zeros(0, np.int64)
+    side = names.recode(*codes_of(path["side"])) if k else np.zeros(0, np.int64)
+    lane = names.recode(*codes_of(path["lane"])) if k else np.zeros(0, np.int64)
+    is_deliv = kind == names.code("delivery")
+    tail_start = float(stop[-1]) if k else origin
+
+    def pairs(before: Any, at: np.ndarray, tail: Any) -> np.ndarray:
+        """Per node ``before`` then ``at``; then ``tail``."""
+        both = np.column_stack([np.broadcast_to(before, (k,)), at]) if k else np.zeros((0, 2), at.dtype)
+        return np.concatenate([both.ravel(), np.asarray([tail], both.dtype)])
+
+    wait_kind = np.where(is_deliv, names.code("delivery"), names.code("gap"))
+    seg_start = pairs(ready, start, tail_start)
+    seg_end = pairs(start, stop, end)
+    return {
+        "start_s": seg_start, "end_s": seg_end, "seconds": seg_end - seg_start,
+        "label": pairs(np.where(is_deliv, names.code(DELIVERY), names.code(GAP)), stage, names.code(GAP)),
+        "kind": pairs(wait_kind, kind, names.code("gap")),
+        "side": pairs(wait_kind, side, names.code("gap")),
+        "node": pairs(ids, ids, -1),
+        "lane": pairs(np.where(is_deliv, lane, names.code("")), lane, names.code("")),
+        "batch_id": pairs(path["batch_id"].to_numpy(np.int64), path["batch_id"].to_numpy(np.int64), -1),
+        "sample_id": pairs(path["sample_id"].to_numpy(np.int64), path["sample_id"].to_numpy(np.int64), -1),
+        "names": names.names,
+    }
 
 
 def critical_path_length(timeline: Timeline) -> float:

@@ -15,15 +15,19 @@ without following links (``list_folder``), read and check the run headers
 every rank's clock on one axis and bound the times a record may have
 (``align_clocks``), read each process's header and span records in bounded
 pieces (``read_processes``), and read the resource samples
-(``read_resources``). The rest are below: merge the processes' spans
-(``_merge_spans``), form the batches (``_batches``), link worker spans to
-them (``_link``), and give each worker process its loader slot
+(``read_resources``). The rest are below: copy every process's span
+records once into compact merged columns (``_span_columns``: numpy arrays,
+stage and role as codes, no per-process frames), form the batches from the
+waits and steps (``_batches``), link worker spans to them in place
+(``_link``), build :attr:`Run.spans` in time order, one column at a time
+(``_time_ordered_frame``), and give each worker process its loader slot
 (:func:`worker_slots`). What was missing or damaged is collected on the way
 and issued as warnings when ``load`` returns.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import heapq
 import os
 from dataclasses import dataclass, field
@@ -34,6 +38,8 @@ import numpy as np
 import pandas as pd
 
 from . import _runfolder as _rf
+from . import tracefile as tf
+from ._progress import step
 from ._runfolder import _RUN_HEADER  # noqa: F401 (ranks.py finds run headers by this pattern)
 from .errors import RunNotFoundError
 from .record._clocksync import check_step_alignment
@@ -203,6 +209,7 @@ def load(run_dir: str | os.PathLike, *, ranks: Iterable[int] | None = None) -> R
     2
     """
     problems = _rf.Problems()
+    step("reading span files")
     try:
         folder = _rf.list_folder(_check_folder(run_dir), problems)
         headers = _rf.read_run_headers(folder)
@@ -210,13 +217,16 @@ def load(run_dir: str | os.PathLike, *, ranks: Iterable[int] | None = None) -> R
         axis, first = _rf.align_clocks(folder, headers, problems)
         wanted = None if ranks is None else {int(r) for r in ranks}
         procs = _rf.read_processes(folder, headers, axis, wanted, problems)
-        spans, samples = _merge_spans(procs)
-        batches = _batches(spans, samples)
+        processes = _process_table(procs)
+        samples = _members(procs)
+        step("merging spans")
+        cols = _span_columns(_take_records(procs))
+        batches = _batches(_consumer_frame(cols), samples)
         for message in check_step_alignment(folder.root, batches, axis.clock):
             problems.add(message)
-        spans = _link(spans, samples, batches)
-        spans["dur_s"] = spans["end_s"] - spans["start_s"]
-        spans = spans[list(SPAN_COLUMNS)].sort_values(["start_s", "end_s"], kind="stable").reset_index(drop=True)
+        step("linking worker spans")
+        _link(cols, samples, batches)
+        spans = _time_ordered_frame(cols)
         resources = _rf.read_resources(folder, headers, axis, wanted, problems)
     finally:
         problems.warn()
@@ -227,7 +237,7 @@ def load(run_dir: str | os.PathLike, *, ranks: Iterable[int] | None = None) -> R
         batches=batches,
         samples=samples[["rank", "batch_id", "sample_id", "ready_s"]],
         resources=resources,
-        processes=_process_table(procs),
+        processes=processes,
         problems=problems.messages,
         clock=axis.clock,
         t0_ns=axis.t0_ns,
@@ -243,17 +253,13 @@ def _check_folder(run_dir: str | os.PathLike) -> Path:
     return root
 
 
-def _merge_spans(procs: list[_rf.Process]) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """All processes' spans in one frame, and all membership rows in another."""
-    frames = [p.spans for p in procs if p.spans is not None]
+def _members(procs: list[_rf.Process]) -> pd.DataFrame:
+    """All membership rows (which sample went into which batch), in file order."""
     members = [p.members for p in procs if p.members is not None]
-    spans = _empty_spans() if not frames else _concat_spans(frames)
     if members:
-        samples = pd.concat(members, ignore_index=True)
-    else:
-        samples = pd.DataFrame({c: np.zeros(0, np.int64) for c in ("rank", "batch_id", "sample_id", "epoch")})
-        samples = samples.assign(ready_s=np.zeros(0))
-    return spans, samples
+        return pd.concat(members, ignore_index=True)
+    samples = pd.DataFrame({c: np.zeros(0, np.int64) for c in ("rank", "batch_id", "sample_id", "epoch")})
+    return samples.assign(ready_s=np.zeros(0))
 
 
 def _process_table(procs: list[_rf.Process]) -> pd.DataFrame:
@@ -264,7 +270,7 @@ def _process_table(procs: list[_rf.Process]) -> pd.DataFrame:
             "rank": p.rank,
             "role": p.header.role,
             "host": p.header.host,
-            "spans": len(p.spans),
+            "spans": p.span_count,
             "file": p.name,
         }
         for p in procs
@@ -273,8 +279,8 @@ def _process_table(procs: list[_rf.Process]) -> pd.DataFrame:
     table = pd.DataFrame(rows, columns=["pid", "ppid", "rank", "role", "host", "spans", "file"])
     # each process as one span from its first start to its last end: enough to find the worker slots
     lives = pd.DataFrame(
-        [{"rank": p.rank, "pid": p.pid, "role": p.header.role, "start_s": p.spans["start_s"].min(),
-          "end_s": p.spans["end_s"].max()} for p in procs if p.spans is not None and len(p.spans)],
+        [{"rank": p.rank, "pid": p.pid, "role": p.header.role, "start_s": p.spans.start_ns.min() / 1e9,
+          "end_s": p.spans.end_ns.max() / 1e9} for p in procs if p.spans is not None and p.span_count],
         columns=["rank", "pid", "role", "start_s", "end_s"])
     slots = worker_slots(lives)
     table["slot"] = [slots.get((int(r), int(p)), 0) for r, p in zip(table["rank"], table["pid"], strict=True)]
@@ -337,16 +343,6 @@ def worker_slots(spans: pd.DataFrame) -> dict[tuple[int, int], int]:
     return out
 
 
-def _concat_spans(frames: list[pd.DataFrame]) -> pd.DataFrame:
-    stages = pd.Index(pd.unique(np.concatenate([f["stage"].cat.categories.to_numpy(object) for f in frames])))
-    for f in frames:
-        f["stage"] = f["stage"].cat.set_categories(stages)
-        f["role"] = f["role"].astype(object)
-    out = pd.concat(frames, ignore_index=True)
-    out["role"] = out["role"].astype("category")
-    return out
-
-
 def _batches(spans: pd.DataFrame, samples: pd.DataFrame) -> pd.DataFrame:
     waits = spans[(spans["stage"] == "wait") & ~spans["error"]]  # a failed wait delivered nothing
     b = pd.DataFrame(
@@ -377,26 +373,127 @@ def _batches(spans: pd.DataFrame, samples: pd.DataFrame) -> pd.DataFrame:
     return b[list(BATCH_COLUMNS)]
 
 
-def _link(spans: pd.DataFrame, samples: pd.DataFrame, batches: pd.DataFrame) -> pd.DataFrame:
-    """Give worker spans their batch (via membership) and every span its epoch."""
-    spans = spans.copy()
-    need = (spans["batch_id"] < 0) & (spans["sample_id"] >= 0)
-    if need.any() and len(samples):
-        left = spans.loc[need, ["end_s", "sample_id", "rank"]].reset_index()
+# -- the merged spans as compact columns ----------------------------------------------------------
+
+
+@dataclass
+class _Columns:
+    """Every process's spans as one set of numpy columns, in file order (the columns of :data:`SPAN_COLUMNS`
+    but ``stage`` and ``role`` as codes into ``stages`` and ``roles``, and no ``dur_s`` yet)."""
+
+    arrays: dict[str, np.ndarray]
+    stages: pd.Index
+    roles: list[str]
+    any_process: bool
+
+    def __len__(self) -> int:
+        return len(self.arrays["start_s"])
+
+
+_Part = tuple[int, int, Any, "_rf.Records"]  # rank, pid, process header, span records
+
+
+def _take_records(procs: list[_rf.Process]) -> list[_Part]:
+    """The span records of each process with usable spans, leaving ``procs`` without them (to free them early)."""
+    parts = [(p.rank, p.pid, p.header, p.spans) for p in procs if p.spans is not None]
+    procs[:] = [dataclasses.replace(p, spans=None) for p in procs]
+    return parts
+
+
+#: Dtypes of the merged columns (those of :data:`SPAN_COLUMNS`, stage and role as codes).
+_COLUMN_DTYPES = {"stage": np.int32, "start_s": np.float64, "end_s": np.float64, "sample_id": np.int64,
+                  "batch_id": np.int64, "epoch": np.int64, "pid": np.int64, "tid": np.int64, "rank": np.int64,
+                  "cpu_s": np.float64, "error": bool, "role": np.int8}
+
+
+def _span_columns(parts: list[_Part]) -> _Columns:
+    """Copy each process's records into the merged columns, dropping each process's records once copied.
+
+    Peak memory is the records of all processes (64 bytes a span) plus the columns (77 bytes a span), with
+    no frame of Python objects and no second copy of the merged spans.
+    """
+    stages = pd.Index(pd.unique(np.concatenate([np.asarray(list(h.stages), object) for _, _, h, _ in parts])
+                                if parts else np.zeros(0, object)))
+    roles = sorted({h.role for _, _, h, got in parts if len(got.recs)})
+    n = sum(len(got.recs) for _, _, _, got in parts)
+    out = {c: np.empty(n, dt) for c, dt in _COLUMN_DTYPES.items()}
+    any_process = bool(parts)
+    at = 0
+    while parts:
+        rank, pid, h, got = parts.pop(0)
+        r, k = got.recs, len(got.recs)
+        piece = slice(at, at + k)
+        out["stage"][piece] = stages.get_indexer(list(h.stages)).astype(np.int32)[r["stage"]] if k else 0
+        np.divide(got.start_ns, 1e9, out=out["start_s"][piece])
+        np.divide(got.end_ns, 1e9, out=out["end_s"][piece])
+        for c in ("sample_id", "batch_id", "epoch", "tid"):
+            out[c][piece] = r[c]
+        out["pid"][piece], out["rank"][piece] = pid, rank
+        cpu = out["cpu_s"][piece]
+        np.divide(r["cpu_ns"], 1e9, out=cpu)
+        cpu[r["cpu_ns"] < 0] = np.nan
+        out["error"][piece] = (r["flags"] & tf.FLAG_ERROR) != 0
+        out["role"][piece] = roles.index(h.role) if k else 0
+        at += k
+        del r, got
+    return _Columns(out, stages, roles, any_process)
+
+
+def _stage_column(cols: _Columns, codes: np.ndarray) -> pd.Categorical:
+    return pd.Categorical.from_codes(codes.astype(np.int64), categories=cols.stages)
+
+
+def _consumer_frame(cols: _Columns) -> pd.DataFrame:
+    """The waits and steps (file order) as a small frame with the columns :func:`_batches` reads."""
+    a = cols.arrays
+    codes = [cols.stages.get_loc(name) for name in ("wait", "step") if name in cols.stages]
+    rows = np.flatnonzero(np.isin(a["stage"], codes)) if codes else np.zeros(0, np.int64)
+    frame = {c: a[c][rows] for c in ("start_s", "end_s", "batch_id", "epoch", "rank", "error")}
+    return pd.DataFrame({"stage": _stage_column(cols, a["stage"][rows]), **frame})
+
+
+def _link(cols: _Columns, samples: pd.DataFrame, batches: pd.DataFrame) -> None:
+    """Give worker spans their batch (via membership) and every span its epoch, in place."""
+    a = cols.arrays
+    need = np.flatnonzero((a["batch_id"] < 0) & (a["sample_id"] >= 0))
+    if len(need) and len(samples):
+        left = pd.DataFrame({"index": need, "end_s": a["end_s"][need], "sample_id": a["sample_id"][need],
+                             "rank": a["rank"][need]})
         left = left.sort_values("end_s", kind="stable")
         right = samples[["ready_s", "sample_id", "rank", "batch_id"]].sort_values("ready_s", kind="stable")
         joined = pd.merge_asof(
             left, right, left_on="end_s", right_on="ready_s", by=["rank", "sample_id"], direction="forward"
         )
         found = joined["batch_id"].notna().to_numpy()
-        spans.loc[joined["index"].to_numpy()[found], "batch_id"] = joined["batch_id"].to_numpy()[found].astype(np.int64)
+        a["batch_id"][joined["index"].to_numpy()[found]] = joined["batch_id"].to_numpy()[found].astype(np.int64)
     if len(batches):
-        key = batches.set_index(["rank", "batch_id"])["epoch"]
-        has = spans["batch_id"] >= 0
-        idx = pd.MultiIndex.from_arrays([spans.loc[has, "rank"], spans.loc[has, "batch_id"]])
-        ep = key.reindex(idx).to_numpy()
-        ok = ~pd.isna(ep)
-        fill = spans.loc[has, "epoch"].to_numpy().copy()
-        fill[ok] = ep[ok].astype(np.int64)
-        spans.loc[has, "epoch"] = fill
-    return spans
+        has = np.flatnonzero(a["batch_id"] >= 0)
+        key = _batch_key(batches["rank"].to_numpy(np.int64), batches["batch_id"].to_numpy(np.int64))
+        want = _batch_key(a["rank"][has], a["batch_id"][has])
+        at = np.minimum(np.searchsorted(key, want), len(key) - 1)  # batches are sorted by (rank, batch_id)
+        ok = key[at] == want
+        a["epoch"][has[ok]] = batches["epoch"].to_numpy(np.int64)[at[ok]]
+
+
+def _batch_key(rank: np.ndarray, batch_id: np.ndarray) -> np.ndarray:
+    """One sortable int per (rank, batch id): batch ids are 32-bit in the trace format."""
+    return rank * (1 << 33) + batch_id + 1
+
+
+def _time_ordered_frame(cols: _Columns) -> pd.DataFrame:
+    """:attr:`Run.spans`: the columns in time order (start, then end; stable), each taken once."""
+    if not cols.any_process:
+        return _empty_spans()
+    a = cols.arrays
+    order = np.lexsort((a["end_s"], a["start_s"]))
+    out: dict[str, Any] = {}
+    for c in SPAN_COLUMNS:
+        if c == "dur_s":
+            out[c] = out["end_s"] - out["start_s"]
+        elif c == "stage":
+            out[c] = _stage_column(cols, a.pop(c)[order])
+        elif c == "role":
+            out[c] = pd.Categorical.from_codes(a.pop(c)[order].astype(np.int64), categories=cols.roles)
+        else:
+            out[c] = a.pop(c)[order]
+    return pd.DataFrame(out)  # one block per dtype, as pandas keeps a frame it built itself

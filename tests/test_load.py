@@ -194,3 +194,54 @@ class TestWorkerSlots:
                     g.add_edge(i, j)
                     assert s1 != s2
         assert max(len(c) for c in nx.find_cliques(g)) == max(slots.values())
+
+
+@st.composite
+def _linked_runs(draw: st.DrawFn) -> tuple[dict[int, list], list[tuple[float, int, int]]]:
+    """A consumer taking 1-4 batches of drawn samples (a sample may recur), and 1-2 workers whose spans
+    (on a coarse millisecond grid, so starts and ends tie often) name drawn samples."""
+    n_b = draw(st.integers(1, 4))
+    main: list = []
+    members: list[tuple[float, int, int]] = []  # (ready_ms, sample, batch) in file order
+    t = 0
+    for b in range(n_b):
+        ready = t + draw(st.integers(0, 3))
+        main.append(wait(t, ready, b))
+        for s in draw(st.lists(st.integers(0, 5), min_size=1, max_size=3)):
+            main.append(member(ready, s, b))
+            members.append((float(ready), s, b))
+        t = ready + draw(st.integers(0, 2))
+        main.append(step(ready, t, b))
+    procs = {10: main}
+    for pid in range(11, 11 + draw(st.integers(1, 2))):
+        spans = draw(st.lists(st.tuples(st.sampled_from(["decode", "augment"]), st.integers(0, 12),
+                                        st.integers(0, 3), st.integers(0, 5)), max_size=8))
+        procs[pid] = [stage(name, a, a + d, sample=s) for name, a, d, s in spans]
+    return procs, members
+
+
+class TestMergeByTheRules:
+    @settings(max_examples=60, deadline=None)
+    @given(_linked_runs())
+    def test_merged_spans_follow_the_documented_order_and_links(self, tmp_path_factory: pytest.TempPathFactory,
+                                                                 drawn: tuple[dict[int, list], list]) -> None:
+        """Run.spans is every span in time order (start, then end; ties in file order) and each worker span
+        links to the first delivery at or after its end of a batch holding its sample (the rule in the load
+        docstring), worked out here row by row in plain Python, by brute force (common practice: an oracle)."""
+        procs, members = drawn
+        run = pipeprobe.load(write_run(tmp_path_factory.mktemp("linked") / "r", procs))
+        rows = []  # file order: spans-r0-p<pid>.bin sorted by name
+        for pid in sorted(procs, key=lambda p: f"spans-r0-p{p}.bin"):
+            for r in procs[pid]:
+                if r.kind == "member":
+                    continue
+                batch = r.batch if r.batch is not None else -1
+                if r.kind == "stage":
+                    later = [(ready, i, b) for i, (ready, s, b) in enumerate(members)
+                             if s == r.sample and ready >= r.end_ms]
+                    batch = min(later)[2] if later else -1
+                rows.append((r.start_ms / 1e3, r.end_ms / 1e3, r.stage, pid, batch))
+        expected = sorted(rows, key=lambda x: (x[0], x[1]))  # sorted() is stable
+        got = list(zip(run.spans["start_s"], run.spans["end_s"], run.spans["stage"].astype(str),
+                       run.spans["pid"], run.spans["batch_id"], strict=True))
+        assert [(pytest.approx(a), pytest.approx(b), *rest) for a, b, *rest in expected] == got
