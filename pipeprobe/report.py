@@ -162,8 +162,8 @@ def build_report(analysis: Analysis, sections: list[Section] | None = None) -> R
     ...         with probe.step():
     ...             pass
     >>> r = build_report(pipeprobe.analyze(d))
-    >>> r.parts[0][0].name
-    'verdict'
+    >>> [section.name for section, figures in r.parts][:3]
+    ['recording window', 'verdict', 'actions']
     """
     return Report(analysis, sections)
 
