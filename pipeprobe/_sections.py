@@ -164,10 +164,10 @@ def critical_text(a: Analysis) -> list[str]:
     lines = [f"critical path  {len(cp.path)} nodes over {len(cp.batches)} batches; where the wall time went:"]
     for row in cp.shares.head(8).itertuples():
         bar = "#" * int(round(30 * row.share))
-        lines.append(f"  {printable(row.label)[:24]:<24} {row.seconds:10.3f} s {pct(row.share)}  {bar}")
+        lines.append(f"  {printable(row.label)[:28]:<28} {row.seconds:10.3f} s {pct(row.share)}  {bar}")
     if len(cp.shares) > 8:
         rest = cp.shares.iloc[8:]
-        lines.append(f"  {'(' + str(len(rest)) + ' more)':<24} {rest['seconds'].sum():10.3f} s "
+        lines.append(f"  {'(' + str(len(rest)) + ' more)':<28} {rest['seconds'].sum():10.3f} s "
                      f"{pct(float(rest['share'].sum()))}")
     if len(cp.lanes):
         lanes = ", ".join(f"{r.lane} {100 * r.share:.0f} %" for r in cp.lanes.head(5).itertuples())

@@ -42,7 +42,7 @@ class TestText:
         """The stall fraction and the critical-path shares printed are the hand-checked ones."""
         text = format_report(analyze(simple_run_dir))
         assert "44.4 % of wall" in text
-        assert "decode                        0.018 s  33.3 %" in text
+        assert "decode                            0.018 s  33.3 %" in text
 
     def test_verdict_of_a_serial_loop_is_exact(self, simple_run_dir):
         """Loading inside the loop (8 ms input, 10 ms step, 3 batches): both sides pace in turn; freeing the

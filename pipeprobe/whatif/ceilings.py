@@ -247,16 +247,16 @@ def format_ceilings(c: Ceilings, width: int = 100) -> list[str]:
     >>> advice = worker_advice(plan_from_durations([0.03] * 4, [0.01] * 4, workers=2, prefetch=4, cores=4))
     >>> c = Ceilings([StageCeiling("decode", 0.5, 2.0, 1.6, 1.3, 1.45, "step")], 1.0, 1.0, 2, advice)
     >>> print(format_ceilings(c)[2])
-      decode                50.0 %   2.00x    1.60x    1.30x    1.45x   step
+      decode                      50.0 %   2.00x    1.60x    1.30x    1.45x   step
     """
     lines = [
         "Speed-up ceilings (Amdahl's formula from the critical-path share; replay of the recorded pipeline)",
-        f"  {'stage':<20} {'share':>7} {'formula':>7} {'replay free':>11} {'2x':>6} {'4x':>8}   then critical",
+        f"  {'stage':<26} {'share':>7} {'formula':>7} {'replay free':>11} {'2x':>6} {'4x':>8}   then critical",
     ]
     for r in c.stages:
         lines.append(
-            f"  {r.stage[:20]:<20} {100 * r.share:5.1f} % {_x(r.amdahl_ceiling):>7}  {_x(r.free_speedup):>7}  "
-            f"{_x(r.speedup_2x):>7}  {_x(r.speedup_4x):>7}   {r.next_critical or '-'}"
+            f"  {r.stage[:26]:<26} {100 * r.share:5.1f} % {_x(r.amdahl_ceiling):>7}  {_x(r.free_speedup):>7}  "
+            f"{_x(r.speedup_2x):>7}  {_x(r.speedup_4x):>7}   {(r.next_critical or '-')[:26]}"
         )
     a = c.advice
     advice = f"Loader workers: more can help: {a.more_workers} - {a.reason}." if a is not None else ""
