@@ -23,7 +23,8 @@ from ..errors import ProbeStateError
 from . import _clocksync, _closing, _signals
 from . import _recorder as _r
 from ._recorder import RECORDER
-from ._spans import _check_epoch, _check_id, _CpuSpan, _Noop, _Span, stage
+from ._spans import _check_epoch, _check_id, _Noop, _Span, _StepSpan, stage
+from ._threads import STEP_CPU_PROCESS, read_thread_pools
 
 __all__ = ["Probe"]
 
@@ -240,6 +241,7 @@ class Probe:
             pipeprobe_version=__version__, python_version=platform.python_version(), platform=platform.platform(),
             pid=os.getpid(), rank=self.rank, world_size=self.world_size, cpu_time=bool(cpu_time),
             sample_interval_s=float(sample_interval_s), flush_interval_s=float(flush_interval_s),
+            extra={"step_cpu": STEP_CPU_PROCESS} if cpu_time else {},
         )
         self._open_run(float(sample_interval_s))
         _signals._SIGNAL_CLOSERS.append(self._close_on_signal)
@@ -303,7 +305,7 @@ class Probe:
         if not rec.on:
             return _Noop("step")
         code = _STEP_CODE | rec.stage_ids["step"]
-        return _CpuSpan(code, -1, -1) if rec.cpu_time else _Span(code, -1, -1)
+        return _StepSpan(code, -1, -1) if rec.cpu_time else _Span(code, -1, -1)
 
     def watch(
         self,
@@ -388,7 +390,8 @@ class Probe:
                 os.environ[key] = value
         if not ok and not rec.failed:
             return
-        self._header = replace(self._header, end_mono_ns=end, closed=True, batches=rec.next_batch)
+        self._header = replace(self._header, end_mono_ns=end, closed=True, batches=rec.next_batch,
+                               extra={**self._header.extra, "threads": read_thread_pools()})
         try:
             self._write_header()
         except Exception as exc:  # noqa: BLE001
