@@ -67,6 +67,7 @@ from typing import TYPE_CHECKING, Any, Iterable, Mapping
 import numpy as np
 
 from ..errors import ScenarioError
+from ..threads import check_threads
 from ._contention import background_cores, cores_left
 from ._loader import POLICIES
 from ._recorded import (
@@ -139,6 +140,12 @@ class ReplayPlan:
     folded_stages : tuple of str
         Stage names replayed together as ``"(other stages)"`` (a side had
         more than :data:`~pipeprobe.whatif.limits.MAX_PLAN_STAGES` of them).
+    step_width : float
+        Threads the consumer's work runs on in the replay: the cores the
+        step used with idle workers, at most its pools' threads (1 when the
+        run has no thread facts; see :mod:`pipeprobe.threads`).
+    threads : ThreadCheck or None
+        The run's thread check (None for a plan not built from a run).
     """
 
     batch_id: np.ndarray
@@ -164,6 +171,8 @@ class ReplayPlan:
     background_cores: float = 0.0
     prefetch_inferred: bool = False
     folded_stages: tuple[str, ...] = ()
+    step_width: float = 1.0
+    threads: Any = None
 
     @property
     def batches(self) -> int:
@@ -252,6 +261,7 @@ def build_plan(
     cores = int(run.header.get("cores") or 1)
     background = background_cores(run.resources, batches.rank, cores) if spans.cpu_known else 0.0
     loader_side, consumer_side = without_contention(loader, consumer, batches, cores_left(cores, background))
+    threads = check_threads(run)
     config = loader_config(batches, loader, by_worker, workers, prefetch, policy)
     times = loader_times(batches, loader, by_worker, config)
     return ReplayPlan(
@@ -267,6 +277,7 @@ def build_plan(
                *config.notes],
         background_cores=background, prefetch_inferred=config.prefetch_inferred,
         folded_stages=loader.seconds.folded + consumer.seconds.folded,
+        step_width=threads.step_width, threads=threads,
     )
 
 
