@@ -291,7 +291,7 @@ def _compare(steps: _StepLoad, cores: int, k: int) -> dict[str, Any]:
     slowdown = busy_s / idle_s if idle_s > 0 else math.nan
     out.update(busy_step_s=busy_s, idle_step_s=idle_s, slowdown=slowdown, explained_slowdown=explained,
                unexplained=slowdown / explained,
-               cost_s=float(np.maximum(0.0, steps.dur_s[busy] - idle_s).sum()))
+               cost_s=float(np.maximum(0.0, steps.dur_s[busy] - idle_s).sum()) if slowdown > 1.0 else 0.0)
     return out
 
 
