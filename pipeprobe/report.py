@@ -22,9 +22,9 @@ from dataclasses import asdict, dataclass
 from typing import Any, Callable, TextIO
 
 from . import _sections as part
-from ._threadsection import threads_compute, threads_data, threads_text
 from ._jsonnum import dumps, json_ready
 from ._sections import SCHEMA_VERSION, WIDTH, fit
+from ._threadsection import threads_compute, threads_data, threads_text
 from .analysis import Analysis, analyze
 from .errors import PipeprobeError
 from .pace import Verdict, judge

@@ -9,8 +9,9 @@ partner spins or sleeps, and the step takes as long as its slowest thread.
 
 * the recording shows a slow-down of the step beside busy workers beyond
   what processor sharing explains (:attr:`ThreadCheck.is_unexplained`), or
-* the scenario oversubscribes the cores more than the recording did, so
-  the recording cannot show how the pool behaves there.
+* the step runs on a pool of threads and the scenario oversubscribes the
+  cores more than the recording did, so the recording cannot show how the
+  pool behaves there.
 
 The low end is the processor-sharing replay, and, where part of the
 recorded slow-down is unexplained, the replay without that part. The high
@@ -65,7 +66,7 @@ def range_reason(plan: ReplayPlan, scenario: Scenario) -> str:
     if check.is_unexplained:
         return (f"the step ran {check.slowdown:.2f}x slower beside busy workers where processor sharing explains "
                 f"{check.explained_slowdown:.2f}x")
-    if workers > 0 and _excess(check, workers, cores) > recorded + 0.25:
+    if check.step_threads > 1 and workers > 0 and _excess(check, workers, cores) > recorded + 0.25:
         return (f"{check.step_threads} step threads and {workers} workers oversubscribe {cores:.3g} cores more than "
                 "the recorded run did")
     return ""

@@ -1,0 +1,142 @@
+"""The thread check, the step's threads in the replay, and the range on predictions (pipeprobe/threads.py, whatif)."""
+
+from __future__ import annotations
+
+import threading
+import time
+from dataclasses import replace
+from pathlib import Path
+
+import pytest
+from _synth import stage, step, wait, write_run
+
+import pipeprobe
+from pipeprobe.report import format_report, report_dict
+from pipeprobe.threads import check_threads, ps_step_slowdown, step_threads
+from pipeprobe.whatif._cores import cpu_speed
+from pipeprobe.whatif.engine import replay
+from pipeprobe.whatif.plan import plan_from_durations
+
+POOLS = {"usable_cores": 2, "pools": [{"api": "blas", "library": "openblas", "threads": 2}],
+         "torch_intra_op": None, "error": None}
+
+
+def _contended_run(tmp_path: Path, busy_step_ms: float, facts: bool = True) -> Path:
+    """Six 10 ms steps alone, then six steps beside a worker's CPU-bound 'decode' (``busy_step_ms`` each).
+
+    Each step used 2 cores (process CPU twice its wall time) when alone.
+    """
+    main, worker, t = [], [], 0.0
+    for b in range(12):
+        busy = b >= 6
+        dur = busy_step_ms if busy else 10.0
+        main += [wait(t, t + 1.0, b), step(t + 1.0, t + 1.0 + dur, b, cpu_ms=2 * dur if not busy else dur)]
+        if busy:
+            worker.append(stage("decode", t + 1.0, t + 1.0 + dur, batch=b))
+        t += 1.0 + dur
+    extra = {"threads": POOLS, "step_cpu": "process"} if facts else None
+    return write_run(tmp_path, {1: main, 2: worker}, cores=2, header_extra=extra)
+
+
+class TestProcessorSharing:
+    def test_step_threads_beside_a_worker(self) -> None:
+        """Two busy step threads and one CPU-bound worker on two cores: each thread gets 2/3 of a core.
+
+        Source: processor sharing, every runnable thread gets cores / threads (Kleinrock 1976, ch. 4).
+        """
+        assert 1.5 == pytest.approx(ps_step_slowdown(2, 2.0, 1.0, 2))
+
+    def test_threads_that_fit_are_not_slowed(self) -> None:
+        """A one-thread step beside one worker on two cores runs at full speed (analytic: they fit)."""
+        assert 1.0 == ps_step_slowdown(1, 1.0, 1.0, 2)
+
+    def test_common_speed_counts_every_thread_of_a_task(self) -> None:
+        """A task on two threads and a one-thread task, all CPU, on two cores: speed 2/3 (Kleinrock 1976)."""
+        assert 2 / 3 == pytest.approx(cpu_speed([1.0, 1.0], 2, widths=[2.0, 1.0]))
+
+    def test_replay_runs_the_step_on_its_threads(self) -> None:
+        """A two-thread step shares two cores with a worker: 75 ms, against 70 ms on one thread.
+
+        Worked example (processor sharing, Kleinrock 1976): task 0 alone 0-30 ms; step 0 (10 ms on 2
+        threads) and task 1 share two cores at speed 2/3 until 45 ms; task 1 ends alone at 65 ms; step 1
+        runs alone to 75 ms. On one thread step and task fit: 30 + 30 + 10 = 70 ms.
+        """
+        plan = plan_from_durations([0.03] * 2, [0.01] * 2, task_cpu_s=[0.03] * 2, step_cpu_s=[0.01] * 2,
+                                   workers=1, prefetch=1, cores=2)
+        assert (0.075, 0.07) == (round(replay(replace(plan, step_width=2.0)).wall_s, 9),
+                                 round(replay(plan).wall_s, 9))
+
+
+class TestThreadCheck:
+    def test_flags_oversubscription_and_its_cost(self, tmp_path: Path) -> None:
+        """Steps 20 ms beside a busy worker against 10 ms alone: 2x, 60 ms lost, 1.5x explained, advice given.
+
+        Worked example: 2 step threads + 1 worker > 2 cores; processor sharing (Kleinrock 1976) gives
+        each of the 3 threads 2/3 of a core, so 1.5x.
+        """
+        c = check_threads(pipeprobe.load(_contended_run(tmp_path, 20.0)))
+        got = (c.skipped, c.oversubscribed, c.busy_steps, c.idle_steps, c.slowdown, round(c.cost_s, 6),
+               c.explained_slowdown, c.step_cores)
+        assert (None, True, 6, 6, pytest.approx(2.0), 0.06, pytest.approx(1.5), pytest.approx(2.0)) == got
+        assert "give the step 1 thread beside 1 worker on 2 cores" in c.advice
+
+    def test_report_says_so(self, tmp_path: Path) -> None:
+        """The report's threads section names the oversubscription, its cost and the fix."""
+        text = format_report(pipeprobe.analyze(_contended_run(tmp_path, 20.0)))
+        section = text[text.index("threads  "):]
+        assert ["oversubscribed", "cost 0.060 s", "fix: give the step 1 thread"] == \
+            [w for w in ["oversubscribed", "cost 0.060 s", "fix: give the step 1 thread"] if w in section]
+
+    def test_old_run_folder_skips_the_check(self, tmp_path: Path) -> None:
+        """A run folder without thread facts: the check says it was skipped; report and what-if still work."""
+        d = _contended_run(tmp_path, 20.0, facts=False)
+        data = report_dict(pipeprobe.analyze(d))
+        prediction = pipeprobe.whatif(d, workers=2)
+        assert ("the run folder has no thread facts (recorded before pipeprobe 0.2.0)", None) == \
+            (data["threads"]["skipped"], prediction.wall_range_s)
+
+    @pytest.mark.parametrize("header, expected", [
+        ({}, None),
+        ({"threads": {"pools": None, "torch_intra_op": 3}}, 3),
+        ({"threads": {"pools": [{"threads": True}, {"threads": "8"}, {"threads": 4}]}}, 4),
+        ({"threads": "many"}, None),
+    ])
+    def test_step_threads_read_defensively(self, header: dict, expected: int | None) -> None:
+        """Thread facts in a header are read only where they are whole numbers in range (common practice)."""
+        assert expected == step_threads(header)
+
+
+class TestRange:
+    def test_unexplained_slowdown_gives_a_range(self, tmp_path: Path) -> None:
+        """Steps 2x slower beside a worker where sharing explains 1.5x: the prediction is a range around it."""
+        p = pipeprobe.whatif(_contended_run(tmp_path, 20.0), workers=2)
+        low, high = p.wall_range_s
+        assert (True, True) == (low <= p.predicted_wall_s <= high, high > p.predicted_wall_s)
+        assert "processor sharing explains 1.50x" in p.range_reason
+
+    def test_explained_slowdown_keeps_one_number(self, tmp_path: Path) -> None:
+        """Steps 1.5x slower beside a worker, as sharing explains, and the same workers: one number."""
+        p = pipeprobe.whatif(_contended_run(tmp_path, 15.0))
+        assert (None, "") == (p.wall_range_s, p.range_reason)
+
+
+class TestRecording:
+    def test_step_cpu_counts_every_thread(self, tmp_path: Path) -> None:
+        """The step's CPU time is the process's: a helper thread's 50 ms of CPU count while the loop sleeps."""
+
+        def burn() -> None:
+            t = time.thread_time()
+            while time.thread_time() - t < 0.05:
+                pass
+
+        with pipeprobe.Probe(tmp_path / "run", report=False) as probe:
+            for _ in probe.watch([0]):
+                with probe.step():
+                    helper = threading.Thread(target=burn)
+                    helper.start()
+                    helper.join()
+        run = pipeprobe.load(tmp_path / "run")
+        steps = run.spans[run.spans["stage"] == "step"]
+        facts = run.header["threads"]
+        assert (True, "process", True) == (float(steps["cpu_s"].iloc[0]) >= 0.05, run.header["step_cpu"],
+                                           facts["usable_cores"] >= 1)
