@@ -47,9 +47,9 @@ class Row:
 
 
 def stage(name: str, start_ms: float, end_ms: float, *, sample: int | None = None, batch: int | None = None,
-          epoch: int | None = None, tid: int | None = None) -> Row:
-    """A user stage span."""
-    return Row("stage", start_ms, end_ms, name, sample, batch, epoch, tid)
+          epoch: int | None = None, tid: int | None = None, cpu_ms: float | None = None) -> Row:
+    """A user stage span (``cpu_ms``: its CPU time, None: not taken)."""
+    return Row("stage", start_ms, end_ms, name, sample, batch, epoch, tid, cpu_ms)
 
 
 def wait(start_ms: float, end_ms: float, batch: int, *, epoch: int | None = 0, tid: int | None = None) -> Row:

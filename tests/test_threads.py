@@ -22,7 +22,7 @@ POOLS = {"usable_cores": 2, "pools": [{"api": "blas", "library": "openblas", "th
 
 
 def _contended_run(tmp_path: Path, busy_step_ms: float, facts: bool = True) -> Path:
-    """Six 10 ms steps alone, then six steps beside a worker's CPU-bound 'decode' (``busy_step_ms`` each).
+    """Six 10 ms steps alone, then six beside a worker's CPU-bound 'decode' of the next batch (``busy_step_ms`` each).
 
     Each step used 2 cores (process CPU twice its wall time) when alone.
     """
@@ -32,7 +32,7 @@ def _contended_run(tmp_path: Path, busy_step_ms: float, facts: bool = True) -> P
         dur = busy_step_ms if busy else 10.0
         main += [wait(t, t + 1.0, b), step(t + 1.0, t + 1.0 + dur, b, cpu_ms=2 * dur if not busy else dur)]
         if busy:
-            worker.append(stage("decode", t + 1.0, t + 1.0 + dur, batch=b))
+            worker.append(stage("decode", t + 1.0, t + 1.0 + dur, batch=b + 1, cpu_ms=dur))  # the next batch
         t += 1.0 + dur
     extra = {"threads": POOLS, "step_cpu": "process"} if facts else None
     return write_run(tmp_path, {1: main, 2: worker}, cores=2, header_extra=extra)

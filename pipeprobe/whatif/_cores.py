@@ -119,13 +119,16 @@ class CpuShare:
     (2.0, 0)
     """
 
-    __slots__ = ("cores", "contended", "finish", "batch", "_u", "_rem", "_rho", "_last_t", "_widths")
+    __slots__ = ("cores", "contended", "finish", "batch", "_u", "_rem", "_rho", "_last_t", "_widths", "lockstep")
 
     def __init__(self, cores: float, entities: int, extra_threads: float = 0.0) -> None:
         self.cores = cores
         self.contended = cores < entities + extra_threads
         #: entity -> threads of its running task, where not 1
         self._widths: dict[int, float] = {}
+        #: entity -> how much slower its tasks progress whenever the cores are oversubscribed (threads that
+        #: wait for a descheduled partner at each barrier; the pessimistic end of a prediction's range)
+        self.lockstep: dict[int, float] = {}
         #: entity -> finish time of its running task, in the order the tasks started (ties go to the
         #: earliest start)
         self.finish: dict[int, float] = {}
@@ -186,5 +189,7 @@ class CpuShare:
         for e, rem in self._rem.items():
             ue = u[e]
             rr = 1.0 / (1.0 - ue + ue / r) if r < 1.0 else 1.0  # progress_rate(ue, r), inlined for speed
+            if r < 1.0 and e in self.lockstep:
+                rr /= self.lockstep[e]
             rho[e] = rr
             finish[e] = now + (rem / rr if rem > 0 else 0.0)

@@ -15,10 +15,11 @@ partner spins or sleeps, and the step takes as long as its slowest thread.
 
 The low end is the processor-sharing replay, and, where part of the
 recorded slow-down is unexplained, the replay without that part. The high
-end replays the step as if its pool gave no speed-up at all (its CPU
-seconds on one thread, the step's threads left to wait for each other),
-times the unexplained slow-down, grown in proportion to the threads beyond
-the cores.
+end replays the step as a pool that loses its speed-up whenever the cores
+are oversubscribed (its threads wait for a descheduled partner at each
+barrier, so its CPU seconds run as if on one thread), or, where the
+recording shows more, the unexplained slow-down grown in proportion to the
+threads beyond the cores.
 
 References
 ----------
@@ -107,7 +108,6 @@ def wall_range(plan: ReplayPlan, base_wall_s: float, scenario: Scenario, predict
     if x > 1.0:
         relieved = replace(scenario, faster={**scenario.faster, "step": step * recorded_mix})
         low = min(low, replay(plan, relieved).wall_s * scale)
-    serial = max(1.0, check.step_cores)
-    worst = replace(scenario, faster={**scenario.faster, "step": step * recorded_mix / (serial * grown)})
-    high = max(predicted_s, replay(replace(plan, step_width=1.0), worst).wall_s * scale)
+    lockstep = max(float(check.step_threads), grown)  # a pool of k threads gains at most k-fold
+    high = max(predicted_s, replay(replace(plan, step_lockstep=lockstep), scenario).wall_s * scale)
     return low, high

@@ -323,6 +323,8 @@ class _Replayer:
         # the consumer's work runs on the step's threads (the cores it used alone; see pipeprobe.threads)
         self.step_width = plan.step_width
         self.cpu = CpuShare(settings.cores, W + 1, extra_threads=plan.step_width - 1.0)
+        if plan.step_lockstep > 1.0:
+            self.cpu.lockstep[W] = plan.step_lockstep
         self.log = BatchLog(nb)
         self.consumer = W  # the consumer's entity on the cores; workers are 0 .. W - 1
         self.state = _BUSY

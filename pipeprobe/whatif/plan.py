@@ -146,6 +146,11 @@ class ReplayPlan:
         run has no thread facts; see :mod:`pipeprobe.threads`).
     threads : ThreadCheck or None
         The run's thread check (None for a plan not built from a run).
+    step_lockstep : float
+        How much slower the consumer's work progresses whenever the cores
+        are oversubscribed, beyond processor sharing (1: not at all; the
+        high end of a prediction's range sets it, see
+        :mod:`pipeprobe.whatif._threadrange`).
     """
 
     batch_id: np.ndarray
@@ -173,6 +178,7 @@ class ReplayPlan:
     folded_stages: tuple[str, ...] = ()
     step_width: float = 1.0
     threads: Any = None
+    step_lockstep: float = 1.0
 
     @property
     def batches(self) -> int:
@@ -260,8 +266,9 @@ def build_plan(
     consumer = consumer_work(spans, batches, keep)
     cores = int(run.header.get("cores") or 1)
     background = background_cores(run.resources, batches.rank, cores) if spans.cpu_known else 0.0
-    loader_side, consumer_side = without_contention(loader, consumer, batches, cores_left(cores, background))
     threads = check_threads(run)
+    loader_side, consumer_side = without_contention(loader, consumer, batches, cores_left(cores, background),
+                                                    threads.step_width)
     config = loader_config(batches, loader, by_worker, workers, prefetch, policy)
     times = loader_times(batches, loader, by_worker, config)
     return ReplayPlan(
