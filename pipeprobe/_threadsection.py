@@ -18,7 +18,8 @@ __all__ = ["threads_compute", "threads_text", "threads_data"]
 def threads_compute(report: Report) -> ThreadCheck:
     from .threads import check_threads
 
-    return check_threads(report.analysis.run)
+    plan = report.replay_plan  # its estimate of the cores other processes kept busy
+    return check_threads(report.analysis.run, plan.background_cores if plan is not None else 0.0)
 
 
 def _pools(c: ThreadCheck) -> str:
@@ -30,9 +31,12 @@ def threads_text(c: ThreadCheck) -> list[str]:
     if c.skipped is not None:
         return [fit(f"threads  check skipped: {c.skipped}")]
     head = "oversubscribed" if c.oversubscribed else "the threads fit the cores"
-    lines = [fit(f"threads  {head}: step up to {c.step_threads} threads, {c.workers} worker(s), {c.cores} cores"),
-             fit(f"  pools: {_pools(c)}; the step used {c.step_cores:.2f} cores alone; workers "
-                 f"{c.worker_load:.2f} busy during their steps")]
+    lines = [fit(f"threads  {head}: the step on up to {c.step_threads} thread(s), {c.workers} worker(s), "
+                 f"{c.cores} cores")]
+    lines += wrap(f"pools: {_pools(c)}; the step used {c.step_cores:.2f} cores alone; workers "
+                  f"{c.worker_load:.2f} busy during their steps"
+                  + (f"; other processes kept {c.background_cores:.1f} cores busy" if c.background_cores >= 0.05
+                     else ""), "    ", "  ")
     if not math.isnan(c.slowdown) and c.slowdown <= 1.0:
         lines.append(fit(f"  steps were no slower with busy workers ({1e3 * c.busy_step_s:.1f} ms, {c.busy_steps} "
                          f"steps) than with idle ones ({1e3 * c.idle_step_s:.1f} ms, {c.idle_steps})"))
@@ -60,4 +64,4 @@ def threads_data(c: ThreadCheck) -> dict[str, Any]:
         "oversubscribed": c.oversubscribed, "busy_steps": c.busy_steps, "idle_steps": c.idle_steps,
         "busy_step_s": c.busy_step_s, "idle_step_s": c.idle_step_s, "slowdown": c.slowdown,
         "explained_slowdown": c.explained_slowdown, "unexplained": c.unexplained, "cost_s": c.cost_s,
-        "advice": c.advice})}
+        "advice": c.advice, "background_cores": c.background_cores})}

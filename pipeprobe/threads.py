@@ -47,6 +47,8 @@ IDLE_LOAD = 0.1
 MIN_STEPS = 3
 #: Observed over explained slow-down above which the recording shows contention the model misses.
 UNEXPLAINED_MARGIN = 1.10
+#: Cores the step keeps however busy the machine was (as the replay's plan does).
+MIN_CORES_LEFT = 0.25
 
 
 @dataclass(frozen=True)
@@ -72,7 +74,8 @@ class ThreadCheck:
     worker_load : float
         Mean CPU-weighted busy workers during the steps that ran with busy workers.
     oversubscribed : bool
-        ``step_threads + worker_load`` exceeds ``cores``.
+        ``step_threads + worker_load + background_cores`` exceeds ``cores``
+        (threads that want CPU while workers run, or beside other processes).
     busy_steps, idle_steps : int
         Steps with busy and with idle workers.
     busy_step_s, idle_step_s : float
@@ -87,6 +90,9 @@ class ThreadCheck:
         Time the steps lost to busy workers: their time beyond ``idle_step_s``.
     wall_s : float
         Wall time of the run.
+    background_cores : float
+        Cores other processes kept busy during the run (given by the caller;
+        processor sharing explains the step's slow-down on the cores left).
     advice : str
         The fix in concrete terms ("" when none is needed).
     """
@@ -109,6 +115,7 @@ class ThreadCheck:
     cost_s: float = 0.0
     wall_s: float = 0.0
     advice: str = ""
+    background_cores: float = 0.0
 
     @property
     def step_width(self) -> float:
@@ -272,14 +279,15 @@ def _steps_under_load(run: Run) -> _StepLoad:
     return _StepLoad(b - a, steps["cpu_s"].to_numpy(float), load, workers)
 
 
-def _compare(steps: _StepLoad, cores: int, k: int) -> dict[str, Any]:
+def _compare(steps: _StepLoad, cores: int, k: int, background: float) -> dict[str, Any]:
     """Step 3: median step time with busy against idle workers; the part processor sharing explains."""
     busy = steps.worker_load >= BUSY_LOAD
     idle = steps.worker_load <= IDLE_LOAD
     out: dict[str, Any] = {"busy_steps": int(busy.sum()), "idle_steps": int(idle.sum())}
     load = float(np.mean(steps.worker_load[busy])) if busy.any() else 0.0
     out["worker_load"] = load
-    out["oversubscribed"] = bool(busy.any() and k + load > cores + 1e-9)
+    # threads wanting CPU while workers ran (or, with none busy, beside the other processes alone)
+    out["oversubscribed"] = bool(k + load + background > cores + 1e-9 and (busy.any() or k > 1))
     alone = idle if idle.sum() >= MIN_STEPS else np.ones(len(idle), bool)
     with np.errstate(invalid="ignore", divide="ignore"):
         out["step_cores"] = float(np.nanmedian(steps.cpu_s[alone] / steps.dur_s[alone])) if alone.any() else 1.0
@@ -287,7 +295,8 @@ def _compare(steps: _StepLoad, cores: int, k: int) -> dict[str, Any]:
         return out
     busy_s, idle_s = float(np.median(steps.dur_s[busy])), float(np.median(steps.dur_s[idle]))
     step_cores = out["step_cores"]
-    explained = ps_step_slowdown(k, step_cores if math.isfinite(step_cores) else 1.0, load, cores)
+    left = max(MIN_CORES_LEFT, cores - background)
+    explained = ps_step_slowdown(k, step_cores if math.isfinite(step_cores) else 1.0, load, left)
     slowdown = busy_s / idle_s if idle_s > 0 else math.nan
     out.update(busy_step_s=busy_s, idle_step_s=idle_s, slowdown=slowdown, explained_slowdown=explained,
                unexplained=slowdown / explained,
@@ -299,6 +308,9 @@ def _advice(cores: int, k: int, workers: int, oversubscribed: bool) -> str:
     """Step 4: the fix on this machine: threads for the step, or workers."""
     if not oversubscribed:
         return ""
+    if k == 1:
+        return "" if workers < cores else (f"the step runs on one thread; {workers} workers beside it on {cores} "
+                                           f"cores: try {max(1, cores - 1)}")
     t = max(1, cores - max(1, workers))
     w = max(1, cores - k)
     keep = (f"; or keep {k} step threads and use {w} worker{'s' if w != 1 else ''}" if w < workers else "")
@@ -307,13 +319,16 @@ def _advice(cores: int, k: int, workers: int, oversubscribed: bool) -> str:
             f"OMP_NUM_THREADS={t} before the start){keep}")
 
 
-def check_threads(run: Run) -> ThreadCheck:
+def check_threads(run: Run, background_cores: float = 0.0) -> ThreadCheck:
     """Check whether the step's threads and the loader workers wanted more CPU than the cores.
 
     Parameters
     ----------
     run : Run
         A loaded run (:func:`pipeprobe.load`).
+    background_cores : float, optional
+        Cores other processes kept busy (the replay plan's estimate from
+        the resource samples); the step shares only the rest.
 
     Returns
     -------
@@ -342,7 +357,8 @@ def check_threads(run: Run) -> ThreadCheck:
     if steps.workers == 0:
         return ThreadCheck(skipped="the loader ran no worker processes", cores=cores, step_threads=k,
                            pools=tuple(pools), wall_s=float(run.wall_s))
-    found = _compare(steps, cores, k)
+    found = _compare(steps, cores, k, float(background_cores))
     return ThreadCheck(skipped=None, cores=cores, step_threads=k, pools=tuple(pools), workers=steps.workers,
                        wall_s=float(run.wall_s), **found,
-                       advice=_advice(cores, k, steps.workers, found["oversubscribed"]))
+                       advice=_advice(cores, k, steps.workers, found["oversubscribed"]),
+                       background_cores=float(background_cores))

@@ -266,7 +266,7 @@ def build_plan(
     consumer = consumer_work(spans, batches, keep)
     cores = int(run.header.get("cores") or 1)
     background = background_cores(run.resources, batches.rank, cores) if spans.cpu_known else 0.0
-    threads = check_threads(run)
+    threads = check_threads(run, background)
     loader_side, consumer_side = without_contention(loader, consumer, batches, cores_left(cores, background),
                                                     threads.step_width)
     config = loader_config(batches, loader, by_worker, workers, prefetch, policy)
