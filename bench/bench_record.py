@@ -77,6 +77,18 @@ def loop_plain_call(n: int) -> None:
         _work(i)
 
 
+def loop_step_of(probe: pipeprobe.Probe):
+    """The training step's timer: its CPU time is the process's (every thread), not the thread's."""
+
+    def loop_step(n: int) -> None:
+        step = probe.step
+        for _ in range(n):
+            with step():
+                pass
+
+    return loop_step
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--spans", type=int, default=200_000)
@@ -92,10 +104,11 @@ def main() -> None:
         for rep in range(args.repeats):
             for cpu in (False, True):
                 run = os.path.join(d, f"r{rep}-{cpu}")
-                with pipeprobe.Probe(run, cpu_time=cpu, report=False, sample_interval_s=0):
+                with pipeprobe.Probe(run, cpu_time=cpu, report=False, sample_interval_s=0) as probe:
                     suffix = "cpu on" if cpu else "cpu off"
                     measure(f"block form ({suffix})", loop_block)
                     measure(f"decorator form ({suffix})", loop_decorated)
+                    measure(f"probe.step() ({suffix})", loop_step_of(probe))
             measure("empty loop", loop_empty)
             measure("two monotonic clock reads", loop_clock)
             measure("bare Python context manager", loop_bare_cm)
@@ -114,6 +127,10 @@ def main() -> None:
         off, on = med[f"{form} (cpu off)"], med[f"{form} (cpu on)"]
         print(f"  {form}: {off - med['empty loop']:.0f} ns net of the loop; "
               f"{off - med[base]:.0f} ns over {base}; CPU time adds {on - off:.0f} ns")
+    bare = med["bare Python context manager"]
+    print(f"  probe.step(): {med['probe.step() (cpu off)'] / bare:.2f}x the bare context manager with CPU time off, "
+          f"{med['probe.step() (cpu on)'] / bare:.2f}x with it on (process CPU clock); the block form with thread "
+          f"CPU time: {med['block form (cpu on)'] / bare:.2f}x")
     print(f"bytes per span on disk: {size / spans:.1f} ({spans} spans, {size} bytes incl. headers)")
 
 
