@@ -140,3 +140,21 @@ class TestRecording:
         facts = run.header["threads"]
         assert (True, "process", True) == (float(steps["cpu_s"].iloc[0]) >= 0.05, run.header["step_cpu"],
                                            facts["usable_cores"] >= 1)
+
+
+class TestDemo:
+    def test_demo_limits_its_blas_threads(self, tmp_path: Path) -> None:
+        """`pipeprobe demo` runs its step on one BLAS thread by default, recorded in the run header."""
+        from pipeprobe.demo import run_demo
+
+        run_demo(out=tmp_path / "d", batches=4, workers=1, prefetch=2, image_size=32, batch_size=4, quiet=True)
+        pools = pipeprobe.load(tmp_path / "d").header["threads"]["pools"]
+        assert [1] == sorted({p["threads"] for p in pools if p["api"] == "blas"})
+
+    def test_negative_step_threads_is_refused(self, capsys: pytest.CaptureFixture[str]) -> None:
+        """A negative --step-threads ends with exit code 2 and one line (common practice for CLI usage errors)."""
+        from pipeprobe.cli import main
+
+        with pytest.raises(SystemExit) as exc:
+            main(["demo", "--step-threads", "-1"])
+        assert 2 == exc.value.code
