@@ -210,6 +210,15 @@ def _common_speed(us: list[float], cores: float) -> float:
     return 0.5 * (lo + hi)
 
 
+def _unread(threads: Any) -> str:
+    """Why recorded thread facts give no pools."""
+    if not isinstance(threads, dict):
+        return "the run header's thread facts are not an object; the check needs a run recorded by pipeprobe 0.2.0+"
+    if threads.get("error"):
+        return f"the thread pools could not be read when the run was recorded ({str(threads['error'])[:80]})"
+    return "threadpoolctl was not installed when the run was recorded, so its thread pools are unknown"
+
+
 def _thread_facts(run: Run) -> tuple[str | None, int, list[dict[str, Any]]]:
     """Step 1: ``(why skipped or None, usable cores, pools)`` from the run header."""
     h = run.header
@@ -218,7 +227,7 @@ def _thread_facts(run: Run) -> tuple[str | None, int, list[dict[str, Any]]]:
         return "the run folder has no thread facts (recorded before pipeprobe 0.2.0)", 1, []
     pools = _pool_list(threads)
     if pools is None:
-        return "the thread pools could not be read when the run was recorded (install threadpoolctl)", 1, []
+        return _unread(threads), 1, []
     if h.get("step_cpu") != "process":
         return "the steps' CPU time was not recorded (cpu_time=False)", 1, []
     cores = threads.get("usable_cores") if isinstance(threads, dict) else None

@@ -95,6 +95,18 @@ class TestThreadCheck:
         assert ("the run folder has no thread facts (recorded before pipeprobe 0.2.0)", None) == \
             (data["threads"]["skipped"], prediction.wall_range_s)
 
+    @pytest.mark.parametrize("threads, why", [
+        ("many", "the run header's thread facts are not an object"),
+        ({"pools": None, "torch_intra_op": None, "error": "OSError: x"}, "could not be read when the run was recorded"),
+        ({"pools": None, "torch_intra_op": None, "error": None}, "threadpoolctl was not installed"),
+    ])
+    def test_unreadable_thread_facts_skip_the_check(self, tmp_path: Path, threads: object, why: str) -> None:
+        """Thread facts that are damaged or missing pools: skipped, saying why; the rest of the report works."""
+        d = write_run(tmp_path, {1: [wait(0, 1, 0), step(1, 11, 0, cpu_ms=10)]}, cores=2,
+                      header_extra={"threads": threads, "step_cpu": "process"})
+        data = report_dict(pipeprobe.analyze(d))
+        assert (True, 1) == (why in data["threads"]["skipped"], data["batches"])
+
     @pytest.mark.parametrize("header, expected", [
         ({}, None),
         ({"threads": {"pools": None, "torch_intra_op": 3}}, 3),
