@@ -62,7 +62,8 @@ class ThreadCheck:
     cores : int
         Cores the training process could use.
     step_threads : int
-        Threads the step's pools may run (the largest pool; 1 when none).
+        Threads the step's pools may run: torch's intra-op count where torch
+        was imported, else the largest pool; 1 when none.
     step_cores : float
         Cores the step used (process CPU over wall time, median), with
         idle workers where enough steps ran so (else over all steps).
@@ -150,6 +151,13 @@ def _pool_list(threads: Any) -> list[dict[str, Any]] | None:
     return out
 
 
+def _pool_threads(pools: list[dict[str, Any]]) -> int:
+    """The step's threads: torch's intra-op count where torch was in use (its ops run on that pool and it
+    sets its math libraries to match), else the largest pool; 1 when none."""
+    torch_n = [p["threads"] for p in pools if p["library"] == "torch"]
+    return torch_n[0] if torch_n else max([p["threads"] for p in pools], default=1)
+
+
 def step_threads(header: dict[str, Any]) -> int | None:
     """Threads the step's pools may run, from a run header (None: not recorded).
 
@@ -163,7 +171,7 @@ def step_threads(header: dict[str, Any]) -> int | None:
     pools = _pool_list(header.get("threads"))
     if pools is None:
         return None
-    return max([p["threads"] for p in pools], default=1)
+    return _pool_threads(pools)
 
 
 def ps_step_slowdown(step_threads: int, step_cores: float, worker_load: float, cores: float) -> float:
@@ -359,7 +367,7 @@ def check_threads(run: Run, background_cores: float = 0.0) -> ThreadCheck:
     why, cores, pools = _thread_facts(run)
     if why is not None:
         return ThreadCheck(skipped=why, wall_s=float(run.wall_s))
-    k = max([p["threads"] for p in pools], default=1)
+    k = _pool_threads(pools)
     steps = _steps_under_load(run)
     if not len(steps.dur_s):
         return ThreadCheck(skipped="the run has no training steps (probe.step())", wall_s=float(run.wall_s))

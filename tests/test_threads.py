@@ -111,6 +111,7 @@ class TestThreadCheck:
         ({}, None),
         ({"threads": {"pools": None, "torch_intra_op": 3}}, 3),
         ({"threads": {"pools": [{"threads": True}, {"threads": "8"}, {"threads": 4}]}}, 4),
+        ({"threads": {"pools": [{"api": "openmp", "library": "openmp", "threads": 4}], "torch_intra_op": 1}}, 1),
         ({"threads": "many"}, None),
     ])
     def test_step_threads_read_defensively(self, header: dict, expected: int | None) -> None:
