@@ -207,7 +207,11 @@ def _worker_threads(load: float) -> list[float]:
 
 
 def _common_speed(us: list[float], cores: float) -> float:
-    """The common speed of the CPU parts of threads wanting ``us`` of a core: bisection on the CPU they use."""
+    """The common speed of the CPU parts of threads wanting ``us`` of a core: bisection on the CPU they use.
+
+    The same equation as :func:`pipeprobe.whatif._cores.cpu_speed` (the replay's solver, a layer above
+    this one; ``tests/test_threads.py`` checks the two agree).
+    """
     if sum(us) <= cores:
         return 1.0
     lo, hi = 1e-9, 1.0

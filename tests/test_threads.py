@@ -55,6 +55,13 @@ class TestProcessorSharing:
         """A task on two threads and a one-thread task, all CPU, on two cores: speed 2/3 (Kleinrock 1976)."""
         assert 2 / 3 == pytest.approx(cpu_speed([1.0, 1.0], 2, widths=[2.0, 1.0]))
 
+    @pytest.mark.parametrize("us, cores", [([1.0, 1.0, 1.0], 2.0), ([0.5, 0.5, 1.0, 0.3], 1.5), ([0.9] * 5, 2.0)])
+    def test_check_and_replay_solve_alike(self, us: list[float], cores: float) -> None:
+        """The thread check's speed solver agrees with the replay's (one model of processor sharing)."""
+        from pipeprobe.threads import _common_speed
+
+        assert cpu_speed(us, cores) == pytest.approx(_common_speed(us, cores), rel=1e-6)
+
     def test_replay_runs_the_step_on_its_threads(self) -> None:
         """A two-thread step shares two cores with a worker: 75 ms, against 70 ms on one thread.
 

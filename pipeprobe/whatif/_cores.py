@@ -156,7 +156,8 @@ class CpuShare:
         """``entity``'s task ends at ``now``; returns its batch."""
         b = self.batch.pop(entity)
         del self.finish[entity], self._u[entity]
-        self._widths.pop(entity, None)
+        if self._widths:
+            self._widths.pop(entity, None)
         if self.contended:
             self._advance(now)
             del self._rem[entity], self._rho[entity]
