@@ -311,7 +311,7 @@ def _text_html(name: str, lines: list[str]) -> str:
     """A section without HTML of its own: its text lines under its name."""
     if not lines:
         return ""
-    return f"<h2>{_e(name)}</h2><pre>{_e(chr(10).join(lines))}</pre>"
+    return f"<h2>{_e(name)}</h2><pre>{chr(10).join(_e(line) for line in lines)}</pre>"  # escape lines, keep breaks
 
 
 # -- the page -------------------------------------------------------------------------------------------

@@ -149,6 +149,15 @@ class TestThreadCheck:
         assert ["oversubscribed", "cost 0.060 s", "fix: give the step 1 thread"] == \
             [w for w in ["oversubscribed", "cost 0.060 s", "fix: give the step 1 thread"] if w in section]
 
+    def test_html_page_shows_the_section_line_by_line(self, tmp_path: Path) -> None:
+        """The HTML report shows the threads section's lines with real line breaks (common practice: <pre>)."""
+        from pipeprobe.html import render_report
+
+        page = render_report(pipeprobe.analyze(_contended_run(tmp_path, 20.0)))
+        section = page[page.index("<h2>threads</h2>"):]
+        section = section[:section.index("</pre>")]
+        assert (True, False) == ("\n  fix: give the step 1 thread" in section, "\\x0a" in section)
+
     def test_old_run_folder_skips_the_check(self, tmp_path: Path) -> None:
         """A run folder without thread facts: the check says it was skipped; report and what-if still work."""
         d = _contended_run(tmp_path, 20.0, facts=False)
