@@ -75,19 +75,21 @@ def loop_decorated(n: int) -> None:
         f(i)
 
 
-_STEP_PROBE: list = []  # the probe whose step() loop_step times
-
-
-def loop_step(n: int) -> None:
-    step = _STEP_PROBE[0].step
-    for _ in range(n):
-        with step():
-            pass
-
-
 def loop_plain_call(n: int) -> None:
     for i in range(n):
         _work(i)
+
+
+def loop_step_of(probe: pipeprobe.Probe):
+    """The training step's timer: its CPU time is the process's (every thread), not the thread's."""
+
+    def loop_step(n: int) -> None:
+        step = probe.step
+        for _ in range(n):
+            with step():
+                pass
+
+    return loop_step
 
 
 def main() -> None:
@@ -105,16 +107,16 @@ def main() -> None:
         for rep in range(args.repeats):
             for cpu in (False, True):
                 run = os.path.join(d, f"r{rep}-{cpu}")
-                with pipeprobe.Probe(run, cpu_time=cpu, report=False, sample_interval_s=0):
+                with pipeprobe.Probe(run, cpu_time=cpu, report=False, sample_interval_s=0) as probe:
                     suffix = "cpu on" if cpu else "cpu off"
                     measure(f"block form ({suffix})", loop_block)
                     measure(f"decorator form ({suffix})", loop_decorated)
+                    measure(f"probe.step() ({suffix})", loop_step_of(probe))
             with pipeprobe.Probe(os.path.join(d, f"w{rep}"), report=False, sample_interval_s=0,
                                  window="1000000:") as probe:  # no batch taken: outside the window throughout
-                _STEP_PROBE[:] = [probe]
                 measure("block form (outside window)", loop_block)
                 measure("decorator form (outside window)", loop_decorated)
-                measure("probe.step() (outside window)", loop_step)
+                measure("probe.step() (outside window)", loop_step_of(probe))
             measure("empty loop", loop_empty)
             measure("two monotonic clock reads", loop_clock)
             measure("bare Python context manager", loop_bare_cm)
@@ -138,6 +140,10 @@ def main() -> None:
         out = med[f"{form} (outside window)"]
         print(f"  {form} outside the window: {out - med['empty loop']:.0f} ns net of the loop, "
               f"{out / med[base]:.2f}x {base} (same loop)")
+    bare = med["bare Python context manager"]
+    print(f"  probe.step(): {med['probe.step() (cpu off)'] / bare:.2f}x the bare context manager with CPU time off, "
+          f"{med['probe.step() (cpu on)'] / bare:.2f}x with it on (process CPU clock); the block form with thread "
+          f"CPU time: {med['block form (cpu on)'] / bare:.2f}x")
     print(f"bytes per span on disk: {size / spans:.1f} ({spans} spans, {size} bytes incl. headers)")
 
 

@@ -117,6 +117,9 @@ def _demo_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--batch-size", type=_positive_int, default=16, metavar="N",
                    help="samples per batch, at most the bundled photos (16)")
     p.add_argument("--seed", type=int, default=0, help="random seed (0)")
+    p.add_argument("--step-threads", type=_non_negative_int, default=1, metavar="N",
+                   help="threads of the step's math library (1); 0 keeps the library's default, to see the "
+                        "report's thread check flag the cores it oversubscribes")
 
 
 def _check_demo_out(out: str | None) -> None:
@@ -141,7 +144,7 @@ def _demo_run(args: argparse.Namespace) -> int:
     _check_demo_out(args.out)
     settings = dict(out=args.out, batches=args.batches, workers=args.workers, prefetch=args.prefetch,
                     image_size=args.image_size, augment=augment, width=args.width, batch_size=args.batch_size,
-                    seed=args.seed)
+                    seed=args.seed, step_threads=args.step_threads)
     try:
         result = run_demo(**settings)
     except ValueError as exc:  # run_demo's documented answer to a setting out of range

@@ -24,6 +24,7 @@ from typing import Any, Callable, TextIO
 from . import _sections as part
 from ._jsonnum import dumps, json_ready
 from ._sections import SCHEMA_VERSION, WIDTH, fit
+from ._threadsection import threads_compute, threads_data, threads_text
 from .analysis import Analysis, analyze
 from .errors import PipeprobeError
 from .pace import Verdict, judge
@@ -250,6 +251,7 @@ SECTIONS: list[Section] = [
     Section("stages", part.stage_text, part.stage_data, _page("stages_html"), _advised),
     Section("ranks", part.ranks_text, part.ranks_data, _page("ranks_html"), part.ranks_compute),
     Section("timeline", lambda a: [], None, _page("timeline_html")),
+    Section("threads", threads_text, threads_data, None, threads_compute),
     Section("recording cost", part.cost_text, part.cost_data, _page("cost_html"), part.cost_compute),
     Section("next", lambda f: part.next_text(*f), None, _no_html, lambda r: (r.analysis, r.worker_advice)),
 ]
@@ -295,6 +297,10 @@ JSON_SCHEMA: dict[str, str] = {
     "slowest_samples": "list of {stage, samples, of_samples, sample_ids, seconds, share}",
     "cpu": "{cores, core_busy_in_stalls, cores_saturated, more_workers: 'yes'|'no'|'unknown', "
            "more_workers_reason}; with a replay, the same answer as ceilings.advice",
+    "threads": "{skipped: null or why, cores, step_threads, step_cores, pools: list of {api, library, threads}, "
+               "workers, worker_load, oversubscribed, busy_steps, idle_steps, busy_step_s, idle_step_s, slowdown, "
+               "explained_slowdown, unexplained, cost_s, advice, background_cores}: the step's threads against the "
+               "loader workers",
     "recording_cost": "{spans, measured, processes: list of {pid, rank, role, spans, span_cost_ns, added_s, "
                       "wall_share}, too_short: list of {stage, p50_s, limit_s}}; span_cost_ns null when the run "
                       "did not measure it",

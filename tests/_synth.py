@@ -43,12 +43,13 @@ class Row:
     batch: int | None = None
     epoch: int | None = None
     tid: int | None = None
+    cpu_ms: float | None = None  # CPU time of the span (None: not taken, written as -1)
 
 
 def stage(name: str, start_ms: float, end_ms: float, *, sample: int | None = None, batch: int | None = None,
-          epoch: int | None = None, tid: int | None = None) -> Row:
-    """A user stage span."""
-    return Row("stage", start_ms, end_ms, name, sample, batch, epoch, tid)
+          epoch: int | None = None, tid: int | None = None, cpu_ms: float | None = None) -> Row:
+    """A user stage span (``cpu_ms``: its CPU time, None: not taken)."""
+    return Row("stage", start_ms, end_ms, name, sample, batch, epoch, tid, cpu_ms)
 
 
 def wait(start_ms: float, end_ms: float, batch: int, *, epoch: int | None = 0, tid: int | None = None) -> Row:
@@ -56,9 +57,10 @@ def wait(start_ms: float, end_ms: float, batch: int, *, epoch: int | None = 0, t
     return Row("wait", start_ms, end_ms, "wait", None, batch, epoch, tid)
 
 
-def step(start_ms: float, end_ms: float, batch: int, *, epoch: int | None = 0, tid: int | None = None) -> Row:
-    """The training step on ``batch``."""
-    return Row("step", start_ms, end_ms, "step", None, batch, epoch, tid)
+def step(start_ms: float, end_ms: float, batch: int, *, epoch: int | None = 0, tid: int | None = None,
+         cpu_ms: float | None = None) -> Row:
+    """The training step on ``batch`` (``cpu_ms``: its CPU time, None: not taken)."""
+    return Row("step", start_ms, end_ms, "step", None, batch, epoch, tid, cpu_ms)
 
 
 def member(at_ms: float, sample: int, batch: int, *, epoch: int | None = 0) -> Row:
@@ -73,7 +75,8 @@ def _records(rows: list[Row], pid: int, offset_ns: int) -> tuple[np.ndarray, lis
         if r.stage not in names:
             names.append(r.stage)
         ids = [-1 if v is None else v for v in (r.sample, r.batch, r.epoch)]
-        recs[i] = (ms(r.start_ms) + offset_ns, ms(r.end_ms) + offset_ns, -1, *ids,
+        cpu = -1 if r.cpu_ms is None else int(round(r.cpu_ms * 1e6))
+        recs[i] = (ms(r.start_ms) + offset_ns, ms(r.end_ms) + offset_ns, cpu, *ids,
                    pid if r.tid is None else r.tid, names.index(r.stage), 0, _KINDS[r.kind])
     return recs, names
 

@@ -570,7 +570,8 @@ class TestHostileFolders:
         root = work()
         path = file_named(root, prefix, ".json")
         h = json.loads(path.read_text())
-        body = json.dumps(h)[:-1] + ', "x": [' + ", ".join([filler] * ((tf.MAX_JSON_BYTES - 4096) // 4)) + "]}"
+        head = json.dumps(h)[:-1]  # the filler brings the file to the same size however long the header is
+        body = head + ', "x": [' + ", ".join([filler] * ((tf.MAX_JSON_BYTES - 4096 - len(head)) // 4)) + "]}"
         path.write_text(body)
         (run, error, ours), peak = _load_traced(root)
         assert peak < 3 * tf.MAX_JSON_BYTES

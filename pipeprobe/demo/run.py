@@ -130,6 +130,7 @@ def run_demo(
     quiet: bool = False,
     record: bool = True,
     data_dir: str | Path | None = None,
+    step_threads: int = 1,
 ) -> DemoResult:
     """Train the demo classifier for ``batches`` steps, recording with a probe.
 
@@ -179,6 +180,11 @@ def run_demo(
         A folder of photos with a ``labels.csv`` (see
         :func:`~pipeprobe.demo.images.generate_images`); the bundled set by
         default.
+    step_threads : int, optional
+        Threads the step's math library (BLAS) may use; 0 keeps the
+        library's default (one per core), which on a machine with few cores
+        oversubscribes them beside the workers (the report's thread check
+        shows it). Needs threadpoolctl; without it the default is kept.
 
     Returns
     -------
@@ -192,6 +198,9 @@ def run_demo(
     """
     if batches < 0:
         message = f"batches must be at least 0, got {batches}"
+        raise ValueError(message)
+    if step_threads < 0:
+        message = f"step_threads must be at least 0 (0: the library's default), got {step_threads}"
         raise ValueError(message)
     if width < 1:
         message = f"width must be at least 1, got {width}"
@@ -217,8 +226,26 @@ def run_demo(
     say(
         f"pipeprobe demo: {batches} batches of {batch_size} part photos from {folder}, "
         f"{workers} worker(s), prefetch {prefetch}, {image_size} px, augment {'/'.join(augment) or 'none'}, "
-        f"width {width}, input pool {input_pool}"
+        f"width {width}, input pool {input_pool}, step threads {step_threads or 'library default'}"
     )
+    with _step_thread_limit(step_threads):
+        return _run(loader, model, batches, record, out, quiet, say)
+
+
+def _step_thread_limit(step_threads: int) -> contextlib.AbstractContextManager:
+    """Limit the math library's threads to ``step_threads`` (0: leave them; so also without threadpoolctl)."""
+    if step_threads == 0:
+        return contextlib.nullcontext()
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=step_threads)
+
+
+def _run(loader: PartsLoader, model: MLP, batches: int, record: bool, out: str | Path | None, quiet: bool,
+         say: Callable[[str], Any]) -> DemoResult:
+    """Train, with or without a probe; print the summary."""
     if not record:
         losses, wall_s = _train(loader, model, batches, lambda source: source, contextlib.nullcontext)
         say(_summary(losses, wall_s))

@@ -23,7 +23,8 @@ from ..errors import ProbeStateError
 from . import _clocksync, _closing, _signals, _window
 from . import _recorder as _r
 from ._recorder import RECORDER
-from ._spans import _check_epoch, _check_id, _CpuSpan, _Noop, _Span, stage
+from ._spans import _check_epoch, _check_id, _Noop, _Span, _StepSpan, stage
+from ._threads import STEP_CPU_PROCESS, read_thread_pools
 
 __all__ = ["Probe"]
 
@@ -275,7 +276,7 @@ class Probe:
             pipeprobe_version=__version__, python_version=platform.python_version(), platform=platform.platform(),
             pid=os.getpid(), rank=self.rank, world_size=self.world_size, cpu_time=bool(cpu_time),
             sample_interval_s=float(sample_interval_s), flush_interval_s=float(flush_interval_s),
-            extra=_window.header_fields(parsed_window),
+            extra={**_window.header_fields(parsed_window), **({"step_cpu": STEP_CPU_PROCESS} if cpu_time else {})},
         )
         rec.window, rec.spans_on = parsed_window, parsed_window is None  # a window opens at its first batch
         self._open_run(float(sample_interval_s))
@@ -340,7 +341,7 @@ class Probe:
         if not rec.spans_on:
             return _NOOP_STEP
         code = _STEP_CODE | rec.stage_ids["step"]  # step_code(), inlined: this runs once a batch in the loop
-        return _CpuSpan(code, -1, -1) if rec.cpu_time else _Span(code, -1, -1)
+        return _StepSpan(code, -1, -1) if rec.cpu_time else _Span(code, -1, -1)
 
     def watch(
         self,
@@ -426,7 +427,8 @@ class Probe:
         if not ok and not rec.failed:
             return
         self._header = replace(self._header, end_mono_ns=end, closed=True, batches=rec.next_batch,
-                               extra={**self._header.extra, **_window.header_fields(rec.window, rec.next_batch)})
+                               extra={**self._header.extra, **_window.header_fields(rec.window, rec.next_batch),
+                                      "threads": read_thread_pools()})
         rec.window = None
         try:
             self._write_header()

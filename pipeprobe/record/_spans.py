@@ -10,7 +10,7 @@ from __future__ import annotations
 import functools
 import inspect
 import statistics
-from time import monotonic_ns, perf_counter_ns, thread_time_ns
+from time import monotonic_ns, perf_counter_ns, process_time_ns, thread_time_ns
 from typing import Any, Callable, TypeVar
 
 from .. import tracefile as tf
@@ -121,6 +121,39 @@ class _CpuSpan(_Span):
 
     def __exit__(self, et: Any, ev: Any, tb: Any) -> bool:
         cpu = thread_time_ns() - self._c0
+        t1 = monotonic_ns()
+        try:
+            buf = TLS.buf
+        except AttributeError:
+            buf = RECORDER.buffer()
+        b = self._batch
+        buf.extend(
+            (self._t0, t1, cpu, self._sample, b if b >= 0 else buf.ctx,
+             self._code if et is None else self._code | _ERROR_BITS)
+        )
+        if len(buf) >= buf.limit:
+            RECORDER.spill(buf)
+        return False
+
+
+class _StepSpan(_Span):
+    """The training step's timer: a :class:`_CpuSpan` whose CPU time is the whole process's (every thread).
+
+    The step's math libraries run their own threads; their CPU time is
+    what the thread check and the replay need. The process CPU clock sums
+    the process's threads (one system call); it runs at step rate, not span
+    rate. The run header's ``step_cpu`` says step records hold it.
+    """
+
+    __slots__ = ("_c0",)
+
+    def __enter__(self) -> _StepSpan:
+        self._t0 = monotonic_ns()
+        self._c0 = process_time_ns()
+        return self
+
+    def __exit__(self, et: Any, ev: Any, tb: Any) -> bool:
+        cpu = process_time_ns() - self._c0
         t1 = monotonic_ns()
         try:
             buf = TLS.buf

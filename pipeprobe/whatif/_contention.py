@@ -46,7 +46,8 @@ def _segments_mean_slowdown(starts: np.ndarray, ends: np.ndarray, weights: np.nd
 
 
 def remove_contention(
-    tasks: list[tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]], cores: float
+    tasks: list[tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]], cores: float,
+    widths: list[float] | None = None,
 ) -> list[np.ndarray]:
     """Per task, the mean CPU slowdown it suffered from sharing ``cores`` with the other tasks.
 
@@ -54,16 +55,19 @@ def remove_contention(
     Tasks with CPU time are first assumed to want a whole core; the off-CPU
     time left over after the contention is taken out lowers that, twice.
     The CPU part of a task is slowed by the load ``n(t) / cores`` when that
-    exceeds 1; its off-CPU part is not.
+    exceeds 1; its off-CPU part is not. ``widths`` gives the threads each
+    task kind runs on (1 each by default: a training step on a pool of
+    threads loads the cores with each of them).
     """
     starts = np.concatenate([t[0] for t in tasks])
     ends = np.concatenate([t[1] for t in tasks])
     wall = np.concatenate([t[2] for t in tasks])
     cpu = np.concatenate([t[3] for t in tasks])
     u = np.where(cpu > 0, 1.0, 0.0)
+    width = np.concatenate([np.full(len(t[0]), w) for t, w in zip(tasks, widths or [1.0] * len(tasks))])
     slow = np.ones(len(starts))
     for _ in range(3):
-        slow = _segments_mean_slowdown(starts, ends, u, float(cores))
+        slow = _segments_mean_slowdown(starts, ends, u * width, float(cores))
         cpu_free = np.minimum(cpu, wall / slow)
         nominal = wall - cpu_free * (slow - 1.0)
         with np.errstate(invalid="ignore", divide="ignore"):

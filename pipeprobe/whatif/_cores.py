@@ -8,6 +8,13 @@ one at which the CPU they use fills the cores exactly; their off-CPU parts
 nominal duration ``d`` then advances at ``rho(u, r) = 1 / (1 - u + u / r)``
 nominal seconds per second.
 
+A task may run on several threads (a training step whose math library
+keeps a pool of them): ``width`` threads, each wanting ``u`` of a core,
+progressing together. Every runnable thread gets the same share
+(processor sharing per thread, as the operating system's scheduler
+shares cores), so such a task wants ``width * u`` cores and runs its CPU
+part at the common speed like any other.
+
 :func:`cpu_speed` finds ``r``; :class:`CpuShare` keeps the running tasks
 and their finish times as tasks start and stop. The plan side (taking the
 recorded contention out of a trace) lives in :mod:`pipeprobe.whatif.plan`.
@@ -43,11 +50,12 @@ def progress_rate(u: float, r: float) -> float:
     return 1.0 / (1.0 - u + u / r) if r < 1.0 else 1.0
 
 
-def cpu_speed(us: list[float], cores: float) -> float:
+def cpu_speed(us: list[float], cores: float, widths: list[float] | None = None) -> float:
     """The common speed ``r`` of the CPU parts of tasks wanting ``us`` of a core each, on ``cores`` cores.
 
-    ``r`` solves ``sum(u r / ((1 - u) r + u)) == cores`` (the CPU used fills
-    the cores exactly); ``r = 1`` when the tasks fit.
+    ``r`` solves ``sum(w u r / ((1 - u) r + u)) == cores`` (the CPU used
+    fills the cores exactly), ``w`` the task's threads (``widths``, 1 each
+    by default); ``r = 1`` when the tasks fit.
 
     Examples
     --------
@@ -55,12 +63,15 @@ def cpu_speed(us: list[float], cores: float) -> float:
     0.5
     >>> cpu_speed([0.5, 0.5], 1)  # two half-CPU tasks fit on one core
     1.0
+    >>> cpu_speed([1.0, 1.0], 2, widths=[2, 1])  # a step on two threads and one worker on two cores
+    0.6666666666666666
 
     References
     ----------
     .. [1] L. Kleinrock, *Queueing Systems, Volume 2*, 1976, ch. 4.
     """
-    tot = sum(us)
+    ws = [1.0] * len(us) if widths is None else widths
+    tot = sum(w * u for w, u in zip(ws, us))
     if tot <= cores:
         return 1.0
     r = cores / tot  # exact when every task is all CPU; else an upper bound
@@ -72,10 +83,10 @@ def cpu_speed(us: list[float], cores: float) -> float:
     lo, hi = 0.0, r
     for _ in range(_NEWTON_STEPS):
         use = grad = 0.0
-        for u in us:
+        for w, u in zip(ws, us):
             den = (1.0 - u) * r + u
-            use += u * r / den
-            grad += u * u / (den * den)
+            use += w * u * r / den
+            grad += w * u * u / (den * den)
         if use > cores:
             hi = r
         else:
@@ -92,8 +103,10 @@ def cpu_speed(us: list[float], cores: float) -> float:
 class CpuShare:
     """The running tasks of a replay and when each finishes, under processor sharing.
 
-    Entities (a worker, the consumer) run one task at a time. Without
-    contention (``cores`` at least the number of entities) a task finishes
+    Entities (a worker, the consumer) run one task at a time; a task may
+    run on ``width`` threads (1 by default; ``extra_threads``: the most
+    threads beyond one per entity that tasks will run on). Without
+    contention (``cores`` at least the threads of all entities) a task finishes
     its nominal duration after it starts; with it, every start and stop
     advances all running tasks at the old speed and re-rates them.
 
@@ -106,11 +119,16 @@ class CpuShare:
     (2.0, 0)
     """
 
-    __slots__ = ("cores", "contended", "finish", "batch", "_u", "_rem", "_rho", "_last_t")
+    __slots__ = ("cores", "contended", "finish", "batch", "_u", "_rem", "_rho", "_last_t", "_widths", "lockstep")
 
-    def __init__(self, cores: float, entities: int) -> None:
+    def __init__(self, cores: float, entities: int, extra_threads: float = 0.0) -> None:
         self.cores = cores
-        self.contended = cores < entities
+        self.contended = cores < entities + extra_threads
+        #: entity -> threads of its running task, where not 1
+        self._widths: dict[int, float] = {}
+        #: entity -> how much slower its tasks progress whenever the cores are oversubscribed (threads that
+        #: wait for a descheduled partner at each barrier; the pessimistic end of a prediction's range)
+        self.lockstep: dict[int, float] = {}
         #: entity -> finish time of its running task, in the order the tasks started (ties go to the
         #: earliest start)
         self.finish: dict[int, float] = {}
@@ -121,9 +139,11 @@ class CpuShare:
         self._rho: dict[int, float] = {}
         self._last_t = 0.0
 
-    def start(self, entity: int, batch: int, nominal_s: float, u: float, now: float) -> None:
-        """``entity`` starts a task of ``nominal_s`` contention-free seconds wanting ``u`` of a core."""
+    def start(self, entity: int, batch: int, nominal_s: float, u: float, now: float, width: float = 1.0) -> None:
+        """``entity`` starts a task of ``nominal_s`` contention-free seconds on ``width`` threads wanting ``u`` of a core each."""
         self._u[entity] = u
+        if width != 1.0:
+            self._widths[entity] = width
         self.batch[entity] = batch
         if self.contended:
             self._advance(now)
@@ -136,6 +156,8 @@ class CpuShare:
         """``entity``'s task ends at ``now``; returns its batch."""
         b = self.batch.pop(entity)
         del self.finish[entity], self._u[entity]
+        if self._widths:
+            self._widths.pop(entity, None)
         if self.contended:
             self._advance(now)
             del self._rem[entity], self._rho[entity]
@@ -161,10 +183,14 @@ class CpuShare:
 
     def _rerate(self, now: float) -> None:
         """New CPU speed for the running set; new finish times."""
-        r = cpu_speed(list(self._u.values()), self.cores)
+        wd = self._widths
+        ws = [wd.get(e, 1.0) for e in self._u] if wd else None
+        r = cpu_speed(list(self._u.values()), self.cores, ws)
         u, rho, finish = self._u, self._rho, self.finish
         for e, rem in self._rem.items():
             ue = u[e]
             rr = 1.0 / (1.0 - ue + ue / r) if r < 1.0 else 1.0  # progress_rate(ue, r), inlined for speed
+            if r < 1.0 and e in self.lockstep:
+                rr /= self.lockstep[e]
             rho[e] = rr
             finish[e] = now + (rem / rr if rem > 0 else 0.0)

@@ -378,14 +378,18 @@ def consumer_work(spans: _UserSpans, batches: _Batches, keep: frozenset[str]) ->
 
 
 def without_contention(loader: _LoaderTasks, consumer: _ConsumerWork, batches: _Batches,
-                        cores: float) -> tuple[Work, Work]:
-    """Step 4: both sides' work with the slow-down of sharing the recorded cores taken out of the CPU parts."""
+                        cores: float, step_width: float = 1.0) -> tuple[Work, Work]:
+    """Step 4: both sides' work with the slow-down of sharing the recorded cores taken out of the CPU parts.
+
+    The consumer's work runs on ``step_width`` threads (see :attr:`ReplayPlan.step_width`).
+    """
     ld, lc = loader.seconds.dur_s, loader.seconds.cpu_s
     cd, cc = consumer.seconds.dur_s, consumer.seconds.cpu_s
     first, ready = loader.first_s, batches.ready_s
     task_wall = np.maximum(0.0, loader.last_s - first)
     lslow, cslow = remove_contention(
-        [(first, first + task_wall, ld.sum(1), lc.sum(1)), (ready, ready + cd.sum(1), cd.sum(1), cc.sum(1))], cores)
+        [(first, first + task_wall, ld.sum(1), lc.sum(1)), (ready, ready + cd.sum(1), cd.sum(1), cc.sum(1))], cores,
+        [1.0, step_width])
     lio, lcpu = split_cpu(ld, lc, lslow)
     cio, ccpu = split_cpu(cd, cc, cslow)
     return Work(loader.seconds.names, lio, lcpu), Work(consumer.seconds.names, cio, ccpu)

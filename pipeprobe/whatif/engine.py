@@ -293,7 +293,7 @@ class _Replayer:
                  "task_s", "task_u", "work_s", "work_u", "epoch_first", "epoch_list", "epoch_index", "epoch_stop",
                  "epoch_dispatch", "handoff", "latency", "worker_gap", "dispatch", "policy", "queue", "cpu", "log",
                  "consumer", "state", "waiting_for", "wait_began", "ready_pool", "next_request", "last_task_of",
-                 "finished_at")
+                 "finished_at", "step_width")
 
     def __init__(self, plan: ReplayPlan, loader: Work, consumer: Work, settings: Settings) -> None:
         self.plan = plan
@@ -320,7 +320,11 @@ class _Replayer:
         self.worker_gap, self.dispatch = plan.worker_gap_s, plan.dispatch_s
         self.policy = make_policy(settings.policy, W, index.tolist())
         self.queue = EventQueue()
-        self.cpu = CpuShare(settings.cores, W + 1)
+        # the consumer's work runs on the step's threads (the cores it used alone; see pipeprobe.threads)
+        self.step_width = plan.step_width
+        self.cpu = CpuShare(settings.cores, W + 1, extra_threads=plan.step_width - 1.0)
+        if plan.step_lockstep > 1.0:
+            self.cpu.lockstep[W] = plan.step_lockstep
         self.log = BatchLog(nb)
         self.consumer = W  # the consumer's entity on the cores; workers are 0 .. W - 1
         self.state = _BUSY
@@ -415,7 +419,7 @@ class _Replayer:
         if self.workers and nr < self.n and (not self.barrier or self.epoch_list[nr] == self.epoch_list[b]):
             self.next_request = nr + 1
             self._request(nr, now, after=b, at_wait=-1)
-        self.cpu.start(self.consumer, b, self.work_s[b], self.work_u[b], now)
+        self.cpu.start(self.consumer, b, self.work_s[b], self.work_u[b], now, self.step_width)
 
     def _on_task_finished(self, now: float, entity: int) -> None:
         """A task ends on the CPU: a worker's loader task, the consumer's work, or its own loading."""

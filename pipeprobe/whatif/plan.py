@@ -68,6 +68,7 @@ import numpy as np
 
 from ..errors import ScenarioError
 from ..nesting import own_label
+from ..threads import check_threads
 from ._contention import background_cores, cores_left
 from ._loader import POLICIES
 from ._recorded import (
@@ -145,6 +146,17 @@ class ReplayPlan:
         was replayed as (its own time, :func:`pipeprobe.nesting.own_label`,
         and the stages inside it). Columns hold each instant once: the
         innermost stage running (:func:`pipeprobe.nesting.span_pieces`).
+    step_width : float
+        Threads the consumer's work runs on in the replay: the cores the
+        step used with idle workers, at most its pools' threads (1 when the
+        run has no thread facts; see :mod:`pipeprobe.threads`).
+    threads : ThreadCheck or None
+        The run's thread check (None for a plan not built from a run).
+    step_lockstep : float
+        How much slower the consumer's work progresses whenever the cores
+        are oversubscribed, beyond processor sharing (1: not at all; the
+        high end of a prediction's range sets it, see
+        :mod:`pipeprobe.whatif._threadrange`).
     """
 
     batch_id: np.ndarray
@@ -171,6 +183,9 @@ class ReplayPlan:
     prefetch_inferred: bool = False
     folded_stages: tuple[str, ...] = ()
     inside: Mapping[str, tuple[str, ...]] = field(default_factory=dict)
+    step_width: float = 1.0
+    threads: Any = None
+    step_lockstep: float = 1.0
 
     @property
     def batches(self) -> int:
@@ -290,7 +305,9 @@ def build_plan(
     consumer = consumer_work(spans, batches, keep)
     cores = int(run.header.get("cores") or 1)
     background = background_cores(run.resources, batches.rank, cores) if spans.cpu_known else 0.0
-    loader_side, consumer_side = without_contention(loader, consumer, batches, cores_left(cores, background))
+    threads = check_threads(run, background)
+    loader_side, consumer_side = without_contention(loader, consumer, batches, cores_left(cores, background),
+                                                    threads.step_width)
     config = loader_config(batches, loader, by_worker, workers, prefetch, policy)
     times = loader_times(batches, loader, by_worker, config)
     return ReplayPlan(
@@ -306,6 +323,7 @@ def build_plan(
                *config.notes],
         background_cores=background, prefetch_inferred=config.prefetch_inferred,
         folded_stages=loader.seconds.folded + consumer.seconds.folded, inside=spans.inside,
+        step_width=threads.step_width, threads=threads,
     )
 
 

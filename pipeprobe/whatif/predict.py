@@ -19,6 +19,7 @@ from dataclasses import asdict, dataclass, field
 from typing import TYPE_CHECKING, Any, Iterable, Mapping
 
 from .._jsonnum import json_ready
+from ._threadrange import range_reason, wall_range
 from .engine import Replay, replay
 from .plan import ReplayPlan, build_plan
 from .scenario import PREFETCH_PER_WORKER, Scenario
@@ -43,6 +44,8 @@ JSON_KEYS = (
     "recorded",
     "notes",
     "model_check",
+    "wall_range_s",
+    "range_reason",
 )
 
 #: The replay of the recorded configuration may miss the measured wall time by this share before every
@@ -141,6 +144,13 @@ class Prediction:
         Assumptions the replay had to make.
     model_check : ModelCheck or None
         How well the replay reproduces the recorded run (:func:`check_model`).
+    wall_range_s : tuple of float or None
+        ``(low, high)`` predicted wall seconds where the step's threads
+        slowed down in ways processor sharing does not explain (or the
+        scenario oversubscribes the cores beyond the recording); None when
+        the one number holds.
+    range_reason : str
+        Why there is a range ("" without one).
     """
 
     scenario: Scenario
@@ -155,6 +165,8 @@ class Prediction:
     recorded: dict[str, Any]
     notes: list[str] = field(default_factory=list)
     model_check: ModelCheck | None = None
+    wall_range_s: tuple[float, float] | None = None
+    range_reason: str = ""
     replay: Replay | None = field(default=None, repr=False, compare=False)
 
     def to_dict(self) -> dict[str, Any]:
@@ -299,8 +311,17 @@ def predict(plan: ReplayPlan, base: Replay, scenario: Scenario, *, persistent_wo
         recorded=_recorded(plan),
         notes=notes,
         model_check=check_model(plan, base),
+        **_thread_range(plan, base.wall_s, scenario, predicted),
         replay=rep,
     )
+
+
+def _thread_range(plan: ReplayPlan, base_wall_s: float, scenario: Scenario, predicted_s: float) -> dict[str, Any]:
+    """The ``wall_range_s`` and ``range_reason`` of a prediction (see :mod:`pipeprobe.whatif._threadrange`)."""
+    reason = range_reason(plan, scenario)
+    if not reason:
+        return {}
+    return {"wall_range_s": wall_range(plan, base_wall_s, scenario, predicted_s), "range_reason": reason}
 
 
 def _recorded(plan: ReplayPlan) -> dict[str, Any]:
@@ -372,6 +393,10 @@ def format_prediction(p: Prediction) -> str:
         f"  recorded: {_describe_recorded(p.recorded)}",
         f"  (replay of the recorded configuration: {p.baseline_replay_wall_s:.3f} s)",
     ]
+    if p.wall_range_s is not None:
+        lines += textwrap.wrap(
+            f"range: {p.wall_range_s[0]:.3f} s to {p.wall_range_s[1]:.3f} s, not one number: {p.range_reason}",
+            width=100, initial_indent="  ", subsequent_indent="    ")
     check = p.model_check
     if check is not None and check.flagged:
         lines += textwrap.wrap(
