@@ -184,7 +184,7 @@ def ps_step_slowdown(step_threads: int, step_cores: float, worker_load: float, c
 
     Examples
     --------
-    >>> ps_step_slowdown(2, 2.0, 1.0, 2)  # two busy step threads and one worker on two cores
+    >>> round(ps_step_slowdown(2, 2.0, 1.0, 2), 9)  # two busy step threads and one worker on two cores
     1.5
     >>> ps_step_slowdown(1, 1.0, 1.0, 2)  # they fit
     1.0
