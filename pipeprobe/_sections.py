@@ -335,6 +335,87 @@ def next_text(a: Analysis, advice: Any = None) -> list[str]:
             "  notebooks/walkthrough.ipynb   # the same steps in a notebook"]
 
 
+# -- a script recorded by pipeprobe run (script.json: byloader.py) ------------------------------------
+#: What the report says 'step' is in a run recorded by ``pipeprobe run`` (the step there was not timed).
+SCRIPT_STEP_NOTE = ("'step' here is the loop's time between taking a batch and asking for the next one; nothing "
+                    "timed the training step itself (see README: Recording a script without editing it)")
+
+
+def script_lines(table: Any, training: str | None, command: list[str], *, every_loader: bool) -> list[str]:
+    """The head of the report on a ``pipeprobe run`` folder: the command, what 'step' means, the loader table.
+
+    Parameters
+    ----------
+    table : DataFrame
+        :func:`pipeprobe.byloader.loader_table` of the whole run.
+    training : str or None
+        The training loader's name.
+    command : list of str
+        The recorded command line.
+    every_loader : bool
+        The report below covers every loader (``pipeprobe report RUN``);
+        false: the training loader alone (the report ``pipeprobe run`` prints).
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> t = pd.DataFrame({"loader": ["train"], "batches": [3], "epochs": [1], "stall_s": [0.5], "loop_s": [1.5],
+    ...                   "stall_share": [0.25]})
+    >>> script_lines(t, "train", ["python", "fit.py"], every_loader=True)[-1]
+    '  train (training)                        3       1     0.500     1.500       25.0 %'
+    """
+    lines = [f"pipeprobe run  {' '.join(str(c) for c in command)}"[:WIDTH], *wrap(SCRIPT_STEP_NOTE, "  ", "  "),
+             f"  {'loader':<32} {'batches':>8} {'epochs':>7} {'stall s':>9} {'loop s':>9} {'stall share':>12}"]
+    for row in table.itertuples(index=False):
+        name = f"{row.loader} (training)" if row.loader == training else str(row.loader)
+        lines.append(f"  {printable(name)[:32]:<32} {row.batches:>8} {row.epochs:>7} {row.stall_s:>9.3f} "
+                     f"{row.loop_s:>9.3f} {100 * row.stall_share:>10.1f} %")
+    if len(table) > 1 and every_loader:
+        lines.append(f"  the report below covers the {len(table)} loaders together; pipeprobe run printed the "
+                     "training loader's own")
+    elif len(table) > 1:
+        lines.append(f"  the report below covers {training} alone; pipeprobe report RUN covers every loader")
+    return lines
+
+
+def script_compute(report: Report) -> Any:
+    """``(table, training, command, step meaning)`` of a ``pipeprobe run`` folder; None for other runs."""
+    from .byloader import loader_table, read_script_info
+    from .errors import TraceFormatError
+
+    run = report.analysis.run
+    try:
+        info = read_script_info(run.run_dir)
+        if info is None:
+            return None
+        train = info.get("training_loader")
+        train = str(train) if train is not None else None
+        table = loader_table(run, info["loaders"], train)
+    except TraceFormatError as exc:
+        return str(exc)
+    except (KeyError, TypeError, ValueError) as exc:  # a loader entry without a name or with odd epochs
+        return f"{run.run_dir}/script.json: a loader entry is not readable ({exc!r}); record the script again"
+    command = [str(c) for c in info.get("command", [])] if isinstance(info.get("command"), list) else []
+    return table, train, command, str(info.get("step", ""))
+
+
+def script_text(fig: Any) -> list[str]:
+    if fig is None:
+        return []
+    if isinstance(fig, str):
+        return [f"pipeprobe run  {fig}"]
+    table, train, command, _ = fig
+    return script_lines(table, train, command, every_loader=True)
+
+
+def script_data(fig: Any) -> dict[str, Any]:
+    if not isinstance(fig, tuple):
+        return {"script": None}
+    table, train, command, meaning = fig
+    return {"script": {"command": command, "step": meaning or SCRIPT_STEP_NOTE, "training_loader": train,
+                       "loaders": table.to_dict("records")}}
+
+
 # -- the recording window (a long job recorded in stretches: stretches.py) -------------------------------
 def window_text(a: Analysis) -> list[str]:
     from .stretches import window_words

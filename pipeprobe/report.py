@@ -163,8 +163,8 @@ def build_report(analysis: Analysis, sections: list[Section] | None = None) -> R
     ...         with probe.step():
     ...             pass
     >>> r = build_report(pipeprobe.analyze(d))
-    >>> [section.name for section, figures in r.parts][:3]
-    ['recording window', 'verdict', 'actions']
+    >>> [section.name for section, figures in r.parts][:4]
+    ['recorded script', 'recording window', 'verdict', 'actions']
     """
     return Report(analysis, sections)
 
@@ -237,8 +237,12 @@ def _page(name: str) -> Callable[[Any, Any], str]:
     return render
 
 
+#: Name of the section on a run folder recorded by ``pipeprobe run`` (its loaders; what 'step' means there).
+SCRIPT_SECTION = "recorded script"
+
 #: The default report, in order: what paces the run and what a change would buy first. ``add_section`` adds more.
 SECTIONS: list[Section] = [
+    Section(SCRIPT_SECTION, part.script_text, part.script_data, None, part.script_compute),
     Section("recording window", part.window_text, part.window_data),
     Section("verdict", lambda f: part.verdict_text(*f), lambda f: part.verdict_data(*f), _page("verdict_html"),
             _with_analysis(_verdict_compute)),
@@ -304,6 +308,9 @@ JSON_SCHEMA: dict[str, str] = {
     "recording_cost": "{spans, measured, processes: list of {pid, rank, role, spans, span_cost_ns, added_s, "
                       "wall_share}, too_short: list of {stage, p50_s, limit_s}}; span_cost_ns null when the run "
                       "did not measure it",
+    "script": "null, or {command, step: what 'step' means (the loop's time between batches, not timed), "
+              "training_loader, loaders: list of {loader, batches, epochs, stall_s, loop_s, stall_share}}: a run "
+              "recorded by pipeprobe run (its script.json)",
     "window": "null, or {spec, every_batches, period_s, stretches: list of {stretch, first_batch, last_batch, "
               "batches, start_s, wall_s}}: a run recorded in stretches (Probe(window=...))",
     "ranks": "{count, cross_rank_view: false} for one rank; with several: also straggler_rank, straggler_cause, "
