@@ -18,14 +18,14 @@ from __future__ import annotations
 
 import os
 import sys
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from typing import Any, Callable, TextIO
 
 from . import _sections as part
 from ._jsonnum import dumps, json_ready
 from ._sections import SCHEMA_VERSION, WIDTH, fit
 from ._threadsection import threads_compute, threads_data, threads_text
-from .analysis import Analysis, analyze
+from .analysis import Analysis, analyze, thread_actions
 from .errors import PipeprobeError
 from .pace import Verdict, judge
 
@@ -103,6 +103,7 @@ class Report:
         self._advice_made = False
         self._restarts: WorkerRestarts | None = None
         self._restarts_made = False
+        self._threads: Any = None
         self.parts: list[tuple[Section, Any]] = []
         for sec in list(SECTIONS if sections is None else sections):
             self.parts.append((sec, sec.compute(self) if sec.compute is not None else analysis))
@@ -142,6 +143,13 @@ class Report:
                 except PipeprobeError:
                     self._restarts = None
         return self._restarts
+
+    @property
+    def thread_check(self) -> Any:
+        """The thread check (:func:`~pipeprobe.threads.check_threads`) with the replay's busy background cores."""
+        if self._threads is None:
+            self._threads = threads_compute(self)
+        return self._threads
 
     def figures(self, name: str) -> Any:
         """The figures of the section called ``name``."""
@@ -213,8 +221,10 @@ def _ceilings_data(fig: tuple[Ceilings | str | None, Analysis]) -> dict[str, Any
 
 
 def _advised(report: Report) -> Analysis:
-    """The analysis with its worker action and CPU answer read from the report's one worker advice."""
-    return advised_analysis(report.analysis, report.worker_advice, report.worker_restarts)
+    """The analysis with its worker action and CPU answer read from the report's one worker advice, and the
+    thread fix of the report's own thread check (the one its threads section shows)."""
+    advised = advised_analysis(report.analysis, report.worker_advice, report.worker_restarts)
+    return replace(advised, actions=thread_actions(advised.actions, report.thread_check))
 
 
 def _restarts_data(r: WorkerRestarts | None) -> dict[str, Any]:
@@ -255,7 +265,7 @@ SECTIONS: list[Section] = [
     Section("stages", part.stage_text, part.stage_data, _page("stages_html"), _advised),
     Section("ranks", part.ranks_text, part.ranks_data, _page("ranks_html"), part.ranks_compute),
     Section("timeline", lambda a: [], None, _page("timeline_html")),
-    Section("threads", threads_text, threads_data, None, threads_compute),
+    Section("threads", threads_text, threads_data, None, lambda report: report.thread_check),
     Section("recording cost", part.cost_text, part.cost_data, _page("cost_html"), part.cost_compute),
     Section("next", lambda f: part.next_text(*f), None, _no_html, lambda r: (r.analysis, r.worker_advice)),
 ]
