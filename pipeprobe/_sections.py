@@ -15,7 +15,7 @@ from typing import TYPE_CHECKING, Any
 
 from ._jsonnum import json_number
 from ._text import printable
-from .critical import PACE_SPEEDUP
+from .critical import GAP, PACE_SPEEDUP
 from .stalls import sample_words
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -116,6 +116,62 @@ def action_data(a: Analysis) -> dict[str, Any]:
 def _worst_stalls(a: Analysis, n: int) -> Any:
     pb = a.stalls.per_batch
     return pb[pb["wait_s"] > 0].sort_values("wait_s", ascending=False).head(n)
+
+
+#: The blame of an epoch's first wait that fell on its loader workers starting (``worst_stalls``' ``blame``).
+WORKERS_STARTING = "workers starting"
+#: Its words: the first epoch's workers, and those a later epoch started anew.
+_FIRST_WORKERS = "loader workers starting"
+_NEW_WORKERS = "new loader workers starting (persistent_workers=False)"
+
+
+def restart_blame(a: Analysis, restarts: Any) -> Analysis:
+    """``a`` with each epoch's first wait blamed on its loader workers starting, where the replay measured restarts.
+
+    No span covers a worker process starting, so the critical path gives
+    that time to the unrecorded gap. When the run's workers were started
+    anew for later epochs (:attr:`~pipeprobe.whatif.restart.WorkerRestarts.restarts`),
+    the first wait of each epoch (per rank) that the gap holds longest is
+    the wait for those workers: its blame becomes :data:`WORKERS_STARTING`.
+
+    Parameters
+    ----------
+    a : Analysis
+    restarts : WorkerRestarts or None
+        The report's :func:`~pipeprobe.whatif.restart.worker_restarts`; None (no replay): ``a`` unchanged.
+
+    Returns
+    -------
+    Analysis
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile
+    >>> from pipeprobe._example_runs import write_example_run
+    >>> a = pipeprobe.analyze(write_example_run(tempfile.mkdtemp(), batches=3, decode_ms=2, step_ms=1))
+    >>> restart_blame(a, None) is a
+    True
+    """
+    from dataclasses import replace
+
+    from .stretches import epoch_start_recorded
+
+    pb = a.stalls.per_batch
+    if restarts is None or not restarts.restarts or pb.empty:
+        return a
+    first_id = pb.groupby(["rank", "epoch"], sort=False)["batch_id"].transform("min")
+    first_epoch = pb.groupby("rank", sort=False)["epoch"].transform("min")
+    named = ((pb["batch_id"] == first_id) & (pb["blame"].astype(str) == GAP) & (pb["wait_s"] > 0)
+             & epoch_start_recorded(pb)).to_numpy(bool)
+    if not named.any():
+        return a
+    later = (pb["epoch"] > first_epoch).to_numpy(bool)
+    blame, words = pb["blame"].to_numpy(object).copy(), pb["blame_text"].to_numpy(object).copy()
+    blame[named] = WORKERS_STARTING
+    words[named & later] = _NEW_WORKERS
+    words[named & ~later] = _FIRST_WORKERS
+    pb = pb.assign(blame=blame, blame_text=words)
+    return replace(a, stalls=replace(a.stalls, per_batch=pb))
 
 
 def stall_text(a: Analysis) -> list[str]:

@@ -258,7 +258,8 @@ SECTIONS: list[Section] = [
             _with_analysis(_verdict_compute)),
     Section("actions", part.action_text, part.action_data, _page("actions_html"), _advised),
     Section("ceilings", _ceilings_text, _ceilings_data, _page("ceilings_html"), _with_analysis(_ceilings_compute)),
-    Section("stalls", part.stall_text, part.stall_data, _page("stalls_html")),
+    Section("stalls", part.stall_text, part.stall_data, _page("stalls_html"),
+            lambda report: part.restart_blame(report.analysis, report.worker_restarts)),
     Section("worker restarts", lambda r: format_restarts(r) if r else [], _restarts_data, _page("restarts_html"),
             lambda report: report.worker_restarts),
     Section("critical path", part.critical_text, part.critical_data, _page("critical_html")),
@@ -300,7 +301,8 @@ JSON_SCHEMA: dict[str, str] = {
               "stall beyond what as many steady batches wait",
     "epochs": "list of {epoch, batches, stall_s, stall_fraction}",
     "worst_stalls": "up to 10 longest waits: {rank, batch_id, wait_s, blame, blame_lane, blame_samples (up to 8 "
-                    "sample ids), blame_sample_count, blame_s}",
+                    "sample ids), blame_sample_count, blame_s}; blame 'workers starting': an epoch's first wait spent "
+                    "on loader workers starting (new ones every epoch: persistent_workers=False)",
     "critical_path": "list of {stage, kind, side, seconds, share}, largest first; stage is a stage name, "
                      "'step', 'delivery' or 'unexplained gap'; seconds sum to wall_s",
     "critical_path_lanes": "list of {lane, seconds, share}: threads on the critical path",
