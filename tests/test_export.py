@@ -139,6 +139,17 @@ class TestWindowedRun:
         wall = float(pd.read_csv(done.files["run"])["wall_s"].iloc[0])
         assert ({"decode": 22.0, "step": 28.0}, 50.0) == (got, round(wall * 1e3, 6))
 
+    def test_frames_are_the_condensed_runs(self, tmp_path: Path) -> None:
+        """Spans, batches and samples read back equal the condensed run's, column for column (pandas)."""
+        from pipeprobe.stretches import condense
+
+        d = _two_stretches(tmp_path / "run")
+        run = condense(pipeprobe.load(d))
+        done = export_tables(d, tmp_path / "t")
+        for name in ("spans", "batches", "samples"):  # the synthetic run has no resource samples
+            back = _read(done.files[name]).drop(columns="run_id")
+            pd.testing.assert_frame_equal(_plain(getattr(run, name)[list(back.columns)]), back, check_exact=True)
+
     def test_manifest_names_the_condensed_axis(self, simple_run_dir: Path, tmp_path: Path) -> None:
         """The manifest's 'times' says a windowed run's times are on the condensed axis; a plain run's are not."""
         windowed = export_tables(_two_stretches(tmp_path / "run"), tmp_path / "w")
