@@ -73,25 +73,13 @@ def _print_report(text: str, path: str | None) -> None:
 
 def report_text(run: Any, entries: list[dict[str, Any]], train: str | None, command: list[str]) -> str:
     """The loader table, then the usual report on the training loader's batches alone."""
+    from ._sections import script_lines
     from .analysis import analyze
-    from .report import SECTIONS, Section, format_report
+    from .report import SCRIPT_SECTION, SECTIONS, Section, format_report
 
     table = loader_table(run, entries, train)
     epochs = next((e["epochs"] for e in entries if e["name"] == train), [])
     analysis = analyze(loader_run(run, epochs))
-    head = Section("script", lambda a: _loader_lines(table, train, command))
-    return format_report(analysis, [head, *SECTIONS])
-
-
-def _loader_lines(table: Any, train: str | None, command: list[str]) -> list[str]:
-    lines = [f"pipeprobe run  {' '.join(command)}"[:100],
-             "  'step' here is the loop's time between taking a batch and asking for the next one;",
-             "  nothing timed the training step itself (see README: Recording a script without editing it)",
-             f"  {'loader':<32} {'batches':>8} {'epochs':>7} {'stall s':>9} {'loop s':>9} {'stall share':>12}"]
-    for row in table.itertuples(index=False):
-        name = f"{row.loader} (training)" if row.loader == train else str(row.loader)
-        lines.append(f"  {name[:32]:<32} {row.batches:>8} {row.epochs:>7} {row.stall_s:>9.3f} {row.loop_s:>9.3f} "
-                     f"{100 * row.stall_share:>10.1f} %")
-    if len(table) > 1:
-        lines.append(f"  the report below covers {train} alone; pipeprobe report RUN covers every loader")
-    return lines
+    # the report's own script section, made from the whole run's table (the analysis holds one loader's batches)
+    head = Section(SCRIPT_SECTION, lambda a: script_lines(table, train, command, every_loader=False))
+    return format_report(analysis, [head, *(s for s in SECTIONS if s.name != SCRIPT_SECTION)])

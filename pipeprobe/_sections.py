@@ -15,7 +15,7 @@ from typing import TYPE_CHECKING, Any
 
 from ._jsonnum import json_number
 from ._text import printable
-from .critical import PACE_SPEEDUP
+from .critical import GAP, PACE_SPEEDUP
 from .stalls import sample_words
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -116,6 +116,62 @@ def action_data(a: Analysis) -> dict[str, Any]:
 def _worst_stalls(a: Analysis, n: int) -> Any:
     pb = a.stalls.per_batch
     return pb[pb["wait_s"] > 0].sort_values("wait_s", ascending=False).head(n)
+
+
+#: The blame of an epoch's first wait that fell on its loader workers starting (``worst_stalls``' ``blame``).
+WORKERS_STARTING = "workers starting"
+#: Its words: the first epoch's workers, and those a later epoch started anew.
+_FIRST_WORKERS = "loader workers starting"
+_NEW_WORKERS = "new loader workers starting (persistent_workers=False)"
+
+
+def restart_blame(a: Analysis, restarts: Any) -> Analysis:
+    """``a`` with each epoch's first wait blamed on its loader workers starting, where the replay measured restarts.
+
+    No span covers a worker process starting, so the critical path gives
+    that time to the unrecorded gap. When the run's workers were started
+    anew for later epochs (:attr:`~pipeprobe.whatif.restart.WorkerRestarts.restarts`),
+    the first wait of each epoch (per rank) that the gap holds longest is
+    the wait for those workers: its blame becomes :data:`WORKERS_STARTING`.
+
+    Parameters
+    ----------
+    a : Analysis
+    restarts : WorkerRestarts or None
+        The report's :func:`~pipeprobe.whatif.restart.worker_restarts`; None (no replay): ``a`` unchanged.
+
+    Returns
+    -------
+    Analysis
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile
+    >>> from pipeprobe._example_runs import write_example_run
+    >>> a = pipeprobe.analyze(write_example_run(tempfile.mkdtemp(), batches=3, decode_ms=2, step_ms=1))
+    >>> restart_blame(a, None) is a
+    True
+    """
+    from dataclasses import replace
+
+    from .stretches import epoch_start_recorded
+
+    pb = a.stalls.per_batch
+    if restarts is None or not restarts.restarts or pb.empty:
+        return a
+    first_id = pb.groupby(["rank", "epoch"], sort=False)["batch_id"].transform("min")
+    first_epoch = pb.groupby("rank", sort=False)["epoch"].transform("min")
+    named = ((pb["batch_id"] == first_id) & (pb["blame"].astype(str) == GAP) & (pb["wait_s"] > 0)
+             & epoch_start_recorded(pb)).to_numpy(bool)
+    if not named.any():
+        return a
+    later = (pb["epoch"] > first_epoch).to_numpy(bool)
+    blame, words = pb["blame"].to_numpy(object).copy(), pb["blame_text"].to_numpy(object).copy()
+    blame[named] = WORKERS_STARTING
+    words[named & later] = _NEW_WORKERS
+    words[named & ~later] = _FIRST_WORKERS
+    pb = pb.assign(blame=blame, blame_text=words)
+    return replace(a, stalls=replace(a.stalls, per_batch=pb))
 
 
 def stall_text(a: Analysis) -> list[str]:
@@ -333,6 +389,87 @@ def next_text(a: Analysis, advice: Any = None) -> list[str]:
             *workers,
             f"  pipeprobe report {run} --html report.html   # charts and the timeline",
             "  notebooks/walkthrough.ipynb   # the same steps in a notebook"]
+
+
+# -- a script recorded by pipeprobe run (script.json: byloader.py) ------------------------------------
+#: What the report says 'step' is in a run recorded by ``pipeprobe run`` (the step there was not timed).
+SCRIPT_STEP_NOTE = ("'step' here is the loop's time between taking a batch and asking for the next one; nothing "
+                    "timed the training step itself (see README: Recording a script without editing it)")
+
+
+def script_lines(table: Any, training: str | None, command: list[str], *, every_loader: bool) -> list[str]:
+    """The head of the report on a ``pipeprobe run`` folder: the command, what 'step' means, the loader table.
+
+    Parameters
+    ----------
+    table : DataFrame
+        :func:`pipeprobe.byloader.loader_table` of the whole run.
+    training : str or None
+        The training loader's name.
+    command : list of str
+        The recorded command line.
+    every_loader : bool
+        The report below covers every loader (``pipeprobe report RUN``);
+        false: the training loader alone (the report ``pipeprobe run`` prints).
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> t = pd.DataFrame({"loader": ["train"], "batches": [3], "epochs": [1], "stall_s": [0.5], "loop_s": [1.5],
+    ...                   "stall_share": [0.25]})
+    >>> script_lines(t, "train", ["python", "fit.py"], every_loader=True)[-1]
+    '  train (training)                        3       1     0.500     1.500       25.0 %'
+    """
+    lines = [f"pipeprobe run  {' '.join(str(c) for c in command)}"[:WIDTH], *wrap(SCRIPT_STEP_NOTE, "  ", "  "),
+             f"  {'loader':<32} {'batches':>8} {'epochs':>7} {'stall s':>9} {'loop s':>9} {'stall share':>12}"]
+    for row in table.itertuples(index=False):
+        name = f"{row.loader} (training)" if row.loader == training else str(row.loader)
+        lines.append(f"  {printable(name)[:32]:<32} {row.batches:>8} {row.epochs:>7} {row.stall_s:>9.3f} "
+                     f"{row.loop_s:>9.3f} {100 * row.stall_share:>10.1f} %")
+    if len(table) > 1 and every_loader:
+        lines.append(f"  the report below covers the {len(table)} loaders together; pipeprobe run printed the "
+                     "training loader's own")
+    elif len(table) > 1:
+        lines.append(f"  the report below covers {training} alone; pipeprobe report RUN covers every loader")
+    return lines
+
+
+def script_compute(report: Report) -> Any:
+    """``(table, training, command, step meaning)`` of a ``pipeprobe run`` folder; None for other runs."""
+    from .byloader import loader_table, read_script_info
+    from .errors import TraceFormatError
+
+    run = report.analysis.run
+    try:
+        info = read_script_info(run.run_dir)
+        if info is None:
+            return None
+        train = info.get("training_loader")
+        train = str(train) if train is not None else None
+        table = loader_table(run, info["loaders"], train)
+    except TraceFormatError as exc:
+        return str(exc)
+    except (KeyError, TypeError, ValueError) as exc:  # a loader entry without a name or with odd epochs
+        return f"{run.run_dir}/script.json: a loader entry is not readable ({exc!r}); record the script again"
+    command = [str(c) for c in info.get("command", [])] if isinstance(info.get("command"), list) else []
+    return table, train, command, str(info.get("step", ""))
+
+
+def script_text(fig: Any) -> list[str]:
+    if fig is None:
+        return []
+    if isinstance(fig, str):
+        return [f"pipeprobe run  {fig}"]
+    table, train, command, _ = fig
+    return script_lines(table, train, command, every_loader=True)
+
+
+def script_data(fig: Any) -> dict[str, Any]:
+    if not isinstance(fig, tuple):
+        return {"script": None}
+    table, train, command, meaning = fig
+    return {"script": {"command": command, "step": meaning or SCRIPT_STEP_NOTE, "training_loader": train,
+                       "loaders": table.to_dict("records")}}
 
 
 # -- the recording window (a long job recorded in stretches: stretches.py) -------------------------------

@@ -9,6 +9,7 @@ from it; nothing in it is recomputed by them.
 
 from __future__ import annotations
 
+import math
 import os
 from dataclasses import dataclass
 
@@ -18,9 +19,10 @@ from .load import Run, load
 from .stagestats import StageStats, stage_stats
 from .stalls import Stalls, stall_summary
 from .stretches import condense, timeline_and_path
+from .threads import ThreadCheck, check_threads
 from .timeline import Timeline
 
-__all__ = ["Analysis", "Action", "analyze"]
+__all__ = ["Analysis", "Action", "analyze", "suggest_actions", "thread_actions"]
 
 # Thresholds for suggesting an action (shares of wall time; our choices).
 _DELIVERY_WORTH = 0.05
@@ -38,7 +40,7 @@ class Action:
     Attributes
     ----------
     kind : str
-        'stage', 'step', 'workers', 'tail', 'delivery', 'gap' or 'warmup'.
+        'stage', 'step', 'workers', 'tail', 'delivery', 'gap', 'warmup' or 'threads'.
     text : str
         What to do and why, in one sentence.
     seconds : float
@@ -150,7 +152,8 @@ def analyze(run: Run | str | os.PathLike, *, warmup_batches: int | None = None) 
         stalls = stall_summary(run, critical, warmup_batches=warmup_batches)
         step("stage table")
         stages = stage_stats(run, critical, stalls, input_on_path=critical.input_share >= _SIDE_WORTH)
-        actions = suggest_actions(critical, stalls, stages, workers_restart=_workers_restart(run))
+        actions = suggest_actions(critical, stalls, stages, workers_restart=_workers_restart(run),
+                                  threads=check_threads(run))
     return Analysis(run=run, timeline=timeline, critical=critical, stalls=stalls, stages=stages,
                     actions=tuple(actions))
 
@@ -175,7 +178,7 @@ def _workers_restart(run: Run) -> bool:
 
 
 def suggest_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, *,
-                    workers_restart: bool = False) -> list[Action]:
+                    workers_restart: bool = False, threads: ThreadCheck | None = None) -> list[Action]:
     """Candidate actions, largest time at stake first.
 
     An input-side action needs the input side to hold enough of the
@@ -190,6 +193,9 @@ def suggest_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, 
     workers_restart : bool, default False
         Loader workers were started again for a later epoch (the warm-up
         action is given only then).
+    threads : ThreadCheck, optional
+        The thread check (:func:`pipeprobe.threads.check_threads`); when it
+        found the cores oversubscribed, its fix is an action (:func:`thread_actions`).
 
     Returns
     -------
@@ -197,12 +203,12 @@ def suggest_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, 
 
     Examples
     --------
-    >>> import pipeprobe, tempfile
+    >>> import pipeprobe, tempfile, time
     >>> d = tempfile.mkdtemp()
     >>> with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
     ...     for batch in probe.watch([[0]]):
     ...         with probe.step():
-    ...             total = sum(range(100000))
+    ...             time.sleep(0.02)  # a step far longer than handing over the batch, even on a busy machine
     >>> a = pipeprobe.analyze(d)
     >>> a.actions[0].kind
     'step'
@@ -224,8 +230,49 @@ def suggest_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, 
     out += _path_actions(critical)
     if workers_restart:
         out += _warmup_actions(stalls, wall)
+    return list(thread_actions(out, threads))
+
+
+def thread_actions(actions: list[Action] | tuple[Action, ...], threads: ThreadCheck | None) -> tuple[Action, ...]:
+    """``actions`` with the thread check's fix in place of any earlier one, largest time at stake first.
+
+    When the check found the step's math-library threads and the loader
+    workers wanting more CPU than the cores (``threads.oversubscribed``),
+    the action is its fix in concrete terms (``threads.advice``: how many
+    step threads, how many workers on this machine), at stake the time the
+    steps lost beside busy workers (``threads.cost_s``). Without thread
+    facts, or when the threads fit, no thread action.
+
+    Parameters
+    ----------
+    actions : sequence of Action
+    threads : ThreadCheck or None
+
+    Returns
+    -------
+    tuple of Action
+
+    Examples
+    --------
+    >>> from pipeprobe.threads import ThreadCheck
+    >>> check = ThreadCheck(None, cores=2, step_threads=2, workers=1, oversubscribed=True, cost_s=0.06,
+    ...                     slowdown=2.0, advice="give the step 1 thread beside 1 worker on 2 cores")
+    >>> [(a.kind, a.seconds) for a in thread_actions([Action("step", "Make the step faster", 0.1)], check)]
+    [('step', 0.1), ('threads', 0.06)]
+
+    References
+    ----------
+    L. Kleinrock, *Queueing Systems, Volume 2*, Wiley, 1976, ch. 4 (processor sharing: the cost measured).
+    """
+    out = [a for a in actions if a.kind != "threads"]
+    if threads is not None and threads.skipped is None and threads.oversubscribed and threads.advice:
+        slower = (f"; steps ran {threads.slowdown:.2f}x slower beside busy workers"
+                  if math.isfinite(threads.slowdown) and threads.slowdown > 1.0 else "")
+        out.append(Action("threads", f"Fit the threads to the {threads.cores} cores: the step's math-library "
+                                     f"threads ({threads.step_threads}) and {threads.workers} loader worker(s) "
+                                     f"wanted more{slower}: {threads.advice}", float(threads.cost_s)))
     out.sort(key=lambda a: -a.seconds)
-    return out
+    return tuple(out)
 
 
 def _input_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, input_on: bool,

@@ -1,8 +1,12 @@
 """Writing a run as plain tables that other tools read (parquet or csv).
 
 :func:`export_tables` loads a run with :func:`pipeprobe.load`, finds its
-critical path with :func:`pipeprobe.critical_path`, and writes seven tables
-into a folder, one file each, plus ``manifest.json`` describing them:
+critical path as :func:`pipeprobe.analyze` does, and writes seven tables
+into a folder, one file each, plus ``manifest.json`` describing them. A
+run recorded with a window (``Probe(window=...)``) is written with its
+unrecorded gaps cut out, its stretches end to end
+(:func:`pipeprobe.stretches.condense`), as the analysis sees it; the
+manifest's ``times`` says so:
 
 ``run``
     One row about the run (id, host, start time, wall time, counts).
@@ -34,10 +38,10 @@ import numpy as np
 import pandas as pd
 
 from .byloader import read_script_info
-from .critical import SEGMENT_COLUMNS, critical_path
+from .critical import SEGMENT_COLUMNS
 from .errors import PipeprobeError
 from .load import BATCH_COLUMNS, SPAN_COLUMNS, Run, load
-from .timeline import build_timeline
+from .stretches import condense, is_windowed, timeline_and_path
 
 __all__ = ["export_tables", "Export", "TABLES", "FORMATS", "MANIFEST", "ExportFolderError", "MissingExtraError"]
 
@@ -172,6 +176,7 @@ def export_tables(run: Run | str | os.PathLike, out_dir: str | os.PathLike, *, f
     _check_folder(out, force)
     if not isinstance(run, Run):
         run = load(run)
+    run = condense(run)  # a windowed run: the analysis' axis, so the critical path never crosses a gap
     tables = _collect_tables(run)
     _prepare_folder(out)
     files = {name: _write_table(frame, out / f"{name}.{format}", format) for name, frame in tables.items()}
@@ -210,7 +215,7 @@ def _prepare_folder(out: Path) -> None:
 def _collect_tables(run: Run) -> dict[str, pd.DataFrame]:
     """The tables, each with the documented columns in order and ``run_id`` first."""
     run_id = str(run.header.get("run_id", run.run_dir.name))
-    segments = critical_path(build_timeline(run)).segments
+    segments = timeline_and_path(run)[1].segments  # the analysis' own path: one stretch at a time
     frames = {
         "run": pd.DataFrame([_run_row(run)]),
         "spans": run.spans,
@@ -261,6 +266,15 @@ def _with_columns(frame: pd.DataFrame, columns: dict[str, str], run_id: str) -> 
     return out
 
 
+def _times_meaning(run: Run) -> str:
+    """What the time columns count from: the run start, or the condensed axis of a windowed run."""
+    if not is_windowed(run):
+        return "seconds from the run start (see the run table's started_ns)"
+    return ("seconds on the condensed axis: the run was recorded in stretches (Probe(window=...)) and the "
+            "unrecorded time between them is cut out, the stretches laid end to end from 0 as the analysis "
+            "sees them; wall_s is their summed wall time")
+
+
 def _step_meaning(run: Run) -> str:
     info = read_script_info(run.run_dir)
     if info is not None and info.get("step"):
@@ -290,7 +304,7 @@ def _write_manifest(out: Path, run: Run, format: str, files: dict[str, Path], ro
         "run_id": str(run.header.get("run_id", run.run_dir.name)),
         "run_dir": str(Path(run.run_dir).resolve()),
         "table_format": format,
-        "times": "seconds from the run start (see the run table's started_ns)",
+        "times": _times_meaning(run),
         "step": _step_meaning(run),
         "missing": "-1 for unknown ids and counts, empty (NaN) for unknown numbers",
         "problems": list(run.problems),

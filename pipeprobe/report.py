@@ -18,14 +18,14 @@ from __future__ import annotations
 
 import os
 import sys
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from typing import Any, Callable, TextIO
 
 from . import _sections as part
 from ._jsonnum import dumps, json_ready
 from ._sections import SCHEMA_VERSION, WIDTH, fit
 from ._threadsection import threads_compute, threads_data, threads_text
-from .analysis import Analysis, analyze
+from .analysis import Analysis, analyze, thread_actions
 from .errors import PipeprobeError
 from .pace import Verdict, judge
 
@@ -103,6 +103,7 @@ class Report:
         self._advice_made = False
         self._restarts: WorkerRestarts | None = None
         self._restarts_made = False
+        self._threads: Any = None
         self.parts: list[tuple[Section, Any]] = []
         for sec in list(SECTIONS if sections is None else sections):
             self.parts.append((sec, sec.compute(self) if sec.compute is not None else analysis))
@@ -143,6 +144,13 @@ class Report:
                     self._restarts = None
         return self._restarts
 
+    @property
+    def thread_check(self) -> Any:
+        """The thread check (:func:`~pipeprobe.threads.check_threads`) with the replay's busy background cores."""
+        if self._threads is None:
+            self._threads = threads_compute(self)
+        return self._threads
+
     def figures(self, name: str) -> Any:
         """The figures of the section called ``name``."""
         for sec, fig in self.parts:
@@ -163,8 +171,8 @@ def build_report(analysis: Analysis, sections: list[Section] | None = None) -> R
     ...         with probe.step():
     ...             pass
     >>> r = build_report(pipeprobe.analyze(d))
-    >>> [section.name for section, figures in r.parts][:3]
-    ['recording window', 'verdict', 'actions']
+    >>> [section.name for section, figures in r.parts][:4]
+    ['recorded script', 'recording window', 'verdict', 'actions']
     """
     return Report(analysis, sections)
 
@@ -213,8 +221,10 @@ def _ceilings_data(fig: tuple[Ceilings | str | None, Analysis]) -> dict[str, Any
 
 
 def _advised(report: Report) -> Analysis:
-    """The analysis with its worker action and CPU answer read from the report's one worker advice."""
-    return advised_analysis(report.analysis, report.worker_advice, report.worker_restarts)
+    """The analysis with its worker action and CPU answer read from the report's one worker advice, and the
+    thread fix of the report's own thread check (the one its threads section shows)."""
+    advised = advised_analysis(report.analysis, report.worker_advice, report.worker_restarts)
+    return replace(advised, actions=thread_actions(advised.actions, report.thread_check))
 
 
 def _restarts_data(r: WorkerRestarts | None) -> dict[str, Any]:
@@ -237,21 +247,26 @@ def _page(name: str) -> Callable[[Any, Any], str]:
     return render
 
 
+#: Name of the section on a run folder recorded by ``pipeprobe run`` (its loaders; what 'step' means there).
+SCRIPT_SECTION = "recorded script"
+
 #: The default report, in order: what paces the run and what a change would buy first. ``add_section`` adds more.
 SECTIONS: list[Section] = [
+    Section(SCRIPT_SECTION, part.script_text, part.script_data, None, part.script_compute),
     Section("recording window", part.window_text, part.window_data),
     Section("verdict", lambda f: part.verdict_text(*f), lambda f: part.verdict_data(*f), _page("verdict_html"),
             _with_analysis(_verdict_compute)),
     Section("actions", part.action_text, part.action_data, _page("actions_html"), _advised),
     Section("ceilings", _ceilings_text, _ceilings_data, _page("ceilings_html"), _with_analysis(_ceilings_compute)),
-    Section("stalls", part.stall_text, part.stall_data, _page("stalls_html")),
+    Section("stalls", part.stall_text, part.stall_data, _page("stalls_html"),
+            lambda report: part.restart_blame(report.analysis, report.worker_restarts)),
     Section("worker restarts", lambda r: format_restarts(r) if r else [], _restarts_data, _page("restarts_html"),
             lambda report: report.worker_restarts),
     Section("critical path", part.critical_text, part.critical_data, _page("critical_html")),
     Section("stages", part.stage_text, part.stage_data, _page("stages_html"), _advised),
     Section("ranks", part.ranks_text, part.ranks_data, _page("ranks_html"), part.ranks_compute),
     Section("timeline", lambda a: [], None, _page("timeline_html")),
-    Section("threads", threads_text, threads_data, None, threads_compute),
+    Section("threads", threads_text, threads_data, None, lambda report: report.thread_check),
     Section("recording cost", part.cost_text, part.cost_data, _page("cost_html"), part.cost_compute),
     Section("next", lambda f: part.next_text(*f), None, _no_html, lambda r: (r.analysis, r.worker_advice)),
 ]
@@ -286,7 +301,8 @@ JSON_SCHEMA: dict[str, str] = {
               "stall beyond what as many steady batches wait",
     "epochs": "list of {epoch, batches, stall_s, stall_fraction}",
     "worst_stalls": "up to 10 longest waits: {rank, batch_id, wait_s, blame, blame_lane, blame_samples (up to 8 "
-                    "sample ids), blame_sample_count, blame_s}",
+                    "sample ids), blame_sample_count, blame_s}; blame 'workers starting': an epoch's first wait spent "
+                    "on loader workers starting (new ones every epoch: persistent_workers=False)",
     "critical_path": "list of {stage, kind, side, seconds, share}, largest first; stage is a stage name, "
                      "'step', 'delivery' or 'unexplained gap'; seconds sum to wall_s",
     "critical_path_lanes": "list of {lane, seconds, share}: threads on the critical path",
@@ -304,6 +320,9 @@ JSON_SCHEMA: dict[str, str] = {
     "recording_cost": "{spans, measured, processes: list of {pid, rank, role, spans, span_cost_ns, added_s, "
                       "wall_share}, too_short: list of {stage, p50_s, limit_s}}; span_cost_ns null when the run "
                       "did not measure it",
+    "script": "null, or {command, step: what 'step' means (the loop's time between batches, not timed), "
+              "training_loader, loaders: list of {loader, batches, epochs, stall_s, loop_s, stall_share}}: a run "
+              "recorded by pipeprobe run (its script.json)",
     "window": "null, or {spec, every_batches, period_s, stretches: list of {stretch, first_batch, last_batch, "
               "batches, start_s, wall_s}}: a run recorded in stretches (Probe(window=...))",
     "ranks": "{count, cross_rank_view: false} for one rank; with several: also straggler_rank, straggler_cause, "

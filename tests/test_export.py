@@ -15,6 +15,7 @@ from pipeprobe.export import TABLES, ExportFolderError, MissingExtraError, expor
 
 sys.path.insert(0, str(Path(__file__).parent))
 from _synth import simple_pipeline, step, wait, write_run  # noqa: E402
+from test_stretches import _two_stretches  # noqa: E402
 
 FRAMES = ("spans", "batches", "samples", "resources")
 
@@ -117,6 +118,44 @@ class TestManifest:
         for entry in manifest["tables"].values():
             frame = pd.read_csv(tmp_path / "t" / entry["file"])
             assert (list(entry["columns"]), entry["rows"]) == (list(frame.columns), len(frame))
+
+
+class TestWindowedRun:
+    """A run recorded in stretches (Probe(window=...)): tables on the analysis' condensed axis (issue #13)."""
+
+    def test_critical_segments_are_the_analysis_own(self, tmp_path: Path) -> None:
+        """The exported critical-path segments equal pipeprobe.analyze(run).critical.segments, gap never crossed."""
+        d = _two_stretches(tmp_path / "run")
+        done = export_tables(d, tmp_path / "t")
+        want = _plain(pipeprobe.analyze(d).critical.segments)
+        back = _read(done.files["critical_segments"]).drop(columns="run_id")
+        pd.testing.assert_frame_equal(want[list(back.columns)], back, check_exact=False, rtol=0, atol=1e-9)
+
+    def test_hand_worked_path_and_wall(self, tmp_path: Path) -> None:
+        """By hand (tests/test_stretches.py): decode 22 ms and step 28 ms of the path, 50 ms wall, no gap."""
+        done = export_tables(_two_stretches(tmp_path / "run"), tmp_path / "t")
+        seg = pd.read_csv(done.files["critical_segments"])
+        got = seg.groupby("label")["seconds"].sum().mul(1e3).round(6).to_dict()
+        wall = float(pd.read_csv(done.files["run"])["wall_s"].iloc[0])
+        assert ({"decode": 22.0, "step": 28.0}, 50.0) == (got, round(wall * 1e3, 6))
+
+    def test_frames_are_the_condensed_runs(self, tmp_path: Path) -> None:
+        """Spans, batches and samples read back equal the condensed run's, column for column (pandas)."""
+        from pipeprobe.stretches import condense
+
+        d = _two_stretches(tmp_path / "run")
+        run = condense(pipeprobe.load(d))
+        done = export_tables(d, tmp_path / "t")
+        for name in ("spans", "batches", "samples"):  # the synthetic run has no resource samples
+            back = _read(done.files[name]).drop(columns="run_id")
+            pd.testing.assert_frame_equal(_plain(getattr(run, name)[list(back.columns)]), back, check_exact=True)
+
+    def test_manifest_names_the_condensed_axis(self, simple_run_dir: Path, tmp_path: Path) -> None:
+        """The manifest's 'times' says a windowed run's times are on the condensed axis; a plain run's are not."""
+        windowed = export_tables(_two_stretches(tmp_path / "run"), tmp_path / "w")
+        plain = export_tables(simple_run_dir, tmp_path / "p")
+        times = [json.loads(x.manifest.read_text())["times"] for x in (windowed, plain)]
+        assert (True, False) == ("condensed axis" in times[0], "condensed axis" in times[1])
 
 
 class TestManyRuns:

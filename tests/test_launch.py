@@ -128,6 +128,60 @@ class TestPlainScripts:
         assert "stalls" not in done.stderr
 
 
+@pytest.fixture(scope="module")
+def recorded_script(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, dict]:
+    """One folder recorded by pipeprobe run (2 epochs, training and validation loaders) and the script's counts."""
+    pytest.importorskip("torch", reason="pipeprobe run watches torch DataLoaders")
+    done, out, own = record_plain(tmp_path_factory.mktemp("script"), "map", 0)
+    assert 0 == done.returncode, done.stderr
+    return out, own
+
+
+def report_of(run_dir: Path, *options: str) -> str:
+    """``pipeprobe report RUN_DIR OPTIONS`` as a user would start it: its stdout."""
+    done = subprocess.run([sys.executable, "-m", "pipeprobe", "report", str(run_dir), "--quiet", *options],
+                          capture_output=True, text=True, env=child_env(), timeout=240)
+    assert 0 == done.returncode, done.stderr
+    return done.stdout
+
+
+class TestReportOnTheFolder:
+    """``pipeprobe report`` on a folder from ``pipeprobe run`` says what 'step' is there (issue #13)."""
+
+    def test_text_says_step_is_untimed_and_lists_loaders(self, recorded_script: tuple[Path, dict]) -> None:
+        """The text report opens with the untimed-step note and one row per loader, counts as the script took."""
+        out, own = recorded_script
+        lines = report_of(out).splitlines()
+        assert "pipeprobe run  " == lines[0][:15]
+        assert ("'step' here is the loop's time between taking a batch and asking for the next one;"
+                in " ".join(lines[1:4]))
+        rows = {x.split()[0]: int(x.split()[2 if "(training)" in x else 1]) for x in lines if "Digits-" in x}
+        assert {"SquareDigits-0": own["batches"], "CheckDigits-1": own["val_batches"]} == rows
+
+    def test_json_carries_the_step_meaning_and_loaders(self, recorded_script: tuple[Path, dict]) -> None:
+        """--json has a 'script' key: the step's meaning (not timed) and each loader's batches (the script's)."""
+        out, own = recorded_script
+        script = json.loads(report_of(out, "--json"))["script"]
+        got = {r["loader"]: r["batches"] for r in script["loaders"]}
+        assert {"SquareDigits-0": own["batches"], "CheckDigits-1": own["val_batches"]} == got
+        assert (True, "SquareDigits-0") == ("not timed" in script["step"], script["training_loader"])
+
+    def test_html_carries_the_note(self, recorded_script: tuple[Path, dict], tmp_path: Path) -> None:
+        """The HTML page shows the same untimed-step note and the training loader's row."""
+        import html
+
+        out, _ = recorded_script
+        report_of(out, "--html", str(tmp_path / "r.html"))
+        page = html.unescape((tmp_path / "r.html").read_text(encoding="utf-8"))
+        assert (True, True) == ("nothing timed the training step itself" in " ".join(page.split()),
+                                "SquareDigits-0 (training)" in page)
+
+    def test_plain_run_has_no_script_part(self, simple_run_dir: Path) -> None:
+        """A run recorded with a Probe (no script.json) has no script key and no untimed-step note."""
+        text, data = report_of(simple_run_dir), json.loads(report_of(simple_run_dir, "--json"))
+        assert (None, False) == (data["script"], "'step' here" in text)
+
+
 class TestLeavingAsTheScriptWould:
     def test_a_script_that_raises(self, tmp_path: Path) -> None:
         """Exit code 1 and the very traceback Python prints without pipeprobe; the trace is kept (Python)."""

@@ -172,6 +172,22 @@ class TestTimelineLanes:
         assert [float(lanes[x]) for x in nodes["lane"]] == [s[0][1] for s in segs]
 
 
+    def test_windowed_run_path_is_the_analysis_own(self, tmp_path: Path) -> None:
+        """A windowed run is drawn on the condensed axis with the analysis' path: 50 ms drawn, none of the gap
+        (two stretches worked by hand in tests/test_stretches.py)."""
+        from test_stretches import _two_stretches
+
+        d = _two_stretches(tmp_path)
+        cp = pipeprobe.analyze(d).critical
+        fig, ax = _fixed_axes()
+        plot.draw_timeline(pipeprobe.load(d), ax=ax, path=True, resolution_px=800)
+        (lines,) = [c for c in ax.collections if c.get_gid() == "pipeprobe:path"]
+        nodes = cp.path[cp.path["end_s"] > cp.path["start_s"]]
+        drawn = sorted((round(s[0][0], 9), round(s[1][0], 9)) for s in lines.get_segments())
+        want = sorted((round(a, 9), round(b, 9)) for a, b in zip(nodes["start_s"], nodes["end_s"], strict=True))
+        assert (want, "recorded time, the gaps between recorded stretches cut out (s)") == (drawn, ax.get_xlabel())
+        assert 0.05 == pytest.approx(ax.get_xlim()[1], abs=1e-9)
+
     def test_two_rank_lanes_have_one_name_everywhere(self, tmp_path: Path) -> None:
         """On a 2-rank run the timeline, the pixel layout, the drawn labels and the resource legend name lanes alike."""
         from pipeprobe.critical import critical_path

@@ -19,10 +19,10 @@ RESTART_MS = 3.0  # from the loop's ask to the new workers' first span
 GAP_MS = 5.0  # the loop's time between epochs (old workers stopped, new ones started)
 
 
-def restart_rows(persistent: bool) -> dict[int, list]:
+def restart_rows(persistent: bool, restart_ms: float = RESTART_MS) -> dict[int, list]:
     """3 epochs x 2 batches on 2 workers; batch decodes take 4 and 5 ms, steps 4 ms.
 
-    Epoch e starts when the loop asks at t; its workers start decoding at t + 3 ms (new workers: every
+    Epoch e starts when the loop asks at t; its workers start decoding at t + 3 ms (``restart_ms``; new workers: every
     epoch; kept workers: the first only), the loop waits until the first batch is ready, steps 4 ms,
     takes the second batch (ready by then) and steps 4 ms, then spends 5 ms (new workers) or nothing
     (kept workers) before it asks for the next epoch. New workers: epochs start at 0, 20, 40 ms, the run
@@ -30,7 +30,7 @@ def restart_rows(persistent: bool) -> dict[int, list]:
     """
     main, procs, t = [], {}, 0.0
     for e in range(3):
-        start = t + (RESTART_MS if (e == 0 or not persistent) else 0.0)
+        start = t + (restart_ms if (e == 0 or not persistent) else 0.0)
         for k in range(2):
             pid = 201 + k if persistent else 201 + 2 * e + k
             procs.setdefault(pid, []).append(stage("decode", start, start + 4 + k, sample=2 * e + k, epoch=e))
@@ -122,3 +122,36 @@ class TestWhatif:
         after = [x for x in build_report(a).figures("actions").actions if x.kind == "gap"]
         assert ["loader workers starting"] == [x.text.split("s is ")[-1].split(" at each")[0] for x in after]
         assert max(0.0, before.seconds - 0.019) == pytest.approx(after[0].seconds, abs=1e-9)
+
+
+class TestStallBlame:
+    """The stall section names each epoch's first wait for starting workers (issue #11 §0), not the gap."""
+
+    def test_first_waits_blamed_on_starting_workers(self, tmp_path):
+        """Workers 10 ms to start: each epoch's first wait (14 ms) is 10 ms of gap then 4 ms of decode on the path
+        (by hand, as in restart_rows), so it is the workers starting; later epochs say the loader starts new ones."""
+        report = build_report(pipeprobe.analyze(write_run(tmp_path / "new", restart_rows(False, restart_ms=10.0))))
+        worst = report_dict(report)["worst_stalls"]
+        assert [(0, "workers starting"), (2, "workers starting"), (4, "workers starting")] == \
+            sorted((w["batch_id"], w["blame"]) for w in worst)
+        text = format_report(report)
+        lines = [x for x in text[text.index("stalls  "):].splitlines() if x.startswith("  batch ")]
+        said = {int(x.split()[1]): x.split(": ", 1)[1] for x in lines}
+        assert {0: "loader workers starting", 2: "new loader workers starting (persistent_workers=False)",
+                4: "new loader workers starting (persistent_workers=False)"} == said
+
+    def test_kept_workers_keep_the_gap(self, tmp_path):
+        """Kept workers (the same two processes every epoch) restart nothing: the first wait keeps the gap's blame."""
+        report = build_report(pipeprobe.analyze(write_run(tmp_path / "kept", restart_rows(True, restart_ms=10.0))))
+        worst = {w["batch_id"]: w["blame"] for w in report_dict(report)["worst_stalls"]}
+        assert "unexplained gap" == worst[0]
+
+    def test_html_names_them_too(self, tmp_path):
+        """The HTML page's longest-waits table names the new workers too (the same words as the text)."""
+        import html
+
+        from pipeprobe.html import render_report
+
+        report = build_report(pipeprobe.analyze(write_run(tmp_path / "new", restart_rows(False, restart_ms=10.0))))
+        page = html.unescape(render_report(report))
+        assert True is ("new loader workers starting (persistent_workers=False)" in page)

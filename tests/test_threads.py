@@ -22,7 +22,7 @@ POOLS = {"usable_cores": 2, "pools": [{"api": "blas", "library": "openblas", "th
          "torch_intra_op": None, "error": None}
 
 
-def _contended_run(tmp_path: Path, busy_step_ms: float, facts: bool = True) -> Path:
+def _contended_run(tmp_path: Path, busy_step_ms: float, facts: bool = True, pools: dict = POOLS) -> Path:
     """Six 10 ms steps alone, then six beside a worker's CPU-bound 'decode' of the next batch (``busy_step_ms`` each).
 
     Each step used 2 cores (process CPU twice its wall time) when alone.
@@ -35,7 +35,7 @@ def _contended_run(tmp_path: Path, busy_step_ms: float, facts: bool = True) -> P
         if busy:
             worker.append(stage("decode", t + 1.0, t + 1.0 + dur, batch=b + 1, cpu_ms=dur))  # the next batch
         t += 1.0 + dur
-    extra = {"threads": POOLS, "step_cpu": "process"} if facts else None
+    extra = {"threads": pools, "step_cpu": "process"} if facts else None
     return write_run(tmp_path, {1: main, 2: worker}, cores=2, header_extra=extra)
 
 
@@ -188,6 +188,42 @@ class TestThreadCheck:
     def test_step_threads_read_defensively(self, header: dict, expected: int | None) -> None:
         """Thread facts in a header are read only where they are whole numbers in range (common practice)."""
         assert expected == step_threads(header)
+
+
+ONE_THREAD = {**POOLS, "pools": [{"api": "blas", "library": "openblas", "threads": 1}]}
+
+
+class TestThreadAction:
+    """The thread fix among the top actions (issue #11 §2), at stake what the steps lost."""
+
+    def test_oversubscribed_run_gets_the_fix_ranked_by_its_cost(self, tmp_path: Path) -> None:
+        """2 step threads + 1 busy worker on 2 cores: the fix is an action, 60 ms at stake (worked example
+        above: 6 steps 10 ms slower), in order of time at stake among the others."""
+        a = pipeprobe.analyze(_contended_run(tmp_path, 20.0))
+        fix = [x for x in a.actions if x.kind == "threads"]
+        assert (1, 0.06) == (len(fix), round(fix[0].seconds, 6))
+        assert "give the step 1 thread beside 1 worker on 2 cores" in fix[0].text
+        assert sorted((x.seconds for x in a.actions), reverse=True) == [x.seconds for x in a.actions]
+
+    def test_report_actions_carry_the_sections_fix(self, tmp_path: Path) -> None:
+        """The report's action list (text and JSON) holds the fix its threads section gives, word for word."""
+        from pipeprobe.report import build_report
+
+        report = build_report(pipeprobe.analyze(_contended_run(tmp_path, 20.0)))
+        data = report_dict(report)
+        fix = [x for x in data["actions"] if x["kind"] == "threads"]
+        text = format_report(report)
+        top = " ".join(text[text.index("top actions"):text.index("Speed-up ceilings")].split())
+        assert (1, 0.06, True) == (len(fix), round(fix[0]["seconds"], 6), data["threads"]["advice"] in fix[0]["text"])
+        assert "give the step 1 thread beside 1 worker on 2 cores" in top
+
+    @pytest.mark.parametrize("facts, pools", [(True, ONE_THREAD), (False, POOLS)])
+    def test_no_fix_when_threads_fit_or_facts_missing(self, tmp_path: Path, facts: bool, pools: dict) -> None:
+        """One step thread + one worker fit 2 cores, and a run without thread facts: no thread action."""
+        a = pipeprobe.analyze(_contended_run(tmp_path, 20.0, facts=facts, pools=pools))
+        data = report_dict(a)
+        assert ([], []) == ([x for x in a.actions if x.kind == "threads"],
+                            [x for x in data["actions"] if x["kind"] == "threads"])
 
 
 class TestRange:

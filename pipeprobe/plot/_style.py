@@ -128,6 +128,20 @@ def _load(path: Any) -> Run:
 # --------------------------------------------------------------------------- ceilings
 
 
+#: The time axis label of the timeline and the resource strip: a plain run, and a windowed one.
+_TIME_LABEL = "time since run start (s)"
+_CONDENSED_LABEL = "recorded time, the gaps between recorded stretches cut out (s)"
+
+
+def _analysis_axis(run: Run) -> tuple[Run, str]:
+    """The run on the analysis' time axis (a windowed run with its stretches end to end) and the axis label."""
+    from ..stretches import condense, is_windowed
+
+    if is_windowed(run):
+        return condense(run), _CONDENSED_LABEL
+    return run, _TIME_LABEL
+
+
 def _analysis_parts(run: Any) -> tuple[Run, Any]:
     """(Run, Analysis or None) from a Run or an Analysis."""
     if isinstance(run, Run):
@@ -151,10 +165,9 @@ def _process_names(run: Run) -> dict[tuple[int, int], str]:
 def _path_nodes(run: Run, path: Any) -> pd.DataFrame:
     """Critical-path nodes, earliest first, from ``True``, a CriticalPath or a DataFrame."""
     if path is True:
-        from ..critical import critical_path
-        from ..timeline import build_timeline
+        from ..stretches import timeline_and_path
 
-        path = critical_path(build_timeline(run))
+        path = timeline_and_path(run)[1]  # the analysis' own path (one stretch at a time for a windowed run)
     frame = path.path if isinstance(getattr(path, "path", None), pd.DataFrame) else path
     if not isinstance(frame, pd.DataFrame):
         raise TypeError(

@@ -21,6 +21,7 @@ from ._style import (
     PATH_COLOUR,
     STALL_COLOUR,
     STEP_COLOUR,
+    _analysis_axis,
     _axes_width_px,
     _fmt_s,
     _new_axes,
@@ -60,7 +61,10 @@ def draw_timeline(
     Parameters
     ----------
     run : Run
-        A loaded run.
+        A loaded run. A run recorded with a window (``Probe(window=...)``)
+        is drawn with its stretches end to end, the unrecorded gaps cut out
+        (:func:`pipeprobe.stretches.condense`): the axis of the analysis
+        and of its critical path.
     ax : Axes, optional
         Where to draw; a new figure (not registered with pyplot) otherwise.
     window_s : (float, float), optional
@@ -92,6 +96,7 @@ def draw_timeline(
     >>> ax.get_xlabel()
     'time since run start (s)'
     """
+    run, xlabel = _analysis_axis(run)  # a windowed run: its stretches end to end, as the analysis and path see it
     lanes_guess = max(1, len(run.processes)) if len(run.processes) else 1
     ax = _new_axes(ax, (11.0, max(2.6, 1.2 + 0.45 * lanes_guess)))
     px = resolution_px if resolution_px is not None else _axes_width_px(ax)
@@ -103,7 +108,7 @@ def draw_timeline(
     with_path = path is not None and path is not False
     if with_path:
         _draw_path(ax, lay, _path_nodes(run, path))
-    _label_lanes(ax, lay)
+    _label_lanes(ax, lay, xlabel)
     _style(ax)
     if legend and lay.lanes:
         _draw_legend(ax, lay, colours, with_path)
@@ -167,7 +172,7 @@ def _draw_spans(ax: Axes, lay: TimelineLayout, stage_rgba: np.ndarray) -> None:
             ax.add_collection(coll, autolim=False)
 
 
-def _label_lanes(ax: Axes, lay: TimelineLayout) -> None:
+def _label_lanes(ax: Axes, lay: TimelineLayout, xlabel: str) -> None:
     """Window, lane labels and separators, the axis label and the title with the span counts."""
     lo, hi = lay.window_s
     n = len(lay.lanes)
@@ -180,7 +185,7 @@ def _label_lanes(ax: Axes, lay: TimelineLayout) -> None:
     ax.tick_params(axis="y", length=0)
     for i in range(n - 1):
         ax.axhline(i + 0.5, color="#BBBBBB", linewidth=0.5, zorder=0)
-    ax.set_xlabel("time since run start (s)")
+    ax.set_xlabel(xlabel)
     shown = sum(lane.spans for lane in lay.lanes)
     merged = sum(lane.merged for lane in lay.lanes)
     note = f"{shown:,} spans in view"
@@ -267,7 +272,7 @@ def draw_resources(
     Parameters
     ----------
     run : Run
-        A loaded run.
+        A loaded run (a windowed run on the timeline's condensed axis).
     ax : sequence of three Axes, optional
         Where to draw the core, process CPU and memory panels; a new figure
         with shared time axis otherwise.
@@ -301,6 +306,7 @@ def draw_resources(
             raise ValueError(f"ax must hold three Axes (cores, process CPU, memory), got {len(axes)}")
         fig = axes[0].figure
     a_core, a_cpu, a_mem = axes
+    run, xlabel = _analysis_axis(run)  # the timeline's axis: a windowed run's samples inside its stretches
     res = run.resources
     rk = (int(res["rank"].min()) if len(res) else 0) if rank is None else rank
     res = res[res["rank"] == rk]
@@ -347,7 +353,7 @@ def draw_resources(
         a_cpu.text(0.5, 0.5, "no process samples recorded", transform=a_cpu.transAxes, ha="center", fontsize=8)
     a_cpu.set_ylabel("CPU (%,\n100 = 1 core)")
     a_mem.set_ylabel("resident\nmemory (MiB)")
-    a_mem.set_xlabel("time since run start (s)")
+    a_mem.set_xlabel(xlabel)
     for a in axes:
         a.set_xlim(lo, hi)
         a.yaxis.label.set_fontsize(8)
