@@ -326,7 +326,7 @@ def inherit(values: np.ndarray, parent: np.ndarray, depth: np.ndarray) -> np.nda
     return out
 
 
-def span_pieces(spans: pd.DataFrame) -> pd.DataFrame:
+def span_pieces(spans: pd.DataFrame, columns: Sequence[str] | None = None) -> pd.DataFrame:
     """The pieces of a run's spans: each thread's time given to the innermost span running.
 
     Parameters
@@ -334,6 +334,9 @@ def span_pieces(spans: pd.DataFrame) -> pd.DataFrame:
     spans : DataFrame
         Rows of :attr:`pipeprobe.load.Run.spans` (any subset: only these
         nest; give stage spans, not waits or steps).
+    columns : sequence of str, optional
+        The columns of ``spans`` to carry (default: all of them); the piece
+        columns are always there. Fewer columns, less memory on a large run.
 
     Returns
     -------
@@ -361,20 +364,22 @@ def span_pieces(spans: pd.DataFrame) -> pd.DataFrame:
        (a node's own time: its span less its children's).
     """
     sp = spans.reset_index(drop=True)
+    carry = list(sp.columns) if columns is None else [c for c in sp.columns if c in set(columns)]
     if sp.empty:
-        return sp.assign(span=np.zeros(0, np.int64), label=pd.Categorical([]))
+        return sp[carry].assign(span=np.zeros(0, np.int64), label=pd.Categorical([]))
     flat, code, _, labels = _flatten_frame(sp)
-    out = sp.iloc[flat.span].reset_index(drop=True)
     dur = flat.end - flat.start
+    # column by column (categoricals stay codes): no copy of the columns a piece replaces
+    out = {c: (None if c in PIECE_COLUMNS else sp[c].array.take(flat.span)) for c in carry}
     out["span"] = flat.span
     cats, label_code = np.unique(labels.astype(str), return_inverse=True)
     out["label"] = pd.Categorical.from_codes(label_code[code[flat.span]], categories=list(cats))
     out["start_s"], out["end_s"], out["dur_s"] = flat.start, flat.end, dur
     out["cpu_s"] = _own_cpu(sp, flat, dur)
     for col in ("sample_id", "batch_id", "epoch"):
-        if col in sp:
+        if col in carry:
             out[col] = inherit(sp[col].to_numpy(np.int64), flat.parent, flat.depth)[flat.span]
-    return out
+    return pd.DataFrame(out)
 
 
 def labels_inside(spans: pd.DataFrame) -> dict[str, tuple[str, ...]]:
