@@ -226,16 +226,20 @@ def _loader_threads(run: Run, user: pd.DataFrame) -> np.ndarray:
     return np.where(slots > 0, -slots, key)
 
 
+#: The span columns the plan reads from the stage pieces (fewer columns: less memory on a large run).
+_PIECE_INPUT = ("stage", "start_s", "end_s", "rank", "pid", "tid", "batch_id", "cpu_s")
+
+
 def user_spans(run: Run, batches: _Batches) -> _UserSpans:
     """Step 2: the stage spans of the batches, on the loader side or the consumer side."""
     sp = run.spans
-    sp = sp[sp["rank"] == batches.rank]
-    waits = sp[sp["stage"] == "wait"]
-    ck = waits[["pid", "tid"]].value_counts().index[0]  # the consumer: the thread that waits for batches
+    if (sp["rank"].to_numpy() != batches.rank).any():  # the copy only when there are other ranks
+        sp = sp[sp["rank"] == batches.rank]
+    ck = sp.loc[(sp["stage"] == "wait").to_numpy(), ["pid", "tid"]].value_counts().index[0]  # the consumer
     bid = batches.batch_id
     pos = pd.Series(np.arange(batches.n), index=bid)
     # nested stages count once: the time of the innermost stage running, ids taken from the stage around it
-    stage_spans = sp[~sp["stage"].isin(["wait", "step"])]
+    stage_spans = sp.loc[~sp["stage"].isin(["wait", "step"]).to_numpy(), list(_PIECE_INPUT)]
     pieces = span_pieces(stage_spans)
     user = pieces[(pieces["batch_id"] >= 0) & pieces["batch_id"].isin(bid)] if len(pieces) else sp.iloc[:0]
     k = pos.reindex(user["batch_id"].to_numpy()).to_numpy(np.int64)
@@ -259,7 +263,8 @@ def user_spans(run: Run, batches: _Batches) -> _UserSpans:
         stage=as_text(user["label"] if "label" in user else user["stage"]),
         thread=_loader_threads(run, user),
         in_wait=in_wait, consumer_side=in_cons & ~in_wait & ~nested_in_step, worker_side=worker_side,
-        cpu_known=cpu_known, steps=sp[(sp["stage"] == "step") & sp["batch_id"].isin(bid)], spans=int(len(sp)),
+        cpu_known=cpu_known, steps=sp.loc[((sp["stage"] == "step") & sp["batch_id"].isin(bid)).to_numpy(), ["batch_id", "dur_s", "cpu_s"]],
+        spans=int(len(sp)),
         notes=tuple(notes), inside=labels_inside(stage_spans),
     )
 
