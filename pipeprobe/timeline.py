@@ -269,7 +269,7 @@ def _consecutive(order: np.ndarray, group: np.ndarray) -> tuple[np.ndarray, np.n
 
 @dataclass(frozen=True)
 class _Spans:
-    """``run.spans`` as arrays, one entry per span, with its thread and lane."""
+    """``run.spans`` as arrays, one entry per span, with its thread; rank, pid, tid and lane per thread."""
 
     stages: list[str]  # stage categories, 'delivery' appended
     code: np.ndarray
@@ -277,20 +277,24 @@ class _Spans:
     is_step: np.ndarray
     start: np.ndarray
     end: np.ndarray
-    rank: np.ndarray
-    pid: np.ndarray
-    tid: np.ndarray
     batch: np.ndarray
     sample: np.ndarray
     epoch: np.ndarray
-    th: np.ndarray
-    lane: np.ndarray
+    th: np.ndarray  # thread code (rank, pid, tid in sorted order)
+    th_rank: np.ndarray  # per thread code: what a per-span column would repeat
+    th_pid: np.ndarray
+    th_tid: np.ndarray
+    th_lane: np.ndarray
     lane_names: np.ndarray
     row: np.ndarray  # row of run.spans (a piece: the row of the span it is part of)
 
     @property
     def user(self) -> np.ndarray:
         return ~self.is_wait & ~self.is_step
+
+    @property
+    def rank(self) -> np.ndarray:
+        return self.th_rank[self.th]
 
 
 @dataclass(frozen=True)
@@ -311,9 +315,23 @@ class _Order:
     n_b: int
     perm: np.ndarray
 
+    @classmethod
+    def of(cls, kept: np.ndarray, n_b: int, perm: np.ndarray) -> _Order:
+        o = cls(kept, n_b, perm)
+        # per node: its span row (-1 for a delivery) and its delivery index, so each take is one gather
+        pos = np.concatenate([kept, np.full(n_b, -1, np.int64)])[perm]
+        object.__setattr__(o, "_span_of", pos)
+        object.__setattr__(o, "_is_delivery", pos < 0)
+        object.__setattr__(o, "_delivery", perm[pos < 0] - len(kept))
+        return o
+
     def take(self, per_span: np.ndarray, per_delivery: Any) -> np.ndarray:
         """A node column from a per-span array and a per-delivery value (or array)."""
-        return np.concatenate([per_span[self.kept], np.broadcast_to(per_delivery, (self.n_b,))])[self.perm]
+        if not len(per_span):
+            return np.concatenate([per_span[self.kept], np.broadcast_to(per_delivery, (self.n_b,))])[self.perm]
+        out = per_span[self._span_of].astype(np.result_type(per_span, per_delivery), copy=False)
+        out[self._is_delivery] = np.broadcast_to(per_delivery, (self.n_b,))[self._delivery]
+        return out
 
 
 @dataclass(frozen=True)
@@ -350,13 +368,16 @@ def _span_arrays(sp: pd.DataFrame) -> _Spans:
     th = (sp.groupby(["rank", "pid", "tid"], sort=True, observed=True).ngroup().to_numpy(np.int64)
           if n_sp else np.zeros(0, np.int64))
     lanes, lane = thread_lanes(sp)
+    n_th = int(th.max()) + 1 if n_sp else 0
+    first = np.full(n_th, -1, np.int64)
+    first[th[::-1]] = np.arange(n_sp - 1, -1, -1)  # a span of each thread: its rank, pid, tid and lane
     return _Spans(
         stages=cats, code=code, is_wait=is_wait, is_step=is_step,
         start=sp["start_s"].to_numpy(np.float64), end=sp["end_s"].to_numpy(np.float64),
-        rank=sp["rank"].to_numpy(np.int64), pid=sp["pid"].to_numpy(np.int64), tid=sp["tid"].to_numpy(np.int64),
         batch=sp["batch_id"].to_numpy(np.int64), sample=sp["sample_id"].to_numpy(np.int64),
-        epoch=sp["epoch"].to_numpy(np.int64), th=th, lane=lane, lane_names=lanes["name"].to_numpy(object),
-        row=np.arange(n_sp, dtype=np.int64),
+        epoch=sp["epoch"].to_numpy(np.int64), th=th, th_rank=sp["rank"].to_numpy(np.int64)[first],
+        th_pid=sp["pid"].to_numpy(np.int64)[first], th_tid=sp["tid"].to_numpy(np.int64)[first],
+        th_lane=lane[first], lane_names=lanes["name"].to_numpy(object), row=np.arange(n_sp, dtype=np.int64),
     )
 
 
@@ -400,9 +421,9 @@ def _innermost(s: _Spans, d: _Deliveries) -> _Spans:
 
     return _Spans(
         stages=stages, code=col(s.code, new_code[s.code[nest][flat.span]]), is_wait=s.is_wait[rows],
-        is_step=s.is_step[rows], start=col(s.start, flat.start), end=col(s.end, flat.end), rank=s.rank[rows],
-        pid=s.pid[rows], tid=s.tid[rows], batch=ids(s.batch), sample=ids(s.sample), epoch=ids(s.epoch),
-        th=s.th[rows], lane=s.lane[rows], lane_names=s.lane_names, row=s.row[rows],
+        is_step=s.is_step[rows], start=col(s.start, flat.start), end=col(s.end, flat.end), batch=ids(s.batch),
+        sample=ids(s.sample), epoch=ids(s.epoch), th=s.th[rows], th_rank=s.th_rank, th_pid=s.th_pid,
+        th_tid=s.th_tid, th_lane=s.th_lane, lane_names=s.lane_names, row=s.row[rows],
     )
 
 
@@ -462,9 +483,9 @@ def _span_sides(s: _Spans, d: _Deliveries) -> tuple[np.ndarray, np.ndarray]:
 def _node_order(s: _Spans, d: _Deliveries) -> _Order:
     kept = np.flatnonzero(_outermost(s, ~s.is_wait))  # umbrellas are gone already (_innermost)
     n_b = len(d.wait)
-    raw = _Order(kept, n_b, np.arange(len(kept) + n_b))
+    raw = _Order.of(kept, n_b, np.arange(len(kept) + n_b))
     korder = raw.take(np.where(s.is_step, 2, 0), 1)
-    return _Order(kept, n_b, np.lexsort((korder, raw.take(s.end, d.ready), raw.take(s.start, d.ready))))
+    return _Order.of(kept, n_b, np.lexsort((korder, raw.take(s.end, d.ready), raw.take(s.start, d.ready))))
 
 
 def _node_arrays(s: _Spans, d: _Deliveries, o: _Order, sides: tuple[np.ndarray, np.ndarray]) -> _Nodes:
@@ -478,7 +499,7 @@ def _node_arrays(s: _Spans, d: _Deliveries, o: _Order, sides: tuple[np.ndarray, 
     ids = np.arange(len(nth), dtype=np.int64)
     return _Nodes(
         start=o.take(s.start, d.ready), end=o.take(s.end, d.ready), th=nth, batch=nbi, kind=nkind,
-        sample=o.take(s.sample, -1), rank=o.take(s.rank, s.rank[d.wait]),
+        sample=o.take(s.sample, -1), rank=s.th_rank[nth],
         producer=o.take(producer, False), consumer=o.take(consumer_side, False),
         on_consumer_thread=np.isin(nth, np.unique(d.th)), delivery_of_batch=deliv_of_b,
         thread_order=ids[np.lexsort((ids, nth))],
@@ -682,7 +703,7 @@ def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np
     """The nodes as the documented DataFrame (:data:`NODE_COLUMNS`)."""
     ready = np.where(pred >= 0, n.end[np.maximum(pred, 0)], origin) if len(pred) else np.zeros(0)
     side = np.where(s.is_step | sides[1], _S_CONSUMER, _S_INPUT)
-    lane = o.take(s.lane, s.lane[d.wait])
+    lane = s.th_lane[n.th]
     used = np.unique(lane)
     lane_cats = sorted(set(s.lane_names[used]))  # threads of one worker slot share a name
     code_of_lane = np.full(len(s.lane_names), -1, np.int64)
@@ -698,8 +719,8 @@ def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np
             "end_s": n.end,
             "dur_s": n.end - n.start,
             "rank": n.rank,
-            "pid": o.take(s.pid, s.pid[d.wait]),
-            "tid": o.take(s.tid, s.tid[d.wait]),
+            "pid": s.th_pid[n.th],
+            "tid": s.th_tid[n.th],
             "lane": pd.Categorical.from_codes(code_of_lane[lane], categories=lane_cats),
             "batch_id": o.take(np.where(has_b, s.batch, -1), s.batch[d.wait]),
             "sample_id": n.sample,
