@@ -628,11 +628,20 @@ def _edges(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     src, dst, ek = src[ok], dst[ok], ek[ok]
     ok = n.end[src] <= n.start[dst]  # the recording must agree with the dependency
     src, dst, ek = src[ok], dst[ok], ek[ok]
-    o = np.lexsort((ek, dst, src))
+    o = np.argsort(_pair_key(src, dst, len(n.start)) * len(EDGE_KINDS) + ek)  # by (src, dst, kind), one key
     src, dst, ek = src[o], dst[o], ek[o]
     first = np.ones(len(src), bool)
     first[1:] = (src[1:] != src[:-1]) | (dst[1:] != dst[:-1])
     return src[first], dst[first], ek[first]
+
+
+def _pair_key(src: np.ndarray, dst: np.ndarray, count: int) -> np.ndarray:
+    """One int64 per (src, dst) node pair that sorts as the pair does, with room for an edge kind below it.
+
+    Exact while ``count**2 * len(EDGE_KINDS) < 2**63``, i.e. below 2**30 nodes (a timeline that size
+    would need hundreds of GiB before it got here).
+    """
+    return src * count + dst
 
 
 def _last_arriving(n: _Nodes, src: np.ndarray, dst: np.ndarray, ek: np.ndarray) -> tuple[np.ndarray, float]:
@@ -641,10 +650,11 @@ def _last_arriving(n: _Nodes, src: np.ndarray, dst: np.ndarray, ek: np.ndarray) 
     origin = float(min(0.0, n.start.min())) if count else 0.0
     pred = np.full(count, -1, np.int64)
     if len(src):
-        o = np.lexsort((src, -ek.astype(np.int64), n.end[src], dst))
-        d_sorted = dst[o]
-        last = np.append(d_sorted[1:] != d_sorted[:-1], True)
-        pred[d_sorted[last]] = src[o][last]
+        # the latest end wins, then the dependency kind (lowest code), then the highest node id: one key
+        _, end_rank = np.unique(n.end, return_inverse=True)
+        key = (end_rank[src] * len(EDGE_KINDS) + (len(EDGE_KINDS) - 1 - ek)) * count + src
+        best = pd.Series(key).groupby(dst, sort=False).max()
+        pred[best.index.to_numpy(np.int64)] = best.to_numpy(np.int64) % count
     return pred, origin
 
 
