@@ -80,6 +80,7 @@ the observed critical path of the critical path method.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -351,9 +352,14 @@ class _Nodes:
     delivery_of_batch: np.ndarray
     thread_order: np.ndarray  # node ids by thread, then time
 
-    @property
+    @cached_property
     def ids(self) -> np.ndarray:
         return np.arange(len(self.start), dtype=np.int64)
+
+    @cached_property
+    def sample_chains(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """:func:`_sample_chains`, made once for the three rules that read it."""
+        return _sample_chains(self)
 
 
 def _span_arrays(sp: pd.DataFrame) -> _Spans:
@@ -514,8 +520,12 @@ _Pairs = tuple[np.ndarray, np.ndarray]
 def _sample_chains(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Producer spans with a sample id ordered by (batch, sample, time); their chain keys; each chain's last."""
     ps = n.ids[n.producer & (n.sample >= 0)]
-    o = ps[np.lexsort((ps, n.sample[ps], n.batch[ps]))]
-    key = n.batch[o] * (1 << 31) + n.sample[o]
+    key = n.batch[ps] * (1 << 31) + n.sample[ps]
+    if len(ps) and n.sample[ps].max() < (1 << 31):  # the key sorts as (batch, sample); ps ascending breaks ties
+        by_key = np.argsort(key, kind="stable")
+    else:
+        by_key = np.lexsort((ps, n.sample[ps], n.batch[ps]))
+    o, key = ps[by_key], key[by_key]
     tails = o[np.append(key[1:] != key[:-1], True)] if len(o) else o
     return o, key, tails
 
@@ -528,7 +538,7 @@ def _assembly_spans(n: _Nodes) -> np.ndarray:
 
 def _sample_edges(n: _Nodes) -> _Pairs:
     """``sample``: the stages of one sample of one batch, in the order they started."""
-    o, key, _ = _sample_chains(n)
+    o, key, _ = n.sample_chains
     return _consecutive(o, key)
 
 
@@ -538,7 +548,7 @@ def _assembly_edges(n: _Nodes) -> _Pairs:
     if not len(o):
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     src, dst = _consecutive(o, n.batch[o])
-    _, _, tails = _sample_chains(n)
+    _, _, tails = n.sample_chains
     if len(tails):
         left = pd.DataFrame({"t": n.end[tails], "b": n.batch[tails], "src": tails}).sort_values("t", kind="stable")
         right = pd.DataFrame({"t": n.start[o], "b": n.batch[o], "dst": o}).sort_values("t", kind="stable")
@@ -551,7 +561,7 @@ def _assembly_edges(n: _Nodes) -> _Pairs:
 
 def _delivery_edges(n: _Nodes) -> _Pairs:
     """``delivery``: the last stage of each sample chain and of the assembly chain -> the batch's delivery."""
-    _, _, tails = _sample_chains(n)
+    _, _, tails = n.sample_chains
     o = _assembly_spans(n)
     lasts = o[np.append(n.batch[o][1:] != n.batch[o][:-1], True)] if len(o) else o
     src = np.concatenate([tails, lasts])
