@@ -379,7 +379,7 @@ def span_pieces(spans: pd.DataFrame, columns: Sequence[str] | None = None) -> pd
     for col in ("sample_id", "batch_id", "epoch"):
         if col in carry:
             out[col] = inherit(sp[col].to_numpy(np.int64), flat.parent, flat.depth)[flat.span]
-    return pd.DataFrame(out)
+    return pd.DataFrame(out, copy=False)  # fresh arrays: no second copy of the pieces
 
 
 def labels_inside(spans: pd.DataFrame) -> dict[str, tuple[str, ...]]:

@@ -713,7 +713,8 @@ def build_timeline(run: Run) -> Timeline:
     pred, origin = _last_arriving(n, src, dst, ek)
     nodes = _node_frame(s, d, order, n, sides, pred, origin)
     edges = pd.DataFrame({"src": src, "dst": dst,
-                          "kind": pd.Categorical.from_codes(ek.astype(np.int64), categories=list(EDGE_KINDS))})
+                          "kind": pd.Categorical.from_codes(ek.astype(np.int64), categories=list(EDGE_KINDS))},
+                         copy=False)
     end_s = max(float(run.wall_s), float(n.end.max()) if len(n.end) else 0.0)
     return Timeline(nodes=nodes, edges=edges, origin_s=origin, end_s=end_s)
 
@@ -750,7 +751,8 @@ def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np
             "ready_s": ready,
             "gap_s": n.start - ready,
             "weight_s": n.end - ready,
-        }
+        },
+        copy=False,  # each column stays its own array: no second copy of the nodes while the frame is built
     )
     nodes["stage"] = nodes["stage"].cat.remove_unused_categories()
     return nodes
