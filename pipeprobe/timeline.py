@@ -345,16 +345,20 @@ class _Nodes:
     batch: np.ndarray  # delivery index of the node's batch, -1 none
     kind: np.ndarray
     sample: np.ndarray
-    rank: np.ndarray
+    th_rank: np.ndarray  # rank per thread code
     producer: np.ndarray
     consumer: np.ndarray
     on_consumer_thread: np.ndarray
     delivery_of_batch: np.ndarray
     thread_order: np.ndarray  # node ids by thread, then time
 
-    @cached_property
+    @property
     def ids(self) -> np.ndarray:
         return np.arange(len(self.start), dtype=np.int64)
+
+    @property
+    def rank(self) -> np.ndarray:
+        return self.th_rank[self.th]
 
     @cached_property
     def sample_chains(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -366,13 +370,13 @@ def _span_arrays(sp: pd.DataFrame) -> _Spans:
     n_sp = len(sp)
     stage_cat = sp["stage"].astype("category") if n_sp else pd.Series(pd.Categorical([]))
     cats = [str(c) for c in stage_cat.cat.categories] if n_sp else []
-    code = stage_cat.cat.codes.to_numpy(np.int64) if n_sp else np.zeros(0, np.int64)
+    code = stage_cat.cat.codes.to_numpy(np.int32) if n_sp else np.zeros(0, np.int32)
     is_wait = code == (cats.index("wait") if "wait" in cats else -2)
     is_step = code == (cats.index("step") if "step" in cats else -2)
     if "delivery" not in cats:
         cats.append("delivery")
-    th = (sp.groupby(["rank", "pid", "tid"], sort=True, observed=True).ngroup().to_numpy(np.int64)
-          if n_sp else np.zeros(0, np.int64))
+    th = (sp.groupby(["rank", "pid", "tid"], sort=True, observed=True).ngroup().to_numpy(np.int32)
+          if n_sp else np.zeros(0, np.int32))
     lanes, lane = thread_lanes(sp)
     n_th = int(th.max()) + 1 if n_sp else 0
     first = np.full(n_th, -1, np.int64)
@@ -498,14 +502,14 @@ def _node_arrays(s: _Spans, d: _Deliveries, o: _Order, sides: tuple[np.ndarray, 
     producer, consumer_side = sides
     nth = o.take(s.th, d.th)
     nbi = o.take(np.where(d.of_span >= 0, d.of_span, -1), np.arange(o.n_b))
-    nkind = o.take(np.where(s.is_step, _N_STEP, _N_STAGE), _N_DELIVERY)
+    nkind = o.take(np.where(s.is_step, _N_STEP, _N_STAGE).astype(np.int8), _N_DELIVERY)
     is_deliv = nkind == _N_DELIVERY
     deliv_of_b = np.full(o.n_b, -1, np.int64)
     deliv_of_b[nbi[is_deliv]] = np.flatnonzero(is_deliv)
     ids = np.arange(len(nth), dtype=np.int64)
     return _Nodes(
         start=o.take(s.start, d.ready), end=o.take(s.end, d.ready), th=nth, batch=nbi, kind=nkind,
-        sample=o.take(s.sample, -1), rank=s.th_rank[nth],
+        sample=o.take(s.sample, -1), th_rank=s.th_rank,
         producer=o.take(producer, False), consumer=o.take(consumer_side, False),
         on_consumer_thread=np.isin(nth, np.unique(d.th)), delivery_of_batch=deliv_of_b,
         thread_order=ids[np.lexsort((ids, nth))],
@@ -519,7 +523,7 @@ _Pairs = tuple[np.ndarray, np.ndarray]
 
 def _sample_chains(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Producer spans with a sample id ordered by (batch, sample, time); their chain keys; each chain's last."""
-    ps = n.ids[n.producer & (n.sample >= 0)]
+    ps = np.flatnonzero(n.producer & (n.sample >= 0))
     key = n.batch[ps] * (1 << 31) + n.sample[ps]
     if len(ps) and n.sample[ps].max() < (1 << 31):  # the key sorts as (batch, sample); ps ascending breaks ties
         by_key = np.argsort(key, kind="stable")
@@ -532,7 +536,7 @@ def _sample_chains(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 
 def _assembly_spans(n: _Nodes) -> np.ndarray:
     """Batch-level producer spans (no sample id) ordered by (batch, time)."""
-    pa = n.ids[n.producer & (n.sample < 0)]
+    pa = np.flatnonzero(n.producer & (n.sample < 0))
     return pa[np.lexsort((pa, n.batch[pa]))]
 
 
@@ -570,8 +574,8 @@ def _delivery_edges(n: _Nodes) -> _Pairs:
 
 def _consumer_edges(n: _Nodes) -> _Pairs:
     """``consumer``: delivery -> consumer-side stages of the batch -> its steps; delivery -> steps."""
-    pc = n.ids[n.consumer]
-    st_b = n.ids[(n.kind == _N_STEP) & (n.batch >= 0)]
+    pc = np.flatnonzero(n.consumer)
+    st_b = np.flatnonzero((n.kind == _N_STEP) & (n.batch >= 0))
     src = [n.delivery_of_batch[n.batch[pc]], n.delivery_of_batch[n.batch[st_b]]]
     dst = [pc, st_b]
     if len(pc) and len(st_b):
@@ -586,8 +590,8 @@ def _slot_edges(n: _Nodes) -> _Pairs:
     worker sat idle for at least :data:`SLOT_MIN_IDLE_S` (or had not run yet) and the event came during
     that idle time."""
     none = np.zeros(0, np.int64), np.zeros(0, np.int64)
-    pw = n.ids[n.producer & ~n.on_consumer_thread]
-    loop = n.ids[n.on_consumer_thread]
+    pw = np.flatnonzero(n.producer & ~n.on_consumer_thread)
+    loop = np.flatnonzero(n.on_consumer_thread)
     if not len(pw) or not len(loop):
         return none
     heads = pd.DataFrame({"b": n.batch[pw], "th": n.th[pw], "dst": pw}).groupby(["b", "th"], sort=False)["dst"].min()
@@ -613,7 +617,7 @@ def _slot_edges(n: _Nodes) -> _Pairs:
 
 def _step_edges(n: _Nodes) -> _Pairs:
     """``step``: step k-1 -> step k of the same rank."""
-    st = n.ids[n.kind == _N_STEP]
+    st = np.flatnonzero(n.kind == _N_STEP)
     o = st[np.lexsort((st, n.rank[st]))]
     return _consecutive(o, n.rank[o])
 
@@ -629,29 +633,28 @@ _EDGE_RULES = (_sample_edges, _assembly_edges, _delivery_edges, _consumer_edges,
 
 
 def _edges(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Every rule's edges that the recording agrees with, one per node pair (the first kind in EDGE_KINDS order)."""
-    pairs = [rule(n) for rule in _EDGE_RULES]
-    src = np.concatenate([np.asarray(p[0], np.int64) for p in pairs])
-    dst = np.concatenate([np.asarray(p[1], np.int64) for p in pairs])
-    ek = np.concatenate([np.full(len(p[0]), k, np.int8) for k, p in enumerate(pairs)])
-    ok = (src >= 0) & (dst >= 0) & (src != dst)
-    src, dst, ek = src[ok], dst[ok], ek[ok]
-    ok = n.end[src] <= n.start[dst]  # the recording must agree with the dependency
-    src, dst, ek = src[ok], dst[ok], ek[ok]
-    o = np.argsort(_pair_key(src, dst, len(n.start)) * len(EDGE_KINDS) + ek)  # by (src, dst, kind), one key
-    src, dst, ek = src[o], dst[o], ek[o]
-    first = np.ones(len(src), bool)
-    first[1:] = (src[1:] != src[:-1]) | (dst[1:] != dst[:-1])
-    return src[first], dst[first], ek[first]
+    """Every rule's edges that the recording agrees with, one per node pair (the first kind in EDGE_KINDS order).
 
-
-def _pair_key(src: np.ndarray, dst: np.ndarray, count: int) -> np.ndarray:
-    """One int64 per (src, dst) node pair that sorts as the pair does, with room for an edge kind below it.
-
-    Exact while ``count**2 * len(EDGE_KINDS) < 2**63``, i.e. below 2**30 nodes (a timeline that size
-    would need hundreds of GiB before it got here).
+    The edges travel as one int64 key ``(src * nodes + dst) * kinds + kind``, sorted in place: a sort of
+    that key orders them by (src, dst, kind), and a large run holds one array of them, not three.
     """
-    return src * count + dst
+    count, kinds = len(n.start), len(EDGE_KINDS)
+    keys = []
+    for k, rule in enumerate(_EDGE_RULES):
+        src, dst = (np.asarray(a, np.int64) for a in rule(n))
+        ok = (src >= 0) & (dst >= 0) & (src != dst)
+        src, dst = src[ok], dst[ok]
+        ok = n.end[src] <= n.start[dst]  # the recording must agree with the dependency
+        keys.append((src[ok] * count + dst[ok]) * kinds + k)  # exact below 2**30 nodes
+    key = np.concatenate(keys)
+    del keys
+    n.__dict__.pop("sample_chains", None)  # the chains served the rules: free them before the sort
+    key.sort()
+    pair = key // kinds
+    first = np.ones(len(key), bool)
+    first[1:] = pair[1:] != pair[:-1]
+    key, pair = key[first], pair[first]
+    return pair // count, pair % count, (key % kinds).astype(np.int8)
 
 
 def _last_arriving(n: _Nodes, src: np.ndarray, dst: np.ndarray, ek: np.ndarray) -> tuple[np.ndarray, float]:
@@ -723,7 +726,7 @@ def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np
                 pred: np.ndarray, origin: float) -> pd.DataFrame:
     """The nodes as the documented DataFrame (:data:`NODE_COLUMNS`)."""
     ready = np.where(pred >= 0, n.end[np.maximum(pred, 0)], origin) if len(pred) else np.zeros(0)
-    side = np.where(s.is_step | sides[1], _S_CONSUMER, _S_INPUT)
+    side = np.where(s.is_step | sides[1], _S_CONSUMER, _S_INPUT).astype(np.int8)
     lane = s.th_lane[n.th]
     used = np.unique(lane)
     lane_cats = sorted(set(s.lane_names[used]))  # threads of one worker slot share a name
