@@ -310,28 +310,25 @@ class _Deliveries:
 
 @dataclass(frozen=True)
 class _Order:
-    """Which spans are nodes, and the permutation that puts nodes (kept spans, then deliveries) in time order."""
+    """Which span or delivery each node is, nodes in time order (kept spans, then deliveries, permuted)."""
 
-    kept: np.ndarray
+    span_of: np.ndarray  # per node: its span row, -1 for a delivery
+    is_delivery: np.ndarray
+    delivery: np.ndarray  # per delivery node, in node order: its delivery index
     n_b: int
-    perm: np.ndarray
 
     @classmethod
     def of(cls, kept: np.ndarray, n_b: int, perm: np.ndarray) -> _Order:
-        o = cls(kept, n_b, perm)
-        # per node: its span row (-1 for a delivery) and its delivery index, so each take is one gather
-        pos = np.concatenate([kept, np.full(n_b, -1, np.int64)])[perm]
-        object.__setattr__(o, "_span_of", pos)
-        object.__setattr__(o, "_is_delivery", pos < 0)
-        object.__setattr__(o, "_delivery", perm[pos < 0] - len(kept))
-        return o
+        """Nodes ``kept`` spans then ``n_b`` deliveries, put in the order ``perm``."""
+        span_of = np.concatenate([kept, np.full(n_b, -1, np.int64)])[perm]
+        is_delivery = span_of < 0
+        return cls(span_of, is_delivery, perm[is_delivery] - len(kept), n_b)
 
     def take(self, per_span: np.ndarray, per_delivery: Any) -> np.ndarray:
-        """A node column from a per-span array and a per-delivery value (or array)."""
-        if not len(per_span):
-            return np.concatenate([per_span[self.kept], np.broadcast_to(per_delivery, (self.n_b,))])[self.perm]
-        out = per_span[self._span_of].astype(np.result_type(per_span, per_delivery), copy=False)
-        out[self._is_delivery] = np.broadcast_to(per_delivery, (self.n_b,))[self._delivery]
+        """A node column from a per-span array and a per-delivery value (or array): one gather."""
+        dtype = np.result_type(per_span, per_delivery)
+        out = per_span[self.span_of].astype(dtype, copy=False) if len(per_span) else np.zeros(len(self.span_of), dtype)
+        out[self.is_delivery] = np.broadcast_to(per_delivery, (self.n_b,))[self.delivery]
         return out
 
 
@@ -350,7 +347,6 @@ class _Nodes:
     consumer: np.ndarray
     on_consumer_thread: np.ndarray
     delivery_of_batch: np.ndarray
-    thread_order: np.ndarray  # node ids by thread, then time
 
     @property
     def ids(self) -> np.ndarray:
@@ -359,6 +355,12 @@ class _Nodes:
     @property
     def rank(self) -> np.ndarray:
         return self.th_rank[self.th]
+
+    @cached_property
+    def thread_order(self) -> np.ndarray:
+        """Node ids by thread, then time (made once for the two rules that read it)."""
+        ids = self.ids
+        return ids[np.lexsort((ids, self.th))]
 
     @cached_property
     def sample_chains(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -506,13 +508,11 @@ def _node_arrays(s: _Spans, d: _Deliveries, o: _Order, sides: tuple[np.ndarray, 
     is_deliv = nkind == _N_DELIVERY
     deliv_of_b = np.full(o.n_b, -1, np.int64)
     deliv_of_b[nbi[is_deliv]] = np.flatnonzero(is_deliv)
-    ids = np.arange(len(nth), dtype=np.int64)
     return _Nodes(
         start=o.take(s.start, d.ready), end=o.take(s.end, d.ready), th=nth, batch=nbi, kind=nkind,
         sample=o.take(s.sample, -1), th_rank=s.th_rank,
         producer=o.take(producer, False), consumer=o.take(consumer_side, False),
         on_consumer_thread=np.isin(nth, np.unique(d.th)), delivery_of_batch=deliv_of_b,
-        thread_order=ids[np.lexsort((ids, nth))],
     )
 
 
@@ -648,7 +648,8 @@ def _edges(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         keys.append((src[ok] * count + dst[ok]) * kinds + k)  # exact below 2**30 nodes
     key = np.concatenate(keys)
     del keys
-    n.__dict__.pop("sample_chains", None)  # the chains served the rules: free them before the sort
+    for cached in ("sample_chains", "thread_order"):  # they served the rules: free them before the sort
+        n.__dict__.pop(cached, None)
     key.sort()
     pair = key // kinds
     first = np.ones(len(key), bool)
