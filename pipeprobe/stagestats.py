@@ -96,14 +96,16 @@ class StageStats:
         return None if hit.empty else hit.iloc[0].to_dict()
 
 
-#: The span columns the stage table reads from the pieces (fewer columns: less memory on a large run).
+#: The span columns the stage pieces are cut from (fewer columns: less memory on a large run); the pieces
+#: carry on only the stage and the sample id.
 _PIECE_INPUT = ("stage", "start_s", "end_s", "rank", "pid", "tid", "sample_id")
 
 
 def _stage_pieces(run: Run) -> pd.DataFrame:
     """The stage spans (not waits, not steps) cut into the pieces of the innermost stage running."""
     sp = run.spans
-    return span_pieces(sp.loc[~sp["stage"].isin(["wait", "step"]).to_numpy(), list(_PIECE_INPUT)], columns=_PIECE_INPUT)
+    return span_pieces(sp.loc[~sp["stage"].isin(["wait", "step"]).to_numpy(), list(_PIECE_INPUT)],
+                       columns=("stage", "sample_id"))
 
 
 def _stage_key(sp: pd.DataFrame, leave_out: str) -> pd.Categorical:
