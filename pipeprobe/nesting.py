@@ -160,8 +160,16 @@ def flatten_spans(start: np.ndarray, end: np.ndarray, thread: np.ndarray) -> Fla
 
 
 def _thread_order(start: np.ndarray, end: np.ndarray, thread: np.ndarray) -> np.ndarray:
-    """Spans by thread, then start, the longer first (an enclosing span before what it encloses), then index."""
-    return np.lexsort((np.arange(len(start)), -end, start, thread))
+    """Spans by thread, then start, the longer first (an enclosing span before what it encloses), then index.
+
+    Spans mostly come in that order within each thread already: then a stable sort by thread (a radix
+    sort on small thread codes) is the answer, checked in one pass, and the four-key sort is skipped.
+    """
+    small = len(thread) and thread.min() >= 0 and thread.max() < (1 << 16)
+    o = np.argsort(thread.astype(np.uint16) if small else thread, kind="stable")
+    th, s0, e0 = thread[o], start[o], end[o]
+    in_order = (th[1:] != th[:-1]) | (s0[1:] > s0[:-1]) | ((s0[1:] == s0[:-1]) & (e0[1:] <= e0[:-1]))
+    return o if in_order.all() else np.lexsort((np.arange(len(start)), -end, start, thread))
 
 
 def _is_flat(start: np.ndarray, end: np.ndarray, thread: np.ndarray, order: np.ndarray) -> bool:
