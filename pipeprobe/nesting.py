@@ -20,7 +20,7 @@ time (:mod:`pipeprobe.stagestats`) and the replay plan's columns
 counted once everywhere and a label is made in one place.
 
 The steps of :func:`flatten_spans`: time order per thread
-(``_thread_order``; when no span of a thread starts before the previous
+(:func:`thread_order`; when no span of a thread starts before the previous
 one ended, ``_is_flat``, every span is one piece and the rest is skipped), each span's depth (``_depths``: a sweep over start and
 end events), its parent (``_parents``: the last span one level up), the
 check that no span outlives its parent (``_crossing_threads``), and the
@@ -45,7 +45,7 @@ import pandas as pd
 
 from .record._loaders import COLLATE_STAGE, FETCH_STAGE
 
-__all__ = ["Flat", "as_text", "flatten_spans", "inherit", "labels_inside", "own_label", "span_pieces", "stage_labels", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
+__all__ = ["Flat", "as_text", "flatten_spans", "inherit", "labels_inside", "own_label", "span_pieces", "stage_labels", "thread_order", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
 
 #: Stages the DataLoader hooks time by themselves; their own time is what your stages inside them left.
 AUTOMATIC_STAGES = frozenset({FETCH_STAGE, COLLATE_STAGE})
@@ -138,7 +138,7 @@ def flatten_spans(start: np.ndarray, end: np.ndarray, thread: np.ndarray) -> Fla
     if n == 0:
         z = np.zeros(0, np.int64)
         return Flat(z, np.zeros(0), np.zeros(0), z, z, z)
-    order = _thread_order(start, end, thread)
+    order = thread_order(start, end, thread)
     if _is_flat(start, end, thread, order):  # nothing nests: each span is one piece (the common case, fast)
         z = np.zeros(n, np.int64)
         return Flat(order, start[order], end[order], z - 1, z, z)
@@ -159,11 +159,16 @@ def flatten_spans(start: np.ndarray, end: np.ndarray, thread: np.ndarray) -> Fla
     return Flat(span, p0, p1, parent, depth, children)
 
 
-def _thread_order(start: np.ndarray, end: np.ndarray, thread: np.ndarray) -> np.ndarray:
+def thread_order(start: np.ndarray, end: np.ndarray, thread: np.ndarray) -> np.ndarray:
     """Spans by thread, then start, the longer first (an enclosing span before what it encloses), then index.
 
     Spans mostly come in that order within each thread already: then a stable sort by thread (a radix
     sort on small thread codes) is the answer, checked in one pass, and the four-key sort is skipped.
+
+    Examples
+    --------
+    >>> thread_order(np.array([0.0, 1.0, 0.0]), np.array([2.0, 3.0, 5.0]), np.array([1, 0, 1])).tolist()
+    [1, 2, 0]
     """
     small = len(thread) and thread.min() >= 0 and thread.max() < (1 << 16)
     o = np.argsort(thread.astype(np.uint16) if small else thread, kind="stable")

@@ -87,7 +87,7 @@ import numpy as np
 import pandas as pd
 
 from .lanes import thread_lanes
-from .nesting import flatten_spans, inherit, stage_labels
+from .nesting import flatten_spans, inherit, stage_labels, thread_order
 
 if TYPE_CHECKING:  # pragma: no cover
     import networkx
@@ -471,7 +471,7 @@ def _outermost(s: _Spans, candidate: np.ndarray) -> np.ndarray:
     cand = np.flatnonzero(candidate)
     keep = np.zeros(len(s.start), bool)
     if len(cand):
-        c = cand[np.lexsort((-s.end[cand], s.start[cand], s.th[cand]))]
+        c = cand[thread_order(s.start[cand], s.end[cand], s.th[cand])]
         cf = pd.DataFrame({"th": s.th[c], "end": s.end[c]})
         prev_max = cf.groupby("th", sort=False)["end"].cummax().groupby(cf["th"], sort=False).shift(1)
         pm = prev_max.to_numpy(np.float64)
