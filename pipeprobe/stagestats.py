@@ -177,7 +177,11 @@ def _slowest(pieces: pd.DataFrame) -> pd.DataFrame:
     # the label categories are sorted text (nesting.span_pieces), so their codes sort as the names do
     code = per["stage"].cat.codes.to_numpy(np.int64)
     dur = per["dur_s"].to_numpy(np.float64)
-    o = np.lexsort((per["sample_id"].to_numpy(np.int64), -dur, code))
+    # by (label, seconds descending, sample id): three stable sorts, the last a radix sort on small label codes
+    # (durations in whole nanoseconds tie often, so the sample id is needed)
+    o = np.argsort(per["sample_id"].to_numpy(np.int64), kind="stable")
+    o = o[np.argsort(-dur[o], kind="stable")]
+    o = o[np.argsort(code[o].astype(np.uint16) if code.max() < (1 << 16) else code[o], kind="stable")]
     code, dur = code[o], dur[o]
     by_stage = pd.Series(dur).groupby(code, sort=True)
     n = by_stage.transform("size").to_numpy()
