@@ -96,10 +96,29 @@ class StageStats:
         return None if hit.empty else hit.iloc[0].to_dict()
 
 
+#: The span columns the stage pieces are cut from (fewer columns: less memory on a large run); the pieces
+#: carry on only the stage and the sample id.
+_PIECE_INPUT = ("stage", "start_s", "end_s", "rank", "pid", "tid", "sample_id")
+
+
 def _stage_pieces(run: Run) -> pd.DataFrame:
     """The stage spans (not waits, not steps) cut into the pieces of the innermost stage running."""
     sp = run.spans
-    return span_pieces(sp[~sp["stage"].isin(["wait", "step"])])
+    return span_pieces(sp.loc[~sp["stage"].isin(["wait", "step"]).to_numpy(), list(_PIECE_INPUT)],
+                       columns=("stage", "sample_id"))
+
+
+def _stage_key(sp: pd.DataFrame, leave_out: str) -> pd.Categorical:
+    """The stage column as a categorical group key with ``leave_out`` spans missing (no copy of the spans,
+    no text per span)."""
+    stage = sp["stage"]
+    if not isinstance(stage.dtype, pd.CategoricalDtype):
+        stage = stage.astype("category")
+    cats = [str(c) for c in stage.cat.categories]
+    codes = stage.cat.codes.to_numpy()
+    if leave_out in cats:
+        codes = np.where(codes == cats.index(leave_out), -1, codes)
+    return pd.Categorical.from_codes(codes, categories=cats)
 
 
 def _own_time(pieces: pd.DataFrame) -> pd.DataFrame:
@@ -113,16 +132,16 @@ def _own_time(pieces: pd.DataFrame) -> pd.DataFrame:
 
 def _table(run: Run, critical: CriticalPath | None, wall_s: float, pieces: pd.DataFrame) -> pd.DataFrame:
     sp = run.spans
-    sp = sp[sp["stage"] != "wait"]
+    key = _stage_key(sp, "wait")
     cols = list(STAGE_COLUMNS)
-    if sp.empty:
+    if not (key.codes >= 0).any():
         return pd.DataFrame({c: pd.Series(dtype=object if c in ("stage", "label") else float) for c in cols})
-    g = sp.groupby(sp["stage"].astype(str), sort=False)["dur_s"]
+    g = sp["dur_s"].groupby(key, sort=False, observed=True)
     t = g.agg(count="size", total_s="sum", mean_s="mean", max_s="max")
     q = g.quantile([0.5, 0.95, 0.99]).unstack()
     t["p50_s"], t["p95_s"], t["p99_s"] = q[0.5], q[0.95], q[0.99]
-    cpu = sp.groupby(sp["stage"].astype(str), sort=False)["cpu_s"].sum(min_count=1)
-    t["cpu_s"] = cpu
+    t["cpu_s"] = sp["cpu_s"].groupby(key, sort=False, observed=True).sum(min_count=1)
+    t = t.set_axis(pd.Index(t.index.astype(str), dtype=object))
     t["cpu_ratio"] = (t["cpu_s"] / t["total_s"].where(t["total_s"] > 0)).astype(float)
     own = _own_time(pieces)
     t["own_s"] = own["own_s"].reindex(t.index).fillna(t["total_s"])
@@ -155,13 +174,24 @@ def _slowest(pieces: pd.DataFrame) -> pd.DataFrame:
     if not len(sp):
         return pd.DataFrame([], columns=list(SLOWEST_COLUMNS))
     per = sp.groupby([sp["label"].rename("stage"), "sample_id"], sort=False, observed=True)["dur_s"].sum().reset_index()
-    per["stage"] = as_text(per["stage"])
-    per = per.sort_values(["stage", "dur_s", "sample_id"], ascending=[True, False, True], kind="stable")
-    by_stage = per.groupby("stage", sort=True)["dur_s"]
+    # the label categories are sorted text (nesting.span_pieces), so their codes sort as the names do
+    code = per["stage"].cat.codes.to_numpy(np.int64)
+    dur = per["dur_s"].to_numpy(np.float64)
+    # by (label, seconds descending, sample id): three stable sorts, the last a radix sort on small label codes
+    # (durations in whole nanoseconds tie often, so the sample id is needed)
+    o = np.argsort(per["sample_id"].to_numpy(np.int64), kind="stable")
+    o = o[np.argsort(-dur[o], kind="stable")]
+    o = o[np.argsort(code[o].astype(np.uint16) if code.max() < (1 << 16) else code[o], kind="stable")]
+    code, dur = code[o], dur[o]
+    by_stage = pd.Series(dur).groupby(code, sort=True)
     n = by_stage.transform("size").to_numpy()
     k = np.minimum(_TAIL_MAX, np.maximum(1, np.ceil(TAIL_FRACTION * n))).astype(np.int64)
     total = by_stage.transform("sum").to_numpy()
-    top = per.assign(n=n, k=k, total=total)[per.groupby("stage", sort=True).cumcount().to_numpy() < k]
+    first = np.r_[0, np.flatnonzero(code[1:] != code[:-1]) + 1]
+    rank_in_stage = np.arange(len(code)) - np.repeat(first, np.diff(np.r_[first, len(code)]))
+    top = rank_in_stage < k
+    top = pd.DataFrame({"stage": as_text(per["stage"].iloc[o[top]]), "sample_id": per["sample_id"].to_numpy()[o[top]],
+                        "dur_s": dur[top], "n": n[top], "k": k[top], "total": total[top]})
     out = top.groupby("stage", sort=True).agg(
         samples=("k", "first"), of_samples=("n", "first"), sample_ids=("sample_id", list),
         seconds=("dur_s", "sum"), total=("total", "first"))

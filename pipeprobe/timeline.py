@@ -80,13 +80,14 @@ the observed critical path of the critical path method.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 
 from .lanes import thread_lanes
-from .nesting import flatten_spans, inherit, stage_labels
+from .nesting import flatten_spans, inherit, stage_labels, thread_order
 
 if TYPE_CHECKING:  # pragma: no cover
     import networkx
@@ -269,7 +270,7 @@ def _consecutive(order: np.ndarray, group: np.ndarray) -> tuple[np.ndarray, np.n
 
 @dataclass(frozen=True)
 class _Spans:
-    """``run.spans`` as arrays, one entry per span, with its thread and lane."""
+    """``run.spans`` as arrays, one entry per span, with its thread; rank, pid, tid and lane per thread."""
 
     stages: list[str]  # stage categories, 'delivery' appended
     code: np.ndarray
@@ -277,20 +278,24 @@ class _Spans:
     is_step: np.ndarray
     start: np.ndarray
     end: np.ndarray
-    rank: np.ndarray
-    pid: np.ndarray
-    tid: np.ndarray
     batch: np.ndarray
     sample: np.ndarray
     epoch: np.ndarray
-    th: np.ndarray
-    lane: np.ndarray
+    th: np.ndarray  # thread code (rank, pid, tid in sorted order)
+    th_rank: np.ndarray  # per thread code: what a per-span column would repeat
+    th_pid: np.ndarray
+    th_tid: np.ndarray
+    th_lane: np.ndarray
     lane_names: np.ndarray
     row: np.ndarray  # row of run.spans (a piece: the row of the span it is part of)
 
     @property
     def user(self) -> np.ndarray:
         return ~self.is_wait & ~self.is_step
+
+    @property
+    def rank(self) -> np.ndarray:
+        return self.th_rank[self.th]
 
 
 @dataclass(frozen=True)
@@ -305,15 +310,26 @@ class _Deliveries:
 
 @dataclass(frozen=True)
 class _Order:
-    """Which spans are nodes, and the permutation that puts nodes (kept spans, then deliveries) in time order."""
+    """Which span or delivery each node is, nodes in time order (kept spans, then deliveries, permuted)."""
 
-    kept: np.ndarray
+    span_of: np.ndarray  # per node: its span row, -1 for a delivery
+    is_delivery: np.ndarray
+    delivery: np.ndarray  # per delivery node, in node order: its delivery index
     n_b: int
-    perm: np.ndarray
+
+    @classmethod
+    def of(cls, kept: np.ndarray, n_b: int, perm: np.ndarray) -> _Order:
+        """Nodes ``kept`` spans then ``n_b`` deliveries, put in the order ``perm``."""
+        span_of = np.concatenate([kept, np.full(n_b, -1, np.int64)])[perm]
+        is_delivery = span_of < 0
+        return cls(span_of, is_delivery, perm[is_delivery] - len(kept), n_b)
 
     def take(self, per_span: np.ndarray, per_delivery: Any) -> np.ndarray:
-        """A node column from a per-span array and a per-delivery value (or array)."""
-        return np.concatenate([per_span[self.kept], np.broadcast_to(per_delivery, (self.n_b,))])[self.perm]
+        """A node column from a per-span array and a per-delivery value (or array): one gather."""
+        dtype = np.result_type(per_span, per_delivery)
+        out = per_span[self.span_of].astype(dtype, copy=False) if len(per_span) else np.zeros(len(self.span_of), dtype)
+        out[self.is_delivery] = np.broadcast_to(per_delivery, (self.n_b,))[self.delivery]
+        return out
 
 
 @dataclass(frozen=True)
@@ -326,37 +342,54 @@ class _Nodes:
     batch: np.ndarray  # delivery index of the node's batch, -1 none
     kind: np.ndarray
     sample: np.ndarray
-    rank: np.ndarray
+    th_rank: np.ndarray  # rank per thread code
     producer: np.ndarray
     consumer: np.ndarray
     on_consumer_thread: np.ndarray
     delivery_of_batch: np.ndarray
-    thread_order: np.ndarray  # node ids by thread, then time
 
     @property
     def ids(self) -> np.ndarray:
         return np.arange(len(self.start), dtype=np.int64)
+
+    @property
+    def rank(self) -> np.ndarray:
+        return self.th_rank[self.th]
+
+    @cached_property
+    def thread_order(self) -> np.ndarray:
+        """Node ids by thread, then time (made once for the two rules that read it)."""
+        ids = self.ids
+        return ids[np.lexsort((ids, self.th))]
+
+    @cached_property
+    def sample_chains(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """:func:`_sample_chains`, made once for the three rules that read it."""
+        return _sample_chains(self)
 
 
 def _span_arrays(sp: pd.DataFrame) -> _Spans:
     n_sp = len(sp)
     stage_cat = sp["stage"].astype("category") if n_sp else pd.Series(pd.Categorical([]))
     cats = [str(c) for c in stage_cat.cat.categories] if n_sp else []
-    code = stage_cat.cat.codes.to_numpy(np.int64) if n_sp else np.zeros(0, np.int64)
+    code = stage_cat.cat.codes.to_numpy(np.int32) if n_sp else np.zeros(0, np.int32)
     is_wait = code == (cats.index("wait") if "wait" in cats else -2)
     is_step = code == (cats.index("step") if "step" in cats else -2)
     if "delivery" not in cats:
         cats.append("delivery")
-    th = (sp.groupby(["rank", "pid", "tid"], sort=True, observed=True).ngroup().to_numpy(np.int64)
-          if n_sp else np.zeros(0, np.int64))
+    th = (sp.groupby(["rank", "pid", "tid"], sort=True, observed=True).ngroup().to_numpy(np.int32)
+          if n_sp else np.zeros(0, np.int32))
     lanes, lane = thread_lanes(sp)
+    n_th = int(th.max()) + 1 if n_sp else 0
+    first = np.full(n_th, -1, np.int64)
+    first[th[::-1]] = np.arange(n_sp - 1, -1, -1)  # a span of each thread: its rank, pid, tid and lane
     return _Spans(
         stages=cats, code=code, is_wait=is_wait, is_step=is_step,
         start=sp["start_s"].to_numpy(np.float64), end=sp["end_s"].to_numpy(np.float64),
-        rank=sp["rank"].to_numpy(np.int64), pid=sp["pid"].to_numpy(np.int64), tid=sp["tid"].to_numpy(np.int64),
         batch=sp["batch_id"].to_numpy(np.int64), sample=sp["sample_id"].to_numpy(np.int64),
-        epoch=sp["epoch"].to_numpy(np.int64), th=th, lane=lane, lane_names=lanes["name"].to_numpy(object),
-        row=np.arange(n_sp, dtype=np.int64),
+        epoch=sp["epoch"].to_numpy(np.int64), th=th, th_rank=sp["rank"].to_numpy(np.int64)[first],
+        th_pid=sp["pid"].to_numpy(np.int64)[first], th_tid=sp["tid"].to_numpy(np.int64)[first],
+        th_lane=lane[first], lane_names=lanes["name"].to_numpy(object), row=np.arange(n_sp, dtype=np.int64),
     )
 
 
@@ -400,9 +433,9 @@ def _innermost(s: _Spans, d: _Deliveries) -> _Spans:
 
     return _Spans(
         stages=stages, code=col(s.code, new_code[s.code[nest][flat.span]]), is_wait=s.is_wait[rows],
-        is_step=s.is_step[rows], start=col(s.start, flat.start), end=col(s.end, flat.end), rank=s.rank[rows],
-        pid=s.pid[rows], tid=s.tid[rows], batch=ids(s.batch), sample=ids(s.sample), epoch=ids(s.epoch),
-        th=s.th[rows], lane=s.lane[rows], lane_names=s.lane_names, row=s.row[rows],
+        is_step=s.is_step[rows], start=col(s.start, flat.start), end=col(s.end, flat.end), batch=ids(s.batch),
+        sample=ids(s.sample), epoch=ids(s.epoch), th=s.th[rows], th_rank=s.th_rank, th_pid=s.th_pid,
+        th_tid=s.th_tid, th_lane=s.th_lane, lane_names=s.lane_names, row=s.row[rows],
     )
 
 
@@ -438,7 +471,7 @@ def _outermost(s: _Spans, candidate: np.ndarray) -> np.ndarray:
     cand = np.flatnonzero(candidate)
     keep = np.zeros(len(s.start), bool)
     if len(cand):
-        c = cand[np.lexsort((-s.end[cand], s.start[cand], s.th[cand]))]
+        c = cand[thread_order(s.start[cand], s.end[cand], s.th[cand])]
         cf = pd.DataFrame({"th": s.th[c], "end": s.end[c]})
         prev_max = cf.groupby("th", sort=False)["end"].cummax().groupby(cf["th"], sort=False).shift(1)
         pm = prev_max.to_numpy(np.float64)
@@ -462,26 +495,24 @@ def _span_sides(s: _Spans, d: _Deliveries) -> tuple[np.ndarray, np.ndarray]:
 def _node_order(s: _Spans, d: _Deliveries) -> _Order:
     kept = np.flatnonzero(_outermost(s, ~s.is_wait))  # umbrellas are gone already (_innermost)
     n_b = len(d.wait)
-    raw = _Order(kept, n_b, np.arange(len(kept) + n_b))
+    raw = _Order.of(kept, n_b, np.arange(len(kept) + n_b))
     korder = raw.take(np.where(s.is_step, 2, 0), 1)
-    return _Order(kept, n_b, np.lexsort((korder, raw.take(s.end, d.ready), raw.take(s.start, d.ready))))
+    return _Order.of(kept, n_b, np.lexsort((korder, raw.take(s.end, d.ready), raw.take(s.start, d.ready))))
 
 
 def _node_arrays(s: _Spans, d: _Deliveries, o: _Order, sides: tuple[np.ndarray, np.ndarray]) -> _Nodes:
     producer, consumer_side = sides
     nth = o.take(s.th, d.th)
     nbi = o.take(np.where(d.of_span >= 0, d.of_span, -1), np.arange(o.n_b))
-    nkind = o.take(np.where(s.is_step, _N_STEP, _N_STAGE), _N_DELIVERY)
+    nkind = o.take(np.where(s.is_step, _N_STEP, _N_STAGE).astype(np.int8), _N_DELIVERY)
     is_deliv = nkind == _N_DELIVERY
     deliv_of_b = np.full(o.n_b, -1, np.int64)
     deliv_of_b[nbi[is_deliv]] = np.flatnonzero(is_deliv)
-    ids = np.arange(len(nth), dtype=np.int64)
     return _Nodes(
         start=o.take(s.start, d.ready), end=o.take(s.end, d.ready), th=nth, batch=nbi, kind=nkind,
-        sample=o.take(s.sample, -1), rank=o.take(s.rank, s.rank[d.wait]),
+        sample=o.take(s.sample, -1), th_rank=s.th_rank,
         producer=o.take(producer, False), consumer=o.take(consumer_side, False),
         on_consumer_thread=np.isin(nth, np.unique(d.th)), delivery_of_batch=deliv_of_b,
-        thread_order=ids[np.lexsort((ids, nth))],
     )
 
 
@@ -492,22 +523,26 @@ _Pairs = tuple[np.ndarray, np.ndarray]
 
 def _sample_chains(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Producer spans with a sample id ordered by (batch, sample, time); their chain keys; each chain's last."""
-    ps = n.ids[n.producer & (n.sample >= 0)]
-    o = ps[np.lexsort((ps, n.sample[ps], n.batch[ps]))]
-    key = n.batch[o] * (1 << 31) + n.sample[o]
+    ps = np.flatnonzero(n.producer & (n.sample >= 0))
+    key = n.batch[ps] * (1 << 31) + n.sample[ps]
+    if len(ps) and n.sample[ps].max() < (1 << 31):  # the key sorts as (batch, sample); ps ascending breaks ties
+        by_key = np.argsort(key, kind="stable")
+    else:
+        by_key = np.lexsort((ps, n.sample[ps], n.batch[ps]))
+    o, key = ps[by_key], key[by_key]
     tails = o[np.append(key[1:] != key[:-1], True)] if len(o) else o
     return o, key, tails
 
 
 def _assembly_spans(n: _Nodes) -> np.ndarray:
     """Batch-level producer spans (no sample id) ordered by (batch, time)."""
-    pa = n.ids[n.producer & (n.sample < 0)]
+    pa = np.flatnonzero(n.producer & (n.sample < 0))
     return pa[np.lexsort((pa, n.batch[pa]))]
 
 
 def _sample_edges(n: _Nodes) -> _Pairs:
     """``sample``: the stages of one sample of one batch, in the order they started."""
-    o, key, _ = _sample_chains(n)
+    o, key, _ = n.sample_chains
     return _consecutive(o, key)
 
 
@@ -517,7 +552,7 @@ def _assembly_edges(n: _Nodes) -> _Pairs:
     if not len(o):
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     src, dst = _consecutive(o, n.batch[o])
-    _, _, tails = _sample_chains(n)
+    _, _, tails = n.sample_chains
     if len(tails):
         left = pd.DataFrame({"t": n.end[tails], "b": n.batch[tails], "src": tails}).sort_values("t", kind="stable")
         right = pd.DataFrame({"t": n.start[o], "b": n.batch[o], "dst": o}).sort_values("t", kind="stable")
@@ -530,7 +565,7 @@ def _assembly_edges(n: _Nodes) -> _Pairs:
 
 def _delivery_edges(n: _Nodes) -> _Pairs:
     """``delivery``: the last stage of each sample chain and of the assembly chain -> the batch's delivery."""
-    _, _, tails = _sample_chains(n)
+    _, _, tails = n.sample_chains
     o = _assembly_spans(n)
     lasts = o[np.append(n.batch[o][1:] != n.batch[o][:-1], True)] if len(o) else o
     src = np.concatenate([tails, lasts])
@@ -539,8 +574,8 @@ def _delivery_edges(n: _Nodes) -> _Pairs:
 
 def _consumer_edges(n: _Nodes) -> _Pairs:
     """``consumer``: delivery -> consumer-side stages of the batch -> its steps; delivery -> steps."""
-    pc = n.ids[n.consumer]
-    st_b = n.ids[(n.kind == _N_STEP) & (n.batch >= 0)]
+    pc = np.flatnonzero(n.consumer)
+    st_b = np.flatnonzero((n.kind == _N_STEP) & (n.batch >= 0))
     src = [n.delivery_of_batch[n.batch[pc]], n.delivery_of_batch[n.batch[st_b]]]
     dst = [pc, st_b]
     if len(pc) and len(st_b):
@@ -555,8 +590,8 @@ def _slot_edges(n: _Nodes) -> _Pairs:
     worker sat idle for at least :data:`SLOT_MIN_IDLE_S` (or had not run yet) and the event came during
     that idle time."""
     none = np.zeros(0, np.int64), np.zeros(0, np.int64)
-    pw = n.ids[n.producer & ~n.on_consumer_thread]
-    loop = n.ids[n.on_consumer_thread]
+    pw = np.flatnonzero(n.producer & ~n.on_consumer_thread)
+    loop = np.flatnonzero(n.on_consumer_thread)
     if not len(pw) or not len(loop):
         return none
     heads = pd.DataFrame({"b": n.batch[pw], "th": n.th[pw], "dst": pw}).groupby(["b", "th"], sort=False)["dst"].min()
@@ -582,7 +617,7 @@ def _slot_edges(n: _Nodes) -> _Pairs:
 
 def _step_edges(n: _Nodes) -> _Pairs:
     """``step``: step k-1 -> step k of the same rank."""
-    st = n.ids[n.kind == _N_STEP]
+    st = np.flatnonzero(n.kind == _N_STEP)
     o = st[np.lexsort((st, n.rank[st]))]
     return _consecutive(o, n.rank[o])
 
@@ -598,20 +633,29 @@ _EDGE_RULES = (_sample_edges, _assembly_edges, _delivery_edges, _consumer_edges,
 
 
 def _edges(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Every rule's edges that the recording agrees with, one per node pair (the first kind in EDGE_KINDS order)."""
-    pairs = [rule(n) for rule in _EDGE_RULES]
-    src = np.concatenate([np.asarray(p[0], np.int64) for p in pairs])
-    dst = np.concatenate([np.asarray(p[1], np.int64) for p in pairs])
-    ek = np.concatenate([np.full(len(p[0]), k, np.int8) for k, p in enumerate(pairs)])
-    ok = (src >= 0) & (dst >= 0) & (src != dst)
-    src, dst, ek = src[ok], dst[ok], ek[ok]
-    ok = n.end[src] <= n.start[dst]  # the recording must agree with the dependency
-    src, dst, ek = src[ok], dst[ok], ek[ok]
-    o = np.lexsort((ek, dst, src))
-    src, dst, ek = src[o], dst[o], ek[o]
-    first = np.ones(len(src), bool)
-    first[1:] = (src[1:] != src[:-1]) | (dst[1:] != dst[:-1])
-    return src[first], dst[first], ek[first]
+    """Every rule's edges that the recording agrees with, one per node pair (the first kind in EDGE_KINDS order).
+
+    The edges travel as one int64 key ``(src * nodes + dst) * kinds + kind``, sorted in place: a sort of
+    that key orders them by (src, dst, kind), and a large run holds one array of them, not three.
+    """
+    count, kinds = len(n.start), len(EDGE_KINDS)
+    keys = []
+    for k, rule in enumerate(_EDGE_RULES):
+        src, dst = (np.asarray(a, np.int64) for a in rule(n))
+        ok = (src >= 0) & (dst >= 0) & (src != dst)
+        src, dst = src[ok], dst[ok]
+        ok = n.end[src] <= n.start[dst]  # the recording must agree with the dependency
+        keys.append((src[ok] * count + dst[ok]) * kinds + k)  # exact below 2**30 nodes
+    key = np.concatenate(keys)
+    del keys
+    for cached in ("sample_chains", "thread_order"):  # they served the rules: free them before the sort
+        n.__dict__.pop(cached, None)
+    key.sort()
+    pair = key // kinds
+    first = np.ones(len(key), bool)
+    first[1:] = pair[1:] != pair[:-1]
+    key, pair = key[first], pair[first]
+    return pair // count, pair % count, (key % kinds).astype(np.int8)
 
 
 def _last_arriving(n: _Nodes, src: np.ndarray, dst: np.ndarray, ek: np.ndarray) -> tuple[np.ndarray, float]:
@@ -620,10 +664,11 @@ def _last_arriving(n: _Nodes, src: np.ndarray, dst: np.ndarray, ek: np.ndarray) 
     origin = float(min(0.0, n.start.min())) if count else 0.0
     pred = np.full(count, -1, np.int64)
     if len(src):
-        o = np.lexsort((src, -ek.astype(np.int64), n.end[src], dst))
-        d_sorted = dst[o]
-        last = np.append(d_sorted[1:] != d_sorted[:-1], True)
-        pred[d_sorted[last]] = src[o][last]
+        # the latest end wins, then the dependency kind (lowest code), then the highest node id: one key
+        _, end_rank = np.unique(n.end, return_inverse=True)
+        key = (end_rank[src] * len(EDGE_KINDS) + (len(EDGE_KINDS) - 1 - ek)) * count + src
+        best = pd.Series(key).groupby(dst, sort=False).max()
+        pred[best.index.to_numpy(np.int64)] = best.to_numpy(np.int64) % count
     return pred, origin
 
 
@@ -672,7 +717,8 @@ def build_timeline(run: Run) -> Timeline:
     pred, origin = _last_arriving(n, src, dst, ek)
     nodes = _node_frame(s, d, order, n, sides, pred, origin)
     edges = pd.DataFrame({"src": src, "dst": dst,
-                          "kind": pd.Categorical.from_codes(ek.astype(np.int64), categories=list(EDGE_KINDS))})
+                          "kind": pd.Categorical.from_codes(ek.astype(np.int64), categories=list(EDGE_KINDS))},
+                         copy=False)
     end_s = max(float(run.wall_s), float(n.end.max()) if len(n.end) else 0.0)
     return Timeline(nodes=nodes, edges=edges, origin_s=origin, end_s=end_s)
 
@@ -681,8 +727,8 @@ def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np
                 pred: np.ndarray, origin: float) -> pd.DataFrame:
     """The nodes as the documented DataFrame (:data:`NODE_COLUMNS`)."""
     ready = np.where(pred >= 0, n.end[np.maximum(pred, 0)], origin) if len(pred) else np.zeros(0)
-    side = np.where(s.is_step | sides[1], _S_CONSUMER, _S_INPUT)
-    lane = o.take(s.lane, s.lane[d.wait])
+    side = np.where(s.is_step | sides[1], _S_CONSUMER, _S_INPUT).astype(np.int8)
+    lane = s.th_lane[n.th]
     used = np.unique(lane)
     lane_cats = sorted(set(s.lane_names[used]))  # threads of one worker slot share a name
     code_of_lane = np.full(len(s.lane_names), -1, np.int64)
@@ -698,8 +744,8 @@ def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np
             "end_s": n.end,
             "dur_s": n.end - n.start,
             "rank": n.rank,
-            "pid": o.take(s.pid, s.pid[d.wait]),
-            "tid": o.take(s.tid, s.tid[d.wait]),
+            "pid": s.th_pid[n.th],
+            "tid": s.th_tid[n.th],
             "lane": pd.Categorical.from_codes(code_of_lane[lane], categories=lane_cats),
             "batch_id": o.take(np.where(has_b, s.batch, -1), s.batch[d.wait]),
             "sample_id": n.sample,
@@ -709,7 +755,8 @@ def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np
             "ready_s": ready,
             "gap_s": n.start - ready,
             "weight_s": n.end - ready,
-        }
+        },
+        copy=False,  # each column stays its own array: no second copy of the nodes while the frame is built
     )
     nodes["stage"] = nodes["stage"].cat.remove_unused_categories()
     return nodes

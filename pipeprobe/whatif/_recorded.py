@@ -226,18 +226,19 @@ def _loader_threads(run: Run, user: pd.DataFrame) -> np.ndarray:
     return np.where(slots > 0, -slots, key)
 
 
+#: The span columns the plan reads from the stage pieces (fewer columns: less memory on a large run).
+_PIECE_INPUT = ("stage", "start_s", "end_s", "rank", "pid", "tid", "batch_id", "cpu_s")
+
+
 def user_spans(run: Run, batches: _Batches) -> _UserSpans:
     """Step 2: the stage spans of the batches, on the loader side or the consumer side."""
     sp = run.spans
-    sp = sp[sp["rank"] == batches.rank]
-    waits = sp[sp["stage"] == "wait"]
-    ck = waits[["pid", "tid"]].value_counts().index[0]  # the consumer: the thread that waits for batches
+    if (sp["rank"].to_numpy() != batches.rank).any():  # the copy only when there are other ranks
+        sp = sp[sp["rank"] == batches.rank]
+    ck = sp.loc[(sp["stage"] == "wait").to_numpy(), ["pid", "tid"]].value_counts().index[0]  # the consumer
     bid = batches.batch_id
     pos = pd.Series(np.arange(batches.n), index=bid)
-    # nested stages count once: the time of the innermost stage running, ids taken from the stage around it
-    stage_spans = sp[~sp["stage"].isin(["wait", "step"])]
-    pieces = span_pieces(stage_spans)
-    user = pieces[(pieces["batch_id"] >= 0) & pieces["batch_id"].isin(bid)] if len(pieces) else sp.iloc[:0]
+    user, inside = _batch_pieces(sp, bid)
     k = pos.reindex(user["batch_id"].to_numpy()).to_numpy(np.int64)
     in_cons = ((user["pid"] == int(ck[0])) & (user["tid"] == int(ck[1]))).to_numpy()
     start = user["start_s"].to_numpy(float)
@@ -259,9 +260,26 @@ def user_spans(run: Run, batches: _Batches) -> _UserSpans:
         stage=as_text(user["label"] if "label" in user else user["stage"]),
         thread=_loader_threads(run, user),
         in_wait=in_wait, consumer_side=in_cons & ~in_wait & ~nested_in_step, worker_side=worker_side,
-        cpu_known=cpu_known, steps=sp[(sp["stage"] == "step") & sp["batch_id"].isin(bid)], spans=int(len(sp)),
-        notes=tuple(notes), inside=labels_inside(stage_spans),
+        cpu_known=cpu_known, steps=sp.loc[((sp["stage"] == "step") & sp["batch_id"].isin(bid)).to_numpy(), ["batch_id", "dur_s", "cpu_s"]],
+        spans=int(len(sp)),
+        notes=tuple(notes), inside=inside,
     )
+
+
+def _batch_pieces(sp: pd.DataFrame, bid: np.ndarray) -> tuple[pd.DataFrame, dict[str, tuple[str, ...]]]:
+    """The stage pieces of the batches ``bid`` and what each enclosing stage holds (one copy at a time).
+
+    Nested stages count once: the time of the innermost stage running, ids
+    taken from the stage around it (:func:`pipeprobe.nesting.span_pieces`).
+    """
+    stage_spans = sp.loc[~sp["stage"].isin(["wait", "step"]).to_numpy(), list(_PIECE_INPUT)]
+    inside = labels_inside(stage_spans)
+    pieces = span_pieces(stage_spans)
+    del stage_spans  # the pieces replace it: a large run holds one of the two at a time
+    if not len(pieces):
+        return sp.iloc[:0], inside
+    of_batches = ((pieces["batch_id"] >= 0) & pieces["batch_id"].isin(bid)).to_numpy()
+    return (pieces if of_batches.all() else pieces[of_batches]), inside
 
 
 def _stage_seconds(position: np.ndarray, stage: np.ndarray, dur_s: np.ndarray, cpu_s: np.ndarray, rows: int,
