@@ -228,6 +228,62 @@ print(n, len(hits), flush=True)
             signal.signal(signal.SIGTERM, before)
 
 
+LOST_SIGTERM_CHILD = """
+import os, signal, sys, time
+import pipeprobe
+with pipeprobe.Probe(sys.argv[1], report=False, sample_interval_s=0, flush_interval_s=30) as probe:
+    pid = os.fork()
+    if pid == 0:
+        for i in range(5):
+            with pipeprobe.stage("load", sample=i):
+                pass
+        w = signal.set_wakeup_fd(-1)
+        signal.set_wakeup_fd(w)
+        os.write(w, bytes([signal.SIGTERM]))  # a SIGTERM whose Python handler never got to run
+        time.sleep(20)
+        os._exit(0)
+    t0 = time.monotonic()
+    _, status = os.waitpid(pid, 0)
+    print(os.WTERMSIG(status) if os.WIFSIGNALED(status) else -1, round(time.monotonic() - t0, 3))
+"""
+
+
+class TestLostSignal:
+    def test_worker_ends_when_its_sigterm_handler_never_runs(self, tmp_path):
+        """A forked worker whose SIGTERM reached the wakeup pipe but never its Python handler (the main
+        thread had already blocked, as a pool worker waiting on the queue lock Pool.terminate holds) still
+        ends within a second, its spans written first. Without pipeprobe the default action would have ended
+        it; CPython runs handlers only in the main thread between bytecodes (Python docs, signal module)."""
+        out = run_child(LOST_SIGTERM_CHILD, str(tmp_path / "run"), timeout_s=60)
+        assert 0 == out.returncode, out.stderr
+        sig, waited_s = out.stdout.split()
+        assert int(signal.SIGKILL) == int(sig)
+        assert float(waited_s) < 2.0
+        spans = load_quiet(tmp_path / "run").spans
+        assert 5 == int((spans["stage"] == "load").sum())
+
+    @pytest.mark.slow
+    def test_with_pool_exits_every_time(self, tmp_path):
+        """Leaving `with Pool(2)` under a probe (Pool.terminate sends SIGTERM to workers blocked on the task
+        queue's lock) ends 60 times in a row; before the wakeup-pipe watch it hung within 15-50 tries."""
+        code = """
+import multiprocessing as mp, sys, time, pipeprobe
+def load(i):
+    with pipeprobe.stage("load", sample=i):
+        time.sleep(0.002)
+    return [i]
+for k in range(60):
+    with pipeprobe.Probe(f"{sys.argv[1]}/{k}", report=False, sample_interval_s=0.02) as probe:
+        with mp.get_context("fork").Pool(2) as pool:
+            for _ in probe.watch(pool.imap(load, range(10)), samples=lambda ids: ids):
+                with probe.step():
+                    time.sleep(0.004)
+print("done")
+"""
+        out = run_child(code, str(tmp_path), timeout_s=240)
+        assert "done" == out.stdout.strip(), out.stderr
+
+
 class TestUserExceptions:
     @staticmethod
     def _frames(exc: BaseException) -> list[tuple[str, str]]:

@@ -228,6 +228,7 @@ class _Recorder:
         period_ns = int(self.flush_interval_s * 1e9)
         due = monotonic_ns() + period_ns
         while not stop.wait(tick_ns / 1e9):
+            _signals.LOST_SIGNALS.check()
             if os.path.exists(request):
                 self.stop()
                 touch(self.run_dir / close_ack_name(self.rank, self.pid))
@@ -426,6 +427,7 @@ class _Recorder:
             self.role = "worker"
             self.on = self.spans_on = True
             _register_worker_exit()
+            _signals.LOST_SIGNALS.arm()
             # The forking thread's buffer came along, so buffer() would never
             # start a flusher here: start it now.
             self._start_flusher()

@@ -3,6 +3,15 @@
 A signal that lands while this thread is writing records (a flush or a
 buffer spill) is held back until the write is done (``_Recorder.in_flush``);
 the write then takes the whole signal path.
+
+A forked worker also watches for a SIGTERM its handler never saw
+(:func:`watch_for_lost_signals`): Python runs a handler only when the main
+thread gets back to Python code, and a signal that lands just before the
+main thread blocks (a pool worker waiting for the task queue's lock, which
+``Pool.terminate`` holds) leaves it blocked for good, where the default
+action would have ended the process. The worker's flush thread sees the
+signal on a wakeup pipe; if the handler has not run a tick later, it writes
+what is recorded and ends the process itself.
 """
 
 from __future__ import annotations
@@ -17,7 +26,11 @@ from . import _recorder
 _PREVIOUS_HANDLERS: dict[int, Any] = {}
 
 
+_HANDLED = [0]  # times _on_signal ran in this process (see watch_for_lost_signals)
+
+
 def _on_signal(signum: int, frame: Any) -> None:
+    _HANDLED[0] += 1
     rec = _recorder.RECORDER
     if getattr(rec.in_flush, "on", False):
         # The interrupted code is writing records: dying or raising now would
@@ -97,3 +110,50 @@ def restore_signal_hooks() -> None:
         except (ValueError, OSError):
             pass
     _PREVIOUS_HANDLERS.clear()
+
+
+class _LostSignalWatch:
+    """A wakeup pipe for SIGTERM in a forked worker, read by its flush thread (see the module docstring)."""
+
+    def __init__(self) -> None:
+        self.read_fd = -1
+        self.seen_at_handled = -1  # _HANDLED when a SIGTERM byte was read and not yet answered
+
+    def arm(self) -> None:
+        """Point Python's signal wakeup at a new pipe, unless the process already has a wakeup fd or SIGTERM
+        had a handler of the user's before pipeprobe's (theirs decides what SIGTERM does)."""
+        if _PREVIOUS_HANDLERS.get(signal.SIGTERM, signal.SIG_DFL) != signal.SIG_DFL:
+            return
+        try:
+            r, w = os.pipe()
+            os.set_blocking(r, False)
+            os.set_blocking(w, False)
+            previous = signal.set_wakeup_fd(w, warn_on_full_buffer=False)
+        except (AttributeError, OSError, ValueError):
+            return
+        if previous != -1:  # someone else's (an event loop): leave it theirs
+            signal.set_wakeup_fd(previous)
+            os.close(r)
+            os.close(w)
+            return
+        self.read_fd = r
+
+    def check(self) -> None:
+        """From the flush thread, each tick: end the process when a SIGTERM went unanswered for a tick."""
+        if self.read_fd < 0:
+            return
+        if self.seen_at_handled >= 0 and _HANDLED[0] == self.seen_at_handled:
+            rec = _recorder.RECORDER
+            rec.flush(lock_timeout_s=0.2)
+            rec.on = rec.spans_on = False
+            os.kill(os.getpid(), signal.SIGKILL)  # only the main thread may restore SIGTERM's default action
+        self.seen_at_handled = -1
+        try:
+            data = os.read(self.read_fd, 512)
+        except (BlockingIOError, OSError):
+            return
+        if signal.SIGTERM in data:
+            self.seen_at_handled = _HANDLED[0]
+
+
+LOST_SIGNALS = _LostSignalWatch()
