@@ -50,6 +50,22 @@ def set_threads(args: argparse.Namespace) -> None:
         torch.set_num_threads(args.threads)
 
 
+def sgd_step(net: Any) -> Callable[[Any], None]:
+    """One training step of ``net`` on an ``(x, y)`` batch: cross-entropy, backward, plain SGD."""
+    import torch
+
+    opt = torch.optim.SGD(net.parameters(), lr=0.01)
+
+    def step(batch: Any) -> None:
+        x, y = batch
+        loss = torch.nn.functional.cross_entropy(net(x), y)
+        opt.zero_grad()
+        loss.backward()
+        opt.step()
+
+    return step
+
+
 def train(args: argparse.Namespace, loader: Any, step: Callable[[Any], None]) -> dict[str, Any]:
     """Run ``args.epochs`` epochs of ``step`` over ``loader``; print and return the job's own timings."""
     probe = None

@@ -23,7 +23,7 @@ from torch.utils.data import DataLoader, Dataset
 import pipeprobe
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _loop import job_options, loader_options, set_threads, train  # noqa: E402
+from _loop import job_options, loader_options, set_threads, sgd_step, train  # noqa: E402
 
 SIDE = 96
 ROUNDS = 4
@@ -67,16 +67,7 @@ def main() -> None:
     loader = DataLoader(data, batch_size=16, shuffle=True, **loader_options(args))
     net = torch.nn.Sequential(torch.nn.Conv2d(3, 8, 5, stride=2), torch.nn.ReLU(), torch.nn.AdaptiveAvgPool2d(4),
                               torch.nn.Flatten(), torch.nn.Linear(128, 5))
-    opt = torch.optim.SGD(net.parameters(), lr=0.01)
-
-    def step(batch: tuple[torch.Tensor, torch.Tensor]) -> None:
-        x, y = batch
-        loss = torch.nn.functional.cross_entropy(net(x), y)
-        opt.zero_grad()
-        loss.backward()
-        opt.step()
-
-    train(args, loader, step)
+    train(args, loader, sgd_step(net))
 
 
 if __name__ == "__main__":

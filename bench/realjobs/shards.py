@@ -24,7 +24,7 @@ from PIL import Image
 from torch.utils.data import DataLoader, IterableDataset
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _loop import job_options, loader_options, set_threads, train  # noqa: E402
+from _loop import job_options, loader_options, set_threads, sgd_step, train  # noqa: E402
 from photos import ROUNDS, SIDE, augment  # noqa: E402
 
 import pipeprobe  # noqa: E402
@@ -62,16 +62,7 @@ def main() -> None:
     loader = DataLoader(ShelfShards(args.data, rounds), batch_size=16, **loader_options(args))
     net = torch.nn.Sequential(torch.nn.Conv2d(3, 8, 5, stride=2), torch.nn.ReLU(), torch.nn.AdaptiveAvgPool2d(4),
                               torch.nn.Flatten(), torch.nn.Linear(128, 5))
-    opt = torch.optim.SGD(net.parameters(), lr=0.01)
-
-    def step(batch: tuple[torch.Tensor, torch.Tensor]) -> None:
-        x, y = batch
-        loss = torch.nn.functional.cross_entropy(net(x), y)
-        opt.zero_grad()
-        loss.backward()
-        opt.step()
-
-    train(args, loader, step)
+    train(args, loader, sgd_step(net))
 
 
 if __name__ == "__main__":

@@ -18,7 +18,7 @@ import torch
 from torch.utils.data import DataLoader, Dataset
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from _loop import job_options, loader_options, set_threads, train  # noqa: E402
+from _loop import job_options, loader_options, set_threads, sgd_step, train  # noqa: E402
 
 import pipeprobe  # noqa: E402
 
@@ -55,16 +55,7 @@ def main() -> None:
     net = torch.nn.Sequential(torch.nn.Conv2d(3, 16, 3, padding=1), torch.nn.ReLU(), torch.nn.Conv2d(16, 16, 3),
                               torch.nn.ReLU(), torch.nn.AdaptiveAvgPool2d(2), torch.nn.Flatten(),
                               torch.nn.Linear(64, 10))
-    opt = torch.optim.SGD(net.parameters(), lr=0.01)
-
-    def step(batch: tuple[torch.Tensor, torch.Tensor]) -> None:
-        x, y = batch
-        loss = torch.nn.functional.cross_entropy(net(x), y)
-        opt.zero_grad()
-        loss.backward()
-        opt.step()
-
-    train(args, loader, step)
+    train(args, loader, sgd_step(net))
 
 
 if __name__ == "__main__":
