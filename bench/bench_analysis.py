@@ -55,7 +55,7 @@ def one(run_dir: Path) -> dict[str, float]:
     st = stall_summary(run, cp)
     marks.append(time.perf_counter())
     stages = stage_stats(run, cp, st, input_on_path=cp.input_share >= _analysis._SIDE_WORTH)
-    actions = _analysis.suggest_actions(cp, st, stages, workers_restart=_analysis._workers_restart(run))
+    actions = _analysis.suggest_actions(cp, st, stages, workers_restart=_analysis.workers_restarted(run))
     marks.append(time.perf_counter())
     analysis = _analysis.Analysis(run=run, timeline=tl, critical=cp, stalls=st, stages=stages,
                                   actions=tuple(actions))

@@ -152,7 +152,7 @@ def analyze(run: Run | str | os.PathLike, *, warmup_batches: int | None = None) 
         stalls = stall_summary(run, critical, warmup_batches=warmup_batches)
         step("stage table")
         stages = stage_stats(run, critical, stalls, input_on_path=critical.input_share >= _SIDE_WORTH)
-        actions = suggest_actions(critical, stalls, stages, workers_restart=_workers_restart(run),
+        actions = suggest_actions(critical, stalls, stages, workers_restart=workers_restarted(run),
                                   threads=check_threads(run))
     return Analysis(run=run, timeline=timeline, critical=critical, stalls=stalls, stages=stages,
                     actions=tuple(actions))
@@ -162,7 +162,7 @@ def _pct(x: float) -> str:
     return f"{100 * x:.0f} %"
 
 
-def _workers_restart(run: Run) -> bool:
+def workers_restarted(run: Run) -> bool:
     """True when a later epoch's loader work ran in worker processes no earlier epoch used."""
     sp = run.spans
     if sp.empty or "role" not in sp:

@@ -18,7 +18,8 @@ run without it. Its steps:
    stage, say an unrecorded validation pass, counts in the first; time it
    with ``pipeprobe.stage`` to keep it apart);
 2. whether the workers did restart (a later epoch's loader spans ran in
-   processes no earlier epoch used);
+   processes no earlier epoch used: :func:`pipeprobe.analysis.workers_restarted`,
+   the rule the action list uses too);
 3. a replay of the run with persistent workers (:func:`with_persistent_workers`):
    the epochs after the first lose both waits (the loop's time between
    epochs is its ordinary time between batches, and their first tasks start
@@ -41,6 +42,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from ..analysis import workers_restarted
 from ._replay_path import CONSUMER_OVERHEAD
 from .engine import Replay, replay
 from .plan import Work
@@ -196,7 +198,7 @@ def worker_restarts(plan: ReplayPlan, run: Run | None = None, base: Replay | Non
     extra = np.maximum(0.0, ed[1:]) if plan.workers else np.zeros(0)
     _, between, _ = _between_epochs(plan)
     between = between if plan.workers and len(between) == len(extra) else np.zeros(len(extra))
-    restarts = _restarted(run) if run is not None else bool(plan.workers and (extra > 0).any())
+    restarts = workers_restarted(run) if run is not None else bool(plan.workers and (extra > 0).any())
     measured = plan.measured_wall_s if plan.measured_wall_s > 0 else base.wall_s
     kept = replay(with_persistent_workers(plan)) if restarts else base
     persistent = measured * kept.wall_s / base.wall_s if base.wall_s > 0 else measured
@@ -206,21 +208,6 @@ def worker_restarts(plan: ReplayPlan, run: Run | None = None, base: Replay | Non
         restart_total_s=float((between + extra).sum()), persistent_wall_s=float(persistent),
         saved_s=float(measured - persistent), measured_wall_s=float(measured),
     )
-
-
-def _restarted(run: Run) -> bool:
-    """Step 2: a later epoch's loader spans ran in worker processes no earlier epoch used."""
-    sp = run.spans
-    if sp.empty or "role" not in sp:
-        return False
-    w = sp[(sp["role"] == "worker") & (sp["epoch"] >= 0)]
-    seen: set[int] = set()
-    for i, (_, pids) in enumerate(w.groupby("epoch", sort=True)["pid"]):
-        now = {int(p) for p in pids.unique()}
-        if i > 0 and now - seen:
-            return True
-        seen |= now
-    return False
 
 
 def format_restarts(r: WorkerRestarts) -> list[str]:
