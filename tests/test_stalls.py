@@ -40,28 +40,40 @@ class TestHandChecked:
             stall_summary(run, cp, warmup_batches=-1)
 
     def test_sleep_pipeline_within_five_percent(self, analysis_sleep_run, tmp_path):
-        """Sleep pipeline, by hand: 4 x (6 + 2) ms = 32 ms wait per 52 ms cycle -> stall 32/52; critical-path
-        shares decode 24/52, augment 8/52, step 20/52. The analysis matches within 5 %."""
+        """Sleep pipeline, by hand: per batch 4 x (6 + 2) ms of loading, then a 20 ms step, one after the
+        other -> stall 32/52 of the run; critical-path shares decode 24/52, augment 8/52, step 20/52.
+
+        The hand formula takes the lengths the sleeps really had, as the job timed them itself with
+        time.perf_counter (a machine can stretch every 2 ms sleep by 7 %); the analysis matches within 5 %.
+        """
+        from _recorded import sleep_job_times
         from conftest import record_sleep_run
 
-        def fits(a):  # every figure asserted below, so a retry is judged on all of them
+        def expected(run):  # the hand formula over the job's own seconds
+            own = sleep_job_times(run)
+            total = sum(own.values())
+            load = own["decode"] + own["augment"]
+            return (load / total, load / total, own["decode"] / total, own["augment"] / total, own["step"] / total)
+
+        def got(a):
             shares = a.stage_shares()
-            got = (a.stalls.fraction, a.stalls.steady_fraction, shares.get("decode", 0), shares.get("augment", 0),
-                   shares.get("step", 0))
-            return all(abs(x / y - 1) <= 0.05 for x, y in zip(got, (32 / 52, 32 / 52, 24 / 52, 8 / 52, 20 / 52)))
+            return (a.stalls.fraction, a.stalls.steady_fraction, shares.get("decode", 0), shares.get("augment", 0),
+                    shares.get("step", 0))
+
+        def fits(run, a):
+            return all(abs(x / y - 1) <= 0.05 for x, y in zip(got(a), expected(run), strict=True))
 
         # A shared machine can stretch sleeps unevenly; record again (at most twice) before judging.
-        a = analyze(analysis_sleep_run)
+        run = analysis_sleep_run
+        a = analyze(run)
         for attempt in range(2):
-            if fits(a):
+            if fits(run, a):
                 break
-            a = analyze(record_sleep_run(tmp_path / f"again{attempt}"))
-        assert pytest.approx(32 / 52, rel=0.05) == a.stalls.fraction
-        assert pytest.approx(32 / 52, rel=0.05) == a.stalls.steady_fraction
-        shares = a.stage_shares()
-        assert pytest.approx(24 / 52, rel=0.05) == shares["decode"]
-        assert pytest.approx(8 / 52, rel=0.05) == shares["augment"]
-        assert pytest.approx(20 / 52, rel=0.05) == shares["step"]
+            run = record_sleep_run(tmp_path / f"again{attempt}")
+            a = analyze(run)
+        want = expected(run)
+        assert pytest.approx(32 / 52, rel=0.1) == want[0]  # the job itself is the pipeline worked by hand
+        assert pytest.approx(want, rel=0.05) == got(a)
 
 
 class TestBlame:
