@@ -98,8 +98,11 @@ class ProgressLine:
                 self._write(text + "\n")
                 self._drawn = name
 
-    def finish(self) -> None:
-        """Stop drawing; wipe the terminal line, or end the pipe's lines with the total time."""
+    def finish(self, *, failed: bool = False) -> None:
+        """Stop drawing; wipe the terminal line, or end the pipe's lines with the total time.
+
+        ``failed``: the work ended in an error, whose own line follows; no "done" line then.
+        """
         self._stop.set()
         if self._thread is not None and self._thread is not threading.current_thread():
             self._thread.join()
@@ -107,7 +110,7 @@ class ProgressLine:
         with self._lock:
             if self._tty and self._width:
                 self._write("\r" + " " * self._width + "\r")
-            elif self._drawn:
+            elif self._drawn and not failed:
                 self._write(f"pipeprobe {self.what}: done in {self.clock() - self.t0:.1f} s\n")
             self._width, self._drawn = 0, ""
 
@@ -147,11 +150,13 @@ def progress(what: str, *, enabled: bool = True, stream: TextIO | None = None) -
         return
     line = ProgressLine(what, stream) if enabled and os.environ.get(ENV_OFF, "") != "0" else _Silent()
     _active = line  # a silent one keeps nested work (analyze inside `report --quiet`) silent too
+    failed = True
     try:
         yield
+        failed = False
     finally:
         _active = None
-        line.finish()
+        line.finish(failed=failed)
 
 
 class _Silent:
@@ -160,7 +165,7 @@ class _Silent:
     def step(self, name: str) -> None:
         pass
 
-    def finish(self) -> None:
+    def finish(self, *, failed: bool = False) -> None:
         pass
 
 

@@ -34,6 +34,7 @@ from ._sections import STAGE_COLUMNS, stage_cells
 from ._text import printable
 from .errors import PipeprobeError
 from .report import Report
+from .whatif.predict import model_check_text
 
 __all__ = ["render_report", "write_report", "OutputFileError"]
 
@@ -189,6 +190,8 @@ def ceilings_html(fig: Any, page: _Page) -> str:
         + _table([("stage", False), ("share", True), ("Amdahl ceiling", True), ("replay free", True),
                   ("replay 2x", True), ("replay 4x", True), ("then critical", False)], rows)
         + f"<p>{workers}</p>"
+        + (f'<p class="note">{_e(model_check_text(c.model_check, "these speed-ups"))}</p>'
+           if c.model_check is not None and c.model_check.flagged else "")
         + _img(_png(plot.draw_ceilings(c).figure, page.dpi), "speed-up ceilings per stage")
     )
 

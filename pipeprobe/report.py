@@ -289,7 +289,8 @@ JSON_SCHEMA: dict[str, str] = {
     "ceilings": "{stages: list of {stage, share, amdahl_ceiling, free_speedup, speedup_2x, speedup_4x, "
                 "next_critical}, baseline_replay_wall_s, measured_wall_s, workers, advice: {more_workers, "
                 "recorded_workers, workers, prefetch, stall_now, stall_left, measured_stall, speedup, seconds_saved, "
-                "cores, machine_cores, cores_limit, unlimited_workers, unlimited_speedup, cores_busy, reason}}; "
+                "cores, machine_cores, cores_limit, unlimited_workers, unlimited_speedup, cores_busy, reason}, "
+                "model_check: {miss, flagged, likely_cause} or null (the report replayed only the first batches)}; "
                 "null without batches",
     "worker_restarts": "{restarts, epochs, first_start_s, restart_s: per later epoch, restart_total_s, "
                        "persistent_wall_s, saved_s, measured_wall_s, worth_naming}: new loader workers at each "

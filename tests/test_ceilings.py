@@ -105,3 +105,33 @@ class TestManyStageNames:
         plan = plan_from_durations(None, [0.01] * 8, stages=stages, workers=1, prefetch=2, cores=4)
         c = ceilings(plan, max_stages=None)
         assert (13, 0) == (len(c.stages), c.stages_left_out)
+
+
+class TestModelCheck:
+    def test_a_replay_that_misses_the_run_is_said_next_to_the_ceilings(self):
+        """Ceilings are predictions too: when the unchanged replay misses the measured wall time by more
+        than 5 %, the section says so in text and JSON (this plan replays to 0.13 s by hand; measured 0.15 s)."""
+        from dataclasses import replace
+
+        plan = plan_from_durations([0.03] * 10, [0.01] * 10, workers=3, prefetch=3, cores=4)
+        c = ceilings(replace(plan, measured_wall_s=0.15))
+        text = " ".join(format_ceilings(c, width=400))
+        assert (True, True) == (c.model_check.flagged, c.to_dict()["model_check"]["flagged"])
+        assert "check: the replay of the recorded configuration is -13.3 % off the measured wall time" in text
+        assert "so read these speed-ups as rough" in text
+
+    def test_a_replay_that_meets_the_run_adds_no_line(self):
+        """A replay within 5 % of the measured run leaves the section as it was."""
+        from dataclasses import replace
+
+        plan = plan_from_durations([0.03] * 10, [0.01] * 10, workers=3, prefetch=3, cores=4)
+        c = ceilings(replace(plan, measured_wall_s=0.13))
+        assert (False, []) == (c.model_check.flagged,
+                               [ln for ln in format_ceilings(c, width=400) if ln.strip().startswith("check:")])
+
+    def test_the_report_replaying_only_the_first_batches_makes_no_check(self):
+        """A replay of the first batches has no measured wall time of its own: no check, not a false one."""
+        from pipeprobe.whatif.ceilings import _head
+
+        plan = plan_from_durations([0.03] * 10, [0.01] * 10, workers=3, prefetch=3, cores=4)
+        assert None is ceilings(_head(plan, 4)).model_check

@@ -92,6 +92,17 @@ class TestProgressContext:
         assert "pipeprobe report: critical path (0 s)" in lines
         assert [] == [line for line in lines if not line.startswith("pipeprobe report: ")]
 
+    def test_failed_work_claims_no_done(self, monkeypatch: pytest.MonkeyPatch) -> None:
+        """Work that ends in an error leaves its step lines but no 'done' line (the error's line follows)."""
+        monkeypatch.setattr(_progress, "SHOW_AFTER_S", 0.0)
+        out = io.StringIO()
+        with pytest.raises(OSError), progress("report", stream=out):
+            step("writing the HTML page")
+            raise OSError("read-only")
+        lines = out.getvalue().splitlines()
+        assert (True, []) == ("pipeprobe report: writing the HTML page (0 s)" in lines,
+                              [line for line in lines if "done in" in line])
+
     @pytest.mark.parametrize("how", ["disabled", "environment"])
     def test_line_can_be_turned_off(self, how: str, monkeypatch: pytest.MonkeyPatch) -> None:
         """enabled=False and PIPEPROBE_PROGRESS=0 both keep stderr silent, however long the work."""

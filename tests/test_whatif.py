@@ -336,7 +336,7 @@ class TestModelCheck:
         p = whatif(replace(plan, measured_wall_s=0.15), workers=4)
         assert 0.13 / 0.15 - 1 == pytest.approx(p.model_check.miss)
         assert p.model_check.flagged and p.model_check.likely_cause
-        assert "check: that replay is -13.3 % off the measured wall time" in format_prediction(p)
+        assert "check: the replay of the recorded configuration is -13.3 % off the measured wall time" in format_prediction(p)
         assert p.to_dict()["model_check"]["flagged"] is True
 
 

@@ -37,6 +37,7 @@ from .engine import Replay, replay
 from .laws import amdahl_ceiling
 from .limits import MAX_PLAN_STAGES, OTHER_STAGES, check_count
 from .plan import ReplayPlan, Work, build_plan
+from .predict import ModelCheck, check_model, model_check_text
 
 if TYPE_CHECKING:  # pragma: no cover
     from ..analysis import Analysis
@@ -94,6 +95,11 @@ class Ceilings:
         the plan), to keep the computation short.
     left_out_share : float
         Their critical-path shares, summed.
+    model_check : ModelCheck or None
+        The replay of the recorded configuration against the measured wall
+        time (:func:`~pipeprobe.whatif.predict.check_model`); None when the
+        replay covers only the first batches of the run, which have no
+        measured wall time of their own.
     """
 
     stages: list[StageCeiling]
@@ -103,6 +109,7 @@ class Ceilings:
     advice: WorkerAdvice | None
     stages_left_out: int = 0
     left_out_share: float = 0.0
+    model_check: ModelCheck | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict (infinities as the string "inf")."""
@@ -175,6 +182,7 @@ def ceilings(run: Run | ReplayPlan, *, analysis: Analysis | None = None,
         advice=worker_advice(plan, base) if advice is None else advice,
         stages_left_out=len(left_out),
         left_out_share=float(sum(_share(shares, n) for n in left_out)),
+        model_check=None if _is_head(plan) else check_model(plan, base),
     )
 
 
@@ -273,11 +281,21 @@ def format_ceilings(c: Ceilings, width: int = 100) -> list[str]:
             f"{100 * c.left_out_share:.1f} % of the critical path) were not replayed one by one, to keep this "
             "section quick; pipeprobe.ceilings(run, max_stages=N) replays more.", width)
     lines += _wrap(advice, width) + _wrap(note, width)
+    if c.model_check is not None and c.model_check.flagged:
+        lines += _wrap(model_check_text(c.model_check, "these speed-ups"), width)
     return [ln[:width] for ln in lines]
 
 
 #: The report replays at most this many batches (the first ones) to keep closing a probe quick.
 REPORT_MAX_BATCHES = 5000
+
+#: The note :func:`_head` leaves on a plan it cut (its start; the batch counts follow).
+_HEAD_NOTE = "ceilings replay the first "
+
+
+def _is_head(plan: ReplayPlan) -> bool:
+    """Whether :func:`_head` cut the plan (its replay then has no measured wall time to meet)."""
+    return any(note.startswith(_HEAD_NOTE) for note in plan.notes)
 
 
 def _head(plan: ReplayPlan, n: int) -> ReplayPlan:
@@ -286,7 +304,7 @@ def _head(plan: ReplayPlan, n: int) -> ReplayPlan:
         return plan
     epochs = int(np.r_[True, plan.epoch[1:n] != plan.epoch[: n - 1]].sum())
     cut = {f: getattr(plan, f)[:n] for f in ("batch_id", "epoch")}
-    notes = plan.notes + [f"ceilings replay the first {n} of {plan.batches} batches"]
+    notes = plan.notes + [f"{_HEAD_NOTE}{n} of {plan.batches} batches"]
     return replace(
         plan, **cut, loader=plan.loader.head(n), consumer=plan.consumer.head(n),
         epoch_dispatch_s=plan.epoch_dispatch_s[:epochs], notes=notes,

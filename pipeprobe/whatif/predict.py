@@ -27,7 +27,7 @@ from .scenario import PREFETCH_PER_WORKER, Scenario
 if TYPE_CHECKING:  # pragma: no cover
     from ..load import Run
 
-__all__ = ["Prediction", "ModelCheck", "whatif", "sweep", "check_model", "format_prediction", "JSON_KEYS",
+__all__ = ["Prediction", "ModelCheck", "whatif", "sweep", "check_model", "model_check_text", "format_prediction", "JSON_KEYS",
            "MODEL_MISS_LIMIT"]
 
 #: Keys of :meth:`Prediction.to_dict` (the ``--json`` output of ``pipeprobe whatif``).
@@ -93,6 +93,19 @@ def check_model(plan: ReplayPlan, base: Replay) -> ModelCheck:
     if abs(miss) <= MODEL_MISS_LIMIT:
         return ModelCheck(miss, False)
     return ModelCheck(miss, True, _likely_cause(plan))
+
+
+def model_check_text(check: ModelCheck, what: str) -> str:
+    """The sentence that says a flagged model check, for every output that shows predictions.
+
+    Examples
+    --------
+    >>> print(model_check_text(ModelCheck(0.12, True, "the recorded prefetch depth was inferred"), "these speed-ups"))
+    check: the replay of the recorded configuration is +12.0 % off the measured wall time (more than 5 %), so read these speed-ups as rough; likely cause: the recorded prefetch depth was inferred
+    """
+    return (f"check: the replay of the recorded configuration is {100 * check.miss:+.1f} % off the measured wall "
+            f"time (more than {100 * MODEL_MISS_LIMIT:.0f} %), so read {what} as rough; likely cause: "
+            f"{check.likely_cause}")
 
 
 def _likely_cause(plan: ReplayPlan) -> str:
@@ -397,12 +410,9 @@ def format_prediction(p: Prediction) -> str:
         lines += textwrap.wrap(
             f"range: {p.wall_range_s[0]:.3f} s to {p.wall_range_s[1]:.3f} s, not one number: {p.range_reason}",
             width=100, initial_indent="  ", subsequent_indent="    ")
-    check = p.model_check
-    if check is not None and check.flagged:
-        lines += textwrap.wrap(
-            f"check: that replay is {100 * check.miss:+.1f} % off the measured wall time (more than "
-            f"{100 * MODEL_MISS_LIMIT:.0f} %), so read this prediction as rough; likely cause: {check.likely_cause}",
-            width=100, initial_indent="  ", subsequent_indent="    ")
+    if p.model_check is not None and p.model_check.flagged:
+        lines += textwrap.wrap(model_check_text(p.model_check, "this prediction"), width=100,
+                               initial_indent="  ", subsequent_indent="    ")
     if p.predicted_speedup < 0.995:
         lines += textwrap.wrap(f"slower because {_why_slower(p)}", width=100, initial_indent="  ",
                                subsequent_indent="    ")
