@@ -301,3 +301,18 @@ class TestStageDurationLabels:
         boxes = [t.get_window_extent(renderer) for t in ax.texts if isinstance(t, Annotation)]
         overlapping = [(i, j) for i in range(len(boxes)) for j in range(i + 1, len(boxes)) if boxes[i].overlaps(boxes[j])]
         assert (4, []) == (len(boxes), overlapping)  # decode 3, step 1
+
+
+class TestModelCheckOnThePage:
+    def test_ceilings_say_a_replay_that_misses_the_run(self):
+        """The page's ceilings carry the model check's sentence when the unchanged replay misses by over 5 %."""
+        from dataclasses import replace
+
+        from pipeprobe.whatif.ceilings import ceilings
+        from pipeprobe.whatif.plan import plan_from_durations
+
+        plan = plan_from_durations([0.03] * 10, [0.01] * 10, workers=3, prefetch=3, cores=4)
+        missed = ppe_html.ceilings_html((ceilings(replace(plan, measured_wall_s=0.15)), None), ppe_html._Page(None, 40))
+        met = ppe_html.ceilings_html((ceilings(replace(plan, measured_wall_s=0.13)), None), ppe_html._Page(None, 40))
+        sentence = "the replay of the recorded configuration is -13.3 % off the measured wall time"
+        assert (True, False) == (sentence in missed, "off the measured wall time" in met)
