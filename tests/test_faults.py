@@ -248,6 +248,32 @@ with pipeprobe.Probe(sys.argv[1], report=False, sample_interval_s=0, flush_inter
 """
 
 
+LOST_SIGTERM_SPAWNED = """
+import multiprocessing as mp, os, signal, sys, time
+import pipeprobe
+
+
+def child(sent):
+    for i in range(5):
+        with pipeprobe.stage("load", sample=i):
+            pass
+    w = signal.set_wakeup_fd(-1)
+    signal.set_wakeup_fd(w)
+    with open(sent, "w") as f:
+        f.write(repr(time.monotonic()))
+    os.write(w, bytes([signal.SIGTERM]))  # a SIGTERM whose Python handler never got to run
+    time.sleep(20)
+
+
+if __name__ == "__main__":
+    with pipeprobe.Probe(sys.argv[1], report=False, sample_interval_s=0, flush_interval_s=30):
+        p = mp.get_context("spawn").Process(target=child, args=(sys.argv[2],))
+        p.start()
+        p.join(60)
+        print(p.exitcode, time.monotonic())
+"""
+
+
 class TestLostSignal:
     def test_worker_ends_when_its_sigterm_handler_never_runs(self, tmp_path):
         """A forked worker whose SIGTERM reached the wakeup pipe but never its Python handler (the main
@@ -259,6 +285,21 @@ class TestLostSignal:
         sig, waited_s = out.stdout.split()
         assert int(signal.SIGKILL) == int(sig)
         assert float(waited_s) < 2.0
+        spans = load_quiet(tmp_path / "run").spans
+        assert 5 == int((spans["stage"] == "load").sum())
+
+    def test_spawned_worker_ends_when_its_sigterm_handler_never_runs(self, tmp_path):
+        """The same for a spawned worker (it joins the run through the environment, not a fork hook): it ends
+        within 2 s of the lost SIGTERM (the watch answers on the flush thread's next tick, 0.25 s or so; the
+        margin is for a loaded machine), its spans written first."""
+        script = tmp_path / "spawned.py"
+        script.write_text(LOST_SIGTERM_SPAWNED)
+        out = subprocess.run([sys.executable, str(script), str(tmp_path / "run"), str(tmp_path / "sent")],
+                             env=child_env(), capture_output=True, text=True, timeout=120)
+        assert 0 == out.returncode, out.stderr
+        exitcode, ended_at = out.stdout.split()
+        assert -int(signal.SIGKILL) == int(exitcode)
+        assert float(ended_at) - float((tmp_path / "sent").read_text()) < 2.0
         spans = load_quiet(tmp_path / "run").spans
         assert 5 == int((spans["stage"] == "load").sum())
 

@@ -467,6 +467,7 @@ def attach_from_env() -> bool:
             stages=[str(s) for s in options.get("stages", [])],
         )
         _register_worker_exit()
+        _signals.LOST_SIGNALS.arm()  # a spawned worker can block on a pool's lock as a forked one can
     except Exception as exc:  # noqa: BLE001 - never take training down
         rec.fail(exc)
     return rec.on

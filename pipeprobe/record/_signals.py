@@ -4,7 +4,7 @@ A signal that lands while this thread is writing records (a flush or a
 buffer spill) is held back until the write is done (``_Recorder.in_flush``);
 the write then takes the whole signal path.
 
-A forked worker also watches for a SIGTERM its handler never saw
+A worker (forked, or spawned and joined through the environment) also watches for a SIGTERM its handler never saw
 (:func:`watch_for_lost_signals`): Python runs a handler only when the main
 thread gets back to Python code, and a signal that lands just before the
 main thread blocks (a pool worker waiting for the task queue's lock, which
@@ -113,7 +113,7 @@ def restore_signal_hooks() -> None:
 
 
 class _LostSignalWatch:
-    """A wakeup pipe for SIGTERM in a forked worker, read by its flush thread (see the module docstring)."""
+    """A wakeup pipe for SIGTERM in a worker process, read by its flush thread (see the module docstring)."""
 
     def __init__(self) -> None:
         self.read_fd = -1
