@@ -23,6 +23,11 @@ from pathlib import Path
 
 REPO = Path(__file__).resolve().parent.parent
 
+#: How long a child may take to reach a point, or to end, before a trial calls it hung.
+#: Generous: a loaded 2-core CI machine stretched a healthy child past 30 s; a real hang
+#: never gets there, so it still fails (with a TimeoutError naming the point).
+HANG_GUARD_S = 120.0
+
 #: A data-parallel-free training job: a fork pool of 2 loader workers decodes
 #: samples (4 ms each), the main process waits for batches of 4 and steps.
 PIPELINE_CHILD = r'''
@@ -185,7 +190,7 @@ def kill_trial(tmp: Path, seed: int, target: str, flush_s: float = 0.2) -> KillO
         env=child_env(), start_new_session=True, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
     )
     try:
-        wait_for(progress, lambda ls: any(k == "ready" for k, *_ in ls), 30)
+        wait_for(progress, lambda ls: any(k == "ready" for k, *_ in ls), HANG_GUARD_S)
         time.sleep(rng.uniform(0.8, 2.0))
         lines = read_progress(progress)
         if target == "main":
@@ -201,7 +206,7 @@ def kill_trial(tmp: Path, seed: int, target: str, flush_s: float = 0.2) -> KillO
             os.killpg(child.pid, signal.SIGKILL)
         except ProcessLookupError:
             pass
-        child.wait(timeout=30)
+        child.wait(timeout=HANG_GUARD_S)
     kind = "step" if target == "main" else "decode"
     done = {ident: t for k, pid, ident, t in read_progress(progress) if k == kind and pid == victim and t <= t_kill}
     try:

@@ -29,6 +29,7 @@ from pipeprobe import stage
 sys.path.insert(0, str(Path(__file__).parent))
 from _faultlab import (  # noqa: E402
     FAULT_CHILD,
+    HANG_GUARD_S,
     SECOND_PROBE_CHILD,
     SIGNAL_CHILD,
     SPILL_SIGNAL_CHILD,
@@ -43,7 +44,7 @@ FLUSH_S = 0.2
 SLACK_S = 0.6
 
 
-def run_child(code: str, *args: str, timeout_s: float = 60) -> subprocess.CompletedProcess:
+def run_child(code: str, *args: str, timeout_s: float = HANG_GUARD_S) -> subprocess.CompletedProcess:
     return subprocess.run(
         [sys.executable, "-c", code, *args], env=child_env(), capture_output=True, text=True, timeout=timeout_s
     )
@@ -96,13 +97,13 @@ class TestSecondProbe:
         child = subprocess.Popen([sys.executable, "-c", SECOND_PROBE_CHILD, str(run_a), str(run_b), str(progress),
                                   str(flush_s)], env=child_env(), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
         try:
-            lines = wait_for(progress, lambda ls: any(k == "ready" for k, *_ in ls), 30)
+            lines = wait_for(progress, lambda ls: any(k == "ready" for k, *_ in ls), HANG_GUARD_S)
             t_ready = lines[0][3]
             # ten flush intervals of the second probe, then the kill
-            wait_for(progress, lambda ls: ls[-1][3] - t_ready > 10 * flush_s * 1e9, 30)
+            wait_for(progress, lambda ls: ls[-1][3] - t_ready > 10 * flush_s * 1e9, HANG_GUARD_S)
             t_kill = time.monotonic_ns()
             child.kill()
-            child.wait(timeout=30)
+            child.wait(timeout=HANG_GUARD_S)
         finally:
             if child.poll() is None:
                 child.kill()
@@ -125,9 +126,9 @@ class TestSignals:
             env=child_env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
         )
         try:
-            wait_for(progress, lambda ls: sum(k == "decode" for k, *_ in ls) >= 50, 30)
+            wait_for(progress, lambda ls: sum(k == "decode" for k, *_ in ls) >= 50, HANG_GUARD_S)
             child.send_signal(signum)
-            child.wait(timeout=30)
+            child.wait(timeout=HANG_GUARD_S)
         finally:
             if child.poll() is None:
                 child.kill()
@@ -248,6 +249,34 @@ with pipeprobe.Probe(sys.argv[1], report=False, sample_interval_s=0, flush_inter
 """
 
 
+LOST_SIGTERM_AFTER_CLOSE = """
+import os, signal, sys, time
+import pipeprobe
+from pipeprobe.record import _recorder
+probe = pipeprobe.Probe(sys.argv[1], report=False, sample_interval_s=0, flush_interval_s=30)
+pid = os.fork()
+if pid == 0:
+    for i in range(5):
+        with pipeprobe.stage("load", sample=i):
+            pass
+    t0 = time.monotonic()
+    while _recorder.RECORDER.on and time.monotonic() - t0 < 60:  # until this worker answers the close request
+        time.sleep(0.01)
+    time.sleep(0.5)  # the answer's acknowledgement is written; the pool stays open
+    w = signal.set_wakeup_fd(-1)
+    signal.set_wakeup_fd(w)
+    os.write(w, bytes([signal.SIGTERM]))  # a SIGTERM whose Python handler never got to run
+    time.sleep(20)
+    os._exit(0)
+t0 = time.monotonic()
+while not os.path.exists(f"{sys.argv[1]}/spans-r0-p{pid}.json") and time.monotonic() - t0 < 60:
+    time.sleep(0.01)  # the worker registered (its first flush): the close asks it to answer
+probe.close()
+_, status = os.waitpid(pid, 0)
+print(os.WTERMSIG(status) if os.WIFSIGNALED(status) else -1)
+"""
+
+
 LOST_SIGTERM_SPAWNED = """
 import multiprocessing as mp, os, signal, sys, time
 import pipeprobe
@@ -280,7 +309,7 @@ class TestLostSignal:
         thread had already blocked, as a pool worker waiting on the queue lock Pool.terminate holds) still
         ends within a second, its spans written first. Without pipeprobe the default action would have ended
         it; CPython runs handlers only in the main thread between bytecodes (Python docs, signal module)."""
-        out = run_child(LOST_SIGTERM_CHILD, str(tmp_path / "run"), timeout_s=60)
+        out = run_child(LOST_SIGTERM_CHILD, str(tmp_path / "run"))
         assert 0 == out.returncode, out.stderr
         sig, waited_s = out.stdout.split()
         assert int(signal.SIGKILL) == int(sig)
@@ -302,6 +331,16 @@ class TestLostSignal:
         assert float(ended_at) - float((tmp_path / "sent").read_text()) < 2.0
         spans = load_quiet(tmp_path / "run").spans
         assert 5 == int((spans["stage"] == "load").sum())
+
+    def test_worker_that_answered_the_close_still_ends_on_a_lost_sigterm(self, tmp_path):
+        """A forked worker that outlived the probe (it answered the close request, its pool still open) still
+        ends on a SIGTERM its handler never saw, with the spans it flushed at close in the trace. Before the
+        fix its flush thread stopped with the answer and Pool.terminate() waited for it forever (it slept its
+        20 s out here and exited 0); CPython runs handlers only in the main thread (Python docs, signal module)."""
+        out = run_child(LOST_SIGTERM_AFTER_CLOSE, str(tmp_path / "run"))
+        assert 0 == out.returncode, out.stderr
+        spans = load_quiet(tmp_path / "run").spans
+        assert (int(signal.SIGKILL), 5) == (int(out.stdout.strip()), int((spans["stage"] == "load").sum()))
 
     @pytest.mark.slow
     def test_with_pool_exits_every_time(self, tmp_path):

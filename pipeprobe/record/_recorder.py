@@ -21,7 +21,7 @@ import sys
 import threading
 import warnings
 from pathlib import Path
-from time import monotonic_ns, time_ns
+from time import monotonic_ns, sleep, time_ns
 from typing import Any
 
 import numpy as np
@@ -232,6 +232,7 @@ class _Recorder:
             if os.path.exists(request):
                 self.stop()
                 touch(self.run_dir / close_ack_name(self.rank, self.pid))
+                self._watch_after_close(tick_ns / 1e9)
                 return
             now = monotonic_ns()
             # Flush early once to write the process header: that registers
@@ -239,6 +240,23 @@ class _Recorder:
             if now >= due or (self.header_stages_written < 0 and any(len(b) for b in list(self.buffers))):
                 self.flush()
                 due = now + period_ns
+
+    def _watch_after_close(self, tick_s: float) -> None:
+        """After the close answer, keep watching for a lost SIGTERM until a later run takes over.
+
+        The worker lives on (a pool still open, persistent loader workers)
+        and must still end when its pool terminates it: a SIGTERM that lands
+        just as its main thread blocks on the pool's lock is seen only here
+        (see ``_signals``). A later run in this process starts its own flush
+        thread, which watches from then on: this one then ends.
+        """
+        with self.meta_lock:
+            if self.flusher is not threading.current_thread():
+                return
+            self.flusher = None  # only a watch now: stop() at the worker's exit must not wait for it
+        while self.flusher is None and _signals.LOST_SIGNALS.read_fd >= 0:
+            _signals.LOST_SIGNALS.check()
+            sleep(tick_s)
 
     # -- writing -----------------------------------------------------------
     def record(self, start: int, end: int, cpu: int, sample: int, batch: int, code: int) -> None:

@@ -11,7 +11,9 @@ main thread blocks (a pool worker waiting for the task queue's lock, which
 ``Pool.terminate`` holds) leaves it blocked for good, where the default
 action would have ended the process. The worker's flush thread sees the
 signal on a wakeup pipe; if the handler has not run a tick later, it writes
-what is recorded and ends the process itself.
+what is recorded and ends the process itself. It keeps watching after the
+worker answered the probe's close request: the pool may terminate the
+worker long after the probe closed.
 """
 
 from __future__ import annotations
