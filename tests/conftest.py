@@ -17,10 +17,13 @@ import pytest
 matplotlib.use("Agg")
 
 # CI runs the property tests on the same examples every time (a red build must be reproducible);
-# locally they explore new examples on every run.
-from hypothesis import settings  # noqa: E402
+# locally they explore new examples on every run. CI machines are shared and loaded: an example
+# that takes long there is not a failure, so CI has no per-example deadline and no "too slow" check.
+from hypothesis import HealthCheck, settings  # noqa: E402
 
-settings.register_profile("ci", derandomize=True, database=None)
+settings.register_profile(
+    "ci", derandomize=True, database=None, deadline=None, suppress_health_check=[HealthCheck.too_slow],
+)
 if os.environ.get("PIPEPROBE_CI"):
     settings.load_profile("ci")
 sys.path.insert(0, str(Path(__file__).parent))

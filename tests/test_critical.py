@@ -12,7 +12,8 @@ import pipeprobe
 from pipeprobe.critical import DELIVERY, GAP, critical_path, critical_path_length
 from pipeprobe.timeline import build_timeline
 
-HYP = settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+HYP = settings(max_examples=30, deadline=None,
+               suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
 
 
 @st.composite

@@ -265,6 +265,34 @@ class TestRunFolder:
         assert run.header["closed"]
         assert not list((tmp_path / "elsewhere").iterdir())
 
+    def test_a_flush_before_the_run_header_finds_the_folder(self, tmp_path: Path,
+                                                            monkeypatch: pytest.MonkeyPatch) -> None:
+        """A main thread held up after the recorder started (a loaded machine) loses nothing: the flush thread's
+        first write finds the run folder there, so recording goes on without a warning."""
+        from pipeprobe.record import _probe, _recorder
+
+        flushed = threading.Event()
+        real_flush, real_open_run = _recorder._Recorder.flush, _probe.Probe._open_run
+
+        def flush(rec, lock_timeout_s: float = -1) -> None:
+            real_flush(rec, lock_timeout_s)
+            flushed.set()
+
+        def open_run_after_a_flush(probe, sample_interval_s: float) -> None:
+            flushed.wait(60)  # the flush thread's first write came before the folder step
+            real_open_run(probe, sample_interval_s)
+
+        monkeypatch.setattr(_recorder._Recorder, "flush", flush)
+        monkeypatch.setattr(_probe.Probe, "_open_run", open_run_after_a_flush)
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            with pipeprobe.Probe(tmp_path / "new" / "run", report=False, sample_interval_s=0, flush_interval_s=0.01):
+                with stage("decode", sample=0):
+                    pass
+        assert flushed.is_set()
+        assert [] == [str(w.message) for w in seen if "pipeprobe" in str(w.message)]
+        assert [0] == _user_spans(pipeprobe.load(tmp_path / "new" / "run"), "decode")["sample_id"].tolist()
+
 
 def _batches(n: int, size: int):
     for b in range(n):
@@ -514,6 +542,28 @@ def test_span_cost_is_measured_per_process_without_recording_anything(tmp_path: 
     # exactly the spans the job made: 1 + 2 decodes, 2 augments (the calibration's 2,000 are not among them)
     assert {"decode": 3, "augment": 2} == {k: int(v) for k, v in run.spans["stage"].value_counts().items()
                                           if k in ("decode", "augment")}
+
+
+def test_span_cost_leaves_out_time_the_thread_was_off_the_cpu(monkeypatch: pytest.MonkeyPatch) -> None:
+    """A calibration whose thread is off the CPU for a while in each block (a loaded machine) still gives
+    what a span costs the thread, against the same process's undisturbed figure. A sleeping thread uses no
+    CPU time (common practice: the thread CPU clock counts running time only); 20 ms off the CPU per block
+    of 400 spans would add 50,000 ns to each span on a wall clock."""
+    from pipeprobe.record import _spans
+
+    quiet_ns = _spans.calibrate_span_cost_ns(True)
+    real_stage = _spans._calibration_stage
+
+    def stage_off_cpu_once_per_block(codes, span_type, name, sample, batch):
+        if sample == 0:
+            time.sleep(0.02)
+        return real_stage(codes, span_type, name, sample, batch)
+
+    monkeypatch.setattr(_spans, "_calibration_stage", stage_off_cpu_once_per_block)
+    per_block = _spans.CALIBRATION_SPANS // 5
+    off_cpu_per_span_ns = 0.02e9 / per_block
+    disturbed_ns = _spans.calibrate_span_cost_ns(True)
+    assert disturbed_ns < quiet_ns + off_cpu_per_span_ns / 2, (quiet_ns, disturbed_ns)
 
 
 def test_recorded_file_is_48_bytes_per_span(tmp_path: Path) -> None:

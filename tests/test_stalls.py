@@ -115,7 +115,8 @@ class TestBlame:
         assert "" == s.per_batch.iloc[1]["blame"]
 
 
-SETTINGS = settings(max_examples=30, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+SETTINGS = settings(max_examples=30, deadline=None,
+                    suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
 
 
 class TestProperties:

@@ -157,6 +157,14 @@ def _checked_out_dir(out_dir: Any) -> Path:
     return out.resolve()
 
 
+def _make_run_folder(out: Path) -> None:
+    """Create the run folder; a failure is left to :meth:`Probe._open_run`, which reports it as pipeprobe's own."""
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError:
+        pass
+
+
 def _check_intervals(sample_interval_s: Any, flush_interval_s: Any, buffer_spans: Any) -> None:
     if not (isinstance(sample_interval_s, (int, float)) and sample_interval_s >= 0):
         raise ValueError(f"sample_interval_s must be >= 0, got {sample_interval_s!r}")
@@ -259,6 +267,7 @@ class Probe:
         self._env_before = {k: os.environ.get(k) for k in (_r.ENV_RUN_DIR, _r.ENV_OPTIONS)}
         rec.next_batch = 0
         rec.epoch = -1
+        _make_run_folder(out)  # before start(): its flush thread may write before _open_run()
         rec.start(
             out,
             role="main",

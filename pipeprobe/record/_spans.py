@@ -10,7 +10,7 @@ from __future__ import annotations
 import functools
 import inspect
 import statistics
-from time import monotonic_ns, perf_counter_ns, process_time_ns, thread_time_ns
+from time import monotonic_ns, process_time_ns, thread_time_ns
 from typing import Any, Callable, TypeVar
 
 from .. import tracefile as tf
@@ -338,6 +338,8 @@ def calibrate_span_cost_ns(cpu_time: bool, spans: int = CALIBRATION_SPANS) -> fl
     does, and returns the median difference per span. The spans go
     to a scratch buffer put in this thread's place for the measurement
     (large enough never to spill), so the run records nothing from it.
+    Timed on this thread's CPU clock: on a loaded machine the thread waits
+    for a core now and then, and wall time would count the wait as cost.
     A few milliseconds; the report uses it to estimate what recording cost.
     """
     span_type = _CpuSpan if cpu_time else _Span
@@ -349,16 +351,16 @@ def calibrate_span_cost_ns(cpu_time: bool, spans: int = CALIBRATION_SPANS) -> fl
     costs = []
     try:
         for _ in range(5):
-            t0 = perf_counter_ns()
+            t0 = thread_time_ns()
             for i in range(per_block):
                 with _calibration_stage(codes, span_type, "calibration", i, -1):
                     pass
-            t1 = perf_counter_ns()
+            t1 = thread_time_ns()
             for _i in range(per_block):  # the same loop, empty
                 pass
-            t2 = perf_counter_ns()
+            t2 = thread_time_ns()
             take_records(scratch)  # what a flush does with these spans before writing them
-            t3 = perf_counter_ns()
+            t3 = thread_time_ns()
             costs.append(((t1 - t0) - (t2 - t1) + (t3 - t2)) / per_block)
     finally:
         if saved is None:
