@@ -42,13 +42,16 @@ def _user_spans(run: pipeprobe.Run, name: str):
 
 class TestStageForms:
     def test_block_form_records_sample_and_duration(self, tmp_path: Path) -> None:
-        """A `with stage(...)` block is recorded with its sample id and a duration that covers the body."""
+        """A `with stage(...)` block is recorded with its sample id and a duration that covers the body and
+        no more than the job's own clock around the block saw (a loaded machine stretches both alike)."""
         with pipeprobe.Probe(tmp_path / "r", report=False, sample_interval_s=0):
+            t0 = time.monotonic_ns()
             with stage("augment", sample=7):
                 time.sleep(0.01)
+            own_s = (time.monotonic_ns() - t0) / 1e9
         spans = _user_spans(pipeprobe.load(tmp_path / "r"), "augment")
         assert [7] == spans["sample_id"].tolist()
-        assert 0.01 <= spans["dur_s"].iloc[0] < 0.5
+        assert 0.01 <= spans["dur_s"].iloc[0] <= own_s
 
     def test_decorator_takes_first_int_argument_as_sample(self, tmp_path: Path) -> None:
         """A decorated function called with an int first argument records it as the sample id."""

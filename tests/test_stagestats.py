@@ -38,19 +38,39 @@ class TestTable:
         assert pytest.approx(18 / 54) == row["critical_share"]
 
     def test_cpu_ratio_tells_computing_from_waiting(self, tmp_path):
-        """A busy loop has CPU/wall near 1, a sleep near 0 (thread CPU time, common practice)."""
-        d = tmp_path / "r"
+        """A busy loop has CPU/wall near 1, a sleep near 0 (thread CPU time, common practice): each stage's ratio
+        is the one the job reads on its own clocks around it (a loaded machine deschedules the busy loop, which
+        lowers both alike), and a sleep stays under 0.2. Records again (at most twice) if the two disagree."""
+        for attempt in range(3):
+            ratio, own = self._record_spin_and_nap(tmp_path / f"r{attempt}")
+            if all(abs(ratio[k] - own[k]) < 0.1 for k in own):
+                break
+        assert {k: True for k in own} == {k: abs(ratio[k] - own[k]) < 0.1 for k in own}, (ratio, own)
+        assert ratio["nap"] < 0.2
+
+    @staticmethod
+    def _record_spin_and_nap(d) -> tuple[dict[str, float], dict[str, float]]:
+        """``(cpu_ratio per stage from the stage table, thread CPU / wall per stage on the job's own clocks)``."""
+        cpu_ns, wall_ns = {"spin": 0, "nap": 0}, {"spin": 0, "nap": 0}
+
+        def timed(name, body) -> None:
+            c0, w0 = time.thread_time_ns(), time.monotonic_ns()
+            with pipeprobe.stage(name):
+                body()
+            cpu_ns[name] += time.thread_time_ns() - c0
+            wall_ns[name] += time.monotonic_ns() - w0
+
+        def spin() -> None:
+            end = time.thread_time() + 0.02
+            while time.thread_time() < end:
+                pass
+
         with pipeprobe.Probe(d, report=False, sample_interval_s=0) as probe:
             for _ in probe.watch([[0], [1]]):
-                with pipeprobe.stage("spin"):
-                    end = time.thread_time() + 0.02
-                    while time.thread_time() < end:
-                        pass
-                with pipeprobe.stage("nap"):
-                    time.sleep(0.02)
+                timed("spin", spin)
+                timed("nap", lambda: time.sleep(0.02))
         t = stage_stats(pipeprobe.load(d)).table.set_index("stage")
-        assert t.loc["spin", "cpu_ratio"] > t.loc["nap", "cpu_ratio"] + 0.3
-        assert t.loc["nap", "cpu_ratio"] < 0.2
+        return ({k: float(t.loc[k, "cpu_ratio"]) for k in cpu_ns}, {k: cpu_ns[k] / wall_ns[k] for k in cpu_ns})
 
 
 class TestSlowest:
