@@ -237,13 +237,18 @@ class TestRunCommand:
 
     def test_duty_cycle_reaches_workers(self, tmp_path: Path) -> None:
         """'2/0.1s' with 2 workers: the batches handed out early are decided once, so the workers' spans
-        are exactly those of the batches the loop recorded."""
-        loader = DataLoader(GaugePhotos(), batch_size=2, num_workers=2, multiprocessing_context="fork")
-        with pipeprobe.Probe(tmp_path, report=False, sample_interval_s=0, window="2/0.1s") as probe:
-            for _ in probe.watch(loader):
-                with probe.step():
-                    time.sleep(0.01)
-        run = pipeprobe.load(tmp_path)
-        recorded = [b for a, e in run.header["window"]["batches"] for b in range(a, e)]
+        are exactly those of the batches the loop recorded. A loaded machine can stretch the loop to 50 ms a
+        batch, when the window rightly takes all 12: record again (at most twice) before judging."""
+        for attempt in range(3):
+            loader = DataLoader(GaugePhotos(), batch_size=2, num_workers=2, multiprocessing_context="fork")
+            with pipeprobe.Probe(tmp_path / f"r{attempt}", report=False, sample_interval_s=0,
+                                 window="2/0.1s") as probe:
+                for _ in probe.watch(loader):
+                    with probe.step():
+                        time.sleep(0.01)
+            run = pipeprobe.load(tmp_path / f"r{attempt}")
+            recorded = [b for a, e in run.header["window"]["batches"] for b in range(a, e)]
+            if len(recorded) < 12:
+                break
         assert len(recorded) < 12
         _check_only_window(run, recorded, 2, decode=True)
