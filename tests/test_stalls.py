@@ -61,9 +61,12 @@ class TestHandChecked:
                     shares.get("step", 0))
 
         def fits(run, a):
-            return all(abs(x / y - 1) <= 0.05 for x, y in zip(got(a), expected(run), strict=True))
+            want = expected(run)
+            is_the_hand_pipeline = abs(want[0] / (32 / 52) - 1) <= 0.1
+            return is_the_hand_pipeline and all(abs(x / y - 1) <= 0.05 for x, y in zip(got(a), want, strict=True))
 
-        # A shared machine can stretch sleeps unevenly; record again (at most twice) before judging.
+        # A shared machine can stretch sleeps unevenly (short ones most: the loaded CI machine made the job's
+        # own stall 0.71 of the run, not 32/52); record again (at most twice) before judging.
         run = analysis_sleep_run
         a = analyze(run)
         for attempt in range(2):
