@@ -175,11 +175,10 @@ def critical_path(timeline: Timeline) -> CriticalPath:
     Kelley, J. E. and Walker, M. R. (1959). Critical-path planning and
     scheduling. Proc. Eastern Joint Computer Conference, 160-173.
     """
-    nodes = timeline.nodes
     origin, end = timeline.origin_s, timeline.end_s
     sink = sink_node(timeline)
-    ids = _walk(nodes["pred"].to_numpy(np.int64), sink) if sink >= 0 else np.zeros(0, np.int64)
-    path = nodes.iloc[ids].reset_index(drop=True)
+    ids = _walk(timeline.node_column("pred"), sink) if sink >= 0 else np.zeros(0, np.int64)
+    path = timeline.node_rows(ids)  # the path's rows only: a large run's nodes frame is never built
     seg = _segment_arrays(path, ids, origin, end)
     names = seg.pop("names")
     keep = seg.pop("seconds") > 0
@@ -293,4 +292,4 @@ def critical_path_length(timeline: Timeline) -> float:
     sink = sink_node(timeline)
     if sink < 0:
         return 0.0
-    return float(timeline.nodes["end_s"].iloc[sink]) - timeline.origin_s
+    return float(timeline.node_column("end_s")[sink]) - timeline.origin_s

@@ -86,6 +86,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 
+from ._nodecolumns import NODE_KINDS, SIDES, EdgeColumns, NodeColumns, narrow
 from .lanes import thread_lanes
 from .nesting import flatten_spans, inherit, stage_labels, thread_order
 
@@ -137,15 +138,26 @@ EDGE_COLUMNS = {
     "kind": "one of EDGE_KINDS",
 }
 
-_NODE_KINDS = ("stage", "step", "delivery")
-_N_STAGE, _N_STEP, _N_DELIVERY = range(3)
-_SIDES = ("input", "delivery", "consumer")
-_S_INPUT, _S_DELIVERY, _S_CONSUMER = range(3)
+_N_STAGE, _N_STEP, _N_DELIVERY = (NODE_KINDS.index(k) for k in ("stage", "step", "delivery"))
+_S_INPUT, _S_DELIVERY, _S_CONSUMER = (SIDES.index(k) for k in ("input", "delivery", "consumer"))
 
 
-@dataclass(frozen=True)
 class Timeline:
     """Dependency graph of a run. See the module docstring for its rules.
+
+    A timeline from :func:`build_timeline` holds its nodes and edges as
+    compact columns (:mod:`pipeprobe._nodecolumns`) and builds the two
+    DataFrames the first time they are read; :func:`pipeprobe.critical.critical_path`
+    reads the columns it needs without them. Once built, the frames are the
+    timeline's nodes and edges (a change to them is what later readers see).
+
+    Parameters
+    ----------
+    nodes, edges : DataFrame, optional
+        See :data:`NODE_COLUMNS` and :data:`EDGE_COLUMNS` (or give ``columns``).
+    origin_s, end_s : float
+    columns : NodeColumns, optional
+        Compact nodes (with ``edge_columns``) in place of the frames.
 
     Attributes
     ----------
@@ -160,10 +172,60 @@ class Timeline:
         End of the run: the later of the recorded end and the last node end.
     """
 
-    nodes: pd.DataFrame
-    edges: pd.DataFrame
-    origin_s: float
-    end_s: float
+    __slots__ = ("_nodes", "_edges", "_columns", "_edge_columns", "origin_s", "end_s")
+
+    def __init__(self, nodes: pd.DataFrame | None = None, edges: pd.DataFrame | None = None, origin_s: float = 0.0,
+                 end_s: float = 0.0, *, columns: NodeColumns | None = None,
+                 edge_columns: EdgeColumns | None = None) -> None:
+        if (nodes is None) == (columns is None) or (edges is None) == (edge_columns is None):
+            raise TypeError("Timeline takes nodes and edges, or columns and edge_columns")
+        self._nodes, self._edges = nodes, edges
+        self._columns, self._edge_columns = columns, edge_columns
+        self.origin_s, self.end_s = float(origin_s), float(end_s)
+
+    @property
+    def nodes(self) -> pd.DataFrame:
+        """See :data:`NODE_COLUMNS` (built on first read from the compact columns)."""
+        if self._nodes is None:
+            self._nodes = self._columns.frame()
+            self._columns = None  # the frame holds the nodes now
+        return self._nodes
+
+    @property
+    def edges(self) -> pd.DataFrame:
+        """See :data:`EDGE_COLUMNS` (built on first read from the compact columns)."""
+        if self._edges is None:
+            self._edges = self._edge_columns.frame(EDGE_KINDS)
+            self._edge_columns = None
+        return self._edges
+
+    @property
+    def node_count(self) -> int:
+        """Nodes, without building the frame."""
+        return len(self._columns) if self._nodes is None else len(self._nodes)
+
+    @property
+    def edge_count(self) -> int:
+        """Edges, without building the frame."""
+        return len(self._edge_columns) if self._edges is None else len(self._edges)
+
+    def node_column(self, name: str) -> np.ndarray:
+        """The numeric node column ``name`` (``start_s``, ``end_s``, ``pred``) as an array, without the frame."""
+        if self._nodes is not None:
+            return self._nodes[name].to_numpy()
+        c = self._columns
+        return {"start_s": c.start, "end_s": c.end, "pred": c.pred}[name]
+
+    def node_rows(self, ids: np.ndarray) -> pd.DataFrame:
+        """Rows ``ids`` of :attr:`nodes`, renumbered from 0 (``nodes.iloc[ids]``), without the whole frame."""
+        if self._nodes is not None:
+            return self._nodes.iloc[ids].reset_index(drop=True)
+        return self._columns.frame(ids)
+
+    def _is_step(self) -> np.ndarray:
+        if self._nodes is not None:
+            return (self._nodes["kind"] == "step").to_numpy()
+        return self._columns.kind == _N_STEP
 
     @property
     def wall_s(self) -> float:
@@ -237,17 +299,16 @@ class Timeline:
         return g
 
     def __repr__(self) -> str:
-        return f"<pipeprobe.Timeline: {len(self.nodes)} nodes, {len(self.edges)} edges, {self.wall_s:.3f} s>"
+        return f"<pipeprobe.Timeline: {self.node_count} nodes, {self.edge_count} edges, {self.wall_s:.3f} s>"
 
 
 def sink_node(timeline: Timeline) -> int:
     """Node the critical path is walked back from: the last step to end (else the last node); -1 if none."""
-    nodes = timeline.nodes
-    if nodes.empty:
+    if not timeline.node_count:
         return -1
-    end = nodes["end_s"].to_numpy()
-    steps = np.flatnonzero((nodes["kind"] == "step").to_numpy())
-    pool = steps if len(steps) else np.arange(len(nodes))
+    end = timeline.node_column("end_s")
+    steps = np.flatnonzero(timeline._is_step())
+    pool = steps if len(steps) else np.arange(timeline.node_count)
     # last to end; among equal ends the highest id (latest start)
     order = np.lexsort((pool, end[pool]))
     return int(pool[order[-1]])
@@ -715,48 +776,24 @@ def build_timeline(run: Run) -> Timeline:
     n = _node_arrays(s, d, order, sides)
     src, dst, ek = _edges(n)
     pred, origin = _last_arriving(n, src, dst, ek)
-    nodes = _node_frame(s, d, order, n, sides, pred, origin)
-    edges = pd.DataFrame({"src": src, "dst": dst,
-                          "kind": pd.Categorical.from_codes(ek.astype(np.int64), categories=list(EDGE_KINDS))},
-                         copy=False)
+    edges = EdgeColumns(src=narrow(src), dst=narrow(dst), kind=ek)
+    del src, dst, ek
+    columns = _node_columns(s, d, order, n, sides, pred, origin)
     end_s = max(float(run.wall_s), float(n.end.max()) if len(n.end) else 0.0)
-    return Timeline(nodes=nodes, edges=edges, origin_s=origin, end_s=end_s)
+    return Timeline(origin_s=origin, end_s=end_s, columns=columns, edge_columns=edges)
 
 
-def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np.ndarray, np.ndarray],
-                pred: np.ndarray, origin: float) -> pd.DataFrame:
-    """The nodes as the documented DataFrame (:data:`NODE_COLUMNS`)."""
-    ready = np.where(pred >= 0, n.end[np.maximum(pred, 0)], origin) if len(pred) else np.zeros(0)
+def _node_columns(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np.ndarray, np.ndarray],
+                  pred: np.ndarray, origin: float) -> NodeColumns:
+    """The nodes as compact columns (:class:`pipeprobe._nodecolumns.NodeColumns`; the frame of
+    :data:`NODE_COLUMNS` on request)."""
     side = np.where(s.is_step | sides[1], _S_CONSUMER, _S_INPUT).astype(np.int8)
-    lane = s.th_lane[n.th]
-    used = np.unique(lane)
-    lane_cats = sorted(set(s.lane_names[used]))  # threads of one worker slot share a name
-    code_of_lane = np.full(len(s.lane_names), -1, np.int64)
-    code_of_lane[used] = [lane_cats.index(name) for name in s.lane_names[used]]
     has_b = d.of_span >= 0
-    nodes = pd.DataFrame(
-        {
-            "node": n.ids,
-            "kind": pd.Categorical.from_codes(n.kind, categories=list(_NODE_KINDS)),
-            "stage": pd.Categorical.from_codes(o.take(s.code, s.stages.index("delivery")), categories=s.stages),
-            "side": pd.Categorical.from_codes(o.take(side, _S_DELIVERY), categories=list(_SIDES)),
-            "start_s": n.start,
-            "end_s": n.end,
-            "dur_s": n.end - n.start,
-            "rank": n.rank,
-            "pid": s.th_pid[n.th],
-            "tid": s.th_tid[n.th],
-            "lane": pd.Categorical.from_codes(code_of_lane[lane], categories=lane_cats),
-            "batch_id": o.take(np.where(has_b, s.batch, -1), s.batch[d.wait]),
-            "sample_id": n.sample,
-            "epoch": o.take(s.epoch, s.epoch[d.wait]),
-            "span": o.take(s.row, -1),
-            "pred": pred,
-            "ready_s": ready,
-            "gap_s": n.start - ready,
-            "weight_s": n.end - ready,
-        },
-        copy=False,  # each column stays its own array: no second copy of the nodes while the frame is built
+    return NodeColumns(
+        kind=n.kind, stage=narrow(o.take(s.code, s.stages.index("delivery"))), stages=list(s.stages),
+        side=o.take(side, _S_DELIVERY).astype(np.int8), start=n.start, end=n.end, th=n.th,
+        th_rank=s.th_rank, th_pid=s.th_pid, th_tid=s.th_tid, th_lane=s.th_lane, lane_names=s.lane_names,
+        batch=narrow(o.take(np.where(has_b, s.batch, -1), s.batch[d.wait])), sample=narrow(n.sample),
+        epoch=narrow(o.take(s.epoch, s.epoch[d.wait])), span=narrow(o.take(s.row, -1)), pred=narrow(pred),
+        origin=origin,
     )
-    nodes["stage"] = nodes["stage"].cat.remove_unused_categories()
-    return nodes
