@@ -14,6 +14,7 @@ for the frame. :meth:`NodeColumns.frame` builds the frame of
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 import pandas as pd
@@ -133,17 +134,33 @@ class NodeColumns:
 
 @dataclass(frozen=True, eq=False)
 class EdgeColumns:
-    """The edges of a timeline, compact: ``(src, dst)`` node ids and kind codes, sorted by (src, dst)."""
+    """The edges of a timeline as the rules gave them: one int64 key ``(src * nodes + dst) * kinds + kind`` per
+    edge, unsorted, a node pair possibly under several kinds; sorted and made unique only on request."""
 
-    src: np.ndarray
-    dst: np.ndarray
-    kind: np.ndarray  # codes into the timeline's EDGE_KINDS
+    key: np.ndarray
+    nodes: int
+    kinds: tuple[str, ...]
+
+    @cached_property
+    def unique(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(src, dst, kind code)`` sorted by (src, dst), one edge per node pair: its first kind in ``kinds`` order.
+
+        A sort of the key orders the edges by (src, dst, kind), so the first of each pair has its lowest kind.
+        """
+        kinds = len(self.kinds)
+        key = np.sort(self.key)
+        pair = key // kinds
+        first = np.ones(len(key), bool)
+        first[1:] = pair[1:] != pair[:-1]
+        key, pair = key[first], pair[first]
+        return pair // self.nodes, pair % self.nodes, (key % kinds).astype(np.int8)
 
     def __len__(self) -> int:
-        return len(self.src)
+        return len(self.unique[0])
 
-    def frame(self, kinds: tuple[str, ...]) -> pd.DataFrame:
+    def frame(self) -> pd.DataFrame:
         """The documented edges DataFrame (``src``, ``dst`` as int64; ``kind`` categorical over ``kinds``)."""
-        return pd.DataFrame({"src": _int64(self.src), "dst": _int64(self.dst),
-                             "kind": pd.Categorical.from_codes(self.kind.astype(np.int64), categories=list(kinds))},
+        src, dst, kind = self.unique
+        return pd.DataFrame({"src": src, "dst": dst,
+                             "kind": pd.Categorical.from_codes(kind.astype(np.int64), categories=list(self.kinds))},
                             copy=False)

@@ -195,7 +195,7 @@ class Timeline:
     def edges(self) -> pd.DataFrame:
         """See :data:`EDGE_COLUMNS` (built on first read from the compact columns)."""
         if self._edges is None:
-            self._edges = self._edge_columns.frame(EDGE_KINDS)
+            self._edges = self._edge_columns.frame()
             self._edge_columns = None
         return self._edges
 
@@ -693,11 +693,12 @@ _EDGE_RULES = (_sample_edges, _assembly_edges, _delivery_edges, _consumer_edges,
                _thread_edges)
 
 
-def _edges(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Every rule's edges that the recording agrees with, one per node pair (the first kind in EDGE_KINDS order).
+def _edges(n: _Nodes) -> np.ndarray:
+    """Every rule's edges that the recording agrees with, as one int64 key each: ``(src * nodes + dst) * kinds + kind``.
 
-    The edges travel as one int64 key ``(src * nodes + dst) * kinds + kind``, sorted in place: a sort of
-    that key orders them by (src, dst, kind), and a large run holds one array of them, not three.
+    Unsorted, and a node pair may come under several kinds: the last-arriving dependency needs neither, and
+    :class:`pipeprobe._nodecolumns.EdgeColumns` sorts the keys (one per pair) only when the edges are read.
+    A large run holds one array of them, not three.
     """
     count, kinds = len(n.start), len(EDGE_KINDS)
     keys = []
@@ -707,29 +708,33 @@ def _edges(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         src, dst = src[ok], dst[ok]
         ok = n.end[src] <= n.start[dst]  # the recording must agree with the dependency
         keys.append((src[ok] * count + dst[ok]) * kinds + k)  # exact below 2**30 nodes
-    key = np.concatenate(keys)
-    del keys
-    for cached in ("sample_chains", "thread_order"):  # they served the rules: free them before the sort
+    for cached in ("sample_chains", "thread_order"):  # they served the rules: free them
         n.__dict__.pop(cached, None)
-    key.sort()
-    pair = key // kinds
-    first = np.ones(len(key), bool)
-    first[1:] = pair[1:] != pair[:-1]
-    key, pair = key[first], pair[first]
-    return pair // count, pair % count, (key % kinds).astype(np.int8)
+    return np.concatenate(keys)
 
 
-def _last_arriving(n: _Nodes, src: np.ndarray, dst: np.ndarray, ek: np.ndarray) -> tuple[np.ndarray, float]:
-    """Each node's last-arriving dependency (latest end; ties go to dependency edges), and the origin."""
-    count = len(n.start)
+def _last_arriving(n: _Nodes, key: np.ndarray) -> tuple[np.ndarray, float]:
+    """Each node's last-arriving dependency (latest end; ties go to dependency edges), and the origin.
+
+    Two passes over the edges, no sort: each node's latest dependency end, then among the dependencies that
+    ended then, the dependency kind (lowest code) and then the highest node id, as one int key.
+    """
+    count, kinds = len(n.start), len(EDGE_KINDS)
     origin = float(min(0.0, n.start.min())) if count else 0.0
     pred = np.full(count, -1, np.int64)
-    if len(src):
-        # the latest end wins, then the dependency kind (lowest code), then the highest node id: one key
-        _, end_rank = np.unique(n.end, return_inverse=True)
-        key = (end_rank[src] * len(EDGE_KINDS) + (len(EDGE_KINDS) - 1 - ek)) * count + src
-        best = pd.Series(key).groupby(dst, sort=False).max()
-        pred[best.index.to_numpy(np.int64)] = best.to_numpy(np.int64) % count
+    if len(key):
+        pair, ek = np.divmod(key, kinds)
+        src, dst = np.divmod(pair, count)
+        del pair
+        src_end = n.end[src]
+        latest = np.full(count, -np.inf)
+        np.maximum.at(latest, dst, src_end)
+        on = src_end == latest[dst]
+        del src_end
+        best = np.full(count, -1, np.int64)
+        np.maximum.at(best, dst[on], (kinds - 1 - ek[on]) * count + src[on])
+        has = best >= 0
+        pred[has] = best[has] % count
     return pred, origin
 
 
@@ -774,10 +779,9 @@ def build_timeline(run: Run) -> Timeline:
     order = _node_order(s, d)
     sides = _span_sides(s, d)
     n = _node_arrays(s, d, order, sides)
-    src, dst, ek = _edges(n)
-    pred, origin = _last_arriving(n, src, dst, ek)
-    edges = EdgeColumns(src=narrow(src), dst=narrow(dst), kind=ek)
-    del src, dst, ek
+    key = _edges(n)
+    pred, origin = _last_arriving(n, key)
+    edges = EdgeColumns(key=key, nodes=len(n.start), kinds=EDGE_KINDS)
     columns = _node_columns(s, d, order, n, sides, pred, origin)
     end_s = max(float(run.wall_s), float(n.end.max()) if len(n.end) else 0.0)
     return Timeline(origin_s=origin, end_s=end_s, columns=columns, edge_columns=edges)
