@@ -18,7 +18,7 @@ import pandas as pd
 
 from .critical import CriticalPath
 from .load import Run
-from .nesting import as_text, span_pieces
+from .nesting import span_pieces
 from .stalls import Stalls
 
 __all__ = ["StageStats", "stage_stats", "STAGE_COLUMNS", "SLOWEST_COLUMNS", "SATURATED_FROM", "TAIL_FRACTION"]
