@@ -76,7 +76,7 @@ def one(run_dir: Path) -> dict[str, float]:
     print_report(Report(analysis), io.StringIO(), as_json=True)
     mark()
     out = {name: b - a for name, a, b in zip(PHASES, marks, marks[1:])}
-    out.update(total=marks[-1] - marks[0], spans=len(run.spans), nodes=len(cp.path), memory=memory)
+    out.update(total=marks[-1] - marks[0], spans=len(run.spans), nodes=cp.node_count, memory=memory)
     return out
 
 

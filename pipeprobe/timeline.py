@@ -210,11 +210,12 @@ class Timeline:
         return len(self._edge_columns) if self._edges is None else len(self._edges)
 
     def node_column(self, name: str) -> np.ndarray:
-        """The numeric node column ``name`` (``start_s``, ``end_s``, ``pred``) as an array, without the frame."""
+        """The numeric node column ``name`` (``start_s``, ``end_s``, ``pred``, ``batch_id``) as an array, without
+        the frame."""
         if self._nodes is not None:
             return self._nodes[name].to_numpy()
         c = self._columns
-        return {"start_s": c.start, "end_s": c.end, "pred": c.pred}[name]
+        return {"start_s": c.start, "end_s": c.end, "pred": c.pred, "batch_id": c.batch}[name]
 
     def node_rows(self, ids: np.ndarray) -> pd.DataFrame:
         """Rows ``ids`` of :attr:`nodes`, renumbered from 0 (``nodes.iloc[ids]``), without the whole frame."""
