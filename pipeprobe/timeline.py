@@ -81,7 +81,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from functools import cached_property
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Iterator
 
 import numpy as np
 import pandas as pd
@@ -714,6 +714,19 @@ def _edges(n: _Nodes) -> np.ndarray:
     return np.concatenate(keys)
 
 
+#: Edges decoded at a time by :func:`_last_arriving` (a bound on its scratch memory: about 40 bytes an edge).
+_EDGE_CHUNK = 1 << 22
+
+
+def _decoded(key: np.ndarray, count: int) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """``(src, dst, kind)`` of the edge keys of :func:`_edges`, a chunk at a time."""
+    kinds = len(EDGE_KINDS)
+    for at in range(0, len(key), _EDGE_CHUNK):
+        pair, ek = np.divmod(key[at:at + _EDGE_CHUNK], kinds)
+        src, dst = np.divmod(pair, count)
+        yield src, dst, ek
+
+
 def _last_arriving(n: _Nodes, key: np.ndarray) -> tuple[np.ndarray, float]:
     """Each node's last-arriving dependency (latest end; ties go to dependency edges), and the origin.
 
@@ -722,21 +735,14 @@ def _last_arriving(n: _Nodes, key: np.ndarray) -> tuple[np.ndarray, float]:
     """
     count, kinds = len(n.start), len(EDGE_KINDS)
     origin = float(min(0.0, n.start.min())) if count else 0.0
-    pred = np.full(count, -1, np.int64)
-    if len(key):
-        pair, ek = np.divmod(key, kinds)
-        src, dst = np.divmod(pair, count)
-        del pair
-        src_end = n.end[src]
-        latest = np.full(count, -np.inf)
-        np.maximum.at(latest, dst, src_end)
-        on = src_end == latest[dst]
-        del src_end
-        best = np.full(count, -1, np.int64)
+    latest = np.full(count, -np.inf)
+    for src, dst, _ in _decoded(key, count):
+        np.maximum.at(latest, dst, n.end[src])
+    best = np.full(count, -1, np.int64)
+    for src, dst, ek in _decoded(key, count):
+        on = n.end[src] == latest[dst]
         np.maximum.at(best, dst[on], (kinds - 1 - ek[on]) * count + src[on])
-        has = best >= 0
-        pred[has] = best[has] % count
-    return pred, origin
+    return np.where(best >= 0, best % count, -1), origin
 
 
 def build_timeline(run: Run) -> Timeline:
