@@ -656,8 +656,9 @@ def _slot_edges(n: _Nodes) -> _Pairs:
     loop = np.flatnonzero(n.on_consumer_thread)
     if not len(pw) or not len(loop):
         return none
-    heads = pd.DataFrame({"b": n.batch[pw], "th": n.th[pw], "dst": pw}).groupby(["b", "th"], sort=False)["dst"].min()
-    hd = np.sort(heads.to_numpy(np.int64))
+    # each (batch, thread)'s first node: pw ascends, so a pair's first occurrence is its lowest id
+    _, first = np.unique((n.batch[pw] + 1) * (len(n.th_rank) + 1) + n.th[pw], return_index=True)
+    hd = np.sort(pw[first])
     prev = np.full(len(n.start), -1, np.int64)
     a_, b_ = _consecutive(n.thread_order, n.th[n.thread_order])
     prev[b_] = a_
