@@ -63,8 +63,8 @@ class CriticalPath:
 
     From :func:`critical_path`, the path's rows are taken from the timeline
     the first time :attr:`path` is read (a full epoch's path has millions
-    of nodes); :attr:`node_count`, :attr:`batches`, :attr:`length_s` and
-    :attr:`head_s` are answered without them.
+    of nodes; until then it keeps a reference to the timeline); :attr:`node_count`,
+    :attr:`batches`, :attr:`length_s` and :attr:`head_s` are answered without them.
 
     Attributes
     ----------

@@ -156,8 +156,8 @@ class Timeline:
     nodes, edges : DataFrame, optional
         See :data:`NODE_COLUMNS` and :data:`EDGE_COLUMNS` (or give ``columns``).
     origin_s, end_s : float
-    columns : NodeColumns, optional
-        Compact nodes (with ``edge_columns``) in place of the frames.
+    columns, edge_columns : NodeColumns, EdgeColumns, optional
+        Compact nodes and edges (:mod:`pipeprobe._nodecolumns`) in place of the frames.
 
     Attributes
     ----------
