@@ -43,26 +43,40 @@ PHASES = ("merge", "timeline", "critical path", "stalls", "stage table", "replay
 TARGET_SPANS, TARGET_S, TARGET_GIB = 10_000_000, 60.0, 4.0
 
 
+def _held_gib() -> float:
+    """Resident memory now (Linux /proc; NaN elsewhere)."""
+    try:
+        return int(Path("/proc/self/statm").read_text().split()[1]) * resource.getpagesize() / 2**30
+    except (OSError, IndexError, ValueError):
+        return float("nan")
+
+
 def one(run_dir: Path) -> dict[str, float]:
-    """One report, as ``pipeprobe report --json`` makes it, timed phase by phase."""
+    """One report, as ``pipeprobe report --json`` makes it, timed phase by phase (with the peak and held memory)."""
     marks = [time.perf_counter()]
+    memory: list[tuple[float, float]] = []
+
+    def mark() -> None:
+        marks.append(time.perf_counter())
+        memory.append((resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2**20, _held_gib()))
+
     run = pipeprobe.load(run_dir)
-    marks.append(time.perf_counter())
+    mark()
     tl = build_timeline(run)
-    marks.append(time.perf_counter())
+    mark()
     cp = critical_path(tl)
-    marks.append(time.perf_counter())
+    mark()
     st = stall_summary(run, cp)
-    marks.append(time.perf_counter())
+    mark()
     stages = stage_stats(run, cp, st, input_on_path=cp.input_share >= _analysis._SIDE_WORTH)
     actions = _analysis.suggest_actions(cp, st, stages, workers_restart=_analysis.workers_restarted(run))
-    marks.append(time.perf_counter())
+    mark()
     analysis = _analysis.Analysis(run=run, timeline=tl, critical=cp, stalls=st, stages=stages,
                                   actions=tuple(actions))
     print_report(Report(analysis), io.StringIO(), as_json=True)
-    marks.append(time.perf_counter())
+    mark()
     out = {name: b - a for name, a, b in zip(PHASES, marks, marks[1:])}
-    out.update(total=marks[-1] - marks[0], spans=len(run.spans), nodes=len(cp.path))
+    out.update(total=marks[-1] - marks[0], spans=len(run.spans), nodes=cp.node_count, memory=memory)
     return out
 
 
@@ -92,6 +106,8 @@ def main() -> None:
     for key in PHASES:
         vals = [r[key] for r in results]
         print(f"  {key:<17} median {statistics.median(vals):6.2f} s   (runs: {', '.join(f'{v:.2f}' for v in vals)})")
+    print("  memory after each phase of the first repeat (GiB): "
+          + ", ".join(f"{k} peak {p:.2f} held {h:.2f}" for k, (p, h) in zip(PHASES, first["memory"])))
     print(f"  peak RSS of the process {rss_gib:.2f} GiB ({rss_gib * 2**30 / max(1, first['spans']):.0f} bytes a span)")
     if peak is not None:
         print(f"  peak traced allocations {peak / 2**30:.2f} GiB")

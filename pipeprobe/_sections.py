@@ -217,7 +217,7 @@ def stall_data(a: Analysis) -> dict[str, Any]:
 # -- critical path -------------------------------------------------------------------------------------
 def critical_text(a: Analysis) -> list[str]:
     cp = a.critical
-    lines = [f"critical path  {len(cp.path)} nodes over {len(cp.batches)} batches; where the wall time went:"]
+    lines = [f"critical path  {cp.node_count} nodes over {len(cp.batches)} batches; where the wall time went:"]
     for row in cp.shares.head(8).itertuples():
         bar = "#" * int(round(30 * row.share))
         lines.append(f"  {printable(row.label)[:28]:<28} {row.seconds:10.3f} s {pct(row.share)}  {bar}")
@@ -238,7 +238,7 @@ def critical_data(a: Analysis) -> dict[str, Any]:
                            "share": r.share} for r in cp.shares.itertuples()],
         "critical_path_lanes": [{"lane": str(r.lane), "seconds": r.seconds, "share": r.share}
                                 for r in cp.lanes.itertuples()],
-        "critical_path_nodes": int(len(cp.path)),
+        "critical_path_nodes": int(cp.node_count),
         "critical_path_batches": len(cp.batches),
     }
 

@@ -12,7 +12,6 @@ its end, so the attribution adds up to the wall time exactly.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -59,9 +58,13 @@ SHARE_COLUMNS = {
 }
 
 
-@dataclass(frozen=True)
 class CriticalPath:
     """The observed critical path and its attribution.
+
+    From :func:`critical_path`, the path's rows are taken from the timeline
+    the first time :attr:`path` is read (a full epoch's path has millions
+    of nodes; until then it keeps a reference to the timeline); :attr:`node_count`,
+    :attr:`batches`, :attr:`length_s` and :attr:`head_s` are answered without them.
 
     Attributes
     ----------
@@ -79,12 +82,37 @@ class CriticalPath:
         The run's time axis (from the timeline).
     """
 
-    path: pd.DataFrame
-    segments: pd.DataFrame
-    shares: pd.DataFrame
-    lanes: pd.DataFrame
-    origin_s: float
-    end_s: float
+    __slots__ = ("_path", "_timeline", "_ids", "segments", "shares", "lanes", "origin_s", "end_s")
+
+    def __init__(self, path: pd.DataFrame | None = None, segments: pd.DataFrame | None = None,
+                 shares: pd.DataFrame | None = None, lanes: pd.DataFrame | None = None, origin_s: float = 0.0,
+                 end_s: float = 0.0, *, timeline: Timeline | None = None, ids: np.ndarray | None = None) -> None:
+        if (path is None) == (ids is None) or segments is None or shares is None or lanes is None:
+            raise TypeError("CriticalPath takes path (or timeline and ids), segments, shares and lanes")
+        self._path, self._timeline, self._ids = path, timeline, ids
+        self.segments, self.shares, self.lanes = segments, shares, lanes
+        self.origin_s, self.end_s = float(origin_s), float(end_s)
+
+    @property
+    def path(self) -> pd.DataFrame:
+        """See the class docstring (taken from the timeline on first read)."""
+        if self._path is None:
+            self._path = self._timeline.node_rows(self._ids)
+            self._timeline = None
+        return self._path
+
+    @property
+    def node_count(self) -> int:
+        """Nodes on the path (``len(path)``), without building it."""
+        return len(self._ids) if self._path is None else len(self._path)
+
+    def _column(self, name: str) -> np.ndarray:
+        if self._path is not None:
+            return self._path[name].to_numpy()
+        return self._timeline.node_column(name)[self._ids]
+
+    def __repr__(self) -> str:
+        return f"<pipeprobe.CriticalPath: {self.node_count} nodes, {self.wall_s:.3f} s>"
 
     @property
     def wall_s(self) -> float:
@@ -94,25 +122,25 @@ class CriticalPath:
     @property
     def length_s(self) -> float:
         """Length of the path itself: from the origin to the end of its last node."""
-        if self.path.empty:
+        if not self.node_count:
             return 0.0
-        return float(self.path["end_s"].iloc[-1]) - self.origin_s
+        return float(self._column("end_s")[-1]) - self.origin_s
 
     @property
     def batches(self) -> list[int]:
         """Batch ids with at least one node on the path, in order."""
-        b = self.path["batch_id"].to_numpy()
+        b = self._column("batch_id")
         return [int(x) for x in np.unique(b[b >= 0])]
 
     @property
     def head_s(self) -> float:
         """Unexplained gap before the first node of the path (start-up)."""
-        return float(self.path["start_s"].iloc[0]) - self.origin_s if len(self.path) else 0.0
+        return float(self._column("start_s")[0]) - self.origin_s if self.node_count else 0.0
 
     @property
     def tail_s(self) -> float:
         """Time from the end of the last step to the end of the run (shut-down), counted as gap."""
-        return self.end_s - self.origin_s - self.length_s if len(self.path) else self.wall_s
+        return self.end_s - self.origin_s - self.length_s if self.node_count else self.wall_s
 
     def share_of(self, label: str) -> float:
         """Share of wall time attributed to ``label`` (0 when absent)."""
@@ -175,11 +203,10 @@ def critical_path(timeline: Timeline) -> CriticalPath:
     Kelley, J. E. and Walker, M. R. (1959). Critical-path planning and
     scheduling. Proc. Eastern Joint Computer Conference, 160-173.
     """
-    nodes = timeline.nodes
     origin, end = timeline.origin_s, timeline.end_s
     sink = sink_node(timeline)
-    ids = _walk(nodes["pred"].to_numpy(np.int64), sink) if sink >= 0 else np.zeros(0, np.int64)
-    path = nodes.iloc[ids].reset_index(drop=True)
+    ids = _walk(timeline.node_column("pred"), sink) if sink >= 0 else np.zeros(0, np.int64)
+    path = timeline.node_rows(ids)  # the path's rows only: a large run's nodes frame is never built
     seg = _segment_arrays(path, ids, origin, end)
     names = seg.pop("names")
     keep = seg.pop("seconds") > 0
@@ -192,7 +219,9 @@ def critical_path(timeline: Timeline) -> CriticalPath:
     })
     codes = pd.DataFrame({c: seg[c] for c in ("label", "kind", "side", "lane")}).assign(seconds=segments["seconds"])
     shares, lanes = _attribute_codes(codes, names, end - origin)
-    return CriticalPath(path=path, segments=segments, shares=shares, lanes=lanes, origin_s=origin, end_s=end)
+    del path  # taken again from the timeline when read: a full epoch's path is large
+    return CriticalPath(segments=segments, shares=shares, lanes=lanes, origin_s=origin, end_s=end, timeline=timeline,
+                        ids=ids)
 
 
 def attribute(segments: pd.DataFrame, wall: float) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -293,4 +322,4 @@ def critical_path_length(timeline: Timeline) -> float:
     sink = sink_node(timeline)
     if sink < 0:
         return 0.0
-    return float(timeline.nodes["end_s"].iloc[sink]) - timeline.origin_s
+    return float(timeline.node_column("end_s")[sink]) - timeline.origin_s

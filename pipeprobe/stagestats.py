@@ -18,7 +18,7 @@ import pandas as pd
 
 from .critical import CriticalPath
 from .load import Run
-from .nesting import as_text, span_pieces
+from .nesting import span_pieces
 from .stalls import Stalls
 
 __all__ = ["StageStats", "stage_stats", "STAGE_COLUMNS", "SLOWEST_COLUMNS", "SATURATED_FROM", "TAIL_FRACTION"]
@@ -163,6 +163,28 @@ def _table(run: Run, critical: CriticalPath | None, wall_s: float, pieces: pd.Da
     return t.sort_values(["total_s", "stage"], ascending=[False, True], kind="stable")[cols].reset_index(drop=True)
 
 
+def _label_sample_seconds(pieces: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Seconds per (label, sample) of the pieces with a sample id: ``(label code, sample id, seconds)``.
+
+    The pair travels as one int64 key ``label * samples + sample`` (a sample
+    rank when the ids are too large for that), so the sums are one group-by on
+    one integer column, in the order the pairs first appear.
+    """
+    sample = pieces["sample_id"].to_numpy(np.int64)
+    has = sample >= 0
+    label = pieces["label"].cat.codes.to_numpy(np.int64)[has]
+    sample = sample[has]
+    values, uniques = sample, None
+    if len(sample) and int(sample.max()) + 1 > (1 << 62) // max(1, len(pieces["label"].cat.categories)):
+        values, uniques = pd.factorize(sample, sort=True)  # ranks sort as the ids do
+        values = values.astype(np.int64)
+    span = int(values.max()) + 1 if len(values) else 1
+    sums = pd.Series(pieces["dur_s"].to_numpy(np.float64)[has]).groupby(label * span + values, sort=False).sum()
+    key = sums.index.to_numpy(np.int64)
+    ids = key % span if uniques is None else uniques[key % span]
+    return key // span, ids, sums.to_numpy(np.float64)
+
+
 def _slowest(pieces: pd.DataFrame) -> pd.DataFrame:
     """Per label, its slowest samples (ids, seconds, share of the label's time); column operations only.
 
@@ -170,28 +192,31 @@ def _slowest(pieces: pd.DataFrame) -> pd.DataFrame:
     time (its label). One pass over all labels at once, not a Python loop
     per stage: a run with tens of thousands of stage names must not stall the report.
     """
-    sp = pieces[pieces["sample_id"] >= 0] if len(pieces) else pieces
-    if not len(sp):
+    if not len(pieces) or not (pieces["sample_id"].to_numpy() >= 0).any():
         return pd.DataFrame([], columns=list(SLOWEST_COLUMNS))
-    per = sp.groupby([sp["label"].rename("stage"), "sample_id"], sort=False, observed=True)["dur_s"].sum().reset_index()
+    code, sample, dur = _label_sample_seconds(pieces)
     # the label categories are sorted text (nesting.span_pieces), so their codes sort as the names do
-    code = per["stage"].cat.codes.to_numpy(np.int64)
-    dur = per["dur_s"].to_numpy(np.float64)
-    # by (label, seconds descending, sample id): three stable sorts, the last a radix sort on small label codes
-    # (durations in whole nanoseconds tie often, so the sample id is needed)
-    o = np.argsort(per["sample_id"].to_numpy(np.int64), kind="stable")
-    o = o[np.argsort(-dur[o], kind="stable")]
-    o = o[np.argsort(code[o].astype(np.uint16) if code.max() < (1 << 16) else code[o], kind="stable")]
-    code, dur = code[o], dur[o]
-    by_stage = pd.Series(dur).groupby(code, sort=True)
-    n = by_stage.transform("size").to_numpy()
+    by_code = np.argsort(code.astype(np.uint16) if code.max() < (1 << 16) else code, kind="stable")
+    first = np.r_[0, np.flatnonzero(np.diff(code[by_code])) + 1]
+    n = np.diff(np.r_[first, len(code)])
     k = np.minimum(_TAIL_MAX, np.maximum(1, np.ceil(TAIL_FRACTION * n))).astype(np.int64)
-    total = by_stage.transform("sum").to_numpy()
-    first = np.r_[0, np.flatnonzero(code[1:] != code[:-1]) + 1]
-    rank_in_stage = np.arange(len(code)) - np.repeat(first, np.diff(np.r_[first, len(code)]))
-    top = rank_in_stage < k
-    top = pd.DataFrame({"stage": as_text(per["stage"].iloc[o[top]]), "sample_id": per["sample_id"].to_numpy()[o[top]],
-                        "dur_s": dur[top], "n": n[top], "k": k[top], "total": total[top]})
+    desc = dur[by_code]
+    for f, m in zip(first.tolist(), n.tolist(), strict=True):  # one sort per label, largest first
+        desc[f:f + m] = np.sort(desc[f:f + m])[::-1]
+    labels = code[by_code[first]]
+    # each label's total summed in that order (as the share has always been worked out)
+    total = pd.Series(desc).groupby(np.repeat(np.arange(len(first)), n), sort=True).sum().to_numpy()
+    threshold = np.zeros(int(code.max()) + 1)
+    threshold[labels] = desc[first + k - 1]  # the k-th largest of each label
+    cand = np.flatnonzero(dur >= threshold[code])  # the top k and the ties at the k-th
+    cand = cand[np.lexsort((sample[cand], -dur[cand], code[cand]))]  # by label, seconds descending, sample id
+    g = np.searchsorted(labels, code[cand])  # the label group of each candidate
+    rank = np.arange(len(cand)) - np.searchsorted(code[cand], code[cand], side="left")
+    top = cand[rank < k[g]]
+    g = np.searchsorted(labels, code[top])
+    names = np.array([str(x) for x in pieces["label"].cat.categories], dtype=object)
+    top = pd.DataFrame({"stage": names[code[top]], "sample_id": sample[top], "dur_s": dur[top],
+                        "n": n[g], "k": k[g], "total": total[g]})
     out = top.groupby("stage", sort=True).agg(
         samples=("k", "first"), of_samples=("n", "first"), sample_ids=("sample_id", list),
         seconds=("dur_s", "sum"), total=("total", "first"))

@@ -81,11 +81,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from functools import cached_property
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Iterator
 
 import numpy as np
 import pandas as pd
 
+from ._nodecolumns import NODE_KINDS, SIDES, EdgeColumns, NodeColumns, narrow
 from .lanes import thread_lanes
 from .nesting import flatten_spans, inherit, stage_labels, thread_order
 
@@ -137,15 +138,26 @@ EDGE_COLUMNS = {
     "kind": "one of EDGE_KINDS",
 }
 
-_NODE_KINDS = ("stage", "step", "delivery")
-_N_STAGE, _N_STEP, _N_DELIVERY = range(3)
-_SIDES = ("input", "delivery", "consumer")
-_S_INPUT, _S_DELIVERY, _S_CONSUMER = range(3)
+_N_STAGE, _N_STEP, _N_DELIVERY = (NODE_KINDS.index(k) for k in ("stage", "step", "delivery"))
+_S_INPUT, _S_DELIVERY, _S_CONSUMER = (SIDES.index(k) for k in ("input", "delivery", "consumer"))
 
 
-@dataclass(frozen=True)
 class Timeline:
     """Dependency graph of a run. See the module docstring for its rules.
+
+    A timeline from :func:`build_timeline` holds its nodes and edges as
+    compact columns (:mod:`pipeprobe._nodecolumns`) and builds the two
+    DataFrames the first time they are read; :func:`pipeprobe.critical.critical_path`
+    reads the columns it needs without them. Once built, the frames are the
+    timeline's nodes and edges (a change to them is what later readers see).
+
+    Parameters
+    ----------
+    nodes, edges : DataFrame, optional
+        See :data:`NODE_COLUMNS` and :data:`EDGE_COLUMNS` (or give ``columns``).
+    origin_s, end_s : float
+    columns, edge_columns : NodeColumns, EdgeColumns, optional
+        Compact nodes and edges (:mod:`pipeprobe._nodecolumns`) in place of the frames.
 
     Attributes
     ----------
@@ -160,10 +172,61 @@ class Timeline:
         End of the run: the later of the recorded end and the last node end.
     """
 
-    nodes: pd.DataFrame
-    edges: pd.DataFrame
-    origin_s: float
-    end_s: float
+    __slots__ = ("_nodes", "_edges", "_columns", "_edge_columns", "origin_s", "end_s")
+
+    def __init__(self, nodes: pd.DataFrame | None = None, edges: pd.DataFrame | None = None, origin_s: float = 0.0,
+                 end_s: float = 0.0, *, columns: NodeColumns | None = None,
+                 edge_columns: EdgeColumns | None = None) -> None:
+        if (nodes is None) == (columns is None) or (edges is None) == (edge_columns is None):
+            raise TypeError("Timeline takes nodes and edges, or columns and edge_columns")
+        self._nodes, self._edges = nodes, edges
+        self._columns, self._edge_columns = columns, edge_columns
+        self.origin_s, self.end_s = float(origin_s), float(end_s)
+
+    @property
+    def nodes(self) -> pd.DataFrame:
+        """See :data:`NODE_COLUMNS` (built on first read from the compact columns)."""
+        if self._nodes is None:
+            self._nodes = self._columns.frame()
+            self._columns = None  # the frame holds the nodes now
+        return self._nodes
+
+    @property
+    def edges(self) -> pd.DataFrame:
+        """See :data:`EDGE_COLUMNS` (built on first read from the compact columns)."""
+        if self._edges is None:
+            self._edges = self._edge_columns.frame()
+            self._edge_columns = None
+        return self._edges
+
+    @property
+    def node_count(self) -> int:
+        """Nodes, without building the frame."""
+        return len(self._columns) if self._nodes is None else len(self._nodes)
+
+    @property
+    def edge_count(self) -> int:
+        """Edges, without building the frame."""
+        return len(self._edge_columns) if self._edges is None else len(self._edges)
+
+    def node_column(self, name: str) -> np.ndarray:
+        """The numeric node column ``name`` (``start_s``, ``end_s``, ``pred``, ``batch_id``) as an array, without
+        the frame."""
+        if self._nodes is not None:
+            return self._nodes[name].to_numpy()
+        c = self._columns
+        return {"start_s": c.start, "end_s": c.end, "pred": c.pred, "batch_id": c.batch}[name]
+
+    def node_rows(self, ids: np.ndarray) -> pd.DataFrame:
+        """Rows ``ids`` of :attr:`nodes`, renumbered from 0 (``nodes.iloc[ids]``), without the whole frame."""
+        if self._nodes is not None:
+            return self._nodes.iloc[ids].reset_index(drop=True)
+        return self._columns.frame(ids)
+
+    def _is_step(self) -> np.ndarray:
+        if self._nodes is not None:
+            return (self._nodes["kind"] == "step").to_numpy()
+        return self._columns.kind == _N_STEP
 
     @property
     def wall_s(self) -> float:
@@ -237,17 +300,16 @@ class Timeline:
         return g
 
     def __repr__(self) -> str:
-        return f"<pipeprobe.Timeline: {len(self.nodes)} nodes, {len(self.edges)} edges, {self.wall_s:.3f} s>"
+        return f"<pipeprobe.Timeline: {self.node_count} nodes, {self.edge_count} edges, {self.wall_s:.3f} s>"
 
 
 def sink_node(timeline: Timeline) -> int:
     """Node the critical path is walked back from: the last step to end (else the last node); -1 if none."""
-    nodes = timeline.nodes
-    if nodes.empty:
+    if not timeline.node_count:
         return -1
-    end = nodes["end_s"].to_numpy()
-    steps = np.flatnonzero((nodes["kind"] == "step").to_numpy())
-    pool = steps if len(steps) else np.arange(len(nodes))
+    end = timeline.node_column("end_s")
+    steps = np.flatnonzero(timeline._is_step())
+    pool = steps if len(steps) else np.arange(timeline.node_count)
     # last to end; among equal ends the highest id (latest start)
     order = np.lexsort((pool, end[pool]))
     return int(pool[order[-1]])
@@ -594,8 +656,9 @@ def _slot_edges(n: _Nodes) -> _Pairs:
     loop = np.flatnonzero(n.on_consumer_thread)
     if not len(pw) or not len(loop):
         return none
-    heads = pd.DataFrame({"b": n.batch[pw], "th": n.th[pw], "dst": pw}).groupby(["b", "th"], sort=False)["dst"].min()
-    hd = np.sort(heads.to_numpy(np.int64))
+    # each (batch, thread)'s first node: pw ascends, so a pair's first occurrence is its lowest id
+    _, first = np.unique((n.batch[pw] + 1) * (len(n.th_rank) + 1) + n.th[pw], return_index=True)
+    hd = np.sort(pw[first])
     prev = np.full(len(n.start), -1, np.int64)
     a_, b_ = _consecutive(n.thread_order, n.th[n.thread_order])
     prev[b_] = a_
@@ -632,11 +695,12 @@ _EDGE_RULES = (_sample_edges, _assembly_edges, _delivery_edges, _consumer_edges,
                _thread_edges)
 
 
-def _edges(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Every rule's edges that the recording agrees with, one per node pair (the first kind in EDGE_KINDS order).
+def _edges(n: _Nodes) -> np.ndarray:
+    """Every rule's edges that the recording agrees with, as one int64 key each: ``(src * nodes + dst) * kinds + kind``.
 
-    The edges travel as one int64 key ``(src * nodes + dst) * kinds + kind``, sorted in place: a sort of
-    that key orders them by (src, dst, kind), and a large run holds one array of them, not three.
+    Unsorted, and a node pair may come under several kinds: the last-arriving dependency needs neither, and
+    :class:`pipeprobe._nodecolumns.EdgeColumns` sorts the keys (one per pair) only when the edges are read.
+    A large run holds one array of them, not three.
     """
     count, kinds = len(n.start), len(EDGE_KINDS)
     keys = []
@@ -646,30 +710,40 @@ def _edges(n: _Nodes) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         src, dst = src[ok], dst[ok]
         ok = n.end[src] <= n.start[dst]  # the recording must agree with the dependency
         keys.append((src[ok] * count + dst[ok]) * kinds + k)  # exact below 2**30 nodes
-    key = np.concatenate(keys)
-    del keys
-    for cached in ("sample_chains", "thread_order"):  # they served the rules: free them before the sort
+    for cached in ("sample_chains", "thread_order"):  # they served the rules: free them
         n.__dict__.pop(cached, None)
-    key.sort()
-    pair = key // kinds
-    first = np.ones(len(key), bool)
-    first[1:] = pair[1:] != pair[:-1]
-    key, pair = key[first], pair[first]
-    return pair // count, pair % count, (key % kinds).astype(np.int8)
+    return np.concatenate(keys)
 
 
-def _last_arriving(n: _Nodes, src: np.ndarray, dst: np.ndarray, ek: np.ndarray) -> tuple[np.ndarray, float]:
-    """Each node's last-arriving dependency (latest end; ties go to dependency edges), and the origin."""
-    count = len(n.start)
+#: Edges decoded at a time by :func:`_last_arriving` (a bound on its scratch memory: about 40 bytes an edge).
+_EDGE_CHUNK = 1 << 22
+
+
+def _decoded(key: np.ndarray, count: int) -> Iterator[tuple[np.ndarray, np.ndarray, np.ndarray]]:
+    """``(src, dst, kind)`` of the edge keys of :func:`_edges`, a chunk at a time."""
+    kinds = len(EDGE_KINDS)
+    for at in range(0, len(key), _EDGE_CHUNK):
+        pair, ek = np.divmod(key[at:at + _EDGE_CHUNK], kinds)
+        src, dst = np.divmod(pair, count)
+        yield src, dst, ek
+
+
+def _last_arriving(n: _Nodes, key: np.ndarray) -> tuple[np.ndarray, float]:
+    """Each node's last-arriving dependency (latest end; ties go to dependency edges), and the origin.
+
+    Two passes over the edges, no sort: each node's latest dependency end, then among the dependencies that
+    ended then, the dependency kind (lowest code) and then the highest node id, as one int key.
+    """
+    count, kinds = len(n.start), len(EDGE_KINDS)
     origin = float(min(0.0, n.start.min())) if count else 0.0
-    pred = np.full(count, -1, np.int64)
-    if len(src):
-        # the latest end wins, then the dependency kind (lowest code), then the highest node id: one key
-        _, end_rank = np.unique(n.end, return_inverse=True)
-        key = (end_rank[src] * len(EDGE_KINDS) + (len(EDGE_KINDS) - 1 - ek)) * count + src
-        best = pd.Series(key).groupby(dst, sort=False).max()
-        pred[best.index.to_numpy(np.int64)] = best.to_numpy(np.int64) % count
-    return pred, origin
+    latest = np.full(count, -np.inf)
+    for src, dst, _ in _decoded(key, count):
+        np.maximum.at(latest, dst, n.end[src])
+    best = np.full(count, -1, np.int64)
+    for src, dst, ek in _decoded(key, count):
+        on = n.end[src] == latest[dst]
+        np.maximum.at(best, dst[on], (kinds - 1 - ek[on]) * count + src[on])
+    return np.where(best >= 0, best % count, -1), origin
 
 
 def build_timeline(run: Run) -> Timeline:
@@ -713,50 +787,25 @@ def build_timeline(run: Run) -> Timeline:
     order = _node_order(s, d)
     sides = _span_sides(s, d)
     n = _node_arrays(s, d, order, sides)
-    src, dst, ek = _edges(n)
-    pred, origin = _last_arriving(n, src, dst, ek)
-    nodes = _node_frame(s, d, order, n, sides, pred, origin)
-    edges = pd.DataFrame({"src": src, "dst": dst,
-                          "kind": pd.Categorical.from_codes(ek.astype(np.int64), categories=list(EDGE_KINDS))},
-                         copy=False)
+    key = _edges(n)
+    pred, origin = _last_arriving(n, key)
+    edges = EdgeColumns(key=key, nodes=len(n.start), kinds=EDGE_KINDS)
+    columns = _node_columns(s, d, order, n, sides, pred, origin)
     end_s = max(float(run.wall_s), float(n.end.max()) if len(n.end) else 0.0)
-    return Timeline(nodes=nodes, edges=edges, origin_s=origin, end_s=end_s)
+    return Timeline(origin_s=origin, end_s=end_s, columns=columns, edge_columns=edges)
 
 
-def _node_frame(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np.ndarray, np.ndarray],
-                pred: np.ndarray, origin: float) -> pd.DataFrame:
-    """The nodes as the documented DataFrame (:data:`NODE_COLUMNS`)."""
-    ready = np.where(pred >= 0, n.end[np.maximum(pred, 0)], origin) if len(pred) else np.zeros(0)
+def _node_columns(s: _Spans, d: _Deliveries, o: _Order, n: _Nodes, sides: tuple[np.ndarray, np.ndarray],
+                  pred: np.ndarray, origin: float) -> NodeColumns:
+    """The nodes as compact columns (:class:`pipeprobe._nodecolumns.NodeColumns`; the frame of
+    :data:`NODE_COLUMNS` on request)."""
     side = np.where(s.is_step | sides[1], _S_CONSUMER, _S_INPUT).astype(np.int8)
-    lane = s.th_lane[n.th]
-    used = np.unique(lane)
-    lane_cats = sorted(set(s.lane_names[used]))  # threads of one worker slot share a name
-    code_of_lane = np.full(len(s.lane_names), -1, np.int64)
-    code_of_lane[used] = [lane_cats.index(name) for name in s.lane_names[used]]
     has_b = d.of_span >= 0
-    nodes = pd.DataFrame(
-        {
-            "node": n.ids,
-            "kind": pd.Categorical.from_codes(n.kind, categories=list(_NODE_KINDS)),
-            "stage": pd.Categorical.from_codes(o.take(s.code, s.stages.index("delivery")), categories=s.stages),
-            "side": pd.Categorical.from_codes(o.take(side, _S_DELIVERY), categories=list(_SIDES)),
-            "start_s": n.start,
-            "end_s": n.end,
-            "dur_s": n.end - n.start,
-            "rank": n.rank,
-            "pid": s.th_pid[n.th],
-            "tid": s.th_tid[n.th],
-            "lane": pd.Categorical.from_codes(code_of_lane[lane], categories=lane_cats),
-            "batch_id": o.take(np.where(has_b, s.batch, -1), s.batch[d.wait]),
-            "sample_id": n.sample,
-            "epoch": o.take(s.epoch, s.epoch[d.wait]),
-            "span": o.take(s.row, -1),
-            "pred": pred,
-            "ready_s": ready,
-            "gap_s": n.start - ready,
-            "weight_s": n.end - ready,
-        },
-        copy=False,  # each column stays its own array: no second copy of the nodes while the frame is built
+    return NodeColumns(
+        kind=n.kind, stage=narrow(o.take(s.code, s.stages.index("delivery"))), stages=list(s.stages),
+        side=o.take(side, _S_DELIVERY).astype(np.int8), start=n.start, end=n.end, th=n.th,
+        th_rank=s.th_rank, th_pid=s.th_pid, th_tid=s.th_tid, th_lane=s.th_lane, lane_names=s.lane_names,
+        batch=narrow(o.take(np.where(has_b, s.batch, -1), s.batch[d.wait])), sample=narrow(n.sample),
+        epoch=narrow(o.take(s.epoch, s.epoch[d.wait])), span=narrow(o.take(s.row, -1)), pred=narrow(pred),
+        origin=origin,
     )
-    nodes["stage"] = nodes["stage"].cat.remove_unused_categories()
-    return nodes

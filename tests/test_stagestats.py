@@ -87,6 +87,19 @@ class TestSlowest:
         assert (1, 100, [37]) == (tail["samples"], tail["of_samples"], tail["sample_ids"])
         assert pytest.approx(10 / 109) == tail["share"]
 
+    def test_samples_summed_and_ties_to_the_lower_id(self, tmp_path):
+        """Hand check: 199 samples, 2 listed; a sample's two spans add up (6 ms), a 5 ms tie goes to the lower id."""
+        rows, t = [], 0.0
+        for i in [i for i in range(198) if i != 3] + [7]:  # 197 samples of 1 ms, sample 7 twice 3 ms
+            d = 3.0 if i == 7 else 1.0
+            rows.append(stage("decode", t, t + d, sample=i, epoch=0, tid=1))
+            t += d
+        # the same instants on two threads: durations equal to the last bit
+        rows += [stage("decode", t, t + 5.0, sample=s, epoch=0, tid=tid) for s, tid in ((2**40, 2), (3, 3))]
+        tail = stage_stats(pipeprobe.load(write_run(tmp_path / "r", {100: rows}))).tail_of("decode")
+        assert (2, 199, [7, 3]) == (tail["samples"], tail["of_samples"], tail["sample_ids"])
+        assert pytest.approx(11 / 212) == tail["share"]
+
 
 class TestCpuView:
     def _run(self, tmp_path, pct):

@@ -289,12 +289,13 @@ def _stage_seconds(position: np.ndarray, stage: np.ndarray, dur_s: np.ndarray, c
     Past :data:`MAX_PLAN_STAGES` names, the ones with the least time (and
     not in ``keep``) share one :data:`OTHER_STAGES` column.
     """
-    names = list(leading) + [n for n in dict.fromkeys(stage) if n not in leading]
+    seen, distinct = pd.factorize(stage, use_na_sentinel=False)  # one pass over the names, in order of first appearance
+    names = list(leading) + [n for n in distinct if n not in leading]
     folded: tuple[str, ...] = ()
     if len(names) > MAX_PLAN_STAGES:
         names, folded = _fold_small_stages(names, stage, dur_s, keep, leading)
     index = pd.Index(names)
-    code = index.get_indexer(stage) if len(stage) else np.zeros(0, np.int64)
+    code = index.get_indexer(distinct)[seen] if len(stage) else np.zeros(0, np.int64)
     notes: tuple[str, ...] = ()
     if folded:
         code = np.where(code < 0, len(names) - 1, code)
