@@ -418,3 +418,21 @@ class TestLoadRange:
         assert "range: 0.101 s to 0.201 s" in format_prediction(p)
         d = json.loads(json.dumps(p.to_dict()))
         assert ([pytest.approx(0.101), pytest.approx(0.201)], p.range_reason) == (d["wall_range_s"], d["range_reason"])
+
+    def test_workers_beside_a_step_pool_recorded_alone_give_a_range(self):
+        """A step that ran on 2 threads with 2 cores to itself, with 2 workers added: a range above the prediction
+        even though the light loader moves little CPU (a pool of threads that meet at barriers loses its speed-up
+        on oversubscribed cores; Ousterhout 1982)."""
+        from dataclasses import replace
+
+        from pipeprobe.threads import ThreadCheck
+        from pipeprobe.whatif.plan import plan_from_durations
+
+        plan = plan_from_durations([0.002] * 20, [0.02] * 20, task_cpu_s=[0.002] * 20, step_cpu_s=[0.04] * 20,
+                                   workers=0, cores=2)
+        plan = replace(plan, step_width=2.0, threads=ThreadCheck("the loader ran no worker processes", cores=2,
+                                                                 step_threads=2))
+        p = whatif(plan, workers=2, prefetch=4)
+        low, high = p.wall_range_s
+        assert (pytest.approx(p.predicted_wall_s), True) == (low, high > p.predicted_wall_s)
+        assert "workers join a step that ran on 2 threads" in p.range_reason

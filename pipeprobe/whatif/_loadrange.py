@@ -24,6 +24,14 @@ change that frees the cores) or slowest (one that loads them) tenth of
 batches in this recording, :data:`SPREAD_QUANTILE`: the fastest and the
 slowest the recording shows that work running.
 
+Workers added to a recording without any, beside a step that ran on a
+pool of threads (torch's default intra-op threads, BLAS), get a range too,
+whatever the CPU seconds moved: the recording cannot show how the pool
+fares once the cores are oversubscribed, and its thread check had nothing
+to compare. Its high end is also the replay with the step's pool losing
+its speed-up whenever the cores are oversubscribed, as the thread range's
+(:mod:`pipeprobe.whatif._threadrange`).
+
 References
 ----------
 .. [1] L. Kleinrock, *Queueing Systems, Volume 2*, Wiley, 1976, ch. 4 (processor sharing).
@@ -81,6 +89,17 @@ def moved_cpu_fraction(plan: ReplayPlan, scenario: Scenario) -> tuple[float, boo
     return moved / (rec_l + rec_c), bool(new_l + new_c < rec_l + rec_c and not to_workers)
 
 
+def _pool_joined(plan: ReplayPlan, scenario: Scenario) -> int:
+    """The step's pool size when workers join a step that ran on several threads with the cores to itself
+    (a recording without workers: its thread check had nothing to compare), and they do not fit; else 0."""
+    check = plan.threads
+    workers = plan.workers if scenario.workers is None else scenario.workers
+    cores = float(plan.cores_left if scenario.cores is None else scenario.cores)
+    if check is None or plan.workers > 0 or workers == 0 or check.step_threads < 2:
+        return 0
+    return int(check.step_threads) if check.step_threads + workers > cores else 0
+
+
 def load_reason(plan: ReplayPlan, scenario: Scenario) -> str:
     """Why the prediction of ``scenario`` needs a load range ("" when none).
 
@@ -93,6 +112,10 @@ def load_reason(plan: ReplayPlan, scenario: Scenario) -> str:
     'the change takes 75 % of the recorded CPU seconds off the cores; the recording cannot show how fast the rest runs then'
     """
     share, frees = moved_cpu_fraction(plan, scenario)
+    pool = _pool_joined(plan, scenario)
+    if pool:
+        return (f"workers join a step that ran on {pool} threads with the cores to itself; the recording cannot show "
+                "how its pool fares beside them")
     if share < MOVED_FROM:
         return ""
     where = "off the cores" if frees else "onto the cores beside the step"
@@ -133,4 +156,9 @@ def load_range(plan: ReplayPlan, base_wall_s: float, scenario: Scenario, predict
     measured = plan.measured_wall_s
     scale = measured / base_wall_s if measured > 0 and base_wall_s > 0 else 1.0
     other = replay(spread, scenario).wall_s * scale
-    return (min(other, predicted_s), predicted_s) if frees else (predicted_s, max(other, predicted_s))
+    if frees:
+        return min(other, predicted_s), predicted_s
+    pool = _pool_joined(plan, scenario)
+    if pool:  # as the thread range's high end: the pool loses its speed-up whenever the cores are oversubscribed
+        other = max(other, replay(replace(plan, step_lockstep=float(pool)), scenario).wall_s * scale)
+    return predicted_s, max(other, predicted_s)
