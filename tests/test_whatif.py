@@ -428,7 +428,7 @@ class TestLoadRange:
         from pipeprobe.threads import ThreadCheck
         from pipeprobe.whatif.plan import plan_from_durations
 
-        plan = plan_from_durations([0.002] * 20, [0.02] * 20, task_cpu_s=[0.002] * 20, step_cpu_s=[0.04] * 20,
+        plan = plan_from_durations([0.002] * 20, [0.04] * 20, task_cpu_s=[0.002] * 20, step_cpu_s=[0.04] * 20,
                                    workers=0, cores=2)
         plan = replace(plan, step_width=2.0, threads=ThreadCheck("the loader ran no worker processes", cores=2,
                                                                  step_threads=2))
