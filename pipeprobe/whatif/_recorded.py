@@ -4,9 +4,10 @@ Each step is a function returning a small frozen record; ``build_plan``
 calls them in this order:
 
 1. :func:`consumer_batches`: the batches of one rank, in the consumer's order;
-2. :func:`user_spans`: the stage spans of those batches, cut into the
-   pieces of the innermost stage running (:func:`pipeprobe.nesting.span_pieces`:
-   nested time counts once), each placed on the loader side or the consumer side;
+2. :func:`user_spans`: the stage and step spans of those batches, cut into the
+   pieces of the innermost one running (:func:`pipeprobe.nesting.span_pieces`:
+   nested time counts once; a step keeps its time outside the stages inside
+   it), each placed on the loader side or the consumer side;
 3. :func:`loader_tasks`, :func:`batch_workers` and :func:`consumer_work`:
    per batch and stage, wall and CPU seconds; which worker ran each batch;
 4. :func:`without_contention`: the CPU contention of the recorded run taken
@@ -103,7 +104,7 @@ class _UserSpans:
     consumer_side: np.ndarray
     worker_side: np.ndarray
     cpu_known: bool
-    steps: pd.DataFrame  # the step spans of the plan's batches
+    steps: pd.DataFrame  # the steps' pieces of the plan's batches (their own time when stages ran inside)
     spans: int  # spans of the rank
     notes: tuple[str, ...]
     inside: Mapping[str, tuple[str, ...]] = field(default_factory=dict)  # stage -> labels of its time
