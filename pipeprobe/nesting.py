@@ -45,10 +45,14 @@ import pandas as pd
 
 from .record._loaders import COLLATE_STAGE, FETCH_STAGE
 
+#: The training step's stage name (``Probe.step``): a reserved stage, timed by pipeprobe.
+STEP_STAGE = "step"
+
 __all__ = ["Flat", "as_text", "flatten_spans", "inherit", "labels_inside", "own_label", "span_pieces", "stage_labels", "thread_order", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
 
-#: Stages the DataLoader hooks time by themselves; their own time is what your stages inside them left.
-AUTOMATIC_STAGES = frozenset({FETCH_STAGE, COLLATE_STAGE})
+#: Stages pipeprobe times by itself (the DataLoader hooks' and ``Probe.step``'s); their own time is what your
+#: stages inside them left.
+AUTOMATIC_STAGES = frozenset({FETCH_STAGE, COLLATE_STAGE, STEP_STAGE})
 
 #: Columns :func:`span_pieces` adds or replaces on the span rows it returns (one row per piece).
 PIECE_COLUMNS = {
@@ -69,8 +73,8 @@ def own_label(stage: str) -> str:
 
     Examples
     --------
-    >>> own_label("fetch"), own_label("augment")
-    ('fetch, outside your stages', 'augment (own time)')
+    >>> own_label("fetch"), own_label("step"), own_label("augment")
+    ('fetch, outside your stages', 'step, outside your stages', 'augment (own time)')
     """
     if stage in AUTOMATIC_STAGES:
         return f"{stage}, outside your stages"
@@ -380,7 +384,7 @@ def span_pieces(spans: pd.DataFrame, columns: Sequence[str] | None = None) -> pd
     carry = list(sp.columns) if columns is None else [c for c in sp.columns if c in set(columns)]
     if sp.empty:
         return sp[carry].assign(span=np.zeros(0, np.int64), label=pd.Categorical([]))
-    flat, code, _, labels = _flatten_frame(sp)
+    flat, code, names, labels = _flatten_frame(sp)
     dur = flat.end - flat.start
     # column by column (categoricals stay codes): no copy of the columns a piece replaces
     out = {c: (None if c in PIECE_COLUMNS else sp[c].array.take(flat.span)) for c in carry}
@@ -388,7 +392,7 @@ def span_pieces(spans: pd.DataFrame, columns: Sequence[str] | None = None) -> pd
     cats, label_code = np.unique(labels.astype(str), return_inverse=True)
     out["label"] = pd.Categorical.from_codes(label_code[code[flat.span]], categories=list(cats))
     out["start_s"], out["end_s"], out["dur_s"] = flat.start, flat.end, dur
-    out["cpu_s"] = _own_cpu(sp, flat, dur)
+    out["cpu_s"] = _own_cpu(sp, flat, dur, code == (list(names).index(STEP_STAGE) if STEP_STAGE in names else -1))
     for col in ("sample_id", "batch_id", "epoch"):
         if col in carry:
             out[col] = inherit(sp[col].to_numpy(np.int64), flat.parent, flat.depth)[flat.span]
@@ -481,8 +485,13 @@ def _flatten_frame(sp: pd.DataFrame) -> tuple[Flat, np.ndarray, np.ndarray, np.n
     return flat, code, names, stage_labels(names, code, flat.children)
 
 
-def _own_cpu(sp: pd.DataFrame, flat: Flat, piece_dur: np.ndarray) -> np.ndarray:
-    """Per piece: its span's CPU time less its children's, shared among the span's pieces by duration."""
+def _own_cpu(sp: pd.DataFrame, flat: Flat, piece_dur: np.ndarray, process_clock: np.ndarray) -> np.ndarray:
+    """Per piece: its span's CPU time less its children's, shared among the span's pieces by duration.
+
+    ``process_clock`` marks spans whose CPU time is the process's, all threads (the step: its
+    math-library pools work while the stages inside it run): their CPU beyond their children's is
+    shared by duration among all pieces inside them, theirs and their stages', not theirs alone.
+    """
     if "cpu_s" not in sp:
         return np.full(len(flat.span), np.nan)
     cpu = sp["cpu_s"].to_numpy(np.float64)
@@ -493,4 +502,15 @@ def _own_cpu(sp: pd.DataFrame, flat: Flat, piece_dur: np.ndarray) -> np.ndarray:
     own_dur = np.bincount(flat.span, weights=piece_dur, minlength=n)
     share = np.divide(piece_dur, own_dur[flat.span], out=np.zeros(len(piece_dur)), where=own_dur[flat.span] > 0)
     single = np.bincount(flat.span, minlength=n)[flat.span] == 1
-    return own[flat.span] * np.where(single, 1.0, share)
+    out = own[flat.span] * np.where(single, 1.0, share)
+    shared = process_clock & (flat.children > 0) & np.isfinite(cpu)
+    if not shared.any():
+        return out
+    # each piece's nearest enclosing (or own) process-clock span with stages inside, -1 none
+    holder = inherit(np.where(shared, np.arange(n), -1), flat.parent, flat.depth)[flat.span]
+    inside = holder >= 0
+    whole = np.bincount(holder[inside], weights=piece_dur[inside], minlength=n)  # the span's duration
+    extra = np.divide(own[holder[inside]] * piece_dur[inside], whole[holder[inside]],
+                      out=np.zeros(int(inside.sum())), where=whole[holder[inside]] > 0)
+    out[inside] = np.where(flat.span[inside] == holder[inside], 0.0, out[inside]) + extra
+    return out

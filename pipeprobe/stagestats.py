@@ -102,9 +102,13 @@ _PIECE_INPUT = ("stage", "start_s", "end_s", "rank", "pid", "tid", "sample_id")
 
 
 def _stage_pieces(run: Run) -> pd.DataFrame:
-    """The stage spans (not waits, not steps) cut into the pieces of the innermost stage running."""
+    """The stage and step spans (not waits) cut into the pieces of the innermost one running.
+
+    A step with stages inside (``forward``) keeps its own time; a stage around whole steps (an epoch
+    timer) counts the steps as its children, as it counts stages inside it.
+    """
     sp = run.spans
-    return span_pieces(sp.loc[~sp["stage"].isin(["wait", "step"]).to_numpy(), list(_PIECE_INPUT)],
+    return span_pieces(sp.loc[(sp["stage"] != "wait").to_numpy(), list(_PIECE_INPUT)],
                        columns=("stage", "sample_id"))
 
 

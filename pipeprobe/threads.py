@@ -33,6 +33,9 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+import pandas as pd
+
+from .nesting import span_pieces
 
 if TYPE_CHECKING:  # pragma: no cover
     from .load import Run
@@ -278,13 +281,23 @@ class _StepLoad:
     workers: int
 
 
+def _worker_pieces(work: pd.DataFrame) -> pd.DataFrame:
+    """The workers' stage spans cut into the pieces of the innermost stage running, with their own CPU.
+
+    A worker inside ``fetch`` with ``augment`` inside it is one busy thread, not two: nested spans
+    counted once (:func:`pipeprobe.nesting.span_pieces`).
+    """
+    cols = [c for c in ("stage", "start_s", "end_s", "rank", "pid", "tid", "cpu_s") if c in work]
+    return span_pieces(work[cols], columns=cols) if len(work) else work
+
+
 def _steps_under_load(run: Run) -> _StepLoad:
     """Step 2: the steps of the lowest rank and the loader workers' CPU load while each ran."""
     sp = run.spans
     rank = int(sp["rank"].min()) if len(sp) else 0
     sp = sp[sp["rank"] == rank]
     steps = sp[(sp["stage"] == "step") & (sp["role"] == "main")]
-    work = sp[(sp["role"] == "worker") & ~sp["stage"].isin(["wait", "step"])]
+    work = _worker_pieces(sp[(sp["role"] == "worker") & ~sp["stage"].isin(["wait", "step"])])
     procs = run.processes
     procs = procs[(procs["rank"] == rank) & (procs["role"] == "worker")] if len(procs) else procs
     workers = int(procs["slot"].nunique() if "slot" in procs else procs["pid"].nunique()) if len(procs) else 0

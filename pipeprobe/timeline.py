@@ -51,8 +51,9 @@ label :func:`pipeprobe.nesting.own_label` gives it (``fetch, outside your
 stages``), and a nested stage recorded without ids takes its sample and
 batch from the stage around it. A user stage that encloses a step or a
 delivery of its own thread (e.g. a stage around a whole epoch) is not a
-node, nor is a stage inside a step (the step stands for it); both still
-count in the per-stage statistics.
+node (it still counts in the per-stage statistics). A stage inside a step
+(``forward``, ``backward``) is: the step is cut like any enclosing stage,
+its own time under ``step, outside your stages``, still a ``step`` node.
 
 :func:`build_timeline` takes these steps, each a function below: the spans
 as arrays with their threads and lanes (``_span_arrays``; lanes named by
@@ -455,36 +456,22 @@ def _span_arrays(sp: pd.DataFrame) -> _Spans:
     )
 
 
-def _inside_steps(s: _Spans) -> np.ndarray:
-    """User stages inside a step of their own thread: the step stands for them (not nodes)."""
-    inside = np.zeros(len(s.start), bool)
-    u_idx, st_idx = np.flatnonzero(s.user), np.flatnonzero(s.is_step)
-    if len(u_idx) and len(st_idx):
-        left = pd.DataFrame({"t": s.start[u_idx], "th": s.th[u_idx], "i": u_idx}).sort_values("t", kind="stable")
-        right = pd.DataFrame({"t": s.start[st_idx], "th": s.th[st_idx], "e": s.end[st_idx]}).sort_values(
-            "t", kind="stable")
-        j = pd.merge_asof(left, right, on="t", by="th", direction="backward")
-        e = j["e"].to_numpy(np.float64)
-        ii = j["i"].to_numpy(np.int64)
-        hit = ~np.isnan(e)
-        inside[ii[hit]] = s.end[ii[hit]] <= e[hit]
-    return inside
-
-
 def _innermost(s: _Spans, d: _Deliveries) -> _Spans:
-    """Waits and steps as they are; user stages cut into the pieces of the innermost stage running.
+    """Waits as they are; steps and user stages cut into the pieces of the innermost span running.
 
-    Stage spans around a step or a delivery of their thread (umbrellas) and
-    stage spans inside a step are left out, as before; the rest become
-    :func:`pipeprobe.nesting.flatten_spans`, so nested time is counted once
-    and an enclosing stage keeps its own time under :func:`pipeprobe.nesting.own_label`.
+    Stage spans around a step or a delivery of their thread (umbrellas) are
+    left out, as before; steps and the other stages become
+    :func:`pipeprobe.nesting.flatten_spans`, so nested time is counted once:
+    a stage inside a step (``forward``) is a node of its own, and a step or
+    stage with stages inside keeps its own time under
+    :func:`pipeprobe.nesting.own_label` (``step, outside your stages``).
     """
-    nest = np.flatnonzero(s.user & ~_umbrellas(s, d) & ~_inside_steps(s))
+    nest = np.flatnonzero((s.user & ~_umbrellas(s, d)) | s.is_step)
     flat = flatten_spans(s.start[nest], s.end[nest], s.th[nest])
     label_of_code = stage_labels(s.stages, s.code[nest], flat.children)
     stages = list(s.stages) + [x for x in dict.fromkeys(label_of_code) if x not in s.stages]
     new_code = pd.Index(stages).get_indexer(label_of_code)
-    rows = np.concatenate([np.flatnonzero(~s.user), nest[flat.span]])  # umbrellas and stages in steps left out
+    rows = np.concatenate([np.flatnonzero(s.is_wait), nest[flat.span]])  # umbrellas left out
     other = rows[:len(rows) - len(flat.span)]
 
     def col(per_span: np.ndarray, pieces: np.ndarray) -> np.ndarray:
@@ -512,19 +499,28 @@ def _deliveries(s: _Spans) -> _Deliveries:
 
 
 def _umbrellas(s: _Spans, d: _Deliveries) -> np.ndarray:
-    """User stages around a step or a delivery of their own thread (e.g. an epoch timer): not nodes."""
-    anchors_t = np.concatenate([(s.start[s.is_step] + s.end[s.is_step]) / 2, d.ready])
-    anchors_th = np.concatenate([s.th[s.is_step], d.th])
+    """User stages around a whole step or a delivery of their own thread (e.g. an epoch timer): not nodes.
+
+    A stage inside a step is no umbrella: it is a piece of the step's time (:func:`_innermost`).
+    """
     umbrella = np.zeros(len(s.start), bool)
     u_idx = np.flatnonzero(s.user)
-    if len(u_idx) and len(anchors_t):
-        left = pd.DataFrame({"t": s.start[u_idx], "th": s.th[u_idx], "i": u_idx}).sort_values("t", kind="stable")
-        right = pd.DataFrame({"t": anchors_t, "th": anchors_th, "a": anchors_t}).sort_values("t", kind="stable")
+    if not len(u_idx):
+        return umbrella
+    left = pd.DataFrame({"t": s.start[u_idx], "th": s.th[u_idx], "i": u_idx}).sort_values("t", kind="stable")
+    if len(d.ready):  # a delivery strictly inside the stage
+        right = pd.DataFrame({"t": d.ready, "th": d.th, "a": d.ready}).sort_values("t", kind="stable")
         j = pd.merge_asof(left, right, on="t", by="th", direction="forward", allow_exact_matches=False)
-        a = j["a"].to_numpy(np.float64)
-        ii = j["i"].to_numpy(np.int64)
+        a, ii = j["a"].to_numpy(np.float64), j["i"].to_numpy(np.int64)
         hit = ~np.isnan(a)
         umbrella[ii[hit]] = a[hit] < s.end[ii[hit]]
+    st = np.flatnonzero(s.is_step)
+    if len(st):  # the first step starting at or after the stage also ends by the stage's end
+        right = pd.DataFrame({"t": s.start[st], "th": s.th[st], "e": s.end[st]}).sort_values("t", kind="stable")
+        j = pd.merge_asof(left, right, on="t", by="th", direction="forward")
+        e, ii = j["e"].to_numpy(np.float64), j["i"].to_numpy(np.int64)
+        hit = ~np.isnan(e)
+        umbrella[ii[hit]] |= e[hit] <= s.end[ii[hit]]
     return umbrella
 
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import time
 from pathlib import Path
 
@@ -245,3 +246,132 @@ class TestCommandLine:
         assert 2 == main(["whatif", str(_nested_run(tmp_path / "r")), "--faster", "resize=2"])
         err = capsys.readouterr().err.strip().splitlines()
         assert 1 == len(err) and "unknown stage 'resize'" in err[0]
+
+
+STEP_OWN = own_label("step")
+
+
+def _step_run(path: Path, *, epoch_timer: bool = False) -> Path:
+    """One worker decodes batch b from 10b to 10b + 10 ms; each 20 ms step holds ``forward`` (2-10 ms into it)
+    and ``backward`` (10-18 ms), both without ids; CPU 30 ms per step (process clock), 8 ms per stage. Batch 0
+    is ready at 10 ms, then the steps run back to back: 10-30, 30-50, 50-70. Hand-worked wall 70 ms: decode 10,
+    forward 3 x 8 = 24, backward 24, the steps' own time 3 x 4 = 12."""
+    worker = [stage("decode", 10 * b, 10 * b + 10, sample=b, batch=b, epoch=0, cpu_ms=10) for b in range(3)]
+    main, t = [], 0.0
+    for b in range(3):
+        ready = max(t, 10.0 * b + 10)
+        main += [wait(t, ready, b), member(ready, b, b), step(ready, ready + 20, b, cpu_ms=30),
+                 stage("forward", ready + 2, ready + 10, cpu_ms=8), stage("backward", ready + 10, ready + 18, cpu_ms=8)]
+        t = ready + 20
+    if epoch_timer:
+        main.append(stage("epoch", 0, 70))
+    return write_run(path, {100: main, 200: worker}, end_ms=70)
+
+
+class TestStagesInsideTheStep:
+    def test_critical_path_shares(self, tmp_path):
+        """Stages inside probe.step() get their own share and the step keeps its own time (hand-worked, see
+        _step_run; the shares add up to the wall time: critical path method, Kelley and Walker 1959)."""
+        sh = {k: v for k, v in pipeprobe.analyze(_step_run(tmp_path / "r")).stage_shares().items() if v > 0}
+        assert pytest.approx({"decode": 10 / 70, "forward": 24 / 70, "backward": 24 / 70, STEP_OWN: 12 / 70}) == sh
+
+    def test_stage_table_inclusive_and_own(self, tmp_path):
+        """The stage table shows the step's full time, its own time and its own time on the path (hand-worked)."""
+        t = pipeprobe.analyze(_step_run(tmp_path / "r")).stages.table.set_index("stage")
+        got = t.loc["step", ["total_s", "own_s", "critical_s", "label"]].tolist()
+        assert [pytest.approx(0.060), pytest.approx(0.012), pytest.approx(0.012), STEP_OWN] == got
+        assert pytest.approx(0.024) == t.loc["forward", "critical_s"]
+
+    def test_epoch_timer_counts_steps_as_children(self, tmp_path):
+        """A stage around whole steps is no node (shares as without it) and its own time is its time outside
+        the steps: 70 - 60 ms (hand-worked)."""
+        a = pipeprobe.analyze(_step_run(tmp_path / "r", epoch_timer=True))
+        assert pytest.approx(24 / 70) == a.stage_shares()["forward"]
+        t = a.stages.table.set_index("stage")
+        assert [pytest.approx(0.070), pytest.approx(0.010)] == t.loc["epoch", ["total_s", "own_s"]].tolist()
+
+    def test_step_cpu_beyond_its_stages_is_shared_by_duration(self, tmp_path):
+        """The step's 30 ms CPU (all threads) less its stages' 16 ms is spread over its 20 ms by duration:
+        0.7 ms per ms, so forward 8 + 5.6, the step's own 4 ms 2.8 (hand-worked)."""
+        run = pipeprobe.load(_step_run(tmp_path / "r"))
+        p = span_pieces(run.spans[run.spans["stage"] != "wait"])
+        cpu = p.groupby("label", observed=True)["cpu_s"].sum()
+        assert [pytest.approx(3 * 0.0136), pytest.approx(3 * 0.0028)] == [cpu["forward"], cpu[STEP_OWN]]
+
+    @pytest.mark.parametrize(("faster", "wall_ms"), [({"forward": 2}, 58), ({"forward": float("inf")}, 46),
+                                                     ({"step": 2}, 40), ({"backward": float("inf"), "forward": 2}, 38)])
+    def test_faster_stage_inside_the_step(self, tmp_path, faster, wall_ms):
+        """The step shrinks by the time saved; making the step faster speeds the stages inside it (hand-worked:
+        the steps follow batch 0's 10 ms, each 20 ms less what the change saves, none before its batch is
+        ready at 10, 20, 30 ms: 8 ms steps end at 38 ms)."""
+        assert pytest.approx(wall_ms / 1000) == whatif(_step_run(tmp_path / "r"), faster=faster).predicted_wall_s
+
+    def test_faster_forward_on_the_command_line(self, tmp_path, capsys):
+        """`pipeprobe whatif RUN --faster forward=2` works when forward ran only inside the step."""
+        from pipeprobe.cli import main
+
+        assert 0 == main(["whatif", str(_step_run(tmp_path / "r")), "--faster", "forward=2"])
+        assert "faster forward=2" in capsys.readouterr().out
+
+
+def _record_train_loop(out: Path, workers: int) -> pipeprobe.Run:
+    """A real torch loop: forward and backward timed inside probe.step(), a 2 ms item load."""
+    torch = _torch()
+
+    class Items(torch.utils.data.Dataset):
+        def __len__(self) -> int:
+            return 48
+
+        def __getitem__(self, i: int):
+            time.sleep(0.002)
+            return torch.full((16,), float(i))
+
+    torch.manual_seed(0)
+    model = torch.nn.Sequential(torch.nn.Linear(16, 64), torch.nn.ReLU(), torch.nn.Linear(64, 1))
+    opt = torch.optim.SGD(model.parameters(), lr=0.01)
+    loader = torch.utils.data.DataLoader(Items(), batch_size=4, num_workers=workers,
+                                         multiprocessing_context="fork" if workers else None)
+    with pipeprobe.Probe(out, report=False, sample_interval_s=0) as probe:
+        for x in probe.watch(loader):
+            with probe.step():
+                with pipeprobe.stage("forward"):
+                    loss = model(x).square().mean()
+                    time.sleep(0.004)  # a forward pass long enough to matter beside the loading
+                with pipeprobe.stage("backward"):
+                    loss.backward()
+                opt.step()
+                opt.zero_grad()
+    return pipeprobe.load(out)
+
+
+@pytest.mark.parametrize("workers", [0, 2])
+class TestRealStepStages:
+    def test_shares_add_up(self, tmp_path, workers):
+        """forward and backward are on the path under their names; all shares add up to the wall time
+        (critical path method, Kelley and Walker 1959)."""
+        sh = pipeprobe.analyze(_record_train_loop(tmp_path / "r", workers)).stage_shares()
+        assert {"forward", "backward", STEP_OWN} <= set(sh)
+        assert sh["forward"] > 0
+        assert pytest.approx(1.0) == sum(sh.values())
+
+    def test_forward_free_lies_within_amdahl(self, tmp_path, workers):
+        """--faster forward=inf speeds the run up by at most Amdahl's bound 1 / (1 - p), p = forward's share of
+        the replayed wall time (Amdahl 1967), and never slows it down."""
+        run = _record_train_loop(tmp_path / "r", workers)
+        base = whatif(run).predicted_wall_s
+        p = float(run.spans.loc[run.spans["stage"] == "forward", "dur_s"].sum()) / base
+        speedup = base / whatif(run, faster={"forward": float("inf")}).predicted_wall_s
+        assert 1.0 <= speedup <= 1 / (1 - p) + 1e-9
+
+
+class TestOffloadInsideTheStep:
+    def test_offload_forward_shrinks_the_step(self, tmp_path):
+        """--offload forward=2 runs forward's 8 ms in 4 ms off the CPU inside the step: 0.058 s as forward=2 on
+        free cores (hand-worked, see _step_run)."""
+        assert pytest.approx(0.058) == whatif(_step_run(tmp_path / "r"), offload={"forward": 2}, cores=math.inf).predicted_wall_s
+
+    def test_offload_takes_forward_off_the_cpu(self, tmp_path):
+        """On one core beside a CPU-bound worker, offloading forward frees the core: faster than forward=2."""
+        d = _step_run(tmp_path / "r")
+        moved = whatif(d, offload={"forward": 2}, cores=1).predicted_wall_s
+        assert moved < whatif(d, faster={"forward": 2}, cores=1).predicted_wall_s

@@ -278,3 +278,20 @@ class TestDemo:
         with pytest.raises(SystemExit) as exc:
             main(["demo", "--step-threads", "-1"])
         assert 2 == exc.value.code
+
+
+class TestWorkerCountedOnce:
+    def test_nested_stages_do_not_count_a_worker_twice(self, tmp_path: Path) -> None:
+        """A worker busy in 'decode' with 'resize' inside it is one busy worker, not two: its CPU-weighted load
+        beside the steps is 1.0 (hand-worked: one CPU-bound thread; the innermost stage gets each instant)."""
+        main, worker, t = [], [], 0.0
+        for b in range(12):
+            busy = b >= 6
+            main += [wait(t, t + 1.0, b), step(t + 1.0, t + 11.0, b, cpu_ms=10.0 if busy else 20.0)]
+            if busy:
+                worker += [stage("decode", t + 1.0, t + 11.0, batch=b + 1, cpu_ms=10.0),
+                           stage("resize", t + 3.0, t + 9.0, cpu_ms=6.0)]
+            t += 11.0
+        d = write_run(tmp_path, {1: main, 2: worker}, cores=2, header_extra={"threads": POOLS, "step_cpu": "process"})
+        check = check_threads(pipeprobe.load(d))
+        assert (1, pytest.approx(1.0)) == (check.workers, check.worker_load)

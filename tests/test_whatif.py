@@ -375,3 +375,64 @@ class TestScenarioObject:
         p = whatif(simple_run_dir, workers=2)
         assert (2, 2, None, None) == (p.scenario["workers"], p.scenario.workers, p.scenario.get("prefetch"),
                                       p.scenario.get("no such field"))
+
+
+def _decode_augment_plan(workers: int = 1):
+    """One worker (or the loop itself) decodes batches in 10 and 30 ms by turns (mean 20) and augments each in
+    40 ms, all CPU; the step takes 1 ms; 4 cores, so nothing contends."""
+    from pipeprobe.whatif.plan import plan_from_durations
+
+    dec, aug = [0.01, 0.03] * 5, [0.04] * 10
+    return plan_from_durations(None, [0.001] * 10, stages={"decode": dec, "augment": aug},
+                               task_cpu_s=[d + a for d, a in zip(dec, aug)], step_cpu_s=[0.001] * 10,
+                               workers=workers, prefetch=2, cores=4)
+
+
+class TestLoadRange:
+    def test_freeing_the_cores_gives_a_range_below(self):
+        """augment free takes 0.40 of the 0.61 CPU seconds off the cores (66 %): one worker decodes in turn, so
+        the prediction is 10 x 20 ms + the last 1 ms step = 0.201 s, and the low end the same at the quickest
+        tenth of decodes (10 ms): 0.101 s (hand-worked, a serial pipeline)."""
+        p = whatif(_decode_augment_plan(), faster={"augment": math.inf})
+        assert [pytest.approx(0.201), pytest.approx(0.101), pytest.approx(0.201)] == [p.predicted_wall_s,
+                                                                                      *p.wall_range_s]
+        assert "66 % of the recorded CPU seconds off the cores" in p.range_reason
+
+    def test_small_change_keeps_one_number(self):
+        """augment 1.1x faster moves 6 % of the CPU seconds, under the 25 % from which a range is given."""
+        assert None is whatif(_decode_augment_plan(), faster={"augment": 1.1}).wall_range_s
+
+    def test_workers_beside_the_step_give_a_range_above(self):
+        """Loading moved from the training loop into 2 workers beside the step puts its CPU seconds onto the cores
+        the step shares: the prediction is the low end, the slowest tenth of batches the high end."""
+        p = whatif(_decode_augment_plan(workers=0), workers=2, prefetch=4)
+        low, high = p.wall_range_s
+        assert (pytest.approx(p.predicted_wall_s), True) == (low, high > p.predicted_wall_s)
+        assert "onto the cores beside the step" in p.range_reason
+
+    def test_range_in_text_and_json(self):
+        """The range and its reason show in the text and the JSON, as the thread range does."""
+        from pipeprobe.whatif.predict import format_prediction
+
+        p = whatif(_decode_augment_plan(), faster={"augment": math.inf})
+        assert "range: 0.101 s to 0.201 s" in format_prediction(p)
+        d = json.loads(json.dumps(p.to_dict()))
+        assert ([pytest.approx(0.101), pytest.approx(0.201)], p.range_reason) == (d["wall_range_s"], d["range_reason"])
+
+    def test_workers_beside_a_step_pool_recorded_alone_give_a_range(self):
+        """A step that ran on 2 threads with 2 cores to itself, with 2 workers added: a range above the prediction
+        even though the light loader moves little CPU (a pool of threads that meet at barriers loses its speed-up
+        on oversubscribed cores; Ousterhout 1982)."""
+        from dataclasses import replace
+
+        from pipeprobe.threads import ThreadCheck
+        from pipeprobe.whatif.plan import plan_from_durations
+
+        plan = plan_from_durations([0.002] * 20, [0.04] * 20, task_cpu_s=[0.002] * 20, step_cpu_s=[0.04] * 20,
+                                   workers=0, cores=2)
+        plan = replace(plan, step_width=2.0, threads=ThreadCheck("the loader ran no worker processes", cores=2,
+                                                                 step_threads=2))
+        p = whatif(plan, workers=2, prefetch=4)
+        low, high = p.wall_range_s
+        assert (pytest.approx(p.predicted_wall_s), True) == (low, high > p.predicted_wall_s)
+        assert "workers join a step that ran on 2 threads" in p.range_reason

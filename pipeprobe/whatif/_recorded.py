@@ -4,9 +4,10 @@ Each step is a function returning a small frozen record; ``build_plan``
 calls them in this order:
 
 1. :func:`consumer_batches`: the batches of one rank, in the consumer's order;
-2. :func:`user_spans`: the stage spans of those batches, cut into the
-   pieces of the innermost stage running (:func:`pipeprobe.nesting.span_pieces`:
-   nested time counts once), each placed on the loader side or the consumer side;
+2. :func:`user_spans`: the stage and step spans of those batches, cut into the
+   pieces of the innermost one running (:func:`pipeprobe.nesting.span_pieces`:
+   nested time counts once; a step keeps its time outside the stages inside
+   it), each placed on the loader side or the consumer side;
 3. :func:`loader_tasks`, :func:`batch_workers` and :func:`consumer_work`:
    per batch and stage, wall and CPU seconds; which worker ran each batch;
 4. :func:`without_contention`: the CPU contention of the recorded run taken
@@ -103,7 +104,7 @@ class _UserSpans:
     consumer_side: np.ndarray
     worker_side: np.ndarray
     cpu_known: bool
-    steps: pd.DataFrame  # the step spans of the plan's batches
+    steps: pd.DataFrame  # the steps' pieces of the plan's batches (their own time when stages ran inside)
     spans: int  # spans of the rank
     notes: tuple[str, ...]
     inside: Mapping[str, tuple[str, ...]] = field(default_factory=dict)  # stage -> labels of its time
@@ -239,14 +240,15 @@ def user_spans(run: Run, batches: _Batches) -> _UserSpans:
     bid = batches.batch_id
     pos = pd.Series(np.arange(batches.n), index=bid)
     user, inside = _batch_pieces(sp, bid)
+    is_step = (user["stage"] == "step").to_numpy()
+    steps = user.loc[is_step, ["batch_id", "dur_s", "cpu_s", "label"]]
+    user = user[~is_step]
     k = pos.reindex(user["batch_id"].to_numpy()).to_numpy(np.int64)
     in_cons = ((user["pid"] == int(ck[0])) & (user["tid"] == int(ck[1]))).to_numpy()
     start = user["start_s"].to_numpy(float)
     end = user["end_s"].to_numpy(float)
     # consumer-thread spans inside the wait for their batch are loading done by the consumer
     in_wait = in_cons & (start >= batches.wait_start_s[k] - 1e-9) & (end <= batches.ready_s[k] + 1e-9)
-    no_step = batches.no_step[k]
-    nested_in_step = in_cons & ~no_step & (start >= batches.step_start_s[k]) & (end <= batches.step_end_s[k])
     worker_side = ~in_cons
     notes = []
     if worker_side.any() and in_wait.any():
@@ -259,20 +261,23 @@ def user_spans(run: Run, batches: _Batches) -> _UserSpans:
         position=k, start_s=start, end_s=end, dur_s=end - start, cpu_s=np.nan_to_num(cpu, nan=0.0),
         stage=as_text(user["label"] if "label" in user else user["stage"]),
         thread=_loader_threads(run, user),
-        in_wait=in_wait, consumer_side=in_cons & ~in_wait & ~nested_in_step, worker_side=worker_side,
-        cpu_known=cpu_known, steps=sp.loc[((sp["stage"] == "step") & sp["batch_id"].isin(bid)).to_numpy(), ["batch_id", "dur_s", "cpu_s"]],
+        in_wait=in_wait, consumer_side=in_cons & ~in_wait, worker_side=worker_side,
+        cpu_known=cpu_known, steps=steps,
         spans=int(len(sp)),
         notes=tuple(notes), inside=inside,
     )
 
 
 def _batch_pieces(sp: pd.DataFrame, bid: np.ndarray) -> tuple[pd.DataFrame, dict[str, tuple[str, ...]]]:
-    """The stage pieces of the batches ``bid`` and what each enclosing stage holds (one copy at a time).
+    """The stage and step pieces of the batches ``bid`` and what each enclosing stage holds (one copy at a time).
 
     Nested stages count once: the time of the innermost stage running, ids
     taken from the stage around it (:func:`pipeprobe.nesting.span_pieces`).
+    A step with stages inside (``forward``) keeps its own time, labelled
+    ``step, outside your stages``; the step's CPU beyond its stages' is
+    shared among all its pieces by duration (its CPU time is the process's).
     """
-    stage_spans = sp.loc[~sp["stage"].isin(["wait", "step"]).to_numpy(), list(_PIECE_INPUT)]
+    stage_spans = sp.loc[(sp["stage"] != "wait").to_numpy(), list(_PIECE_INPUT)]
     inside = labels_inside(stage_spans)
     pieces = span_pieces(stage_spans)
     del stage_spans  # the pieces replace it: a large run holds one of the two at a time
@@ -380,10 +385,11 @@ def consumer_work(spans: _UserSpans, batches: _Batches, keep: frozenset[str]) ->
     ready = batches.ready_s
     nxt_wait = np.append(batches.wait_start_s[1:], np.nan)
     end = np.maximum(np.where(np.isnan(nxt_wait), batches.step_end_s, nxt_wait), ready)
-    sec = _stage_seconds(spans.position[side], spans.stage[side], spans.dur_s[side], spans.cpu_s[side], nb, keep,
-                         leading=("step",))
-    cd, cc = sec.dur_s, sec.cpu_s
     steps = spans.steps
+    step_label = str(steps["label"].iloc[0]) if len(steps) else "step"  # own_label("step") when stages ran inside
+    sec = _stage_seconds(spans.position[side], spans.stage[side], spans.dur_s[side], spans.cpu_s[side], nb, keep,
+                         leading=(step_label,))
+    cd, cc = sec.dur_s, sec.cpu_s
     pos = pd.Series(np.arange(nb), index=batches.batch_id)
     sk = pos.reindex(steps["batch_id"].to_numpy()).to_numpy(np.int64)
     cd[:, 0] = np.bincount(sk, weights=steps["dur_s"].to_numpy(float), minlength=nb)

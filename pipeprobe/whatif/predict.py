@@ -19,6 +19,7 @@ from dataclasses import asdict, dataclass, field
 from typing import TYPE_CHECKING, Any, Iterable, Mapping
 
 from .._jsonnum import json_ready
+from ._loadrange import load_range, load_reason
 from ._threadrange import range_reason, wall_range
 from .engine import Replay, replay
 from .plan import ReplayPlan, build_plan
@@ -324,7 +325,7 @@ def predict(plan: ReplayPlan, base: Replay, scenario: Scenario, *, persistent_wo
         recorded=_recorded(plan),
         notes=notes,
         model_check=check_model(plan, base),
-        **_thread_range(plan, base.wall_s, scenario, predicted),
+        **_ranges(plan, base.wall_s, scenario, predicted),
         replay=rep,
     )
 
@@ -335,6 +336,20 @@ def _thread_range(plan: ReplayPlan, base_wall_s: float, scenario: Scenario, pred
     if not reason:
         return {}
     return {"wall_range_s": wall_range(plan, base_wall_s, scenario, predicted_s), "range_reason": reason}
+
+
+def _ranges(plan: ReplayPlan, base_wall_s: float, scenario: Scenario, predicted_s: float) -> dict[str, Any]:
+    """The thread range and the load range (:mod:`pipeprobe.whatif._loadrange`) merged: the span of both,
+    both reasons."""
+    out = _thread_range(plan, base_wall_s, scenario, predicted_s)
+    reason = load_reason(plan, scenario)
+    if not reason:
+        return out
+    low, high = load_range(plan, base_wall_s, scenario, predicted_s)
+    if out:
+        low, high = min(low, out["wall_range_s"][0]), max(high, out["wall_range_s"][1])
+        reason = f"{out['range_reason']}; {reason}"
+    return {"wall_range_s": (low, high), "range_reason": reason}
 
 
 def _recorded(plan: ReplayPlan) -> dict[str, Any]:
