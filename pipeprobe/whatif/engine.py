@@ -38,6 +38,7 @@ import numpy as np
 
 from ..errors import ScenarioError
 from ._cores import CpuShare
+from ._lifecycle import with_lifecycle
 from ._loader import make_policy
 from ._replay_path import critical_path
 from .scenario import Scenario
@@ -156,6 +157,7 @@ def replay(
     elif changes != Scenario():
         raise ScenarioError("give replay() a Scenario or its fields as keywords, not both")
     settings = scenario.settings(plan)
+    plan = with_lifecycle(plan, settings.workers)
     loader, consumer = scenario.work(plan)
     out = simulate(plan, loader, consumer, settings)
     config = {"workers": settings.workers, "prefetch": settings.prefetch, "cores": settings.cores,
@@ -291,7 +293,7 @@ class _Replayer:
 
     __slots__ = ("plan", "n", "workers", "prefetch", "in_order", "barrier", "loader_work", "consumer_work",
                  "task_s", "task_u", "work_s", "work_u", "epoch_first", "epoch_list", "epoch_index", "epoch_stop",
-                 "epoch_dispatch", "handoff", "latency", "worker_gap", "dispatch", "policy", "queue", "cpu", "log",
+                 "epoch_dispatch", "worker_start", "request_index", "handoff", "latency", "worker_gap", "dispatch", "policy", "queue", "cpu", "log",
                  "consumer", "state", "waiting_for", "wait_began", "ready_pool", "next_request", "last_task_of",
                  "finished_at", "step_width")
 
@@ -315,6 +317,10 @@ class _Replayer:
         index = np.arange(nb) - np.maximum.accumulate(np.where(first, np.arange(nb), 0)) if self.barrier \
             else np.arange(nb)
         self.epoch_dispatch = plan.epoch_dispatch_s.tolist()
+        # per epoch and worker: the first ask to the worker's first task (a replay of another worker count)
+        ws = plan.epoch_worker_start_s
+        self.worker_start = ws.tolist() if ws is not None and W else None
+        self.request_index = index.tolist()
         self.handoff = plan.handoff_s if W else 0.0
         self.latency = plan.latency_s if W else 0.0
         self.worker_gap, self.dispatch = plan.worker_gap_s, plan.dispatch_s
@@ -466,7 +472,12 @@ class _Replayer:
         log.request_s[b] = now
         log.requested_after[b] = after
         log.requested_at_wait[b] = at_wait
-        delay = self.epoch_dispatch[self.epoch_index[b]] if after < 0 else self.dispatch
+        if after >= 0:
+            delay = self.dispatch
+        elif self.worker_start is not None:  # the worker this request goes to in start order (round-robin)
+            delay = self.worker_start[self.epoch_index[b]][self.request_index[b] % self.workers]
+        else:
+            delay = self.epoch_dispatch[self.epoch_index[b]]
         self.policy.request(b)
         self.queue.schedule(now + delay, self._on_dispatchable, b)
 
