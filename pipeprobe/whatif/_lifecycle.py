@@ -89,6 +89,8 @@ class WorkerLifecycle:
     boot_s : tuple of float
         Per worker, in start order: the loop's first ask of an epoch to the
         worker's first span (mean over the epochs that started workers).
+    epoch_boot_s : tuple of tuple of float
+        The same per epoch that started workers (from the first epoch on).
     fork_s, stop_s : float
         The loop's time per worker started and per worker stopped.
     first_excess_s : float
@@ -104,19 +106,24 @@ class WorkerLifecycle:
     stop_s: float = 0.0
     first_excess_s: float = 0.0
     source: str = "none"
+    epoch_boot_s: tuple[tuple[float, ...], ...] = ()
 
-    def boots(self, workers: int) -> list[float]:
+    def boots(self, workers: int, epoch: int | None = None) -> list[float]:
         """Per worker of ``workers``, in start order: the loop's first ask to its first task (step 2).
+
+        ``epoch``: as that epoch's workers started (the mean over epochs
+        when it started none or is not given).
 
         Examples
         --------
         >>> WorkerLifecycle(True, True, boot_s=(0.05,), fork_s=0.01).boots(3)
         [0.03, 0.04, 0.05]
         """
-        if not self.boot_s or workers <= 0:
+        row = self.epoch_boot_s[epoch] if epoch is not None and epoch < len(self.epoch_boot_s) else self.boot_s
+        if not row or workers <= 0:
             return [0.0] * max(workers, 0)
-        rec = list(self.boot_s[:workers]) + [self.boot_s[-1]] * max(0, workers - len(self.boot_s))
-        shift = [(workers - 1 - k) * self.fork_s if k >= len(self.boot_s) - 1 else (workers - len(self.boot_s))
+        rec = list(row[:workers]) + [row[-1]] * max(0, workers - len(row))
+        shift = [(workers - 1 - k) * self.fork_s if k >= len(row) - 1 else (workers - len(row))
                  * self.fork_s for k in range(workers)]
         return [round(max(0.0, b - s), 12) for b, s in zip(rec, shift, strict=True)]
 
@@ -173,7 +180,9 @@ def measure_lifecycle(plan: ReplayPlan, first_s: np.ndarray, worker: np.ndarray,
     if plan.workers == 0 or not plan.batches:
         return WorkerLifecycle(known=False, restarts=False)
     W = plan.workers
-    boot = _boots(plan, first_s, worker, wait_start_s, restarts)
+    rows = _boots(plan, first_s, worker, wait_start_s, restarts)
+    n = min((len(r) for r in rows), default=0)
+    boot = tuple(float(np.mean([r[k] for r in rows])) for k in range(n))
     _, extra, _ = between_epochs(plan)
     stop = plan.tail_s / W if restarts else 0.0
     if restarts and len(extra):
@@ -181,7 +190,8 @@ def measure_lifecycle(plan: ReplayPlan, first_s: np.ndarray, worker: np.ndarray,
     else:  # workers started once: the loop's time before its first ask is taken as making them
         fork = plan.start_up_s / W
     return WorkerLifecycle(known=True, restarts=restarts, boot_s=boot, fork_s=fork, stop_s=stop,
-                           first_excess_s=_first_excess(plan, first_s, worker, restarts), source="recording")
+                           first_excess_s=_first_excess(plan, first_s, worker, restarts), source="recording",
+                           epoch_boot_s=tuple(tuple(r) for r in rows))
 
 
 def _epoch_index(plan: ReplayPlan) -> tuple[np.ndarray, np.ndarray]:
@@ -198,21 +208,16 @@ def _starting_epochs(plan: ReplayPlan, restarts: bool) -> np.ndarray:
 
 
 def _boots(plan: ReplayPlan, first_s: np.ndarray, worker: np.ndarray, wait_start_s: np.ndarray,
-           restarts: bool) -> tuple[float, ...]:
-    """Step 1a: per worker in start order, its first span after the epoch's first ask (mean over epochs)."""
-    e, pos = _epoch_index(plan)
+           restarts: bool) -> list[list[float]]:
+    """Step 1a: per epoch that started workers, per worker in start order, its first span after the first ask."""
+    e, _ = _epoch_index(plan)
     rows = []
     for ep in _starting_epochs(plan, restarts):
         mine = (e == ep) & (worker >= 0) & np.isfinite(first_s)
-        if not mine.any():
-            continue
         ask = wait_start_s[np.flatnonzero(e == ep)[0]]
         firsts = [first_s[mine & (worker == w)].min() - ask for w in np.unique(worker[mine])]
         rows.append(sorted(max(0.0, float(f)) for f in firsts))
-    if not rows:
-        return ()
-    n = min(len(r) for r in rows)
-    return tuple(float(np.mean([r[k] for r in rows])) for k in range(n))
+    return rows
 
 
 def _first_excess(plan: ReplayPlan, first_s: np.ndarray, worker: np.ndarray, restarts: bool) -> float:
@@ -260,8 +265,8 @@ def lifecycle_from_header(header: Any, plan: ReplayPlan) -> WorkerLifecycle:
 def with_lifecycle(plan: ReplayPlan, workers: int) -> ReplayPlan:
     """Step 2: ``plan`` replayed with ``workers`` workers, their start and stop costs as the recording shows them.
 
-    The plan unchanged when ``workers`` is the recorded count or the costs
-    are unknown. Epochs start workers when the recorded loader restarted
+    The plan unchanged when the costs are unknown; with the recorded
+    count of workers only their recorded starts (one per worker) change. Epochs start workers when the recorded loader restarted
     them and the plan does not keep them (:attr:`ReplayPlan.workers_kept`).
 
     Examples
@@ -284,25 +289,21 @@ def with_lifecycle(plan: ReplayPlan, workers: int) -> ReplayPlan:
     .. [1] G. S. Fishman, *Discrete-Event Simulation*, Springer, 2001.
     """
     lc = plan.lifecycle
-    if lc is None or not lc.known or workers == plan.workers:
+    if lc is None or not lc.known or not plan.batches or (workers == plan.workers and workers < 2):
         return plan
     dw = workers - plan.workers
     restarting = lc.restarts and not plan.workers_kept
     e, pos = _epoch_index(plan)
-    epochs = int(e[-1]) + 1 if plan.batches else 0
-    boots = lc.boots(workers)
+    epochs = int(e[-1]) + 1
     start = np.zeros((epochs, max(workers, 1)))
     if workers:
-        start[:] = np.asarray(boots) if restarting else plan.epoch_dispatch_s[:epochs, None]
-        start[0] = boots
+        start[:] = plan.epoch_dispatch_s[:epochs, None]
+        for ep in range(epochs if restarting else 1):
+            start[ep] = lc.boots(workers, ep)
     consumer = _loop_costs(plan, dw * (lc.fork_s + lc.stop_s) if restarting else 0.0)
-    loader = plan.loader
-    if dw > 0 and lc.first_excess_s > 0:
-        starting = np.isin(e, np.arange(epochs) if restarting else [0])
-        new_first = starting & (pos >= plan.workers) & (pos < workers)
-        io = loader.io_s.copy()
-        io[new_first, loader.names.index(WORKER_OVERHEAD)] += lc.first_excess_s
-        loader = Work(loader.names, io, loader.cpu_s)
+    starting = np.isin(e, np.arange(epochs) if restarting else [0])
+    lo, hi = sorted((plan.workers, workers))
+    loader = _first_tasks(plan.loader, starting & (pos >= lo) & (pos < hi), np.sign(dw) * lc.first_excess_s)
     return replace(plan, consumer=consumer, loader=loader,
                    start_up_s=max(0.0, plan.start_up_s + dw * lc.fork_s),
                    tail_s=max(0.0, plan.tail_s + (dw * lc.stop_s if restarting else 0.0)),
@@ -345,10 +346,22 @@ def without_restart_costs(plan: ReplayPlan) -> ReplayPlan:
     if lc is None or not lc.known or not lc.restarts or not plan.workers or not plan.batches:
         return plan
     e, pos = _epoch_index(plan)
-    later_first = (e > 0) & (pos < plan.workers)
-    ld = plan.loader
-    task = ld.io_s.sum(1) + ld.cpu_s.sum(1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        keep = np.where(later_first & (task > 0), np.maximum(0.0, task - lc.first_excess_s) / task, 1.0)
     return replace(plan, tail_s=max(0.0, plan.tail_s - plan.workers * lc.stop_s),
-                   loader=Work(ld.names, ld.io_s * keep[:, None], ld.cpu_s * keep[:, None]))
+                   loader=_first_tasks(plan.loader, (e > 0) & (pos < plan.workers), -lc.first_excess_s))
+
+
+def _first_tasks(loader: Work, first: np.ndarray, excess_s: float) -> Work:
+    """``loader`` with ``excess_s`` more (a worker's cold first task) or less (a warm one) in the tasks ``first``.
+
+    More goes to the worker's own time; less shrinks every stage of the task alike.
+    """
+    if not excess_s or not first.any():
+        return loader
+    if excess_s > 0:
+        io = loader.io_s.copy()
+        io[first, loader.names.index(WORKER_OVERHEAD)] += excess_s
+        return Work(loader.names, io, loader.cpu_s)
+    task = loader.io_s.sum(1) + loader.cpu_s.sum(1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        keep = np.where(first & (task > 0), np.maximum(0.0, task + excess_s) / task, 1.0)
+    return Work(loader.names, loader.io_s * keep[:, None], loader.cpu_s * keep[:, None])
