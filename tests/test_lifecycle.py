@@ -1,0 +1,125 @@
+"""Loader workers' start and stop costs in the replay (pipeprobe.whatif._lifecycle).
+
+The synthetic runs (tests/_synth.loader_life_rows) start and stop workers
+as torch's DataLoader does (from its source, torch.utils.data.dataloader,
+from memory: ``_MultiProcessingDataLoaderIter.__init__`` starts the worker
+processes one after another inside ``iter()``; without persistent workers
+the ``next()`` that ends an epoch shuts them down, one after another): the
+loop pays a fixed time per worker made and per worker stopped, each
+worker then starts on its own. The expected wall times are worked out by
+hand (docstrings) or are the synthetic run of the changed configuration
+itself (the rerun).
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+
+import pytest
+from _synth import loader_life_rows, write_run
+
+import pipeprobe
+from pipeprobe.whatif._lifecycle import UNKNOWN_START_NOTE, with_lifecycle
+from pipeprobe.whatif.engine import replay
+from pipeprobe.whatif.plan import build_plan
+
+#: Several epochs of a loader-bound job: 6 batches of 20 ms tasks per epoch, 2 ms steps, 5 ms worker start,
+#: 3 ms per worker made and 4 ms per worker stopped in the loop, a worker's first task 4 ms longer.
+GRID = dict(epochs=3, batches_per_epoch=6, first_extra_ms=4.0)
+
+
+def _record(tmp_path, workers, *, persistent=False, header=None, **kw):
+    rows, end = loader_life_rows(workers, persistent=persistent, **kw)
+    name = f"w{workers}{'p' if persistent else ''}"
+    return pipeprobe.load(write_run(tmp_path / name, rows, end_ms=end, cores=8, header_extra=header))
+
+
+def _rerun_s(workers, *, persistent=False, **kw):
+    return loader_life_rows(workers, persistent=persistent, **kw)[1] / 1e3
+
+
+def _predict(run, workers, **kw):
+    """The prediction for ``workers`` workers at torch's default prefetch (2 batches per worker)."""
+    return pipeprobe.whatif(run, workers=workers, prefetch=max(1, 2 * workers),
+                            recorded_prefetch=max(1, 2 * _workers_of(run)), **kw)
+
+
+def _workers_of(run):
+    return int((run.processes["role"] == "worker").any() and run.processes["slot"].max())
+
+
+class TestHandWorked:
+    def test_one_worker_run_predicts_two_workers(self, tmp_path):
+        """1 worker recorded, 2 epochs of two 20 ms tasks and 2 ms steps; forks 3 ms, start 5 ms, stop 4 ms.
+        By hand, 2 workers: forks to 6, worker 0 starts at 6 + 5 - 3 = 8 and worker 1 at 11; batches ready at
+        28 and 31, steps end 30 and 33; stop 8 ms and forks 6 ms: next ask at 47; ready 69 and 72, steps end
+        74; stop 8 ms: 82 ms (the recorded run took 108 ms; without the start and stop costs the replay
+        said 72 ms)."""
+        run = _record(tmp_path, 1)
+        assert 0.108 == pytest.approx(run.wall_s)
+        assert 0.082 == pytest.approx(_predict(run, 2).predicted_wall_s)
+
+    def test_the_costs_it_measures(self, tmp_path):
+        """From that 1-worker run: start 5 ms after the ask, 3 ms per worker made, 4 ms per worker stopped,
+        first task 4 ms longer than the others (the run's own numbers, hand-worked)."""
+        lc = build_plan(_record(tmp_path, 1, first_extra_ms=4.0)).lifecycle
+        assert (True, True) == (lc.known, lc.restarts)
+        assert [0.005, 0.003, 0.004, 0.004] == pytest.approx([lc.boot_s[0], lc.fork_s, lc.stop_s,
+                                                              lc.first_excess_s])
+
+    def test_no_workers_with_timed_starts(self, tmp_path):
+        """A run that loaded in the loop (2 epochs, 88 ms by hand: 4 x (20 + 2)) whose probe timed a worker
+        start (3 ms to make it, first batch 25 ms = 5 ms start + 20 ms task, 4 ms to stop) predicts the
+        hand-worked 82 ms of 2 workers (test_one_worker_run_predicts_two_workers)."""
+        header = {"worker_start": {"starts": 3, "iter_s": 0.003, "first_batch_s": 0.025, "stop_s": 0.004}}
+        run = _record(tmp_path, 0, header=header)
+        assert 0.088 == pytest.approx(run.wall_s)
+        assert 0.082 == pytest.approx(_predict(run, 2).predicted_wall_s)
+
+    def test_no_workers_without_timed_starts_says_so(self, tmp_path):
+        """An older run folder without the timed start: the prediction says the start-up cost is unknown
+        and replays the workers as free to start (by hand: per epoch both 20 ms tasks at once, then two
+        2 ms steps: 2 x 24 = 48 ms)."""
+        p = _predict(_record(tmp_path, 0), 2)
+        assert UNKNOWN_START_NOTE in p.notes
+        assert 0.048 == pytest.approx(p.predicted_wall_s)
+
+
+class TestRerun:
+    @pytest.mark.parametrize("recorded", [1, 2])
+    @pytest.mark.parametrize("workers", [0, 1, 2, 3])
+    def test_new_workers_each_epoch(self, tmp_path, recorded, workers):
+        """Non-persistent workers over 3 epochs: the prediction equals the synthetic rerun with that many
+        workers (the life cycle of torch's loader, tests/_synth.loader_life_rows)."""
+        run = _record(tmp_path, recorded, **GRID)
+        assert _rerun_s(workers, **GRID) == pytest.approx(_predict(run, workers).predicted_wall_s)
+
+    @pytest.mark.parametrize("recorded", [1, 2])
+    @pytest.mark.parametrize("workers", [1, 2, 3])
+    def test_persistent_workers(self, tmp_path, recorded, workers):
+        """Persistent workers recorded: started once (forks and start in the first epoch only, no stop in
+        the loop); the prediction equals the synthetic rerun."""
+        run = _record(tmp_path, recorded, persistent=True, **GRID)
+        expected = _rerun_s(workers, persistent=True, **GRID)
+        assert expected == pytest.approx(_predict(run, workers).predicted_wall_s)
+
+    @pytest.mark.parametrize("workers", [1, 2, 3])
+    def test_keeping_the_workers(self, tmp_path, workers):
+        """New workers each epoch recorded (1 worker), predicted with persistent workers: equals the
+        synthetic rerun with persistent workers (no stop at the end, warm first tasks after epoch 0)."""
+        run = _record(tmp_path, 1, **GRID)
+        expected = _rerun_s(workers, persistent=True, **GRID)
+        assert expected == pytest.approx(_predict(run, workers, persistent_workers=True).predicted_wall_s)
+
+
+class TestUnchanged:
+    def test_same_worker_count_replays_as_recorded(self, tmp_path):
+        """A 1-worker plan replayed with 1 worker is the plan itself (the life cycle changes nothing)."""
+        plan = build_plan(_record(tmp_path, 1, **GRID), prefetch=2)
+        assert plan is with_lifecycle(plan, 1)
+
+    def test_costs_off_give_the_old_replay(self, tmp_path):
+        """With the costs off (lifecycle=None) 1 -> 2 workers replays as before: no forks, stops or
+        per-worker starts (by hand, the hand-worked run: 72 ms)."""
+        plan = replace(build_plan(_record(tmp_path, 1), prefetch=2), lifecycle=None)
+        assert 0.072 == pytest.approx(replay(plan, workers=2, prefetch=4).wall_s)
