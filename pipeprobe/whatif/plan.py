@@ -68,8 +68,8 @@ from typing import TYPE_CHECKING, Any, Iterable, Mapping
 
 import numpy as np
 
-from ..errors import ScenarioError
 from ..analysis import workers_restarted
+from ..errors import ScenarioError
 from ..nesting import own_label
 from ..threads import check_threads
 from ._contention import background_cores, cores_left

@@ -43,8 +43,8 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from ..analysis import workers_restarted
-from ._replay_path import CONSUMER_OVERHEAD
 from ._lifecycle import between_epochs, without_restart_costs
+from ._replay_path import CONSUMER_OVERHEAD
 from .engine import Replay, replay
 from .plan import Work
 
