@@ -123,3 +123,19 @@ class TestUnchanged:
         per-worker starts (by hand, the hand-worked run: 72 ms)."""
         plan = replace(build_plan(_record(tmp_path, 1), prefetch=2), lifecycle=None)
         assert 0.072 == pytest.approx(replay(plan, workers=2, prefetch=4).wall_s)
+
+
+class TestStepCoresWithoutWorkers:
+    def test_a_run_without_workers_gives_the_steps_cores(self, tmp_path):
+        """A run that loaded in the loop, each 10 ms step using 2 cores (20 ms process CPU) under a 2-thread
+        pool: the thread check has nothing to compare (skipped), yet the replay runs the step on 2 threads
+        (its CPU over its wall time, hand-worked), as the step will when workers are added."""
+        from _synth import step, wait
+
+        rows = [r for b in range(6) for r in (wait(12 * b, 12 * b + 2, b), step(12 * b + 2, 12 * b + 12, b,
+                                                                             cpu_ms=20.0))]
+        pools = {"usable_cores": 2, "pools": [{"api": "blas", "library": "openblas", "threads": 2}],
+                 "torch_intra_op": None, "error": None}
+        d = write_run(tmp_path, {1: rows}, cores=2, header_extra={"threads": pools, "step_cpu": "process"})
+        plan = build_plan(pipeprobe.load(d))
+        assert ("the loader ran no worker processes", 2.0) == (plan.threads.skipped, plan.step_width)
