@@ -139,3 +139,17 @@ class TestStepCoresWithoutWorkers:
         d = write_run(tmp_path, {1: rows}, cores=2, header_extra={"threads": pools, "step_cpu": "process"})
         plan = build_plan(pipeprobe.load(d))
         assert ("the loader ran no worker processes", 2.0) == (plan.threads.skipped, plan.step_width)
+
+
+class TestBadHeader:
+    @pytest.mark.parametrize("field", [
+        "fast", {"starts": 3, "iter_s": "0.003", "first_batch_s": 0.025, "stop_s": 0.004},
+        {"starts": 3, "iter_s": -1.0, "first_batch_s": 0.025, "stop_s": 0.004},
+        {"starts": 3, "iter_s": 0.003, "first_batch_s": float("nan"), "stop_s": 0.004},
+        {"starts": 3, "iter_s": 0.003, "first_batch_s": True, "stop_s": 0.004},
+        {"starts": 3, "iter_s": 0.003, "first_batch_s": 0.025}])
+    def test_a_damaged_worker_start_is_taken_as_unknown(self, tmp_path, field):
+        """A worker_start field of the wrong type or out of range: the prediction says the start-up cost is
+        unknown and replays as without it (the hand-worked 48 ms of test_no_workers_without_timed_starts)."""
+        p = _predict(_record(tmp_path, 0, header={"worker_start": field}), 2)
+        assert (True, 0.048) == (UNKNOWN_START_NOTE in p.notes, pytest.approx(p.predicted_wall_s))

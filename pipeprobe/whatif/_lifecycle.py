@@ -254,12 +254,26 @@ def lifecycle_from_header(header: Any, plan: ReplayPlan) -> WorkerLifecycle:
     ((0.05,), 0.02, 0.015)
     """
     ws = header.get("worker_start") if hasattr(header, "get") else None
-    if not isinstance(ws, dict) or not ws.get("starts"):
+    got = [_seconds(ws, k) for k in ("iter_s", "first_batch_s", "stop_s")] if isinstance(ws, dict) else [None]
+    if None in got:  # missing (an older run folder) or not numbers in range: taken as unknown
         return WorkerLifecycle(known=False, restarts=True)
+    fork, first, stop = got
     task = np.median(plan.loader.io_s.sum(1) + plan.loader.cpu_s.sum(1)) if plan.batches else 0.0
-    boot = max(0.0, float(ws["first_batch_s"]) - float(task))
-    return WorkerLifecycle(known=True, restarts=True, boot_s=(round(boot, 12),), fork_s=float(ws["iter_s"]),
-                           stop_s=float(ws["stop_s"]), source="timed at close")
+    boot = max(0.0, first - float(task))
+    return WorkerLifecycle(known=True, restarts=True, boot_s=(round(boot, 12),), fork_s=fork, stop_s=stop,
+                           source="timed at close")
+
+
+#: Longest time a header's ``worker_start`` may give (seconds): beyond it the field is not taken as data.
+MAX_START_S = 3600.0
+
+
+def _seconds(fields: dict[str, Any], key: str) -> float | None:
+    """``fields[key]`` as seconds from 0 to :data:`MAX_START_S`, or None (the wrong type or out of range)."""
+    x = fields.get(key)
+    if isinstance(x, bool) or not isinstance(x, (int, float)) or not 0.0 <= x <= MAX_START_S:
+        return None
+    return float(x)
 
 
 def with_lifecycle(plan: ReplayPlan, workers: int) -> ReplayPlan:
