@@ -119,7 +119,8 @@ class WorkerLifecycle:
         >>> WorkerLifecycle(True, True, boot_s=(0.05,), fork_s=0.01).boots(3)
         [0.03, 0.04, 0.05]
         """
-        row = self.epoch_boot_s[epoch] if epoch is not None and epoch < len(self.epoch_boot_s) else self.boot_s
+        row = self.epoch_boot_s[epoch] if epoch is not None and epoch < len(self.epoch_boot_s) else ()
+        row = row or self.boot_s
         if not row or workers <= 0:
             return [0.0] * max(workers, 0)
         rec = list(row[:workers]) + [row[-1]] * max(0, workers - len(row))
@@ -181,8 +182,8 @@ def measure_lifecycle(plan: ReplayPlan, first_s: np.ndarray, worker: np.ndarray,
         return WorkerLifecycle(known=False, restarts=False)
     W = plan.workers
     rows = _boots(plan, first_s, worker, wait_start_s, restarts)
-    n = min((len(r) for r in rows), default=0)
-    boot = tuple(float(np.mean([r[k] for r in rows])) for k in range(n))
+    n = min((len(r) for r in rows if r), default=0)
+    boot = tuple(float(np.mean([r[k] for r in rows if r])) for k in range(n))
     _, extra, _ = between_epochs(plan)
     stop = plan.tail_s / W if restarts else 0.0
     if restarts and len(extra):
@@ -201,35 +202,38 @@ def _epoch_index(plan: ReplayPlan) -> tuple[np.ndarray, np.ndarray]:
     return e, np.arange(plan.batches) - np.maximum.accumulate(np.where(first, np.arange(plan.batches), 0))
 
 
-def _starting_epochs(plan: ReplayPlan, restarts: bool) -> np.ndarray:
-    """The epochs whose workers started in them: every epoch with restarts, else the first."""
+def _first_of_each_worker(plan: ReplayPlan, first_s: np.ndarray, worker: np.ndarray,
+                          restarts: bool) -> np.ndarray:
+    """Indices of each worker's first task in each epoch that started workers (every epoch with restarts,
+    else the first), in epoch order, then by start time (one sort, not a loop over epochs and workers)."""
     e, _ = _epoch_index(plan)
-    return np.arange(int(e[-1]) + 1) if restarts else np.zeros(1, np.int64)
+    ok = np.flatnonzero((worker >= 0) & np.isfinite(first_s) & ((e == 0) | restarts))
+    if not len(ok):
+        return ok
+    order = ok[np.lexsort((first_s[ok], worker[ok], e[ok]))]
+    key = e[order] * (int(worker.max()) + 1) + worker[order]
+    firsts = order[np.r_[True, key[1:] != key[:-1]]]
+    return firsts[np.lexsort((first_s[firsts], e[firsts]))]
 
 
 def _boots(plan: ReplayPlan, first_s: np.ndarray, worker: np.ndarray, wait_start_s: np.ndarray,
            restarts: bool) -> list[list[float]]:
     """Step 1a: per epoch that started workers, per worker in start order, its first span after the first ask."""
-    e, _ = _epoch_index(plan)
-    rows = []
-    for ep in _starting_epochs(plan, restarts):
-        mine = (e == ep) & (worker >= 0) & np.isfinite(first_s)
-        ask = wait_start_s[np.flatnonzero(e == ep)[0]]
-        firsts = [first_s[mine & (worker == w)].min() - ask for w in np.unique(worker[mine])]
-        rows.append(sorted(max(0.0, float(f)) for f in firsts))
+    e, pos = _epoch_index(plan)
+    firsts = _first_of_each_worker(plan, first_s, worker, restarts)
+    ask = wait_start_s[np.flatnonzero(pos == 0)]  # the loop's first ask of each epoch
+    after = np.maximum(0.0, first_s[firsts] - ask[e[firsts]])
+    rows: list[list[float]] = [[] for _ in range(len(ask) if restarts else 1)]
+    for ep, x in zip(e[firsts].tolist(), after.tolist(), strict=True):
+        rows[ep].append(x)  # an epoch whose tasks no worker ran keeps an empty row
     return rows
 
 
 def _first_excess(plan: ReplayPlan, first_s: np.ndarray, worker: np.ndarray, restarts: bool) -> float:
     """Step 1d: a worker's first task of a starting epoch beyond the median task (0 when none is longer)."""
     task = plan.loader.io_s.sum(1) + plan.loader.cpu_s.sum(1)
-    e, _ = _epoch_index(plan)
     is_first = np.zeros(plan.batches, bool)
-    for ep in _starting_epochs(plan, restarts):
-        for w in np.unique(worker[(e == ep) & (worker >= 0)]):
-            mine = np.flatnonzero((e == ep) & (worker == w) & np.isfinite(first_s))
-            if len(mine):
-                is_first[mine[np.argmin(first_s[mine])]] = True
+    is_first[_first_of_each_worker(plan, first_s, worker, restarts)] = True
     if not is_first.any() or is_first.all():
         return 0.0
     return float(np.mean(np.maximum(0.0, task[is_first] - np.median(task[~is_first]))))
