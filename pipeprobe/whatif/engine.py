@@ -294,8 +294,8 @@ class _Replayer:
 
     __slots__ = ("plan", "n", "workers", "prefetch", "in_order", "barrier", "loader_work", "consumer_work",
                  "task_s", "task_u", "work_s", "work_u", "epoch_first", "epoch_list", "epoch_index", "epoch_stop",
-                 "epoch_dispatch", "worker_start", "starting", "handoff", "latency", "worker_gap", "dispatch", "policy", "queue", "cpu", "log",
-                 "consumer", "state", "waiting_for", "wait_began", "ready_pool", "next_request", "last_task_of",
+                 "epoch_dispatch", "worker_start", "starting", "handoff", "latency", "worker_gap", "dispatch",
+                 "policy", "queue", "cpu", "log", "consumer", "state", "waiting_for", "wait_began", "ready_pool", "next_request", "last_task_of",
                  "finished_at", "step_width")
 
     def __init__(self, plan: ReplayPlan, loader: Work, consumer: Work, settings: Settings) -> None:

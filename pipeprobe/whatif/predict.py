@@ -297,9 +297,10 @@ def _lifecycle_notes(plan: ReplayPlan, workers: int) -> list[str]:
         return []
     if not lc.known:
         return [UNKNOWN_START_NOTE] if workers > plan.workers else []
+    last_s = lc.boots(workers)[-1] if workers else 0.0
     return [f"worker start and stop ({lc.source}): {lc.fork_s * 1e3:.1f} ms in the loop per worker started, "
-            f"{lc.stop_s * 1e3:.1f} ms per worker stopped, first task {(lc.boots(workers)[-1] if workers else 0) * 1e3:.1f} ms "
-            "after the epoch's first ask for the last worker started"]
+            f"{lc.stop_s * 1e3:.1f} ms per worker stopped, first task {last_s * 1e3:.1f} ms after the epoch's "
+            "first ask for the last worker started"]
 
 
 def predict(plan: ReplayPlan, base: Replay, scenario: Scenario, *, persistent_workers: bool = False) -> Prediction:
