@@ -153,3 +153,22 @@ class TestBadHeader:
         unknown and replays as without it (the hand-worked 48 ms of test_no_workers_without_timed_starts)."""
         p = _predict(_record(tmp_path, 0, header={"worker_start": field}), 2)
         assert (True, 0.048) == (UNKNOWN_START_NOTE in p.notes, pytest.approx(p.predicted_wall_s))
+
+
+class TestEngineStartsWorkers:
+    @pytest.mark.parametrize("policy", ["first-free", "round-robin"])
+    def test_a_restarted_worker_runs_one_task_at_a_time(self, policy):
+        """1 worker, 2 epochs of two 10 ms tasks and 1 ms steps, 5 ms between a worker's tasks, a new worker
+        process ready 3 ms after each epoch's first ask. By hand: tasks 3-13 and 18-28, steps end 14 and
+        29; epoch 1 asks at 29, its worker starts at 32: tasks 32-42 and 47-57 (the old process's 'free
+        again' at 33 starts nothing), steps end 43 and 58 ms."""
+        import numpy as np
+
+        from pipeprobe.whatif.plan import plan_from_durations
+
+        plan = plan_from_durations([0.010] * 4, [0.001] * 4, epoch=[0, 0, 1, 1], workers=1, prefetch=2,
+                                   policy=policy)
+        plan = replace(plan, worker_gap_s=0.005, epoch_worker_start_s=np.array([[0.003], [0.003]]))
+        r = replay(plan)
+        assert [3, 18, 32, 47] == pytest.approx((r.start_s * 1e3).tolist())
+        assert 0.058 == pytest.approx(r.wall_s)

@@ -294,7 +294,7 @@ class _Replayer:
 
     __slots__ = ("plan", "n", "workers", "prefetch", "in_order", "barrier", "loader_work", "consumer_work",
                  "task_s", "task_u", "work_s", "work_u", "epoch_first", "epoch_list", "epoch_index", "epoch_stop",
-                 "epoch_dispatch", "worker_start", "starting", "handoff", "latency", "worker_gap", "dispatch",
+                 "epoch_dispatch", "worker_start", "ready_pending", "ready_skip", "handoff", "latency", "worker_gap", "dispatch",
                  "policy", "queue", "cpu", "log", "consumer", "state", "waiting_for", "wait_began", "ready_pool", "next_request", "last_task_of",
                  "finished_at", "step_width")
 
@@ -321,7 +321,9 @@ class _Replayer:
         # per epoch and worker: the first ask to the worker's first task (new worker processes; a barrier only)
         ws = plan.epoch_worker_start_s
         self.worker_start = ws.tolist() if ws is not None and W and self.barrier else None
-        self.starting = [False] * max(W, 1)  # the worker's process is starting: it takes no request yet
+        # per worker: its "free again" events still in the queue, and how many of them a restart made stale
+        self.ready_pending = [0] * max(W, 1)
+        self.ready_skip = [0] * max(W, 1)
         self.handoff = plan.handoff_s if W else 0.0
         self.latency = plan.latency_s if W else 0.0
         self.worker_gap, self.dispatch = plan.worker_gap_s, plan.dispatch_s
@@ -399,8 +401,10 @@ class _Replayer:
             self._start_task(w, b, now, by_worker=False)
 
     def _on_worker_ready(self, now: float, w: int) -> None:
-        """Worker ``w`` is free for its next task (a worker being started again is not)."""
-        if self.starting[w]:
+        """Worker ``w`` is free for its next task (unless its process was started again since)."""
+        self.ready_pending[w] -= 1
+        if self.ready_skip[w]:
+            self.ready_skip[w] -= 1
             return
         b = self.policy.worker_ready(w)
         if b is not None:
@@ -408,7 +412,6 @@ class _Replayer:
 
     def _on_worker_started(self, now: float, w: int) -> None:
         """Worker ``w``'s new process is ready for its first task of the epoch."""
-        self.starting[w] = False
         b = self.policy.worker_ready(w)
         if b is not None:
             self._start_task(w, b, now, by_worker=True)
@@ -446,6 +449,7 @@ class _Replayer:
             schedule = self.queue.schedule
             schedule(now + self.latency, self._on_available, b)
             schedule(now + self.worker_gap, self._on_worker_ready, entity)
+            self.ready_pending[entity] += 1
         elif self.state is _LOADING:  # loaded in the loop: take it, then work on it
             log.end_s[b] = log.available_s[b] = now
             log.ready_by_batch[b] = True
@@ -486,7 +490,7 @@ class _Replayer:
         """
         for w in range(self.workers):
             self.policy.hold(w)
-            self.starting[w] = True
+            self.ready_skip[w] = self.ready_pending[w]  # the old process's "free again" is not this one's
             self.last_task_of[w] = -1
             self.queue.schedule(now + start_s[w], self._on_worker_started, w)
 
