@@ -47,9 +47,12 @@ def is_inline_torch_loader(loader: Any) -> bool:
     >>> is_inline_torch_loader([[1, 2], [3, 4]])
     False
     """
-    cls = type(loader)
-    is_torch = any(c.__module__.startswith("torch.utils.data") and c.__name__ == "DataLoader" for c in cls.__mro__)
-    return is_torch and getattr(loader, "num_workers", None) == 0
+    try:  # watch() calls this in the user's loop: a strange object only goes untimed
+        is_torch = any(c.__module__.startswith("torch.utils.data") and c.__name__ == "DataLoader"
+                       for c in type(loader).__mro__)
+        return is_torch and getattr(loader, "num_workers", None) == 0
+    except Exception:  # noqa: BLE001
+        return False
 
 
 def time_worker_starts(loader: Any) -> dict[str, Any] | None:
