@@ -11,6 +11,7 @@ exact; the fixtures that record real runs live in ``_recorded.py``.
 
 from __future__ import annotations
 
+import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -174,7 +175,8 @@ def three_epoch_rows(persistent: bool) -> dict[int, list[Row]]:
 
 def loader_life_rows(workers: int, epochs: int = 2, batches_per_epoch: int = 2, *, task_ms: float = 20.0,
                      step_ms: float = 2.0, boot_ms: float = 5.0, fork_ms: float = 3.0, stop_ms: float = 4.0,
-                     first_extra_ms: float = 0.0, persistent: bool = False) -> tuple[dict[int, list[Row]], float]:
+                     first_extra_ms: float = 0.0, persistent: bool = False,
+                     early: bool = False) -> tuple[dict[int, list[Row]], float]:
     """A loader-bound run whose workers start and stop as torch's DataLoader does; ``(rows, end_ms)``.
 
     Each epoch that starts workers: the loop makes them one after another
@@ -186,9 +188,10 @@ def loader_life_rows(workers: int, epochs: int = 2, batches_per_epoch: int = 2, 
     Without ``persistent`` each epoch ends by stopping the workers
     (``stop_ms`` each, in the loop) and new ones start; persistent ones start
     once and take an epoch's first requests at once. ``workers=0``: the loop
-    loads each batch itself (``task_ms``) inside its wait. (No worker starts
-    before the loop's first ask; torch hands out an epoch's first indices
-    inside ``iter()``, so one could, and pipeprobe's replay clips that too.)
+    loads each batch itself (``task_ms``) inside its wait. No worker starts
+    before the loop's first ask unless ``early``: torch hands out an epoch's
+    first indices inside ``iter()``, so one can (pipeprobe's replay starts
+    it at the ask).
     """
     main: list[Row] = []
     procs: dict[int, list[Row]] = {}
@@ -196,7 +199,8 @@ def loader_life_rows(workers: int, epochs: int = 2, batches_per_epoch: int = 2, 
     for e in range(epochs):
         starting = workers and (e == 0 or not persistent)
         t += workers * fork_ms if starting else 0.0
-        free = [max(t, t + boot_ms - (workers - 1 - k) * fork_ms) if starting else t for k in range(workers)]
+        free = [max(-math.inf if early else t, t + boot_ms - (workers - 1 - k) * fork_ms) if starting else t
+                for k in range(workers)]
         if starting:
             pid += workers
         for i in range(batches_per_epoch):

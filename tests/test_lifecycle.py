@@ -172,3 +172,16 @@ class TestEngineStartsWorkers:
         r = replay(plan)
         assert [3, 18, 32, 47] == pytest.approx((r.start_s * 1e3).tolist())
         assert 0.058 == pytest.approx(r.wall_s)
+
+
+class TestEpochBarrier:
+    def test_a_worker_starting_before_the_loops_first_ask_keeps_the_barrier(self, tmp_path):
+        """2 workers made 6 ms apart, each starting 5 ms after it was made: worker 0 takes its first task
+        1 ms before the loop's first ask of the epoch (torch hands out the first indices inside iter()),
+        yet no epoch's task starts before the loop took the last batch of the epoch before: the loader
+        keeps the epoch barrier (hand-worked from the synthetic run)."""
+        run = _record(tmp_path, 2, fork_ms=6.0, early=True, **GRID)
+        first_tasks = run.spans[run.spans["stage"] == "load"].groupby("epoch")["start_s"].min()
+        first_asks = run.batches.groupby("epoch")["wait_start_s"].min()
+        assert [True, True, True] == (first_tasks < first_asks).tolist()
+        assert build_plan(run, prefetch=4).epoch_barrier
