@@ -185,3 +185,15 @@ class TestEpochBarrier:
         first_asks = run.batches.groupby("epoch")["wait_start_s"].min()
         assert [True, True, True] == (first_tasks < first_asks).tolist()
         assert build_plan(run, prefetch=4).epoch_barrier
+
+
+class TestLoopWorkAfterTheLastStep:
+    def test_the_stop_cost_is_bounded_by_the_time_between_epochs(self, tmp_path):
+        """The 1-worker hand-worked run, its script running 500 ms after the last step (saving a model):
+        one worker's stop is taken as at most the loop's 7 ms per worker between epochs (stop and start
+        together), not 504 ms. By hand the prediction at 2 workers: 82 + 500 - 3 (no start counted) + 7
+        - 4 (the stop taken as 7 ms) = 582 + 4 = 586 ms, against the rerun's 582 ms."""
+        rows, end = loader_life_rows(1)
+        run = pipeprobe.load(write_run(tmp_path / "w1", rows, end_ms=end + 500, cores=8))
+        assert 0.586 == pytest.approx(_predict(run, 2).predicted_wall_s)
+        assert 0.582 == pytest.approx(_rerun_s(2) + 0.5)

@@ -15,13 +15,13 @@ replay with more or fewer workers must add or take them away. The steps:
      (the worker's own start, after its process was made);
    * ``stop_s``: the loop's time per worker stopped: the recorded run's
      time after its last step (the last epoch stops its workers there)
-     over the workers;
+     over the workers, at most the loop's time per worker between epochs;
    * ``fork_s``: the loop's time per worker started: its time between two
      epochs beyond its ordinary time between two batches
-     (:func:`between_epochs`), over the workers, less ``stop_s`` (workers
-     that started once, persistent ones: the loop's time before its first
-     ask over the workers, which takes the loop's own set-up between
-     opening the probe and ``iter()`` for starting workers);
+     (:func:`between_epochs`), over the workers, less ``stop_s``. Workers
+     that started once (persistent ones): the spacing of their starts, or,
+     with one worker, the loop's time before its first ask, at most the
+     worker's own start;
    * ``first_excess_s``: how much longer a worker's first task of an epoch
      took than the median task (cold caches, lazy imports);
 
@@ -185,14 +185,24 @@ def measure_lifecycle(plan: ReplayPlan, first_s: np.ndarray, worker: np.ndarray,
     n = min((len(r) for r in rows if r), default=0)
     boot = tuple(float(np.mean([r[k] for r in rows if r])) for k in range(n))
     _, extra, _ = between_epochs(plan)
-    stop = plan.tail_s / W if restarts else 0.0
     if restarts and len(extra):
-        fork = max(0.0, float(np.mean(extra)) / W - stop)
-    else:  # workers started once: the loop's time before its first ask is taken as making them
-        fork = plan.start_up_s / W
+        between = float(np.mean(extra)) / W  # a stop and a start per worker
+        stop = min(plan.tail_s / W, between)  # the loop may do more after its last step than stop workers
+        fork = max(0.0, between - stop)
+    else:
+        stop, fork = 0.0, _fork_once(plan, boot)
     return WorkerLifecycle(known=True, restarts=restarts, boot_s=boot, fork_s=fork, stop_s=stop,
                            first_excess_s=_first_excess(plan, first_s, worker, restarts), source="recording",
                            epoch_boot_s=tuple(tuple(r) for r in rows))
+
+
+def _fork_once(plan: ReplayPlan, boot: tuple[float, ...]) -> float:
+    """Step 1c for workers started once: the spacing of their starts (the loop made them one after another),
+    or with one worker the loop's time before its first ask, at most the worker's own start (the loop may
+    do other work before ``iter()``)."""
+    if len(boot) >= 2:
+        return float(np.mean(np.diff(boot)))
+    return min(plan.start_up_s, boot[0]) if boot else 0.0
 
 
 def _epoch_index(plan: ReplayPlan) -> tuple[np.ndarray, np.ndarray]:
