@@ -15,13 +15,14 @@ from __future__ import annotations
 
 from dataclasses import replace
 
+import numpy as np
 import pytest
-from _synth import loader_life_rows, write_run
+from _synth import loader_life_rows, step, wait, write_run
 
 import pipeprobe
 from pipeprobe.whatif._lifecycle import UNKNOWN_START_NOTE, with_lifecycle
 from pipeprobe.whatif.engine import replay
-from pipeprobe.whatif.plan import build_plan
+from pipeprobe.whatif.plan import build_plan, plan_from_durations
 
 #: Several epochs of a loader-bound job: 6 batches of 20 ms tasks per epoch, 2 ms steps, 5 ms worker start,
 #: 3 ms per worker made and 4 ms per worker stopped in the loop, a worker's first task 4 ms longer.
@@ -130,8 +131,6 @@ class TestStepCoresWithoutWorkers:
         """A run that loaded in the loop, each 10 ms step using 2 cores (20 ms process CPU) under a 2-thread
         pool: the thread check has nothing to compare (skipped), yet the replay runs the step on 2 threads
         (its CPU over its wall time, hand-worked), as the step will when workers are added."""
-        from _synth import step, wait
-
         rows = [r for b in range(6) for r in (wait(12 * b, 12 * b + 2, b), step(12 * b + 2, 12 * b + 12, b,
                                                                              cpu_ms=20.0))]
         pools = {"usable_cores": 2, "pools": [{"api": "blas", "library": "openblas", "threads": 2}],
@@ -162,10 +161,6 @@ class TestEngineStartsWorkers:
         process ready 3 ms after each epoch's first ask. By hand: tasks 3-13 and 18-28, steps end 14 and
         29; epoch 1 asks at 29, its worker starts at 32: tasks 32-42 and 47-57 (the old process's 'free
         again' at 33 starts nothing), steps end 43 and 58 ms."""
-        import numpy as np
-
-        from pipeprobe.whatif.plan import plan_from_durations
-
         plan = plan_from_durations([0.010] * 4, [0.001] * 4, epoch=[0, 0, 1, 1], workers=1, prefetch=2,
                                    policy=policy)
         plan = replace(plan, worker_gap_s=0.005, epoch_worker_start_s=np.array([[0.003], [0.003]]))
