@@ -95,6 +95,17 @@ class TestTimedAtClose:
         assert "worker_start" not in _header(tmp_path / "run")
         assert 6 == len(pipeprobe.load(tmp_path / "run").batches)
 
+    def test_the_copy_stops_an_idle_worker(self):
+        """The timed copy of a map-style loader hands out only the original's first batch, so its worker is
+        idle when stopped, as at an epoch's end (torch stops workers after the last batch was taken); the
+        original loader is untouched."""
+        from pipeprobe.record._workerstart import _one_worker_copy
+
+        loader = DataLoader(Counting(n=16, rounds=1), batch_size=4)
+        one, one_batch = _one_worker_copy(loader)
+        assert (True, [[0, 1, 2, 3]], 1, 0, 4) == (one_batch, list(one.batch_sampler), one.num_workers,
+                                                   loader.num_workers, len(list(loader.batch_sampler)))
+
     def test_a_loader_with_workers_is_not_timed_again(self, tmp_path):
         """A DataLoader with workers shows their starts in its spans: no worker_start in the header."""
         _loop(DataLoader(Counting(n=16), batch_size=8, num_workers=1), tmp_path / "run", epochs=1)

@@ -5,9 +5,10 @@ worker costs to start and stop, yet ``pipeprobe whatif --workers N``
 needs it (:mod:`pipeprobe.whatif._lifecycle`). When the probe watched a
 torch ``DataLoader`` with ``num_workers=0``, :func:`time_worker_starts`
 runs at close, with recording already off: it makes a one-worker copy
-of the loader and, up to :data:`STARTS` times, times ``iter()`` (making
-the worker process), the first ``next()`` (the worker's start and its
-first batch) and stopping it. The run header keeps the medians as
+of the loader (a map-style one hands out only its first batch) and, up to
+:data:`STARTS` times, times ``iter()`` (making the worker process), the
+first ``next()`` (the worker's start and its first batch) and stopping it
+(the ``next()`` that ends the copy's epoch, as at an epoch's end). The run header keeps the medians as
 ``worker_start`` (docs/trace-format.md).
 
 Bounds: it starts no new try after :data:`BUDGET_S` seconds, and a batch
@@ -68,7 +69,7 @@ def time_worker_starts(loader: Any) -> dict[str, Any] | None:
     torch = sys.modules.get("torch")
     state = torch.random.get_rng_state() if torch is not None else None
     try:
-        times = _timed_starts(_one_worker_copy(loader))
+        times = _timed_starts(*_one_worker_copy(loader))
     except Exception as exc:  # noqa: BLE001 - the job is done; its run must still close
         warnings.warn(f"pipeprobe could not time a loader worker's start ({exc}); predictions that add workers "
                       "to this run will say the start-up cost is unknown", RuntimeWarning, stacklevel=3)
@@ -81,8 +82,9 @@ def time_worker_starts(loader: Any) -> dict[str, Any] | None:
     return {"starts": len(times), **{k: statistics.median(t[k] for t in times) for k in times[0]}}
 
 
-def _one_worker_copy(loader: Any) -> Any:
-    """A shallow copy of ``loader`` that loads with one worker process (same dataset, sampler and collate)."""
+def _one_worker_copy(loader: Any) -> tuple[Any, bool]:
+    """A shallow copy of ``loader`` that loads with one worker process (same dataset, sampler and collate),
+    and whether it hands out one batch only."""
     one = copy.copy(loader)
     object.__setattr__(one, "num_workers", 1)  # torch's DataLoader guards some attributes after init
     if getattr(one, "prefetch_factor", None) is None:
@@ -91,10 +93,28 @@ def _one_worker_copy(loader: Any) -> Any:
     object.__setattr__(one, "timeout", BATCH_TIMEOUT_S)
     if hasattr(one, "_iterator"):
         object.__setattr__(one, "_iterator", None)
-    return one
+    return one, _one_batch(one)
 
 
-def _timed_starts(one: Any) -> list[dict[str, float]]:
+def _one_batch(one: Any) -> bool:
+    """A map-style loader's copy hands out only its first batch: the worker is idle when it is stopped.
+
+    (So the stop is timed as at an epoch's end, where every batch was taken. An
+    iterable-style dataset keeps its items: its worker may still be loading
+    its second batch when it is stopped, and the stop includes that.)
+    """
+    if getattr(getattr(one, "_dataset_kind", None), "__int__", None) is None or int(one._dataset_kind) != 0:
+        return False  # not a map-style dataset (torch's _DatasetKind.Map is 0)
+    if getattr(one, "batch_sampler", None) is not None:
+        object.__setattr__(one, "batch_sampler", [list(next(iter(one.batch_sampler)))])
+        return True
+    if getattr(one, "sampler", None) is not None:
+        object.__setattr__(one, "sampler", [next(iter(one.sampler))])
+        return True
+    return False
+
+
+def _timed_starts(one: Any, one_batch: bool) -> list[dict[str, float]]:
     """Step by step: ``iter()``, the first ``next()``, then stopping the worker; until STARTS or BUDGET_S."""
     out: list[dict[str, float]] = []
     begin = perf_counter()
@@ -104,6 +124,8 @@ def _timed_starts(one: Any) -> list[dict[str, float]]:
         t1 = perf_counter()
         next(it)
         t2 = perf_counter()
+        if one_batch:  # no second batch: this next() ends the epoch and stops the worker, as torch does
+            next(it, None)
         shutdown = getattr(it, "_shutdown_workers", None)
         if shutdown is not None:
             shutdown()
