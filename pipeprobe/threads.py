@@ -69,7 +69,8 @@ class ThreadCheck:
         was imported, else the largest pool; 1 when none.
     step_cores : float
         Cores the step used (process CPU over wall time, median), with
-        idle workers where enough steps ran so (else over all steps).
+        idle workers where enough steps ran so (else over all steps); in a
+        run without workers (the check skipped), over all its steps.
     pools : list of dict
         The pools recorded: ``{"api", "library", "threads"}``, plus torch's
         intra-op pool as ``{"api": "intra-op", "library": "torch", ...}``.
@@ -124,7 +125,7 @@ class ThreadCheck:
     @property
     def step_width(self) -> float:
         """Threads the replay runs the step on: :attr:`step_cores`, between 1 and :attr:`step_threads`."""
-        if self.skipped is not None or not math.isfinite(self.step_cores):
+        if not math.isfinite(self.step_cores):  # a skipped check keeps 1.0, but for a run without workers
             return 1.0
         return float(min(max(self.step_cores, 1.0), self.step_threads))
 
@@ -338,6 +339,14 @@ def _compare(steps: _StepLoad, cores: int, k: int, background: float) -> dict[st
     return out
 
 
+def _cores_alone(steps: _StepLoad) -> float:
+    """Cores the step used with no loader workers: the median of its process CPU over its wall time."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        used = steps.cpu_s / steps.dur_s
+    used = used[np.isfinite(used)]
+    return float(np.median(used)) if len(used) else 1.0
+
+
 def _advice(cores: int, k: int, workers: int, oversubscribed: bool) -> str:
     """Step 4: the fix on this machine: threads for the step, or workers."""
     if not oversubscribed:
@@ -388,9 +397,9 @@ def check_threads(run: Run, background_cores: float = 0.0) -> ThreadCheck:
     steps = _steps_under_load(run)
     if not len(steps.dur_s):
         return ThreadCheck(skipped="the run has no training steps (probe.step())", wall_s=float(run.wall_s))
-    if steps.workers == 0:
+    if steps.workers == 0:  # nothing to compare, but the step's cores say how wide a replay with workers runs it
         return ThreadCheck(skipped="the loader ran no worker processes", cores=cores, step_threads=k,
-                           pools=tuple(pools), wall_s=float(run.wall_s))
+                           step_cores=_cores_alone(steps), pools=tuple(pools), wall_s=float(run.wall_s))
     found = _compare(steps, cores, k, float(background_cores))
     return ThreadCheck(skipped=None, cores=cores, step_threads=k, pools=tuple(pools), workers=steps.workers,
                        wall_s=float(run.wall_s), **found,

@@ -11,6 +11,7 @@ exact; the fixtures that record real runs live in ``_recorded.py``.
 
 from __future__ import annotations
 
+import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -170,6 +171,54 @@ def three_epoch_rows(persistent: bool) -> dict[int, list[Row]]:
                  wait(t + 8, t + 8, 2 * e + 1, epoch=e), member(t + 8, 2 * e + 1, 2 * e + 1, epoch=e),
                  step(t + 8, t + 12, 2 * e + 1, epoch=e)]
     return {100: main, **procs}
+
+
+def loader_life_rows(workers: int, epochs: int = 2, batches_per_epoch: int = 2, *, task_ms: float = 20.0,
+                     step_ms: float = 2.0, boot_ms: float = 5.0, fork_ms: float = 3.0, stop_ms: float = 4.0,
+                     first_extra_ms: float = 0.0, persistent: bool = False,
+                     early: bool = False) -> tuple[dict[int, list[Row]], float]:
+    """A loader-bound run whose workers start and stop as torch's DataLoader does; ``(rows, end_ms)``.
+
+    Each epoch that starts workers: the loop makes them one after another
+    (``fork_ms`` each) before its first ask; worker ``k`` then starts on its
+    own and takes its first task ``boot_ms`` after its process was made.
+    Batch ``i`` of an epoch goes to worker ``i mod workers``; a worker runs
+    its tasks (``task_ms``, the first of an epoch ``first_extra_ms`` longer)
+    back to back; the loop takes batches in order and steps ``step_ms``.
+    Without ``persistent`` each epoch ends by stopping the workers
+    (``stop_ms`` each, in the loop) and new ones start; persistent ones start
+    once and take an epoch's first requests at once. ``workers=0``: the loop
+    loads each batch itself (``task_ms``) inside its wait. No worker starts
+    before the loop's first ask unless ``early``: torch hands out an epoch's
+    first indices inside ``iter()``, so one can (pipeprobe's replay starts
+    it at the ask).
+    """
+    main: list[Row] = []
+    procs: dict[int, list[Row]] = {}
+    t, b, pid = 0.0, 0, 200
+    for e in range(epochs):
+        starting = workers and (e == 0 or not persistent)
+        t += workers * fork_ms if starting else 0.0
+        free = [max(-math.inf if early else t, t + boot_ms - (workers - 1 - k) * fork_ms) if starting else t
+                for k in range(workers)]
+        if starting:
+            pid += workers
+        for i in range(batches_per_epoch):
+            if workers:
+                k = i % workers
+                extra = first_extra_ms if starting and i < workers else 0.0
+                begin, end = free[k], free[k] + task_ms + extra
+                free[k] = end
+                procs.setdefault(pid - workers + k if not persistent else 201 + k, []).append(
+                    stage("load", begin, end, sample=b, epoch=e))
+            else:
+                end = t + task_ms
+                main.append(stage("load", t, end, sample=b, batch=b, epoch=e))
+            ready = max(t, end)
+            main += [wait(t, ready, b, epoch=e), member(ready, b, b, epoch=e), step(ready, ready + step_ms, b, epoch=e)]
+            t, b = ready + step_ms, b + 1
+        t += workers * stop_ms if workers and not persistent else 0.0
+    return {100: main, **procs}, t
 
 
 def write_many_spans(run_dir: str | os.PathLike, n_spans: int = 1_000_000, workers: int = 4,

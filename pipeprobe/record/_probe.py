@@ -11,6 +11,7 @@ import os
 import platform
 import socket
 import warnings
+import weakref
 from collections import deque
 from dataclasses import replace
 from pathlib import Path
@@ -20,7 +21,7 @@ from typing import Any, Callable, Iterable, Iterator, TypeVar
 from .. import __version__, _live
 from .. import tracefile as tf
 from ..errors import ProbeStateError
-from . import _clocksync, _closing, _signals, _window
+from . import _clocksync, _closing, _signals, _window, _workerstart
 from . import _recorder as _r
 from ._recorder import RECORDER
 from ._spans import _check_epoch, _check_id, _Noop, _Span, _StepSpan, stage
@@ -264,6 +265,7 @@ class Probe:
         if header_path.exists():
             raise ValueError(f"{str(out)!r} already holds a recorded run (rank {self.rank}); give a new folder")
         self._sampler = None
+        self._inline_loader: Callable[[], Any] | None = None  # a torch DataLoader watched with no workers
         self._env_before = {k: os.environ.get(k) for k in (_r.ENV_RUN_DIR, _r.ENV_OPTIONS)}
         rec.next_batch = 0
         rec.epoch = -1
@@ -381,6 +383,11 @@ class Probe:
             raise ValueError("samples must be a callable that returns the sample ids of a batch")
         if epoch is not None:
             _check_id(epoch, "epoch")
+        if self._inline_loader is None and _workerstart.is_inline_torch_loader(loader):
+            try:  # timed at close (record/_workerstart.py); a weak reference keeps no loader alive
+                self._inline_loader = weakref.ref(loader)
+            except TypeError:
+                pass
         return _Watched(self, loader, samples, epoch)
 
     # -- life cycle ----------------------------------------------------------
@@ -437,7 +444,7 @@ class Probe:
             return
         self._header = replace(self._header, end_mono_ns=end, closed=True, batches=rec.next_batch,
                                extra={**self._header.extra, **_window.header_fields(rec.window, rec.next_batch),
-                                      "threads": read_thread_pools()})
+                                      "threads": read_thread_pools(), **self._worker_start(ok)})
         rec.window = None
         try:
             self._write_header()
@@ -451,6 +458,15 @@ class Probe:
                 _CLOSE_REPORT(self.run_dir)
             except Exception as exc:  # noqa: BLE001 - the report must not break training
                 warnings.warn(f"pipeprobe could not print its report: {exc}", RuntimeWarning, stacklevel=2)
+
+    def _worker_start(self, ok: bool) -> dict[str, Any]:
+        """The header's ``worker_start``: a watched torch DataLoader without workers, its worker starts timed."""
+        loader = self._inline_loader() if self._inline_loader is not None else None
+        self._inline_loader = None
+        if loader is None or not ok or not RECORDER.next_batch:
+            return {}
+        timed = _workerstart.time_worker_starts(loader)
+        return {"worker_start": timed} if timed else {}
 
     def __enter__(self) -> Probe:
         return self

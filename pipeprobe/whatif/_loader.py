@@ -37,6 +37,10 @@ class LoaderPolicy:
         """``worker`` is free: the batch it starts now, or None (it waits idle)."""
         raise NotImplementedError
 
+    def hold(self, worker: int) -> None:
+        """``worker`` is starting (a new process): it takes no request until :meth:`worker_ready`."""
+        raise NotImplementedError
+
 
 class FirstFree(LoaderPolicy):
     """A shared queue: the idle worker that waited longest takes the next request.
@@ -66,6 +70,10 @@ class FirstFree(LoaderPolicy):
             return self.queue.popleft()
         self.idle.append(worker)
         return None
+
+    def hold(self, worker: int) -> None:
+        if worker in self.idle:
+            self.idle.remove(worker)
 
 
 class RoundRobin(LoaderPolicy):
@@ -107,6 +115,9 @@ class RoundRobin(LoaderPolicy):
             return self.waiting[worker].popleft()
         self.idle.add(worker)
         return None
+
+    def hold(self, worker: int) -> None:
+        self.idle.discard(worker)
 
 
 def make_policy(name: str, workers: int, index: Sequence[int]) -> LoaderPolicy:

@@ -428,8 +428,11 @@ def loader_config(batches: _Batches, loader: _LoaderTasks, by_worker: _BatchWork
     nb, first = batches.n, loader.first_s
     start_idx = batches.epoch_start_index
     rec_workers = workers if workers is not None else max(1, by_worker.seen)
-    # did any task of an epoch start before the consumer began that epoch?
-    starts_early = (first < batches.wait_start_s[start_idx] - 1e-6) & (start_idx > 0)
+    # did any task of an epoch start before the consumer took the last batch of the epoch before? (Not:
+    # before the consumer's first ask of its own epoch; torch hands out an epoch's first indices inside
+    # iter(), so with several workers the first of them may start before the loop asks.)
+    prev_last = batches.ready_s[np.maximum(start_idx - 1, 0)]
+    starts_early = (first < prev_last - 1e-6) & (start_idx > 0)
     barrier = not bool(starts_early.any())
     notes: tuple[str, ...] = ()
     if prefetch is not None:

@@ -9,7 +9,8 @@ and shared cores, under the :class:`Settings` a scenario resolved to (see
   is one ``heappush``; equal times keep the order they were scheduled in;
 * one handler per event kind on :class:`_Replayer`: the consumer is ready
   for its next batch (``_on_resume``), a request reaches the workers
-  (``_on_dispatchable``), a worker is free (``_on_worker_ready``), a
+  (``_on_dispatchable``), a worker is free (``_on_worker_ready``), a new
+  worker process is ready (``_on_worker_started``), a
   finished batch reaches the consumer (``_on_available``), the consumer
   takes a batch (``_on_handoff``), and a task ends on the CPU
   (``_on_task_finished``, from :class:`~pipeprobe.whatif._cores.CpuShare`,
@@ -38,6 +39,7 @@ import numpy as np
 
 from ..errors import ScenarioError
 from ._cores import CpuShare
+from ._lifecycle import with_lifecycle
 from ._loader import make_policy
 from ._replay_path import critical_path
 from .scenario import Scenario
@@ -156,6 +158,7 @@ def replay(
     elif changes != Scenario():
         raise ScenarioError("give replay() a Scenario or its fields as keywords, not both")
     settings = scenario.settings(plan)
+    plan = with_lifecycle(plan, settings.workers)
     loader, consumer = scenario.work(plan)
     out = simulate(plan, loader, consumer, settings)
     config = {"workers": settings.workers, "prefetch": settings.prefetch, "cores": settings.cores,
@@ -291,8 +294,8 @@ class _Replayer:
 
     __slots__ = ("plan", "n", "workers", "prefetch", "in_order", "barrier", "loader_work", "consumer_work",
                  "task_s", "task_u", "work_s", "work_u", "epoch_first", "epoch_list", "epoch_index", "epoch_stop",
-                 "epoch_dispatch", "handoff", "latency", "worker_gap", "dispatch", "policy", "queue", "cpu", "log",
-                 "consumer", "state", "waiting_for", "wait_began", "ready_pool", "next_request", "last_task_of",
+                 "epoch_dispatch", "worker_start", "ready_pending", "ready_skip", "handoff", "latency", "worker_gap", "dispatch",
+                 "policy", "queue", "cpu", "log", "consumer", "state", "waiting_for", "wait_began", "ready_pool", "next_request", "last_task_of",
                  "finished_at", "step_width")
 
     def __init__(self, plan: ReplayPlan, loader: Work, consumer: Work, settings: Settings) -> None:
@@ -315,6 +318,12 @@ class _Replayer:
         index = np.arange(nb) - np.maximum.accumulate(np.where(first, np.arange(nb), 0)) if self.barrier \
             else np.arange(nb)
         self.epoch_dispatch = plan.epoch_dispatch_s.tolist()
+        # per epoch and worker: the first ask to the worker's first task (new worker processes; a barrier only)
+        ws = plan.epoch_worker_start_s
+        self.worker_start = ws.tolist() if ws is not None and W and self.barrier else None
+        # per worker: its "free again" events still in the queue, and how many of them a restart made stale
+        self.ready_pending = [0] * max(W, 1)
+        self.ready_skip = [0] * max(W, 1)
         self.handoff = plan.handoff_s if W else 0.0
         self.latency = plan.latency_s if W else 0.0
         self.worker_gap, self.dispatch = plan.worker_gap_s, plan.dispatch_s
@@ -392,7 +401,17 @@ class _Replayer:
             self._start_task(w, b, now, by_worker=False)
 
     def _on_worker_ready(self, now: float, w: int) -> None:
-        """Worker ``w`` is free for its next task."""
+        """Worker ``w`` is free for its next task (unless its process was started again since)."""
+        self.ready_pending[w] -= 1
+        if self.ready_skip[w]:
+            self.ready_skip[w] -= 1
+            return
+        b = self.policy.worker_ready(w)
+        if b is not None:
+            self._start_task(w, b, now, by_worker=True)
+
+    def _on_worker_started(self, now: float, w: int) -> None:
+        """Worker ``w``'s new process is ready for its first task of the epoch."""
         b = self.policy.worker_ready(w)
         if b is not None:
             self._start_task(w, b, now, by_worker=True)
@@ -430,6 +449,7 @@ class _Replayer:
             schedule = self.queue.schedule
             schedule(now + self.latency, self._on_available, b)
             schedule(now + self.worker_gap, self._on_worker_ready, entity)
+            self.ready_pending[entity] += 1
         elif self.state is _LOADING:  # loaded in the loop: take it, then work on it
             log.end_s[b] = log.available_s[b] = now
             log.ready_by_batch[b] = True
@@ -454,6 +474,8 @@ class _Replayer:
 
     def _fill_at_epoch_start(self, k: int, now: float) -> None:
         """At the start of the run (or of an epoch, behind a barrier) request up to ``prefetch`` batches."""
+        if self.worker_start is not None:
+            self._start_workers(self.worker_start[self.epoch_index[k]], now)
         stop = self.epoch_stop[k] if self.barrier else self.n
         stop = min(stop, k + self.prefetch)
         while self.next_request < stop:
@@ -461,12 +483,28 @@ class _Replayer:
             self.next_request = nr + 1
             self._request(nr, now, after=-1, at_wait=k)
 
+    def _start_workers(self, start_s: list[float], now: float) -> None:
+        """An epoch starts its workers: worker ``w`` takes requests from ``now + start_s[w]`` on.
+
+        A task it then starts waited for the epoch's start, not for the worker's task before it.
+        """
+        for w in range(self.workers):
+            self.policy.hold(w)
+            self.ready_skip[w] = self.ready_pending[w]  # the old process's "free again" is not this one's
+            self.last_task_of[w] = -1
+            self.queue.schedule(now + start_s[w], self._on_worker_started, w)
+
     def _request(self, b: int, now: float, after: int, at_wait: int) -> None:
         log = self.log
         log.request_s[b] = now
         log.requested_after[b] = after
         log.requested_at_wait[b] = at_wait
-        delay = self.epoch_dispatch[self.epoch_index[b]] if after < 0 else self.dispatch
+        if after >= 0:
+            delay = self.dispatch
+        elif self.worker_start is not None:  # the workers' start times hold the epoch's start-up
+            delay = 0.0
+        else:
+            delay = self.epoch_dispatch[self.epoch_index[b]]
         self.policy.request(b)
         self.queue.schedule(now + delay, self._on_dispatchable, b)
 

@@ -18,7 +18,9 @@ frozen record:
 4. ``without_contention``: the CPU contention of the recorded run taken
    out (:mod:`pipeprobe.whatif._contention`);
 5. ``loader_config`` and ``loader_times``: the recorded workers,
-   prefetch depth, policy and epoch barrier, and the loader's constants.
+   prefetch depth, policy and epoch barrier, and the loader's constants;
+6. what starting and stopping one loader worker cost
+   (:func:`pipeprobe.whatif._lifecycle.measure_lifecycle`).
 
 :func:`pipeprobe.whatif.engine.replay` runs the plan through a
 discrete-event model of the pipeline:
@@ -61,15 +63,17 @@ References
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING, Any, Iterable, Mapping
 
 import numpy as np
 
+from ..analysis import workers_restarted
 from ..errors import ScenarioError
 from ..nesting import own_label
 from ..threads import check_threads
 from ._contention import background_cores, cores_left
+from ._lifecycle import WorkerLifecycle, lifecycle_from_header, measure_lifecycle
 from ._loader import POLICIES
 from ._recorded import (
     Work,
@@ -157,6 +161,16 @@ class ReplayPlan:
         are oversubscribed, beyond processor sharing (1: not at all; the
         high end of a prediction's range sets it, see
         :mod:`pipeprobe.whatif._threadrange`).
+    lifecycle : WorkerLifecycle or None
+        What starting and stopping one loader worker cost in the run
+        (:mod:`pipeprobe.whatif._lifecycle`); a replay with another worker
+        count adds or takes away those costs. None: not measured.
+    workers_kept : bool
+        The replay keeps the workers across epochs (persistent workers).
+    epoch_worker_start_s : ndarray or None
+        Per epoch and worker (in start order): the loop's first ask to the
+        worker's first task, when a replay of another worker count set it;
+        None: every first request of an epoch waits ``epoch_dispatch_s``.
     """
 
     batch_id: np.ndarray
@@ -186,6 +200,9 @@ class ReplayPlan:
     step_width: float = 1.0
     threads: Any = None
     step_lockstep: float = 1.0
+    lifecycle: Any = None
+    workers_kept: bool = False
+    epoch_worker_start_s: np.ndarray | None = None
 
     @property
     def batches(self) -> int:
@@ -310,7 +327,7 @@ def build_plan(
                                                     threads.step_width)
     config = loader_config(batches, loader, by_worker, workers, prefetch, policy)
     times = loader_times(batches, loader, by_worker, config)
-    return ReplayPlan(
+    plan = ReplayPlan(
         batch_id=batches.batch_id, epoch=batches.epoch, loader=loader_side, consumer=consumer_side,
         start_up_s=float(batches.wait_start_s[0]),
         tail_s=max(0.0, float(run.wall_s) - float(consumer.end_s[-1])),
@@ -325,6 +342,15 @@ def build_plan(
         folded_stages=loader.seconds.folded + consumer.seconds.folded, inside=spans.inside,
         step_width=threads.step_width, threads=threads,
     )
+    return replace(plan, lifecycle=_lifecycle_of(run, plan, loader.first_s, by_worker.worker, batches.wait_start_s))
+
+
+def _lifecycle_of(run: Run, plan: ReplayPlan, first_s: np.ndarray, worker: np.ndarray,
+                  wait_start_s: np.ndarray) -> WorkerLifecycle:
+    """Step 6: what starting and stopping a worker cost (the run header's timed starts for a run without workers)."""
+    if plan.workers == 0:
+        return lifecycle_from_header(run.header, plan)
+    return measure_lifecycle(plan, first_s, worker, wait_start_s, workers_restarted(run))
 
 
 def _check_plan_arguments(workers: Any, prefetch: Any, policy: Any) -> tuple[int | None, int | None]:

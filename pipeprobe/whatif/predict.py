@@ -289,6 +289,21 @@ def whatif(
     return predict(plan, replay(plan), scenario, persistent_workers=persistent_workers)
 
 
+def _lifecycle_notes(plan: ReplayPlan, workers: int) -> list[str]:
+    """What the prediction says about starting and stopping workers (:mod:`pipeprobe.whatif._lifecycle`)."""
+    from ._lifecycle import UNKNOWN_START_NOTE
+
+    lc = plan.lifecycle
+    if lc is None or workers == plan.workers:
+        return []
+    if not lc.known:
+        return [UNKNOWN_START_NOTE] if workers > plan.workers else []
+    last_s = lc.boots(workers)[-1] if workers else 0.0
+    return [f"worker start and stop ({lc.source}): {lc.fork_s * 1e3:.1f} ms in the loop per worker started, "
+            f"{lc.stop_s * 1e3:.1f} ms per worker stopped, first task {last_s * 1e3:.1f} ms after the epoch's "
+            "first ask for the last worker started"]
+
+
 def predict(plan: ReplayPlan, base: Replay, scenario: Scenario, *, persistent_workers: bool = False) -> Prediction:
     """The prediction of ``scenario`` for ``plan``, whose unchanged replay is ``base``.
 
@@ -304,6 +319,7 @@ def predict(plan: ReplayPlan, base: Replay, scenario: Scenario, *, persistent_wo
         plan = with_persistent_workers(plan)
         notes.append("persistent workers: no wait for new workers at later epochs")
     rep = replay(plan, scenario.check_stages(plan))
+    notes += _lifecycle_notes(plan, rep.config["workers"])
     if plan.workers == 0 and scenario.prefetch is None and rep.config["workers"] > 0:
         notes.append(f"prefetch: {rep.config['prefetch']} batches in flight, {PREFETCH_PER_WORKER} per worker "
                      "(torch's default; the recorded run loaded in the training loop); set it with prefetch=")

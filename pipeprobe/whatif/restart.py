@@ -43,6 +43,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from ..analysis import workers_restarted
+from ._lifecycle import between_epochs, without_restart_costs
 from ._replay_path import CONSUMER_OVERHEAD
 from .engine import Replay, replay
 from .plan import Work
@@ -111,6 +112,10 @@ class WorkerRestarts:
 def with_persistent_workers(plan: ReplayPlan) -> ReplayPlan:
     """``plan`` with workers kept across epochs: no extra wait between epochs, first tasks start when asked for.
 
+    Nor do kept workers stop at the loop's end or start cold after the first
+    epoch, where the plan measured those costs
+    (:func:`pipeprobe.whatif._lifecycle.without_restart_costs`).
+
     Examples
     --------
     >>> from dataclasses import replace
@@ -125,37 +130,20 @@ def with_persistent_workers(plan: ReplayPlan) -> ReplayPlan:
     ----------
     .. [1] G. S. Fishman, *Discrete-Event Simulation*, Springer, 2001 (a scenario as a changed model input).
     """
+    plan = without_restart_costs(plan)
     ed = np.array(plan.epoch_dispatch_s, float, copy=True)
     ed[1:] = 0.0
-    last, extra, _ = _between_epochs(plan)
+    last, extra, _ = between_epochs(plan)
     c = plan.consumer
     if not len(last) or CONSUMER_OVERHEAD not in c.names:
-        return replace(plan, epoch_dispatch_s=ed)
+        return replace(plan, epoch_dispatch_s=ed, workers_kept=True)
     col = c.names.index(CONSUMER_OVERHEAD)
     io, cpu = c.io_s.copy(), c.cpu_s.copy()
     total = io[last, col] + cpu[last, col]
     keep = np.where(total > 0, (total - extra) / np.where(total > 0, total, 1.0), 1.0)
     io[last, col] *= keep
     cpu[last, col] *= keep
-    return replace(plan, epoch_dispatch_s=ed, consumer=Work(c.names, io, cpu))
-
-
-def _between_epochs(plan: ReplayPlan) -> tuple[np.ndarray, np.ndarray, float]:
-    """Step 1a: the last batch of each epoch but the last, the loop's extra time after it, its ordinary time.
-
-    The loop's time after a batch (its step and stages done, up to its next
-    wait) is the plan's consumer overhead; its ordinary value is the median
-    over the batches that do not end an epoch.
-    """
-    ep = plan.epoch
-    if plan.batches < 2 or CONSUMER_OVERHEAD not in plan.consumer.names:
-        return np.zeros(0, np.int64), np.zeros(0), 0.0
-    col = plan.consumer.names.index(CONSUMER_OVERHEAD)
-    over = plan.consumer.io_s[:, col] + plan.consumer.cpu_s[:, col]
-    ends = np.flatnonzero(ep[1:] != ep[:-1])
-    inner = np.setdiff1d(np.arange(plan.batches - 1), ends)
-    ordinary = float(np.median(over[inner])) if len(inner) else 0.0
-    return ends, np.maximum(0.0, over[ends] - ordinary), ordinary
+    return replace(plan, epoch_dispatch_s=ed, consumer=Work(c.names, io, cpu), workers_kept=True)
 
 
 def worker_restarts(plan: ReplayPlan, run: Run | None = None, base: Replay | None = None) -> WorkerRestarts:
@@ -196,7 +184,7 @@ def worker_restarts(plan: ReplayPlan, run: Run | None = None, base: Replay | Non
     base = replay(plan) if base is None else base
     ed = np.asarray(plan.epoch_dispatch_s, float)
     extra = np.maximum(0.0, ed[1:]) if plan.workers else np.zeros(0)
-    _, between, _ = _between_epochs(plan)
+    _, between, _ = between_epochs(plan)
     between = between if plan.workers and len(between) == len(extra) else np.zeros(len(extra))
     restarts = workers_restarted(run) if run is not None else bool(plan.workers and (extra > 0).any())
     measured = plan.measured_wall_s if plan.measured_wall_s > 0 else base.wall_s
