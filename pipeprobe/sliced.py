@@ -59,15 +59,15 @@ from .stalls import Stalls, stall_summary
 from .critical import PACE_SPEEDUP
 from .timeline import NODE_COLUMNS, Timeline, build_timeline, sink_node
 
-__all__ = ["SlicedAnalysis", "analyze_sliced", "slice_edges", "SLICE_BATCHES", "AUTO_SLICE_SPANS"]
+__all__ = ["SlicedAnalysis", "analyze_sliced", "slice_edges", "SLICE_SPANS", "slice_batches_for", "AUTO_SLICE_SPANS"]
 
-#: Batches per slice by default: a few hundred thousand spans at most a few hundred spans a batch.
-SLICE_BATCHES = 2000
+#: Spans per slice by default (the slice's timeline, with its context, holds about twice as many).
+SLICE_SPANS = 1_000_000
 #: From this many span records on, ``pipeprobe report`` analyses a run in slices by default.
 AUTO_SLICE_SPANS = 12_000_000
 #: Slices of context read before and after each slice at first (more when the walk asks for it).
 _CONTEXT = 1
-_AFTER = 1
+_AFTER = 0
 
 
 @dataclass(frozen=True)
@@ -105,6 +105,18 @@ class SlicedAnalysis:
         """Critical-path share of wall time per label, as :meth:`pipeprobe.Analysis.stage_shares`."""
         sh = self.critical.shares
         return {str(k): float(v) for k, v in zip(sh["label"], sh["share"], strict=True)}
+
+
+def slice_batches_for(spans: int, batches: int) -> int:
+    """Batches per slice that hold about :data:`SLICE_SPANS` spans.
+
+    Examples
+    --------
+    >>> slice_batches_for(30_000_000, 300_000)
+    10000
+    """
+    per_batch = max(1.0, spans / max(1, batches))
+    return max(1, int(SLICE_SPANS / per_batch))
 
 
 def slice_edges(batches: pd.DataFrame, slice_batches: int) -> np.ndarray:
@@ -152,7 +164,7 @@ class _Kept:
     rereads: int = 0
 
 
-def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int = SLICE_BATCHES,
+def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int | None = None,
                    warmup_batches: int | None = None) -> SlicedAnalysis:
     """Analyse a run one time slice at a time: critical path, stalls and stage table, exactly.
 
@@ -160,8 +172,8 @@ def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int = SLICE_BAT
     ----------
     run_dir : path-like
         A run directory.
-    slice_batches : int
-        Batches of the lowest rank per slice.
+    slice_batches : int, optional
+        Batches of the lowest rank per slice (default: :func:`slice_batches_for`).
     warmup_batches : int, optional
         As for :func:`pipeprobe.analyze`.
 
@@ -192,6 +204,8 @@ def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int = SLICE_BAT
     with progress("analysis in slices"):
         step("reading the run's index")
         scan = scan_run(Path(run_dir))
+        if slice_batches is None:
+            slice_batches = slice_batches_for(scan.spans, len(scan.batches))
         edges = slice_edges(scan.batches, slice_batches)
         walk, kept = _walk_slices(scan, edges)
         step("critical path, stalls and stage table")
@@ -215,13 +229,15 @@ def _walk_slices(scan: RunScan, edges: np.ndarray) -> tuple[_Walk, _Kept]:
     kept = _Kept(spans=[], pieces=[], per_batch=pd.DataFrame({"stage": [], "rank": [], "batch_id": []}),
                  seen=set(), repeated=set())
     lanes = _global_lanes(scan)
+    t = scan.threads
+    began = {(int(r), int(p), int(i)): float(f) for r, p, i, f in zip(t["rank"], t["pid"], t["tid"], t["first_s"], strict=True)}
     count = len(edges) - 1
     for k in range(count - 1, -1, -1):
         step(f"slice {count - k} of {count}")
         context = _CONTEXT
         while True:
             sub, own = _read_slice(scan, edges, k, context)
-            if _walk_back(walk, build_timeline(sub), edges, k, context, lanes):
+            if _walk_back(walk, build_timeline(sub), edges, k, context, lanes, began):
                 break
             context *= 4
             kept.rereads += 1
@@ -294,7 +310,8 @@ def _find(nodes: pd.DataFrame, key: tuple) -> int:
     return int(found[-1]) if len(found) else -1
 
 
-def _walk_back(walk: _Walk, tl: Timeline, edges: np.ndarray, k: int, context: int, lanes: dict) -> bool:
+def _walk_back(walk: _Walk, tl: Timeline, edges: np.ndarray, k: int, context: int, lanes: dict,
+               threads: dict) -> bool:
     """Follow the path back through the nodes slice ``k`` owns; False when the context read was too short."""
     nodes = tl.nodes
     lo = edges[max(0, k - context)]
@@ -312,7 +329,8 @@ def _walk_back(walk: _Walk, tl: Timeline, edges: np.ndarray, k: int, context: in
         if lo == -np.inf:
             raise RuntimeError("sliced analysis: the critical path enters a slice at a node it does not hold")
         return False
-    ids = _chain(walk, nodes, own, v, lo)
+    cut = _cut_threads(nodes, threads, lo)
+    ids = _chain(walk, nodes, own & ~cut, own, v, lo)
     if ids is None:
         return False
     rows = nodes.iloc[ids[::-1]].copy()
@@ -322,13 +340,29 @@ def _walk_back(walk: _Walk, tl: Timeline, edges: np.ndarray, k: int, context: in
     return True
 
 
-def _chain(walk: _Walk, nodes: pd.DataFrame, own: np.ndarray, v: int, lo: float) -> list[int] | None:
+def _cut_threads(nodes: pd.DataFrame, threads: dict, lo: float) -> np.ndarray:
+    """Per node: the first node of its thread in the slice's timeline although its thread ran before the
+    context read (its previous node on the thread, and so whether it waited idle, are not known)."""
+    if lo == -np.inf or not len(nodes):
+        return np.zeros(len(nodes), bool)
+    keys = ["rank", "pid", "tid"]
+    first = nodes.groupby(keys, sort=False, observed=True)["node"].transform("min").to_numpy() == nodes["node"].to_numpy()
+    began = np.array([threads.get((int(r), int(p), int(t)), -np.inf) for r, p, t in
+                      zip(nodes["rank"], nodes["pid"], nodes["tid"], strict=True)], np.float64)
+    return first & (began < lo)
+
+
+def _chain(walk: _Walk, nodes: pd.DataFrame, sure: np.ndarray, own: np.ndarray, v: int,
+           lo: float) -> list[int] | None:
     """Node ids from ``v`` back along ``pred`` while the slice owns them; sets the key of the node beyond.
-    None when a dependency may lie before the context read (``lo``)."""
+    None when a dependency may lie before the context read (``lo``), or a node's last-arriving dependency
+    is not ``sure``."""
     pred = nodes["pred"].to_numpy(np.int64).tolist()
     end = nodes["end_s"].to_numpy(np.float64)
     ids = []
     while v >= 0 and own[v]:
+        if not sure[v]:
+            return None
         ids.append(v)
         u = pred[v]
         if lo != -np.inf and (u < 0 or end[u] < lo):
