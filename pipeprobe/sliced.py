@@ -156,11 +156,13 @@ class _Walk:
 class _Kept:
     """Per own span and per own piece, the few numbers the stage table needs (one list entry per slice)."""
 
-    spans: list[pd.DataFrame]
-    pieces: list[pd.DataFrame]
+    spans: list[tuple]
+    pieces: list[dict]
     per_batch: pd.DataFrame
     seen: set
     repeated: set
+    names: dict
+    thread_order: pd.Series
     rereads: int = 0
 
 
@@ -212,7 +214,7 @@ def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int | None = No
         run = scan.run(_empty_spans())
         critical = _joined_path(walk, scan)
         stalls = stall_summary(_with_per_batch_stages(run, kept), critical, warmup_batches=warmup_batches)
-        stages = _stage_table(run, critical, stalls, kept, scan.threads)
+        stages = _stage_table(run, critical, stalls, kept)
     return SlicedAnalysis(run=run, critical=critical, stalls=stalls, stages=stages, slices=len(edges) - 1,
                           rereads=kept.rereads)
 
@@ -227,7 +229,7 @@ def _walk_slices(scan: RunScan, edges: np.ndarray) -> tuple[_Walk, _Kept]:
     """Read the slices from the last to the first; walk the path back and keep the stage-table numbers."""
     walk = _Walk(key=_SINK, rows=[], origin_s=0.0, end_s=_run_wall(scan))
     kept = _Kept(spans=[], pieces=[], per_batch=pd.DataFrame({"stage": [], "rank": [], "batch_id": []}),
-                 seen=set(), repeated=set())
+                 seen=set(), repeated=set(), names={}, thread_order=scan.threads.set_index(["rank", "pid", "tid"])["order"])
     lanes = _global_lanes(scan)
     t = scan.threads
     began = {(int(r), int(p), int(i)): float(f) for r, p, i, f in zip(t["rank"], t["pid"], t["tid"], t["first_s"], strict=True)}
@@ -413,24 +415,34 @@ def _joined_path(walk: _Walk, scan: RunScan) -> CriticalPath:
     return critical_path(tl)
 
 
+def _codes(kept: _Kept, column: pd.Series) -> np.ndarray:
+    """A categorical column as codes into ``kept.names`` (one list of stage names and labels for all slices)."""
+    cat = column.astype("category").cat
+    table = np.array([kept.names.setdefault(str(c), len(kept.names)) for c in cat.categories] + [-1], np.int32)
+    return table[cat.codes.to_numpy()].astype(np.int16 if len(kept.names) < (1 << 15) else np.int32)
+
+
 def _keep(kept: _Kept, sub: Run, own: np.ndarray) -> None:
-    """Keep the own spans' stage, duration and CPU, and the own pieces, of one slice."""
+    """Keep the own spans' stage, duration and CPU, and the own pieces (label, stage, sample, thread, start,
+    duration) of one slice: a few numbers each, no text."""
     sp = sub.spans
-    user = ~sp["stage"].isin(["wait", "step"]).to_numpy()
-    keep = own & (sp["stage"].astype(str).to_numpy() != "wait")
-    kept.spans.append(pd.DataFrame({"stage": sp["stage"].astype(str).to_numpy()[keep],
-                                    "dur_s": sp["dur_s"].to_numpy()[keep], "cpu_s": sp["cpu_s"].to_numpy()[keep]}))
+    is_wait = (sp["stage"] == "wait").to_numpy()
+    user = ~is_wait & (sp["stage"] != "step").to_numpy()
+    keep = own & ~is_wait
+    cpu = sp["cpu_s"].to_numpy()[keep]
+    kept.spans.append((_codes(kept, sp["stage"])[keep], sp["dur_s"].to_numpy()[keep],
+                       None if np.isnan(cpu).all() else cpu))
+    _keep_per_batch(kept, sp, own)
     us = sp.loc[user, ["stage", "start_s", "end_s", "rank", "pid", "tid", "sample_id"]]
     pieces = span_pieces(us, columns=("stage", "sample_id", "rank", "pid", "tid"))
     if not len(pieces):
-        _keep_per_batch(kept, sp, own)
         return
     p = pieces[own[user][pieces["span"].to_numpy(np.int64)]]
-    kept.pieces.append(pd.DataFrame({"stage": p["stage"].astype(str).to_numpy(), "label": p["label"].astype(str).to_numpy(),
-                                     "sample_id": p["sample_id"].to_numpy(np.int64), "rank": p["rank"].to_numpy(np.int64),
-                                     "pid": p["pid"].to_numpy(np.int64), "tid": p["tid"].to_numpy(np.int64),
-                                     "start_s": p["start_s"].to_numpy(np.float64), "dur_s": p["dur_s"].to_numpy(np.float64)}))
-    _keep_per_batch(kept, sp, own)
+    th = pd.MultiIndex.from_arrays([p["rank"], p["pid"], p["tid"]])
+    kept.pieces.append({"stage": _codes(kept, p["stage"]), "label": _codes(kept, p["label"]),
+                        "sample_id": p["sample_id"].to_numpy(np.int64),
+                        "thread": kept.thread_order.reindex(th).to_numpy(np.int32),
+                        "start_s": p["start_s"].to_numpy(np.float64), "dur_s": p["dur_s"].to_numpy(np.float64)})
 
 
 def _keep_per_batch(kept: _Kept, sp: pd.DataFrame, own: np.ndarray) -> None:
@@ -462,21 +474,22 @@ def _with_per_batch_stages(run: Run, kept: _Kept) -> Run:
                t0_ns=run.t0_ns)
 
 
-def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept, threads: pd.DataFrame) -> StageStats:
+def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept) -> StageStats:
     """The stage table and slowest samples from the kept numbers, put in the whole run's order."""
-    spans = pd.concat(kept.spans[::-1], ignore_index=True) if kept.spans else pd.DataFrame(
-        {"stage": [], "dur_s": [], "cpu_s": []})
-    spans["stage"] = spans["stage"].astype("category")
-    pieces = pd.concat(kept.pieces[::-1], ignore_index=True) if kept.pieces else pd.DataFrame(
-        {c: [] for c in ("stage", "label", "sample_id", "rank", "pid", "tid", "start_s", "dur_s")})
-    order = _thread_order(threads, pieces)
-    pieces = pieces.iloc[order].reset_index(drop=True)
-    pieces["stage"] = pieces["stage"].astype("category")
-    pieces["label"] = pd.Categorical(pieces["label"], categories=sorted(set(pieces["label"])))
+    names = np.array(sorted(kept.names, key=kept.names.get) or [""], dtype=object)
+    parts = kept.spans[::-1]
+    code = np.concatenate([c for c, _, _ in parts]) if parts else np.zeros(0, np.int16)
+    dur = np.concatenate([d for _, d, _ in parts]) if parts else np.zeros(0)
+    cpu = np.concatenate([np.full(len(d), np.nan) if c is None else c for _, d, c in parts]) if parts else np.zeros(0)
+    kept.spans.clear()
+    spans = pd.DataFrame({"stage": pd.Categorical.from_codes(code.astype(np.int64), categories=names),
+                          "dur_s": dur, "cpu_s": cpu}, copy=False)
+    del code, dur, cpu
+    pieces = _pieces(kept, names)
     light = Run(run_dir=run.run_dir, header=run.header, spans=spans, batches=run.batches, samples=run.samples,
                 resources=run.resources, processes=run.processes, clock=run.clock, t0_ns=run.t0_ns)
-    wall = critical.wall_s
-    table = _table(light, critical, wall, pieces)
+    table = _table(light, critical, critical.wall_s, pieces)
+    del light, spans
     cores = int(run.header.get("cores") or 1)
     busy = core_busy_during_stalls(run)
     saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
@@ -486,12 +499,21 @@ def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept, 
                       cores_saturated=saturated, more_workers=more, more_workers_reason=why)
 
 
-def _thread_order(threads: pd.DataFrame, pieces: pd.DataFrame) -> np.ndarray:
-    """Pieces by thread (in the order threads first ran a stage), then time: the order of
-    :func:`pipeprobe.nesting.span_pieces` on the whole run."""
-    if not len(pieces):
-        return np.zeros(0, np.int64)
-    key = threads.set_index(["rank", "pid", "tid"])["order"]
-    at = pd.MultiIndex.from_arrays([pieces["rank"], pieces["pid"], pieces["tid"]])
-    order = key.reindex(at).to_numpy(np.int64)
-    return np.lexsort((pieces["start_s"].to_numpy(np.float64), order))
+def _pieces(kept: _Kept, names: np.ndarray) -> pd.DataFrame:
+    """The kept pieces by thread (in the order threads first ran a stage), then time: the order of
+    :func:`pipeprobe.nesting.span_pieces` on the whole run; ``label`` categories sorted as text."""
+    parts = kept.pieces[::-1]
+    cols = {c: np.concatenate([p[c] for p in parts]) if parts else np.zeros(0) for c in
+            ("stage", "label", "sample_id", "thread", "start_s", "dur_s")}
+    kept.pieces.clear()
+    order = np.lexsort((cols["start_s"], cols["thread"]))
+    used = np.unique(cols["label"]).astype(np.int64)
+    text = names[used] if len(used) else np.zeros(0, object)
+    by_text = np.argsort(text.astype(str), kind="stable")
+    recode = np.zeros(len(names), np.int64)
+    recode[used[by_text]] = np.arange(len(used))
+    return pd.DataFrame({
+        "stage": pd.Categorical.from_codes(cols["stage"][order].astype(np.int64), categories=names),
+        "label": pd.Categorical.from_codes(recode[cols["label"][order]], categories=list(text[by_text])),
+        "sample_id": cols["sample_id"][order].astype(np.int64), "dur_s": cols["dur_s"][order].astype(np.float64),
+    }, copy=False)
