@@ -30,7 +30,7 @@ from . import _runfolder as _rf
 from . import tracefile as tf
 from .load import Run, _batches, _link, _span_columns, _time_ordered_frame, worker_slots
 
-__all__ = ["RunScan", "scan_run", "read_range", "PIECE_RECORDS"]
+__all__ = ["RunScan", "scan_run", "read_range", "count_records", "PIECE_RECORDS"]
 
 #: Records per indexed piece of a span file (3 MiB): a range reads at most this much beyond what it needs.
 PIECE_RECORDS = 1 << 16
@@ -138,6 +138,15 @@ def scan_run(run_dir: str | Path) -> RunScan:
     finally:
         problems.warn()
     return _assemble(folder.root, first, axis, files, got, resources, problems.messages)
+
+
+def count_records(run_dir: str | Path) -> int:
+    """Span records the run's span files hold, from their sizes (none read); 0 when there is no such folder."""
+    root = Path(run_dir)
+    if not root.is_dir():
+        return 0
+    return sum(max(0, p.stat().st_size - tf.PREAMBLE_BYTES) // tf.SPAN_RECORD.itemsize
+               for p in root.iterdir() if _rf._SPAN_FILE.match(p.name) and p.is_file())
 
 
 def _scan_files(folder: _rf.Folder, headers: dict[int, tf.RunHeader], axis: _rf.TimeAxis,
