@@ -311,6 +311,24 @@ def _thread_table(pieces: list[pd.DataFrame], files: list[_File]) -> pd.DataFram
     return out
 
 
+def _joined(pieces: list[np.ndarray], dtype: Any) -> np.ndarray:
+    return np.concatenate(pieces) if pieces else np.zeros(0, dtype)
+
+
+def _file_range(f: _File, axis: _rf.TimeAxis, lo_ns: int, hi_ns: int) -> _rf.Records:
+    """The checked span records of one file that overlap ``[lo_ns, hi_ns]``, read from the pieces that do."""
+    pick = np.flatnonzero((f.lo_ns <= hi_ns) & (f.hi_ns >= lo_ns))
+    recs, s0, s1 = [], [], []
+    for i in pick:
+        r = _piece(f.path, int(f.first[i]), int(f.count[i]))
+        keep, start_ns, end_ns, *_ = _checked(r, f.header, axis)
+        keep &= (r["kind"] != tf.KIND_MEMBER) & (end_ns >= lo_ns) & (start_ns <= hi_ns)
+        recs.append(r[keep])
+        s0.append(start_ns[keep])
+        s1.append(end_ns[keep])
+    return _rf.Records(_joined(recs, tf.SPAN_RECORD), _joined(s0, np.int64), _joined(s1, np.int64), None)
+
+
 def read_range(scan: RunScan, lo_s: float, hi_s: float, link_hi_s: float | None = None) -> Run:
     """The run's spans that overlap ``[lo_s, hi_s]``, as :func:`pipeprobe.load.load` gives them.
 
@@ -320,20 +338,7 @@ def read_range(scan: RunScan, lo_s: float, hi_s: float, link_hi_s: float | None 
     """
     lo_ns = -np.iinfo(np.int64).max if lo_s == -np.inf else int(np.floor(lo_s * 1e9)) - 1
     hi_ns = np.iinfo(np.int64).max if hi_s == np.inf else int(np.ceil(hi_s * 1e9)) + 1
-    parts = []
-    for f in scan.files:
-        pick = np.flatnonzero((f.lo_ns <= hi_ns) & (f.hi_ns >= lo_ns))
-        recs, s0, s1 = [], [], []
-        for i in pick:
-            for r in (_piece(f.path, int(f.first[i]), int(f.count[i])),):
-                keep, start_ns, end_ns, *_ = _checked(r, f.header, scan.axis)
-                keep &= (r["kind"] != tf.KIND_MEMBER) & (end_ns >= lo_ns) & (start_ns <= hi_ns)
-                recs.append(r[keep])
-                s0.append(start_ns[keep])
-                s1.append(end_ns[keep])
-        cat = (lambda xs, dt: np.concatenate(xs) if xs else np.zeros(0, dt))
-        parts.append((f.rank, f.pid, f.header, _rf.Records(cat(recs, tf.SPAN_RECORD), cat(s0, np.int64),
-                                                            cat(s1, np.int64), None)))
+    parts = [(f.rank, f.pid, f.header, _file_range(f, scan.axis, lo_ns, hi_ns)) for f in scan.files]
     cols = _span_columns(parts)
     sm = scan.samples
     top = hi_s if link_hi_s is None else link_hi_s

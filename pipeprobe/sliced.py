@@ -50,13 +50,12 @@ import pandas as pd
 
 from ._progress import progress, step
 from ._slicereader import RunScan, read_range, scan_run
-from .critical import CriticalPath, critical_path
+from .critical import PACE_SPEEDUP, CriticalPath, critical_path
 from .lanes import thread_lanes
 from .load import Run
 from .nesting import span_pieces
 from .stagestats import SATURATED_FROM, StageStats, _more_workers, _slowest, _table, core_busy_during_stalls
 from .stalls import Stalls, stall_summary
-from .critical import PACE_SPEEDUP
 from .timeline import NODE_COLUMNS, Timeline, build_timeline, sink_node
 
 __all__ = ["SlicedAnalysis", "analyze_sliced", "slice_edges", "SLICE_SPANS", "slice_batches_for", "AUTO_SLICE_SPANS"]
