@@ -97,8 +97,8 @@ class TestSameNumbers:
         assert [] == differences(analysis_pool_run, 1)
 
     @pytest.mark.slow
-    @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-    @given(st.integers(0, 10_000), st.integers(4, 20), st.integers(1, 4), st.integers(1, 6))
+    @settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+    @given(st.integers(0, 10_000), st.integers(4, 16), st.integers(1, 4), st.integers(1, 6))
     def test_generated_pool_runs_agree_exactly(self, seed: int, batches: int, workers: int, slice_batches: int) -> None:
         """On generated worker-pool runs (random durations, idle gaps, deliveries) the two agree exactly."""
         with tempfile.TemporaryDirectory() as d:
