@@ -315,7 +315,8 @@ def _joined(pieces: list[np.ndarray], dtype: Any) -> np.ndarray:
     return np.concatenate(pieces) if pieces else np.zeros(0, dtype)
 
 
-def _file_range(f: _File, axis: _rf.TimeAxis, lo_ns: int, hi_ns: int) -> _rf.Records:
+def _file_range(f: _File, axis: _rf.TimeAxis, lo_ns: int, hi_ns: int,
+                thread: tuple[int, int, int] | None = None) -> _rf.Records:
     """The checked span records of one file that overlap ``[lo_ns, hi_ns]``, read from the pieces that do."""
     pick = np.flatnonzero((f.lo_ns <= hi_ns) & (f.hi_ns >= lo_ns))
     recs, s0, s1 = [], [], []
@@ -323,22 +324,27 @@ def _file_range(f: _File, axis: _rf.TimeAxis, lo_ns: int, hi_ns: int) -> _rf.Rec
         r = _piece(f.path, int(f.first[i]), int(f.count[i]))
         keep, start_ns, end_ns, *_ = _checked(r, f.header, axis)
         keep &= (r["kind"] != tf.KIND_MEMBER) & (end_ns >= lo_ns) & (start_ns <= hi_ns)
+        if thread is not None:
+            keep &= r["tid"] == thread[2]
         recs.append(r[keep])
         s0.append(start_ns[keep])
         s1.append(end_ns[keep])
     return _rf.Records(_joined(recs, tf.SPAN_RECORD), _joined(s0, np.int64), _joined(s1, np.int64), None)
 
 
-def read_range(scan: RunScan, lo_s: float, hi_s: float, link_hi_s: float | None = None) -> Run:
+def read_range(scan: RunScan, lo_s: float, hi_s: float, link_hi_s: float | None = None,
+               thread: tuple[int, int, int] | None = None) -> Run:
     """The run's spans that overlap ``[lo_s, hi_s]``, as :func:`pipeprobe.load.load` gives them.
 
     Worker spans are linked to their batch through the membership rows that
     became ready in ``[lo_s, link_hi_s]`` (default ``hi_s``): a span whose
-    batch was delivered later stays unlinked (batch -1).
+    batch was delivered later stays unlinked (batch -1). With ``thread``
+    (rank, pid, tid), only that thread's spans.
     """
     lo_ns = -np.iinfo(np.int64).max if lo_s == -np.inf else int(np.floor(lo_s * 1e9)) - 1
     hi_ns = np.iinfo(np.int64).max if hi_s == np.inf else int(np.ceil(hi_s * 1e9)) + 1
-    parts = [(f.rank, f.pid, f.header, _file_range(f, scan.axis, lo_ns, hi_ns)) for f in scan.files]
+    files = [f for f in scan.files if thread is None or (f.rank, f.pid) == thread[:2]]
+    parts = [(f.rank, f.pid, f.header, _file_range(f, scan.axis, lo_ns, hi_ns, thread)) for f in files]
     cols = _span_columns(parts)
     sm = scan.samples
     top = hi_s if link_hi_s is None else link_hi_s

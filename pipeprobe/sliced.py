@@ -237,16 +237,16 @@ def _walk_slices(scan: RunScan, edges: np.ndarray) -> tuple[_Walk, _Kept]:
         step(f"slice {count - k} of {count}")
         context = _CONTEXT
         while True:
-            sub, own = _read_slice(scan, edges, k, context)
+            sub, own, hi = _read_slice(scan, edges, k, context)
             if _walk_back(walk, build_timeline(sub), edges, k, context, lanes, began):
                 break
             context *= 4
             kept.rereads += 1
-        _keep(kept, sub, own)
+        _keep(kept, sub, own, scan, hi)
     return walk, kept
 
 
-def _read_slice(scan: RunScan, edges: np.ndarray, k: int, context: int) -> tuple[Run, np.ndarray]:
+def _read_slice(scan: RunScan, edges: np.ndarray, k: int, context: int) -> tuple[Run, np.ndarray, float]:
     """The spans of slice ``k`` with ``context`` slices before it and one after it, and which of them it owns;
     read again up to the latest delivery an own span belongs to when that lies beyond."""
     count = len(edges) - 1
@@ -255,9 +255,10 @@ def _read_slice(scan: RunScan, edges: np.ndarray, k: int, context: int) -> tuple
     own = _own_mask(sub.spans, edges[k], edges[k + 1])
     later = _latest_delivery(scan, sub.spans, own)
     if later > hi:
-        sub = read_range(scan, lo, later)
+        hi = later
+        sub = read_range(scan, lo, hi)
         own = _own_mask(sub.spans, edges[k], edges[k + 1])
-    return sub, own
+    return sub, own, hi
 
 
 def _own_mask(spans: pd.DataFrame, t0: float, t1: float) -> np.ndarray:
@@ -421,7 +422,7 @@ def _codes(kept: _Kept, column: pd.Series) -> np.ndarray:
     return table[cat.codes.to_numpy()].astype(np.int16 if len(kept.names) < (1 << 15) else np.int32)
 
 
-def _keep(kept: _Kept, sub: Run, own: np.ndarray) -> None:
+def _keep(kept: _Kept, sub: Run, own: np.ndarray, scan: RunScan, hi: float) -> None:
     """Keep the own spans' stage, duration and CPU, and the own pieces (label, stage, sample, thread, start,
     duration) of one slice: a few numbers each, no text."""
     sp = sub.spans
@@ -432,11 +433,27 @@ def _keep(kept: _Kept, sub: Run, own: np.ndarray) -> None:
     kept.spans.append((_codes(kept, sp["stage"])[keep], sp["dur_s"].to_numpy()[keep],
                        None if np.isnan(cpu).all() else cpu))
     _keep_per_batch(kept, sp, own)
-    us = sp.loc[user, ["stage", "start_s", "end_s", "rank", "pid", "tid", "sample_id"]]
-    pieces = span_pieces(us, columns=("stage", "sample_id", "rank", "pid", "tid"))
+    # a span reaching past the spans read gets its pieces from its whole thread over its whole extent
+    end = sp["end_s"].to_numpy(np.float64)
+    long = own & user & (end > hi)
+    _keep_pieces(kept, sp[user], own[user] & ~long[user])
+    for th in {(int(r), int(p), int(t)) for r, p, t in sp.loc[long, ["rank", "pid", "tid"]].itertuples(index=False)}:
+        mine = long & (sp["rank"] == th[0]).to_numpy() & (sp["pid"] == th[1]).to_numpy() & (sp["tid"] == th[2]).to_numpy()
+        whole = read_range(scan, float(sp["start_s"].to_numpy()[mine].min()), float(end[mine].max()), thread=th).spans
+        wu = whole[~whole["stage"].isin(["wait", "step"]).to_numpy()]
+        ident = set(zip(sp["start_s"].to_numpy()[mine], end[mine], sp["stage"].astype(str).to_numpy()[mine]))
+        _keep_pieces(kept, wu, np.array([k in ident for k in zip(wu["start_s"], wu["end_s"], wu["stage"].astype(str))], bool))
+
+
+def _keep_pieces(kept: _Kept, us: pd.DataFrame, take: np.ndarray) -> None:
+    """Keep the pieces of the spans ``take`` marks among the stage spans ``us`` (their innermost-stage time)."""
+    if not take.any():
+        return
+    pieces = span_pieces(us[["stage", "start_s", "end_s", "rank", "pid", "tid", "sample_id"]],
+                         columns=("stage", "sample_id", "rank", "pid", "tid"))
     if not len(pieces):
         return
-    p = pieces[own[user][pieces["span"].to_numpy(np.int64)]]
+    p = pieces[take[pieces["span"].to_numpy(np.int64)]]
     th = pd.MultiIndex.from_arrays([p["rank"], p["pid"], p["tid"]])
     kept.pieces.append({"stage": _codes(kept, p["stage"]), "label": _codes(kept, p["label"]),
                         "sample_id": p["sample_id"].to_numpy(np.int64),

@@ -20,6 +20,7 @@ from _recorded import record_sleep_run
 from _synth import (
     pool_schedule,
     simple_pipeline,
+    stage,
     three_epoch_rows,
     write_many_spans,
     write_ranks,
@@ -71,6 +72,14 @@ def _pool_run(d: Path, seed: int, batches: int = 24, workers: int = 3) -> Path:
     return write_run(d, procs, end_ms=end + 1)
 
 
+def _nested_run(d: Path) -> Path:
+    """simple_pipeline with an epoch timer around all of it, a stage inside each step and one inside each decode."""
+    rows = simple_pipeline(10, 2)[100] + [stage("epoch", 0.0, 179.5)]
+    for b in range(10):
+        rows += [stage("forward", 18.0 * b + 8.5, 18.0 * b + 12.0, batch=b), stage("inner", 18.0 * b + 0.5, 18.0 * b + 2.0)]
+    return write_run(d, {100: rows})
+
+
 RUNS = {
     "one producer in the training thread": lambda d: write_run(d, simple_pipeline(12, 3)),
     "new workers each epoch": lambda d: write_run(d, three_epoch_rows(False)),
@@ -78,6 +87,7 @@ RUNS = {
     "four workers, many spans": lambda d: write_many_spans(d, 1500, workers=4, batch_size=8),
     "two ranks, one late": lambda d: write_ranks(d, {1: 3.0}, ranks=2, steps=12),
     "worker pool with idle gaps and collate": lambda d: _pool_run(d, 1),
+    "stages inside stages, an epoch timer around all": _nested_run,
 }
 
 
