@@ -61,7 +61,7 @@ from .timeline import NODE_COLUMNS, Timeline, build_timeline, sink_node
 __all__ = ["SlicedAnalysis", "analyze_sliced", "slice_edges", "SLICE_SPANS", "slice_batches_for", "AUTO_SLICE_SPANS"]
 
 #: Spans per slice by default (the slice's timeline, with its context, holds about twice as many).
-SLICE_SPANS = 1_000_000
+SLICE_SPANS = 300_000
 #: From this many span records on, ``pipeprobe report`` analyses a run in slices by default.
 AUTO_SLICE_SPANS = 12_000_000
 #: Slices of context read before and after each slice at first (more when the walk asks for it).
@@ -112,7 +112,7 @@ def slice_batches_for(spans: int, batches: int) -> int:
     Examples
     --------
     >>> slice_batches_for(30_000_000, 300_000)
-    10000
+    3000
     """
     per_batch = max(1.0, spans / max(1, batches))
     return max(1, int(SLICE_SPANS / per_batch))

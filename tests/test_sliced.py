@@ -146,8 +146,8 @@ class TestSlices:
             slice_edges(pd.DataFrame({"rank": [0], "wait_start_s": [0.0]}), 0)
 
     def test_default_slice_size(self) -> None:
-        """By default a slice holds about a million spans."""
-        assert 10_000 == slice_batches_for(30_000_000, 300_000)
+        """By default a slice holds about 300,000 spans."""
+        assert 3_000 == slice_batches_for(30_000_000, 300_000)
 
 
 class TestCommandLine:
