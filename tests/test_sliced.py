@@ -114,6 +114,15 @@ class TestSameNumbers:
         with tempfile.TemporaryDirectory() as d:
             assert [] == differences(_pool_run(Path(d) / "run", seed, batches, workers), slice_batches)
 
+    @pytest.mark.slow
+    @settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+    @given(st.integers(2, 3), st.integers(3, 14), st.floats(0.0, 9.0), st.integers(1, 5))
+    def test_generated_rank_runs_agree_exactly(self, ranks: int, steps: int, late_ms: float, slice_batches: int) -> None:
+        """On generated data-parallel runs (a late rank, several ranks) the two agree exactly."""
+        with tempfile.TemporaryDirectory() as d:
+            run = write_ranks(Path(d) / "run", {ranks - 1: late_ms}, ranks=ranks, steps=steps)
+            assert [] == differences(run, slice_batches)
+
 
 class TestCriticalPath:
     def test_attribution_covers_the_longest_path(self, tmp_path: Path) -> None:
