@@ -76,7 +76,8 @@ class SlicedAnalysis:
     Attributes
     ----------
     run : Run
-        The run's per-batch tables (``spans`` is empty: the spans were read a slice at a time).
+        The run's per-batch tables (``spans`` and ``samples`` are empty: the spans were read a slice at
+        a time, and the membership rows are freed before the stage table is built).
     critical : CriticalPath
         The critical path (``path`` holds its nodes; ``node`` and ``pred``
         number them along the path) and its attribution.
@@ -213,6 +214,10 @@ def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int | None = No
         run = scan.run(_empty_spans())
         critical = _joined_path(walk, scan)
         stalls = stall_summary(_with_per_batch_stages(run, kept), critical, warmup_batches=warmup_batches)
+        # the membership rows (tens of bytes a sample) served the links and the stalls: free them first
+        run = scan.run(_empty_spans(), scan.samples.iloc[:0])
+        scan.samples = scan.samples.iloc[:0]
+        walk.rows.clear()
         stages = _stage_table(run, critical, stalls, kept)
     return SlicedAnalysis(run=run, critical=critical, stalls=stalls, stages=stages, slices=len(edges) - 1,
                           rereads=kept.rereads)
