@@ -533,8 +533,10 @@ def _pieces(kept: _Kept, names: np.ndarray) -> pd.DataFrame:
     by_text = np.argsort(text.astype(str), kind="stable")
     recode = np.zeros(len(names), np.int64)
     recode[used[by_text]] = np.arange(len(used))
+    del cols["thread"], cols["start_s"]  # each column is put in order and its unordered copy freed at once
     return pd.DataFrame({
-        "stage": pd.Categorical.from_codes(cols["stage"][order].astype(np.int64), categories=names),
-        "label": pd.Categorical.from_codes(recode[cols["label"][order]], categories=list(text[by_text])),
-        "sample_id": cols["sample_id"][order].astype(np.int64), "dur_s": cols["dur_s"][order].astype(np.float64),
+        "stage": pd.Categorical.from_codes(cols.pop("stage")[order].astype(np.int64), categories=names),
+        "label": pd.Categorical.from_codes(recode[cols.pop("label")[order]], categories=list(text[by_text])),
+        "sample_id": cols.pop("sample_id")[order].astype(np.int64),
+        "dur_s": cols.pop("dur_s")[order].astype(np.float64),
     }, copy=False)
