@@ -160,6 +160,10 @@ def _report_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--html", metavar="FILE",
                    help="also write the report with its pictures as one self-contained HTML file")
     p.add_argument("--quiet", action="store_true", help="no progress line on stderr while a long run is analysed")
+    p.add_argument("--slice-batches", type=_non_negative_int, metavar="N", default=None,
+                   help="analyse the run N batches at a time in bounded memory (exact critical-path shares, stalls "
+                        "and stage table; no replays, ceilings, actions or HTML); 0: all in memory; default: in "
+                        "slices from 12 million span records on")
 
 
 def _report_run(args: argparse.Namespace) -> int:
@@ -167,6 +171,8 @@ def _report_run(args: argparse.Namespace) -> int:
     from .analysis import analyze
     from .report import Report, print_report
 
+    if _sliced(args):
+        return _sliced_report_run(args)
     path = None
     with progress("report", enabled=not args.quiet):  # shown only past a couple of seconds
         analysis = analyze(args.run_dir)
@@ -180,6 +186,29 @@ def _report_run(args: argparse.Namespace) -> int:
     if path is not None:
         print(f"pipeprobe: wrote {printable(path)}", file=sys.stderr)
     print_report(report, as_json=args.json)
+    return EXIT_OK
+
+
+def _sliced(args: argparse.Namespace) -> bool:
+    """Whether ``pipeprobe report`` analyses the run in slices (asked for, or chosen by the run's size)."""
+    if args.slice_batches is None:
+        from ._slicereader import count_records
+        from .sliced import AUTO_SLICE_SPANS
+
+        return count_records(args.run_dir) >= AUTO_SLICE_SPANS and not args.html
+    if args.slice_batches > 0 and args.html:
+        raise _UsageError("--html needs the whole run in memory: leave out --slice-batches, or give --slice-batches 0")
+    return args.slice_batches > 0
+
+
+def _sliced_report_run(args: argparse.Namespace) -> int:
+    from ._progress import progress
+    from ._slicereport import print_sliced_report
+    from .sliced import analyze_sliced
+
+    with progress("report", enabled=not args.quiet):
+        analysis = analyze_sliced(args.run_dir, slice_batches=args.slice_batches or None)
+    print_sliced_report(analysis, as_json=args.json)
     return EXIT_OK
 
 

@@ -1,0 +1,542 @@
+"""The analysis of a run too large for memory: one time slice at a time, joined exactly.
+
+:func:`analyze_sliced` gives the critical path with its shares, the stalls
+and the stage table of a run, equal to those of :func:`pipeprobe.analyze`,
+while holding the spans of one slice at a time. The steps:
+
+``scan``
+    read every span file once in bounded pieces (:func:`pipeprobe._slicereader.scan_run`),
+    keeping the per-batch tables (waits, steps, membership) and an index of
+    the time each piece of each file covers;
+``cut``
+    cut the run's time at the consumer's requests for every
+    ``slice_batches``-th batch (:func:`slice_edges`); a slice *owns* the
+    timeline nodes and spans that start inside it;
+``read``
+    per slice, the spans overlapping the slice and a stretch of context
+    before it and after it (:func:`pipeprobe._slicereader.read_range`): the
+    in-memory timeline of those spans gives each node the slice owns its
+    last-arriving dependency, as the whole run's timeline would;
+``join``
+    walk the critical path back from the end of the last step, slice by
+    slice from the last: where the path leaves a slice, the node it enters
+    is found again, by its thread and times, in the slice that owns it. The
+    walk checks itself: a dependency that ends before the context read, or
+    none where context was cut off, means the context was too short, and
+    the slice is read again with four times the context (at most the whole
+    run before it);
+``stage table``
+    each slice's own spans and the pieces of their innermost stages, a few
+    numbers each, concatenated in time order, so that the sums, the
+    percentiles and the slowest samples are those of the whole run.
+
+What is kept across slices: the per-batch tables, the nodes of the
+critical path, and per span its stage, duration and CPU time and per
+piece its label, sample, thread, start and duration (about 50 bytes a
+span; exact percentiles and slowest samples need every duration). The
+dependency timeline (its nodes and edges, several hundred bytes a span)
+exists for one slice at a time.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ._progress import progress, step
+from ._slicereader import RunScan, read_range, scan_run
+from .critical import PACE_SPEEDUP, CriticalPath, critical_path
+from .lanes import thread_lanes
+from .load import Run
+from .nesting import span_pieces
+from .stagestats import SATURATED_FROM, StageStats, _more_workers, _slowest, _table, core_busy_during_stalls
+from .stalls import Stalls, stall_summary
+from .timeline import NODE_COLUMNS, Timeline, build_timeline, sink_node
+
+__all__ = ["SlicedAnalysis", "analyze_sliced", "slice_edges", "SLICE_SPANS", "slice_batches_for", "AUTO_SLICE_SPANS"]
+
+#: Spans per slice by default (the slice's timeline, with its context, holds about twice as many).
+SLICE_SPANS = 300_000
+#: From this many span records on, ``pipeprobe report`` analyses a run in slices by default.
+AUTO_SLICE_SPANS = 12_000_000
+#: Slices of context read before and after each slice at first (more when the walk asks for it).
+_CONTEXT = 1
+_AFTER = 0
+
+
+@dataclass(frozen=True)
+class SlicedAnalysis:
+    """What :func:`analyze_sliced` found: the parts of :class:`pipeprobe.Analysis` that slices can give.
+
+    Attributes
+    ----------
+    run : Run
+        The run's per-batch tables (``spans`` and ``samples`` are empty: the spans were read a slice at
+        a time, and the membership rows are freed before the stage table is built).
+    critical : CriticalPath
+        The critical path (``path`` holds its nodes; ``node`` and ``pred``
+        number them along the path) and its attribution.
+    stalls : Stalls
+    stages : StageStats
+    slices : int
+        Time slices the run was read in.
+    rereads : int
+        Slices read again with more context.
+    """
+
+    run: Run
+    critical: CriticalPath
+    stalls: Stalls
+    stages: StageStats
+    slices: int
+    rereads: int
+
+    @property
+    def wall_s(self) -> float:
+        """Wall time of the run."""
+        return self.critical.wall_s
+
+    def stage_shares(self) -> dict[str, float]:
+        """Critical-path share of wall time per label, as :meth:`pipeprobe.Analysis.stage_shares`."""
+        sh = self.critical.shares
+        return {str(k): float(v) for k, v in zip(sh["label"], sh["share"], strict=True)}
+
+
+def slice_batches_for(spans: int, batches: int) -> int:
+    """Batches per slice that hold about :data:`SLICE_SPANS` spans.
+
+    Examples
+    --------
+    >>> slice_batches_for(30_000_000, 300_000)
+    3000
+    """
+    per_batch = max(1.0, spans / max(1, batches))
+    return max(1, int(SLICE_SPANS / per_batch))
+
+
+def slice_edges(batches: pd.DataFrame, slice_batches: int) -> np.ndarray:
+    """Times where slices begin: ``-inf``, then the request of every ``slice_batches``-th batch, then ``inf``.
+
+    The batches of the lowest rank, in the order the consumer asked for
+    them, set the edges.
+
+    Examples
+    --------
+    >>> import pandas as pd
+    >>> b = pd.DataFrame({"rank": 0, "wait_start_s": [0.0, 1.0, 2.0, 3.0, 4.0]})
+    >>> slice_edges(b, 2).tolist()
+    [-inf, 2.0, 4.0, inf]
+    """
+    if slice_batches < 1:
+        raise ValueError(f"slice_batches must be at least 1, got {slice_batches}")
+    if not len(batches):
+        return np.array([-np.inf, np.inf])
+    b = batches[batches["rank"] == batches["rank"].min()]
+    starts = np.sort(b["wait_start_s"].to_numpy(np.float64))
+    cuts = np.unique(starts[slice_batches::slice_batches])
+    return np.concatenate([[-np.inf], cuts, [np.inf]])
+
+
+@dataclass
+class _Walk:
+    """The join state of the critical path at a slice edge: the node to continue from, and the nodes so far."""
+
+    key: tuple | None  # (kind, stage, rank, pid, tid, start_s, end_s) of the next node, None when done
+    rows: list[pd.DataFrame]
+    origin_s: float = 0.0
+    end_s: float = 0.0
+
+
+@dataclass
+class _Kept:
+    """Per own span and per own piece, the few numbers the stage table needs (one list entry per slice)."""
+
+    spans: list[tuple]
+    pieces: list[dict]
+    per_batch: pd.DataFrame
+    seen: set
+    repeated: set
+    names: dict
+    thread_order: pd.Series
+    rereads: int = 0
+
+
+def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int | None = None,
+                   warmup_batches: int | None = None) -> SlicedAnalysis:
+    """Analyse a run one time slice at a time: critical path, stalls and stage table, exactly.
+
+    Parameters
+    ----------
+    run_dir : path-like
+        A run directory.
+    slice_batches : int, optional
+        Batches of the lowest rank per slice (default: :func:`slice_batches_for`).
+    warmup_batches : int, optional
+        As for :func:`pipeprobe.analyze`.
+
+    Returns
+    -------
+    SlicedAnalysis
+
+    Raises
+    ------
+    RunNotFoundError, TraceFormatError
+        When :func:`pipeprobe.load` could not read the run either.
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile
+    >>> from pipeprobe._example_runs import write_example_run
+    >>> d = write_example_run(tempfile.mkdtemp(), batches=4, decode_ms=6, step_ms=2)
+    >>> s = analyze_sliced(d, slice_batches=1)
+    >>> s.slices, s.stage_shares() == pipeprobe.analyze(d).stage_shares()
+    (4, True)
+
+    References
+    ----------
+    Kelley, J. E. and Walker, M. R. (1959). Critical-path planning and
+    scheduling (the critical path method: a longest path is a chain of
+    last-arriving dependencies, so it can be followed back piece by piece).
+    """
+    with progress("analysis in slices"):
+        step("reading the run's index")
+        scan = scan_run(Path(run_dir))
+        if slice_batches is None:
+            slice_batches = slice_batches_for(scan.spans, len(scan.batches))
+        edges = slice_edges(scan.batches, slice_batches)
+        walk, kept = _walk_slices(scan, edges)
+        step("critical path, stalls and stage table")
+        run = scan.run(_empty_spans())
+        critical = _joined_path(walk, scan)
+        stalls = stall_summary(_with_per_batch_stages(run, kept), critical, warmup_batches=warmup_batches)
+        # the membership rows (tens of bytes a sample) served the links and the stalls: free them first
+        run = scan.run(_empty_spans(), scan.samples.iloc[:0])
+        scan.samples = scan.samples.iloc[:0]
+        walk.rows.clear()
+        stages = _stage_table(run, critical, stalls, kept)
+    return SlicedAnalysis(run=run, critical=critical, stalls=stalls, stages=stages, slices=len(edges) - 1,
+                          rereads=kept.rereads)
+
+
+def _empty_spans() -> pd.DataFrame:
+    from .load import _empty_spans as empty
+
+    return empty()
+
+
+def _walk_slices(scan: RunScan, edges: np.ndarray) -> tuple[_Walk, _Kept]:
+    """Read the slices from the last to the first; walk the path back and keep the stage-table numbers."""
+    walk = _Walk(key=_SINK, rows=[], origin_s=0.0, end_s=_run_wall(scan))
+    kept = _Kept(spans=[], pieces=[], per_batch=pd.DataFrame({"stage": [], "rank": [], "batch_id": []}),
+                 seen=set(), repeated=set(), names={}, thread_order=scan.threads.set_index(["rank", "pid", "tid"])["order"])
+    lanes = _global_lanes(scan)
+    t = scan.threads
+    began = {(int(r), int(p), int(i)): float(f) for r, p, i, f in zip(t["rank"], t["pid"], t["tid"], t["first_s"], strict=True)}
+    count = len(edges) - 1
+    for k in range(count - 1, -1, -1):
+        step(f"slice {count - k} of {count}")
+        context = _CONTEXT
+        while True:
+            sub, own, hi = _read_slice(scan, edges, k, context)
+            if _walk_back(walk, build_timeline(sub), edges, k, context, lanes, began):
+                break
+            context *= 4
+            kept.rereads += 1
+        _keep(kept, sub, own, scan, hi)
+    return walk, kept
+
+
+def _read_slice(scan: RunScan, edges: np.ndarray, k: int, context: int) -> tuple[Run, np.ndarray, float]:
+    """The spans of slice ``k`` with ``context`` slices before it and one after it, and which of them it owns;
+    read again up to the latest delivery an own span belongs to when that lies beyond."""
+    count = len(edges) - 1
+    lo, hi = edges[max(0, k - context)], edges[min(count, k + 1 + _AFTER)]
+    sub = read_range(scan, lo, hi)
+    own = _own_mask(sub.spans, edges[k], edges[k + 1])
+    later = _latest_delivery(scan, sub.spans, own)
+    if later > hi:
+        hi = later
+        sub = read_range(scan, lo, hi)
+        own = _own_mask(sub.spans, edges[k], edges[k + 1])
+    return sub, own, hi
+
+
+def _own_mask(spans: pd.DataFrame, t0: float, t1: float) -> np.ndarray:
+    start = spans["start_s"].to_numpy(np.float64)
+    return (start >= t0) & (start < t1)
+
+
+def _latest_delivery(scan: RunScan, sp: pd.DataFrame, own: np.ndarray) -> float:
+    """The latest delivery of a batch an own span belongs to (its membership row may lie beyond those read)."""
+    rank, batch = sp["rank"].to_numpy(np.int64), sp["batch_id"].to_numpy(np.int64)
+    unlinked = own & (batch < 0) & (sp["sample_id"].to_numpy() >= 0)
+    latest = -np.inf
+    if unlinked.any():  # the first membership row of the sample at or after the span ended, as load links it
+        left = pd.DataFrame({"end_s": sp["end_s"].to_numpy()[unlinked], "rank": rank[unlinked],
+                             "sample_id": sp["sample_id"].to_numpy(np.int64)[unlinked]}).sort_values("end_s")
+        j = pd.merge_asof(left, scan.samples_by_ready, left_on="end_s", right_on="ready_s",
+                          by=["rank", "sample_id"], direction="forward")
+        if j["ready_s"].notna().any():
+            latest = float(j["ready_s"].max())
+    linked = own & (batch >= 0)
+    if linked.any():
+        bt = scan.batches
+        key = bt["rank"].to_numpy(np.int64) * (1 << 33) + bt["batch_id"].to_numpy(np.int64)
+        want = np.unique(rank[linked] * (1 << 33) + batch[linked])
+        ready = bt["ready_s"].to_numpy(np.float64)[np.isin(key, want)]
+        if len(ready):
+            latest = max(latest, float(ready.max()))
+    return latest
+
+
+#: The walk's first key: the sink of the whole run's timeline (the last step to end), found in the last slice.
+_SINK = ("sink",)
+
+
+def _key_of(nodes: pd.DataFrame, i: int) -> tuple:
+    r = nodes.iloc[i]
+    return (str(r["kind"]), str(r["stage"]), int(r["rank"]), int(r["pid"]), int(r["tid"]), float(r["start_s"]),
+            float(r["end_s"]))
+
+
+def _find(nodes: pd.DataFrame, key: tuple) -> int:
+    """Node id of the node with this key (the last such, as the timeline breaks ties by the highest id); -1 if none."""
+    if key == _SINK:
+        return sink_node(Timeline(nodes, pd.DataFrame({"src": [], "dst": [], "kind": []}), 0.0, 0.0))
+    kind, stage, rank, pid, tid, s0, s1 = key
+    hit = ((nodes["start_s"].to_numpy() == s0) & (nodes["end_s"].to_numpy() == s1)
+           & (nodes["pid"].to_numpy() == pid) & (nodes["tid"].to_numpy() == tid)
+           & (nodes["rank"].to_numpy() == rank) & (nodes["kind"].astype(str).to_numpy() == kind)
+           & (nodes["stage"].astype(str).to_numpy() == stage))
+    found = np.flatnonzero(hit)
+    return int(found[-1]) if len(found) else -1
+
+
+def _walk_back(walk: _Walk, tl: Timeline, edges: np.ndarray, k: int, context: int, lanes: dict,
+               threads: dict) -> bool:
+    """Follow the path back through the nodes slice ``k`` owns; False when the context read was too short."""
+    nodes = tl.nodes
+    lo = edges[max(0, k - context)]
+    start = nodes["start_s"].to_numpy(np.float64)
+    own = (start >= edges[k]) & (start < edges[k + 1])
+    if own.any():
+        walk.origin_s = min(walk.origin_s, float(start[own].min()))
+        walk.end_s = max(walk.end_s, float(nodes["end_s"].to_numpy()[own].max()))
+    if walk.key is None or (walk.key == _SINK and k != len(edges) - 2):
+        return True
+    if walk.key != _SINK and not edges[k] <= walk.key[5] < edges[k + 1]:
+        return True  # the path goes on in an earlier slice
+    v = _find(nodes, walk.key)
+    if v < 0 or (walk.key != _SINK and not own[v]):
+        if lo == -np.inf:
+            raise RuntimeError("sliced analysis: the critical path enters a slice at a node it does not hold")
+        return False
+    cut = _cut_threads(nodes, threads, lo)
+    ids = _chain(walk, nodes, own & ~cut, own, v, lo)
+    if ids is None:
+        return False
+    rows = nodes.iloc[ids[::-1]].copy()
+    rows["lane"] = [lanes.get((int(r), int(p), int(t)), "") for r, p, t in
+                    zip(rows["rank"], rows["pid"], rows["tid"], strict=True)]
+    walk.rows.append(rows)
+    return True
+
+
+def _cut_threads(nodes: pd.DataFrame, threads: dict, lo: float) -> np.ndarray:
+    """Per node: the first node of its thread in the slice's timeline although its thread ran before the
+    context read (its previous node on the thread, and so whether it waited idle, are not known)."""
+    if lo == -np.inf or not len(nodes):
+        return np.zeros(len(nodes), bool)
+    keys = ["rank", "pid", "tid"]
+    first = nodes.groupby(keys, sort=False, observed=True)["node"].transform("min").to_numpy() == nodes["node"].to_numpy()
+    began = np.array([threads.get((int(r), int(p), int(t)), -np.inf) for r, p, t in
+                      zip(nodes["rank"], nodes["pid"], nodes["tid"], strict=True)], np.float64)
+    return first & (began < lo)
+
+
+def _chain(walk: _Walk, nodes: pd.DataFrame, sure: np.ndarray, own: np.ndarray, v: int,
+           lo: float) -> list[int] | None:
+    """Node ids from ``v`` back along ``pred`` while the slice owns them; sets the key of the node beyond.
+    None when a dependency may lie before the context read (``lo``), or a node's last-arriving dependency
+    is not ``sure``."""
+    pred = nodes["pred"].to_numpy(np.int64).tolist()
+    end = nodes["end_s"].to_numpy(np.float64)
+    ids = []
+    while v >= 0 and own[v]:
+        if not sure[v]:
+            return None
+        ids.append(v)
+        u = pred[v]
+        if lo != -np.inf and (u < 0 or end[u] < lo):
+            return None
+        v = u
+    walk.key = _key_of(nodes, v) if v >= 0 else None
+    return ids
+
+
+def _global_lanes(scan: RunScan) -> dict[tuple[int, int, int], str]:
+    """Each thread's lane name as the whole run's timeline names it (:func:`pipeprobe.lanes.thread_lanes`)."""
+    t = scan.threads
+    if not len(t):
+        return {}
+    two = pd.DataFrame({
+        "rank": np.repeat(t["rank"].to_numpy(np.int64), 2), "pid": np.repeat(t["pid"].to_numpy(np.int64), 2),
+        "tid": np.repeat(t["tid"].to_numpy(np.int64), 2),
+        "start_s": np.column_stack([t["first_s"], t["first_s"]]).ravel(),
+        "end_s": np.column_stack([t["last_s"], t["last_s"]]).ravel(),
+        "stage": np.repeat(np.where(t["consumer"].to_numpy(bool), "wait", "stage"), 2),
+        "role": np.repeat(t["role"].to_numpy(object), 2),
+    })
+    lanes, lane = thread_lanes(two)
+    names = lanes["name"].to_numpy(object)[lane]
+    return {(int(r), int(p), int(i)): str(n) for r, p, i, n in
+            zip(two["rank"], two["pid"], two["tid"], names, strict=True)}
+
+
+def _run_wall(scan: RunScan) -> float:
+    """:attr:`pipeprobe.load.Run.wall_s` of the whole run."""
+    end = scan.header.get("end_mono_ns")
+    if end is not None and scan.axis.clock.get("method") == "shared-monotonic":
+        return max(0.0, (int(end) - scan.axis.t0_ns) / 1e9)
+    return max(0.0, scan.last_end_s) if scan.spans else 0.0
+
+
+def _joined_path(walk: _Walk, scan: RunScan) -> CriticalPath:
+    """The critical path from the joined nodes: a timeline of the path alone gives the same attribution."""
+    rows = walk.rows[::-1]
+    path = pd.concat(rows, ignore_index=True) if rows else pd.DataFrame({c: [] for c in NODE_COLUMNS})
+    for c in ("kind", "stage", "side", "lane"):
+        path[c] = path[c].astype(str).astype("category")
+    n = len(path)
+    path["node"] = np.arange(n, dtype=np.int64)
+    path["pred"] = np.arange(n, dtype=np.int64) - 1
+    path["span"] = -1
+    tl = Timeline(path, pd.DataFrame({"src": [], "dst": [], "kind": []}), walk.origin_s, walk.end_s)
+    return critical_path(tl)
+
+
+def _codes(kept: _Kept, column: pd.Series) -> np.ndarray:
+    """A categorical column as codes into ``kept.names`` (one list of stage names and labels for all slices)."""
+    cat = column.astype("category").cat
+    table = np.array([kept.names.setdefault(str(c), len(kept.names)) for c in cat.categories] + [-1], np.int32)
+    return table[cat.codes.to_numpy()].astype(np.int16 if len(kept.names) < (1 << 15) else np.int32)
+
+
+def _keep(kept: _Kept, sub: Run, own: np.ndarray, scan: RunScan, hi: float) -> None:
+    """Keep the own spans' stage, duration and CPU, and the own pieces (label, stage, sample, thread, start,
+    duration) of one slice: a few numbers each, no text."""
+    sp = sub.spans
+    is_wait = (sp["stage"] == "wait").to_numpy()
+    user = ~is_wait & (sp["stage"] != "step").to_numpy()
+    keep = own & ~is_wait
+    cpu = sp["cpu_s"].to_numpy()[keep]
+    kept.spans.append((_codes(kept, sp["stage"])[keep], sp["dur_s"].to_numpy()[keep],
+                       None if np.isnan(cpu).all() else cpu))
+    _keep_per_batch(kept, sp, own)
+    # a span reaching past the spans read gets its pieces from its whole thread over its whole extent
+    end = sp["end_s"].to_numpy(np.float64)
+    long = own & user & (end > hi)
+    _keep_pieces(kept, sp[user], own[user] & ~long[user])
+    for th in {(int(r), int(p), int(t)) for r, p, t in sp.loc[long, ["rank", "pid", "tid"]].itertuples(index=False)}:
+        mine = long & (sp["rank"] == th[0]).to_numpy() & (sp["pid"] == th[1]).to_numpy() & (sp["tid"] == th[2]).to_numpy()
+        whole = read_range(scan, float(sp["start_s"].to_numpy()[mine].min()), float(end[mine].max()), thread=th).spans
+        wu = whole[~whole["stage"].isin(["wait", "step"]).to_numpy()]
+        ident = set(zip(sp["start_s"].to_numpy()[mine], end[mine], sp["stage"].astype(str).to_numpy()[mine]))
+        _keep_pieces(kept, wu, np.array([k in ident for k in zip(wu["start_s"], wu["end_s"], wu["stage"].astype(str))], bool))
+
+
+def _keep_pieces(kept: _Kept, us: pd.DataFrame, take: np.ndarray) -> None:
+    """Keep the pieces of the spans ``take`` marks among the stage spans ``us`` (their innermost-stage time)."""
+    if not take.any():
+        return
+    pieces = span_pieces(us[["stage", "start_s", "end_s", "rank", "pid", "tid", "sample_id"]],
+                         columns=("stage", "sample_id", "rank", "pid", "tid"))
+    if not len(pieces):
+        return
+    p = pieces[take[pieces["span"].to_numpy(np.int64)]]
+    th = pd.MultiIndex.from_arrays([p["rank"], p["pid"], p["tid"]])
+    kept.pieces.append({"stage": _codes(kept, p["stage"]), "label": _codes(kept, p["label"]),
+                        "sample_id": p["sample_id"].to_numpy(np.int64),
+                        "thread": kept.thread_order.reindex(th).to_numpy(np.int32),
+                        "start_s": p["start_s"].to_numpy(np.float64), "dur_s": p["dur_s"].to_numpy(np.float64)})
+
+
+def _keep_per_batch(kept: _Kept, sp: pd.DataFrame, own: np.ndarray) -> None:
+    """Stages seen with a batch and a sample, and those seen twice in one batch (stalls' per-batch stages)."""
+    m = own & (sp["batch_id"].to_numpy() >= 0) & (sp["sample_id"].to_numpy() >= 0)
+    if not m.any():
+        return
+    f = pd.DataFrame({"stage": sp["stage"].astype(str).to_numpy()[m], "rank": sp["rank"].to_numpy()[m],
+                      "batch_id": sp["batch_id"].to_numpy()[m]})
+    kept.seen |= set(f["stage"])
+    f = pd.concat([kept.per_batch, f[~f["stage"].isin(kept.repeated)]], ignore_index=True)
+    kept.repeated |= set(f.loc[f.duplicated(["stage", "rank", "batch_id"]), "stage"])
+    kept.per_batch = f[~f["stage"].isin(kept.repeated)].drop_duplicates()
+
+
+def _with_per_batch_stages(run: Run, kept: _Kept) -> Run:
+    """``run`` with stand-in spans from which stalls finds the same per-batch stages as from all spans.
+
+    :func:`pipeprobe.stalls.stall_summary` reads the spans only for the
+    stages timed once per batch: one row per stage seen with a batch and a
+    sample, two alike for a stage seen twice in one batch.
+    """
+    names = sorted(kept.seen) + sorted(kept.repeated)
+    n = len(names)
+    spans = pd.DataFrame({"stage": names, "rank": np.zeros(n, np.int64), "batch_id": np.zeros(n, np.int64),
+                          "sample_id": np.zeros(n, np.int64)})
+    return Run(run_dir=run.run_dir, header=run.header, spans=spans, batches=run.batches, samples=run.samples,
+               resources=run.resources, processes=run.processes, problems=run.problems, clock=run.clock,
+               t0_ns=run.t0_ns)
+
+
+def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept) -> StageStats:
+    """The stage table and slowest samples from the kept numbers, put in the whole run's order."""
+    names = np.array(sorted(kept.names, key=kept.names.get) or [""], dtype=object)
+    parts = kept.spans[::-1]
+    code = np.concatenate([c for c, _, _ in parts]) if parts else np.zeros(0, np.int16)
+    dur = np.concatenate([d for _, d, _ in parts]) if parts else np.zeros(0)
+    cpu = np.concatenate([np.full(len(d), np.nan) if c is None else c for _, d, c in parts]) if parts else np.zeros(0)
+    kept.spans.clear()
+    spans = pd.DataFrame({"stage": pd.Categorical.from_codes(code.astype(np.int64), categories=names),
+                          "dur_s": dur, "cpu_s": cpu}, copy=False)
+    del code, dur, cpu
+    pieces = _pieces(kept, names)
+    light = Run(run_dir=run.run_dir, header=run.header, spans=spans, batches=run.batches, samples=run.samples,
+                resources=run.resources, processes=run.processes, clock=run.clock, t0_ns=run.t0_ns)
+    table = _table(light, critical, critical.wall_s, pieces)
+    del light, spans
+    cores = int(run.header.get("cores") or 1)
+    busy = core_busy_during_stalls(run)
+    saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
+    input_on = critical.input_share >= 1.0 - 1.0 / PACE_SPEEDUP
+    more, why = _more_workers(run, stalls, input_on, busy, cores, table, critical)
+    return StageStats(table=table, slowest=_slowest(pieces), cores=cores, core_busy_in_stalls=busy,
+                      cores_saturated=saturated, more_workers=more, more_workers_reason=why)
+
+
+def _pieces(kept: _Kept, names: np.ndarray) -> pd.DataFrame:
+    """The kept pieces by thread (in the order threads first ran a stage), then time: the order of
+    :func:`pipeprobe.nesting.span_pieces` on the whole run; ``label`` categories sorted as text."""
+    parts = kept.pieces[::-1]
+    cols = {c: np.concatenate([p[c] for p in parts]) if parts else np.zeros(0) for c in
+            ("stage", "label", "sample_id", "thread", "start_s", "dur_s")}
+    kept.pieces.clear()
+    order = np.lexsort((cols["start_s"], cols["thread"]))
+    used = np.unique(cols["label"]).astype(np.int64)
+    text = names[used] if len(used) else np.zeros(0, object)
+    by_text = np.argsort(text.astype(str), kind="stable")
+    recode = np.zeros(len(names), np.int64)
+    recode[used[by_text]] = np.arange(len(used))
+    del cols["thread"], cols["start_s"]  # each column is put in order and its unordered copy freed at once
+    return pd.DataFrame({
+        "stage": pd.Categorical.from_codes(cols.pop("stage")[order].astype(np.int64), categories=names),
+        "label": pd.Categorical.from_codes(recode[cols.pop("label")[order]], categories=list(text[by_text])),
+        "sample_id": cols.pop("sample_id")[order].astype(np.int64),
+        "dur_s": cols.pop("dur_s")[order].astype(np.float64),
+    }, copy=False)

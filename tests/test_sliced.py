@@ -1,0 +1,182 @@
+"""The analysis in slices (pipeprobe.sliced) against the in-memory analysis and networkx.
+
+The in-memory analysis (pipeprobe.analyze) is the reference: on every run
+shape below the sliced analysis must give the same critical-path shares,
+lanes, stalls (totals, per epoch, per batch with blame) and stage table
+(with the slowest samples), compared exactly, not approximately.
+"""
+
+from __future__ import annotations
+
+import tempfile
+import warnings
+from pathlib import Path
+
+import networkx as nx
+import numpy as np
+import pandas as pd
+import pytest
+from _recorded import record_sleep_run
+from _synth import (
+    pool_schedule,
+    simple_pipeline,
+    stage,
+    three_epoch_rows,
+    write_many_spans,
+    write_ranks,
+    write_run,
+)
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+import pipeprobe
+from pipeprobe.sliced import analyze_sliced, slice_batches_for, slice_edges
+from pipeprobe.timeline import build_timeline
+
+
+def _frames_equal(expected: pd.DataFrame, actual: pd.DataFrame) -> list[str]:
+    try:
+        pd.testing.assert_frame_equal(expected.reset_index(drop=True), actual.reset_index(drop=True),
+                                      check_exact=True, check_dtype=False, check_categorical=False)
+    except AssertionError as exc:
+        return [str(exc)[:400]]
+    return []
+
+
+def differences(run_dir: Path, slice_batches: int) -> list[str]:
+    """What differs between the in-memory and the sliced analysis of a run (empty: they agree exactly)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # the same warnings, issued by each
+        a = pipeprobe.analyze(run_dir)
+        s = analyze_sliced(run_dir, slice_batches=slice_batches)
+    out = _frames_equal(a.critical.shares, s.critical.shares) + _frames_equal(a.critical.lanes, s.critical.lanes)
+    for name in ("total_s", "fraction", "steady_s", "steady_fraction", "warmup_s", "warmup_batches"):
+        if getattr(a.stalls, name) != getattr(s.stalls, name):
+            out.append(f"stalls.{name}: {getattr(a.stalls, name)} != {getattr(s.stalls, name)}")
+    out += _frames_equal(a.stalls.per_epoch, s.stalls.per_epoch)
+    plain = [c for c in a.stalls.per_batch.columns if c != "blame_sample_ids"]
+    out += _frames_equal(a.stalls.per_batch[plain], s.stalls.per_batch[plain])
+    if [list(x) for x in a.stalls.per_batch["blame_sample_ids"]] != [list(x) for x in s.stalls.per_batch["blame_sample_ids"]]:
+        out.append("stalls.per_batch.blame_sample_ids differ")
+    out += _frames_equal(a.stages.table, s.stages.table) + _frames_equal(a.stages.slowest, s.stages.slowest)
+    if (a.stages.more_workers, a.stages.more_workers_reason) != (s.stages.more_workers, s.stages.more_workers_reason):
+        out.append("stages.more_workers differs")
+    return out
+
+
+def _pool_run(d: Path, seed: int, batches: int = 24, workers: int = 3) -> Path:
+    rng = np.random.default_rng(seed)
+    procs, end = pool_schedule(rng.integers(50, 900, (batches, 4, 3)).tolist(),
+                               rng.integers(100, 2000, batches).tolist(), workers=workers, collate_us=120,
+                               jitter_us=[0, 2000, 0, 50], delivery_us=rng.integers(0, 300, batches).tolist())
+    return write_run(d, procs, end_ms=end + 1)
+
+
+def _nested_run(d: Path) -> Path:
+    """simple_pipeline with an epoch timer around all of it, a stage inside each step and one inside each decode."""
+    rows = simple_pipeline(10, 2)[100] + [stage("epoch", 0.0, 179.5)]
+    for b in range(10):
+        rows += [stage("forward", 18.0 * b + 8.5, 18.0 * b + 12.0, batch=b), stage("inner", 18.0 * b + 0.5, 18.0 * b + 2.0)]
+    return write_run(d, {100: rows})
+
+
+RUNS = {
+    "one producer in the training thread": lambda d: write_run(d, simple_pipeline(12, 3)),
+    "new workers each epoch": lambda d: write_run(d, three_epoch_rows(False)),
+    "persistent workers": lambda d: write_run(d, three_epoch_rows(True)),
+    "four workers, many spans": lambda d: write_many_spans(d, 1500, workers=4, batch_size=8),
+    "two ranks, one late": lambda d: write_ranks(d, {1: 3.0}, ranks=2, steps=12),
+    "worker pool with idle gaps and collate": lambda d: _pool_run(d, 1),
+    "stages inside stages, an epoch timer around all": _nested_run,
+}
+
+
+class TestSameNumbers:
+    @pytest.mark.parametrize("slice_batches", [1, 3])
+    @pytest.mark.parametrize("shape", list(RUNS))
+    def test_synthetic_runs_agree_exactly(self, tmp_path: Path, shape: str, slice_batches: int) -> None:
+        """Sliced and in-memory analysis agree exactly (shares, stalls, stage table) on the synthetic runs."""
+        assert [] == differences(RUNS[shape](tmp_path / "run"), slice_batches)
+
+    def test_recorded_run_agrees_exactly(self, tmp_path: Path) -> None:
+        """On a run recorded for real (sleeps in a generator loader) the two agree exactly, one batch a slice."""
+        assert [] == differences(record_sleep_run(tmp_path / "run"), 1)
+
+    def test_recorded_pool_run_agrees_exactly(self, analysis_pool_run: Path) -> None:
+        """On a run recorded with a real 2-worker process pool the two agree exactly, one batch a slice."""
+        assert [] == differences(analysis_pool_run, 1)
+
+    @pytest.mark.slow
+    @settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+    @given(st.integers(0, 10_000), st.integers(4, 16), st.integers(1, 4), st.integers(1, 6))
+    def test_generated_pool_runs_agree_exactly(self, seed: int, batches: int, workers: int, slice_batches: int) -> None:
+        """On generated worker-pool runs (random durations, idle gaps, deliveries) the two agree exactly."""
+        with tempfile.TemporaryDirectory() as d:
+            assert [] == differences(_pool_run(Path(d) / "run", seed, batches, workers), slice_batches)
+
+    @pytest.mark.slow
+    @settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+    @given(st.integers(2, 3), st.integers(3, 14), st.floats(0.0, 9.0), st.integers(1, 5))
+    def test_generated_rank_runs_agree_exactly(self, ranks: int, steps: int, late_ms: float, slice_batches: int) -> None:
+        """On generated data-parallel runs (a late rank, several ranks) the two agree exactly."""
+        with tempfile.TemporaryDirectory() as d:
+            run = write_ranks(Path(d) / "run", {ranks - 1: late_ms}, ranks=ranks, steps=steps)
+            assert [] == differences(run, slice_batches)
+
+
+class TestCriticalPath:
+    def test_attribution_covers_the_longest_path(self, tmp_path: Path) -> None:
+        """The joined path's attribution adds up to networkx's longest path through the whole timeline (networkx)."""
+        d = _pool_run(tmp_path / "run", 7)
+        g = build_timeline(pipeprobe.load(d)).to_networkx()
+        s = analyze_sliced(d, slice_batches=1)
+        assert pytest.approx(nx.dag_longest_path_length(g, weight="weight"), abs=1e-9) == float(
+            s.critical.shares["seconds"].sum())
+
+    def test_path_is_a_chain_in_time(self, tmp_path: Path) -> None:
+        """Each node of the joined path starts no earlier than the one before it ended (critical path method)."""
+        path = analyze_sliced(_pool_run(tmp_path / "run", 3), slice_batches=1).critical.path
+        assert True is bool((path["start_s"].to_numpy()[1:] >= path["end_s"].to_numpy()[:-1]).all())
+
+
+class TestSlices:
+    def test_edges_at_every_nth_request(self) -> None:
+        """Slices begin where the consumer asked for every n-th batch of the lowest rank."""
+        b = pd.DataFrame({"rank": [0, 0, 0, 1, 1, 1], "wait_start_s": [0.0, 1.0, 2.0, 0.5, 1.5, 2.5]})
+        assert [-np.inf, 1.0, 2.0, np.inf] == slice_edges(b, 1).tolist()
+
+    def test_one_slice_when_it_holds_every_batch(self, tmp_path: Path) -> None:
+        """A slice larger than the run reads the run as one slice."""
+        assert 1 == analyze_sliced(write_run(tmp_path / "r", simple_pipeline(4)), slice_batches=100).slices
+
+    def test_zero_batches_per_slice_is_refused(self) -> None:
+        """A slice of no batches is a ValueError that says what is allowed."""
+        with pytest.raises(ValueError, match="at least 1"):
+            slice_edges(pd.DataFrame({"rank": [0], "wait_start_s": [0.0]}), 0)
+
+    def test_default_slice_size(self) -> None:
+        """By default a slice holds about 300,000 spans."""
+        assert 3_000 == slice_batches_for(30_000_000, 300_000)
+
+
+class TestCommandLine:
+    def test_report_in_slices_shows_the_same_shares(self, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+        """`pipeprobe report --slice-batches N --json` gives the in-memory critical-path seconds per label."""
+        import json
+
+        from pipeprobe.cli import main
+
+        d = _pool_run(tmp_path / "run", 5)
+        assert 0 == main(["report", str(d), "--slice-batches", "2", "--json", "--quiet"])
+        got = json.loads(capsys.readouterr().out)
+        shares = pipeprobe.analyze(d).critical.shares
+        assert dict(zip(shares["label"], shares["seconds"])) == {r["label"]: r["seconds"] for r in got["critical_path"]}
+
+    def test_html_with_slices_is_refused(self, tmp_path: Path, capsys: pytest.CaptureFixture) -> None:
+        """--html with --slice-batches exits 2 with one line saying what to do."""
+        from pipeprobe.cli import main
+
+        d = write_run(tmp_path / "r", simple_pipeline(4))
+        assert 2 == main(["report", str(d), "--slice-batches", "2", "--html", str(tmp_path / "r.html")])
+        err = capsys.readouterr().err.strip().splitlines()
+        assert 1 == len(err) and "--slice-batches 0" in err[0]
