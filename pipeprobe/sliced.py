@@ -432,7 +432,7 @@ def _keep(kept: _Kept, sub: Run, own: np.ndarray, scan: RunScan, hi: float) -> N
     duration) of one slice: a few numbers each, no text."""
     sp = sub.spans
     is_wait = (sp["stage"] == "wait").to_numpy()
-    user = ~is_wait & (sp["stage"] != "step").to_numpy()
+    user = ~is_wait  # steps are cut like stages (stagestats._stage_pieces): an epoch timer has them as children
     keep = own & ~is_wait
     cpu = sp["cpu_s"].to_numpy()[keep]
     kept.spans.append((_codes(kept, sp["stage"])[keep], sp["dur_s"].to_numpy()[keep],
@@ -445,7 +445,7 @@ def _keep(kept: _Kept, sub: Run, own: np.ndarray, scan: RunScan, hi: float) -> N
     for th in {(int(r), int(p), int(t)) for r, p, t in sp.loc[long, ["rank", "pid", "tid"]].itertuples(index=False)}:
         mine = long & (sp["rank"] == th[0]).to_numpy() & (sp["pid"] == th[1]).to_numpy() & (sp["tid"] == th[2]).to_numpy()
         whole = read_range(scan, float(sp["start_s"].to_numpy()[mine].min()), float(end[mine].max()), thread=th).spans
-        wu = whole[~whole["stage"].isin(["wait", "step"]).to_numpy()]
+        wu = whole[(whole["stage"] != "wait").to_numpy()]
         ident = set(zip(sp["start_s"].to_numpy()[mine], end[mine], sp["stage"].astype(str).to_numpy()[mine]))
         _keep_pieces(kept, wu, np.array([k in ident for k in zip(wu["start_s"], wu["end_s"], wu["stage"].astype(str))], bool))
 
