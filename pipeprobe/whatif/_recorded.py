@@ -281,8 +281,8 @@ def _batch_pieces(sp: pd.DataFrame, bid: np.ndarray) -> tuple[pd.DataFrame, dict
     inside = labels_inside(stage_spans)
     pieces = span_pieces(stage_spans)
     del stage_spans  # the pieces replace it: a large run holds one of the two at a time
-    if not len(pieces):
-        return sp.iloc[:0], inside
+    if not len(pieces):  # no stage or step spans at all: no pieces, with the columns the plan reads
+        return sp.iloc[:0].assign(label=pd.Series(dtype=object)), inside
     of_batches = ((pieces["batch_id"] >= 0) & pieces["batch_id"].isin(bid)).to_numpy()
     return (pieces if of_batches.all() else pieces[of_batches]), inside
 
