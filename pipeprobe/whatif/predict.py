@@ -19,6 +19,7 @@ from dataclasses import asdict, dataclass, field
 from typing import TYPE_CHECKING, Any, Iterable, Mapping
 
 from .._jsonnum import json_ready
+from ._lifecycle import UNKNOWN_START_NOTE
 from ._loadrange import load_range, load_reason
 from ._threadrange import range_reason, wall_range
 from .engine import Replay, replay
@@ -291,8 +292,6 @@ def whatif(
 
 def _lifecycle_notes(plan: ReplayPlan, workers: int) -> list[str]:
     """What the prediction says about starting and stopping workers (:mod:`pipeprobe.whatif._lifecycle`)."""
-    from ._lifecycle import UNKNOWN_START_NOTE
-
     lc = plan.lifecycle
     if lc is None or workers == plan.workers:
         return []
