@@ -295,6 +295,8 @@ def one_repetition(rows: list[Row], stalls: list[Stall], data: dict[str, Path], 
         else:
             out = run_job(config, data, quiet_wait=quiet_wait)
             measured[config] = (out["wall_s"], out["other_cores"])
+        with open(work / "runs.jsonl", "a", encoding="utf-8") as log:  # what each run measured, by folder
+            log.write(json.dumps({"kind": kind, "folder": folder.name, "argv": config.argv(), **out}) + "\n")
     for row in rows:
         if row.refused:
             continue
@@ -402,6 +404,7 @@ def main() -> None:
     ap.add_argument("--quiet-wait", type=float, default=60.0,
                     help="seconds to wait for a quiet machine before each run (60)")
     ap.add_argument("--only", nargs="+", choices=["photos", "shards", "steps"], help="only these jobs")
+    ap.add_argument("--keep", type=Path, help="keep the input files and every recorded run in this folder")
     args = ap.parse_args()
     jobs = set(args.only or ["photos", "shards", "steps"])
     try:
@@ -413,7 +416,8 @@ def main() -> None:
     rows = [Row(s) for s in scenarios() if s.base.job in jobs]
     stalls: list[Stall] = []
     with tempfile.TemporaryDirectory(prefix="bench-real-") as tmp:
-        work = Path(tmp)
+        work = Path(tmp) if args.keep is None else args.keep
+        work.mkdir(parents=True, exist_ok=True)
         data = {"photos": work / "photos", "shards": work / "shards", "steps": work}
         write_photos(data["photos"])
         if "shards" in jobs:
