@@ -333,26 +333,27 @@ def _fmt_range(spans: list[Any]) -> str:
 
 def scenario_table(rows: list[Row], keep: Any) -> tuple[list[str], list[float]]:
     """Markdown lines of the prediction table over the runs ``keep(other_cores)`` admits, and the errors."""
-    lines = ["| job and scenario | predicted s | range s | measured s | error | in range | runs A/B |",
-             "|---|---|---|---|---|---|---|"]
+    lines = ["| job and scenario | predicted s | range s | measured s | error | in range | reruns' spread | runs A/B |",
+             "|---|---|---|---|---|---|---|---|"]
     errors = []
     for row in rows:
         name = row.scenario.name
         if row.refused:
-            lines.append(f"| {name} | {NOT_SUPPORTED} | - | - | - | - | - |")
+            lines.append(f"| {name} | {NOT_SUPPORTED} | - | - | - | - | - | - |")
             continue
         p = [x for x in row.predicted if keep(x[1])]
         m = [x[0] for x in row.measured if keep(x[1])]
         if not p or not m:
-            lines.append(f"| {name} | - | - | - | - | - | {len(p)}/{len(m)} |")
+            lines.append(f"| {name} | - | - | - | - | - | - | {len(p)}/{len(m)} |")
             continue
         pm, mm = statistics.median(x[0] for x in p), statistics.median(m)
         errors.append(pm / mm - 1)
         spans = [x[2] for x in p]
         inside = "-" if all(s is None for s in spans) else (
             "yes" if any(s is not None and s[0] <= mm <= s[1] for s in spans) else "no")
+        spread = (max(m) - min(m)) / 2 / mm  # half the reruns' range: how far one rerun can land from the median
         lines.append(f"| {name} | {pm:.3f} | {_fmt_range(spans)} | {mm:.3f} | {100 * (pm / mm - 1):+.1f} % | "
-                     f"{inside} | {len(p)}/{len(m)} |")
+                     f"{inside} | +-{100 * spread:.1f} % | {len(p)}/{len(m)} |")
     return lines, errors
 
 

@@ -77,6 +77,17 @@ class TestHandWorked:
         assert 0.088 == pytest.approx(run.wall_s)
         assert 0.082 == pytest.approx(_predict(run, 2).predicted_wall_s)
 
+    def test_no_workers_with_the_batchs_way_timed(self, tmp_path):
+        """The same run, its probe having also timed a batch's way from the worker to the waiting loop
+        (2 ms from the collate's end; the first batch 27 ms = 5 ms start + 20 ms task + 2 ms): by hand, 2
+        workers deliver each batch 2 ms after its task ends: ready 30 and 33, steps end 32 and 35; stop and
+        forks 14 ms: ask at 49; workers start at 51 and 54, batches ready 73 and 76, steps end 78; stop
+        8 ms: 86 ms."""
+        header = {"worker_start": {"starts": 3, "iter_s": 0.003, "first_batch_s": 0.027, "stop_s": 0.004,
+                                   "latency_s": 0.002, "handoff_s": 0.001, "collate_s": 0.0005}}
+        p = _predict(_record(tmp_path, 0, header=header), 2)
+        assert 0.086 == pytest.approx(p.predicted_wall_s)
+
     def test_no_workers_without_timed_starts_says_so(self, tmp_path):
         """An older run folder without the timed start: the prediction says the start-up cost is unknown
         and replays the workers as free to start (by hand: per epoch both 20 ms tasks at once, then two

@@ -101,10 +101,24 @@ class TestTimedAtClose:
         original loader is untouched."""
         from pipeprobe.record._workerstart import _one_worker_copy
 
-        loader = DataLoader(Counting(n=16, rounds=1), batch_size=4)
-        one, one_batch = _one_worker_copy(loader)
-        assert (True, [[0, 1, 2, 3]], 1, 0, 4) == (one_batch, list(one.batch_sampler), one.num_workers,
-                                                   loader.num_workers, len(list(loader.batch_sampler)))
+        loader = DataLoader(Counting(n=24, rounds=1), batch_size=4)
+        one, items = _one_worker_copy(loader)
+        assert ([[0, 1, 2, 3]], 4, 1, 0, 6) == (list(one.batch_sampler), len(items), one.num_workers,
+                                                loader.num_workers, len(list(loader.batch_sampler)))
+
+    def test_the_way_of_a_batch_to_the_loop_is_timed(self, tmp_path):
+        """A collate that sleeps 30 ms: the worker's collate is timed at 30 ms or a little more (a sleep
+        lasts at least its length: POSIX nanosleep), the latency and handoff are timed too, each shorter
+        than the worker's first batch (its start, 8 items and the collate)."""
+        def slow_collate(items):
+            time.sleep(0.03)
+            return torch.stack([x for x, _ in items])
+
+        _loop(DataLoader(Counting(n=48, rounds=1000), batch_size=8, collate_fn=slow_collate), tmp_path / "run",
+              epochs=1)
+        ws = _header(tmp_path / "run")["worker_start"]
+        assert 0.03 <= ws["collate_s"] < 0.3
+        assert 0 < ws["latency_s"] < ws["first_batch_s"] and 0 < ws["handoff_s"] < ws["first_batch_s"]
 
     def test_a_loader_with_workers_is_not_timed_again(self, tmp_path):
         """A DataLoader with workers shows their starts in its spans: no worker_start in the header."""

@@ -95,6 +95,14 @@ class WorkerLifecycle:
         The loop's time per worker started and per worker stopped.
     first_excess_s : float
         A worker's first task of an epoch beyond the median task.
+    latency_s, handoff_s : float or None
+        A batch's way from a worker to the loop, timed at close (None when
+        not timed): the worker's collate end to the waiting loop holding
+        it, and the loop's ``next()`` for a batch already there. A replay
+        that moves the loading out of the loop into workers uses them.
+    collate_s : float or None
+        The collate in a worker, timed at close (it puts the batch in shared
+        memory): such a replay's collate takes this long at least.
     source : str
         ``"recording"``, ``"timed at close"`` or ``"none"``.
     """
@@ -106,6 +114,9 @@ class WorkerLifecycle:
     stop_s: float = 0.0
     first_excess_s: float = 0.0
     source: str = "none"
+    latency_s: float | None = None
+    handoff_s: float | None = None
+    collate_s: float | None = None
     epoch_boot_s: tuple[tuple[float, ...], ...] = ()
 
     def boots(self, workers: int, epoch: int | None = None) -> list[float]:
@@ -256,7 +267,9 @@ def lifecycle_from_header(header: Any, plan: ReplayPlan) -> WorkerLifecycle:
     one-worker copy of the loader: ``iter_s`` (making the worker),
     ``first_batch_s`` (the first ``next()``: the worker's start and its
     first batch) and ``stop_s`` (stopping it). The worker's start is the
-    first batch less the median batch the run loaded in the loop.
+    first batch less the median batch the run loaded in the loop, less the
+    batch's way to the loop when that was timed too (``collate_s``,
+    ``latency_s``, ``handoff_s``; :mod:`pipeprobe.record._workerstart`).
 
     Examples
     --------
@@ -264,18 +277,22 @@ def lifecycle_from_header(header: Any, plan: ReplayPlan) -> WorkerLifecycle:
     >>> plan = plan_from_durations([0.01] * 4, [0.01] * 4, workers=0)
     >>> h = {"worker_start": {"starts": 3, "iter_s": 0.02, "first_batch_s": 0.06, "stop_s": 0.015}}
     >>> lc = lifecycle_from_header(h, plan)
-    >>> lc.boot_s, lc.fork_s, lc.stop_s
-    ((0.05,), 0.02, 0.015)
+    >>> lc.boot_s, lc.fork_s, lc.stop_s, lc.latency_s
+    ((0.05,), 0.02, 0.015, None)
+    >>> h["worker_start"].update(latency_s=0.004, handoff_s=0.001, collate_s=0.002)
+    >>> lifecycle_from_header(h, plan).boot_s
+    (0.046,)
     """
     ws = header.get("worker_start") if hasattr(header, "get") else None
     got = [_seconds(ws, k) for k in ("iter_s", "first_batch_s", "stop_s")] if isinstance(ws, dict) else [None]
     if None in got:  # missing (an older run folder) or not numbers in range: taken as unknown
         return WorkerLifecycle(known=False, restarts=True)
     fork, first, stop = got
-    task = np.median(plan.loader.io_s.sum(1) + plan.loader.cpu_s.sum(1)) if plan.batches else 0.0
-    boot = max(0.0, first - float(task))
+    task = float(np.median(plan.loader.io_s.sum(1) + plan.loader.cpu_s.sum(1))) if plan.batches else 0.0
+    way = {k: _seconds(ws, k) for k in ("latency_s", "handoff_s", "collate_s")}
+    boot = max(0.0, first - task - (way["latency_s"] or 0.0))
     return WorkerLifecycle(known=True, restarts=True, boot_s=(round(boot, 12),), fork_s=fork, stop_s=stop,
-                           source="timed at close")
+                           source="timed at close", **way)
 
 
 #: Longest time a header's ``worker_start`` may give (seconds): beyond it the field is not taken as data.
@@ -331,11 +348,27 @@ def with_lifecycle(plan: ReplayPlan, workers: int) -> ReplayPlan:
     consumer = _loop_costs(plan, dw * (lc.fork_s + lc.stop_s) if restarting else 0.0)
     starting = np.isin(e, np.arange(epochs) if restarting else [0])
     lo, hi = sorted((plan.workers, workers))
-    loader = _first_tasks(plan.loader, starting & (pos >= lo) & (pos < hi), np.sign(dw) * lc.first_excess_s)
-    return replace(plan, consumer=consumer, loader=loader,
+    way = _way_to_the_loop(plan, lc) if plan.workers == 0 and workers > 0 else {}
+    loader = _first_tasks(way.pop("loader", plan.loader), starting & (pos >= lo) & (pos < hi),
+                          np.sign(dw) * lc.first_excess_s)
+    return replace(plan, consumer=consumer, loader=loader, **way,
                    start_up_s=max(0.0, plan.start_up_s + dw * lc.fork_s),
                    tail_s=max(0.0, plan.tail_s + (dw * lc.stop_s if restarting else 0.0)),
                    epoch_worker_start_s=start if workers else None)
+
+
+def _way_to_the_loop(plan: ReplayPlan, lc: WorkerLifecycle) -> dict[str, Any]:
+    """What a loading moved from the loop into workers pays per batch on its way back, as timed at close:
+    the plan's ``latency_s`` and ``handoff_s``, and the loader's ``collate`` at least the worker's (CPU)."""
+    way: dict[str, Any] = {k: v for k, v in (("latency_s", lc.latency_s), ("handoff_s", lc.handoff_s))
+                           if v is not None}
+    ld = plan.loader
+    if lc.collate_s is not None and "collate" in ld.names:
+        col = ld.names.index("collate")
+        cpu = ld.cpu_s.copy()
+        cpu[:, col] += np.maximum(0.0, lc.collate_s - (ld.io_s[:, col] + cpu[:, col]))
+        way["loader"] = Work(ld.names, ld.io_s, cpu)
+    return way
 
 
 def _loop_costs(plan: ReplayPlan, extra_s: float) -> Work:
