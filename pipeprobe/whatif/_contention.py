@@ -95,11 +95,33 @@ def cores_left(cores: float, background: float) -> float:
     return max(MIN_CORES_LEFT, float(cores) - float(background))
 
 
-def background_cores(resources: Any, rank: int, cores: int) -> float:
+def background_cores(resources: Any, rank: int, cores: int, spans: Any = None) -> float:
     """Cores the machine's other processes kept busy: system-wide busy cores minus this run's processes.
 
     ``resources`` is :attr:`pipeprobe.load.Run.resources`. The median over
-    the resource samples, the first one (no interval yet) left out.
+    the resource samples, the first one (no interval yet) left out. This
+    run's share per sample is the larger of what the sampler saw of its
+    processes and the CPU time its spans recorded in the interval
+    (``spans``, :attr:`pipeprobe.load.Run.spans`, when given): the
+    sampler finds new child processes only now and then (loader workers
+    started anew each epoch can live and die between two looks), the
+    spans' thread CPU clocks miss nothing they timed.
+
+    Examples
+    --------
+    Two samples 1 s apart, both cores busy, the sampler saw only the main
+    process at half a core; the spans timed 2 CPU seconds a second (the
+    main process and a worker the sampler never saw): no other process was busy.
+
+    >>> import pandas as pd
+    >>> res = pd.DataFrame({"t_s": [0.0, 0.0, 0.0, 1.0, 1.0, 1.0, 2.0, 2.0, 2.0], "rank": 0,
+    ...                     "pid": [0, 0, 7] * 3, "core": [0, 1, -1] * 3, "cpu_pct": [100.0, 100.0, 50.0] * 3})
+    >>> background_cores(res, 0, 2)
+    1.5
+    >>> sp = pd.DataFrame({"rank": 0, "pid": [7, 8], "tid": [1, 2], "start_s": [0.0, 0.0], "end_s": [2.0, 2.0],
+    ...                    "cpu_s": [2.0, 2.0]})
+    >>> background_cores(res, 0, 2, sp)
+    0.0
     """
     res = resources
     if res is None or len(res) == 0:
@@ -114,7 +136,38 @@ def background_cores(resources: Any, rank: int, cores: int) -> float:
     both = pd.concat([system.rename("system"), ours.rename("ours")], axis=1).dropna()
     if both.empty:
         return 0.0
+    if spans is not None and len(spans):
+        t = both.index.to_numpy(np.float64)
+        prev = np.concatenate([[times[0]], t[:-1]])
+        timed = _span_cpu_between(spans[spans["rank"] == rank], prev, t) / np.maximum(t - prev, 1e-9)
+        both["ours"] = np.maximum(both["ours"].to_numpy(), timed)
     return float(np.clip(np.median(both["system"] - both["ours"]), 0.0, cores))
+
+
+def _span_cpu_between(spans: Any, t0: np.ndarray, t1: np.ndarray) -> np.ndarray:
+    """CPU seconds the outermost spans of each thread recorded in each interval ``[t0, t1]`` (a span's CPU
+    time spread evenly over its wall time; spans inside another span of their thread are in its CPU time)."""
+    sp = spans[np.isfinite(spans["cpu_s"].to_numpy(np.float64))]
+    if not len(sp):
+        return np.zeros(len(t1))
+    sp = sp.sort_values(["pid", "tid", "start_s"], kind="stable")
+    start, end = sp["start_s"].to_numpy(np.float64), sp["end_s"].to_numpy(np.float64)
+    thread = sp.groupby(["pid", "tid"], sort=False, observed=True).ngroup().to_numpy()
+    reach = pd.Series(end).groupby(thread).cummax().groupby(thread).shift(1).to_numpy(np.float64)
+    top = ~(start < reach)  # NaN (a thread's first span) compares False: outermost
+    start, end, cpu = start[top], end[top], sp["cpu_s"].to_numpy(np.float64)[top]
+    dur = end - start
+    rate = np.where(dur > 0, cpu / np.where(dur > 0, dur, 1.0), 0.0)
+    t = np.concatenate([start, end])
+    order = np.argsort(t, kind="stable")
+    t, level = t[order], np.cumsum(np.concatenate([rate, -rate])[order])
+    done = np.concatenate([[0.0], np.cumsum(level[:-1] * np.diff(t))])  # CPU seconds up to each event
+
+    def upto(x: np.ndarray) -> np.ndarray:
+        k = np.searchsorted(t, x, side="right") - 1
+        return np.where(k >= 0, done[np.maximum(k, 0)] + level[np.maximum(k, 0)] * (x - t[np.maximum(k, 0)]), 0.0)
+
+    return upto(t1) - upto(t0)
 
 
 def max_overlap(starts: np.ndarray, ends: np.ndarray) -> int:

@@ -321,7 +321,7 @@ def build_plan(
     by_worker = batch_workers(spans, loader)
     consumer = consumer_work(spans, batches, keep)
     cores = int(run.header.get("cores") or 1)
-    background = background_cores(run.resources, batches.rank, cores) if spans.cpu_known else 0.0
+    background = background_cores(run.resources, batches.rank, cores, run.spans) if spans.cpu_known else 0.0
     threads = check_threads(run, background)
     loader_side, consumer_side = without_contention(loader, consumer, batches, cores_left(cores, background),
                                                     threads.step_width)
