@@ -7,6 +7,7 @@ import numpy as np
 from _synth import member, pool_schedule, stage, step, three_epoch_rows, wait, write_run
 
 import pipeprobe
+from pipeprobe.critical import critical_path
 from pipeprobe.timeline import EDGE_KINDS, NODE_COLUMNS, build_timeline
 
 
@@ -140,7 +141,7 @@ class TestSlotEdges:
         decode3 = int(nodes[(nodes["stage"] == "decode") & (nodes["sample_id"] == 3)]["node"].iloc[0])
         assert (deliv1, decode3) in _edge_set(tl, "slot")
         assert deliv1 == int(nodes.loc[decode3, "pred"])
-        path = pipeprobe.critical.critical_path(tl)
+        path = critical_path(tl)
         on_path = set(path.path["node"].tolist())
         step0 = int(nodes[(nodes["kind"] == "step") & (nodes["batch_id"] == 0)]["node"].iloc[0])
         assert {deliv1, decode3, step0} <= on_path
@@ -161,7 +162,7 @@ class TestEpochsWithNewWorkers:
         (a slot edge), so the critical path runs through all three epochs and adds up to the wall time
         (networkx.dag_longest_path_length as the reference)."""
         tl = build_timeline(pipeprobe.load(write_run(tmp_path / "r", three_epoch_rows(persistent=False))))
-        path = pipeprobe.critical.critical_path(tl)
+        path = critical_path(tl)
         assert {0, 1, 2} == set(path.path.loc[path.path["kind"] == "step", "epoch"])
         step1 = tl.nodes[(tl.nodes["kind"] == "step") & (tl.nodes["batch_id"] == 1)]["node"].iloc[0]
         first2 = tl.nodes[(tl.nodes["stage"] == "decode") & (tl.nodes["batch_id"] == 2)]["node"].iloc[0]

@@ -79,10 +79,6 @@ def remove_contention(
     return out
 
 
-def _split(dur: np.ndarray, cpu: np.ndarray, slow: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Split per-stage wall time into off-CPU and contention-free CPU seconds (CPU parts were slowed)."""
-
-
 def split_cpu(dur: np.ndarray, cpu: np.ndarray, slow: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Split per-stage wall time into off-CPU and contention-free CPU seconds (CPU parts were slowed)."""
     s = slow[:, None]
