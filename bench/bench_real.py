@@ -253,9 +253,12 @@ def prediction_range(d: dict[str, Any]) -> tuple[float, float] | None:
     return None
 
 
-def recorded_stall(run_dir: Path) -> float:
-    """The stall seconds pipeprobe reports for a run (all batches of all loaders)."""
-    return float(stall_summary(pipeprobe.load(run_dir)).total_s)
+def recorded_stall(run_dir: Path) -> tuple[float, float]:
+    """The stall seconds pipeprobe reports for a run (all batches of all loaders), and the median CPU
+    seconds of one loader item (the loader's ``fetch`` span with the stages inside it; NaN without)."""
+    run = pipeprobe.load(run_dir)
+    fetch = run.spans.loc[(run.spans["stage"] == "fetch").to_numpy(), "cpu_s"].dropna()
+    return float(stall_summary(run).total_s), float(fetch.median()) if len(fetch) else float("nan")
 
 
 # -- one repetition ------------------------------------------------------------------------------------------
@@ -268,6 +271,7 @@ class Stall:
     recorded_s: float
     own_s: float
     other_cores: float
+    item_cpu_s: float = float("nan")
 
 
 def one_repetition(rows: list[Row], stalls: list[Stall], data: dict[str, Path], work: Path, rep: int,
@@ -286,12 +290,14 @@ def one_repetition(rows: list[Row], stalls: list[Stall], data: dict[str, Path], 
         if kind == "base":
             out = run_job(config, data, record=folder, quiet_wait=quiet_wait)
             recorded[config] = (folder, out["other_cores"])
-            stalls.append(Stall(f"{config.job} {_short(config)} (Probe.watch)", recorded_stall(folder),
-                                out["next_s"], out["other_cores"]))
+            stall, item = recorded_stall(folder)
+            stalls.append(Stall(f"{config.job} {_short(config)} (Probe.watch)", stall, out["next_s"],
+                                out["other_cores"], item))
         elif kind == "launch":
             out = run_job(config, data, launch=folder, quiet_wait=quiet_wait)
-            stalls.append(Stall(f"{config.job} {_short(config)} (pipeprobe run)", recorded_stall(folder),
-                                out["next_s"], out["other_cores"]))
+            stall, item = recorded_stall(folder)
+            stalls.append(Stall(f"{config.job} {_short(config)} (pipeprobe run)", stall, out["next_s"],
+                                out["other_cores"], item))
         else:
             out = run_job(config, data, quiet_wait=quiet_wait)
             measured[config] = (out["wall_s"], out["other_cores"])
@@ -390,6 +396,13 @@ def print_report(rows: list[Row], stalls: list[Stall], reps: int) -> None:
     print("\nrecorded stall against the job's own time in next(loader)\n")
     print("\n".join(lines))
     print(f"\n{verdict(errors, STALL_ERROR)} (target: each within 5 %)")
+    print("\nthe machine's own drift: median CPU ms of one loader item (fetch), same recorded configuration, "
+          "each repetition")
+    for label in dict.fromkeys(s.label for s in stalls):
+        items = [s.item_cpu_s for s in stalls if s.label == label and s.item_cpu_s == s.item_cpu_s]
+        if len(items) > 1:
+            print(f"  {label}: " + ", ".join(f"{1e3 * x:.2f}" for x in items)
+                  + f" (max / min {max(items) / min(items):.2f})")
     print("\nevery run: predicted (other load of the base run, the replay's miss on the base run) / measured (other load)")
     for row in rows:
         print(f"  {row.scenario.name}: " + (row.refused or ", ".join(
@@ -423,6 +436,10 @@ def main() -> None:
         write_photos(data["photos"])
         if "shards" in jobs:
             write_shards(data["photos"], data["shards"])
+        # one unmeasured run of each job first: in one session the first repetition's loader items took 6-17 %
+        # more CPU than the later ones'
+        for job in sorted(jobs):
+            run_job(Config.of(job, workers=0, threads=1), data, quiet_wait=args.quiet_wait)
         for rep in range(args.reps):
             started = time.monotonic()
             one_repetition(rows, stalls, data, work, rep, args.quiet_wait)
