@@ -42,6 +42,7 @@ from __future__ import annotations
 
 import math
 import os
+import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -50,6 +51,7 @@ import pandas as pd
 
 from ._progress import progress, step
 from ._slicereader import RunScan, read_range, scan_run
+from ._spill import Spill, key_groups
 from .critical import PACE_SPEEDUP, CriticalPath, critical_path
 from .lanes import thread_lanes
 from .load import Run
@@ -154,10 +156,11 @@ class _Walk:
 
 @dataclass
 class _Kept:
-    """Per own span and per own piece, the few numbers the stage table needs (one list entry per slice)."""
+    """Per own span and per own piece, the few numbers the stage table needs, on disk (one part per slice)."""
 
-    spans: list[tuple]
-    pieces: list[dict]
+    spans: Spill
+    pieces: Spill
+    pairs: set
     per_batch: pd.DataFrame
     seen: set
     repeated: set
@@ -203,21 +206,21 @@ def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int | None = No
     scheduling (the critical path method: a longest path is a chain of
     last-arriving dependencies, so it can be followed back piece by piece).
     """
-    with progress("analysis in slices"):
+    with progress("analysis in slices"), tempfile.TemporaryDirectory(prefix="pipeprobe-slices-") as folder:
         step("reading the run's index")
         scan = scan_run(Path(run_dir))
         if slice_batches is None:
             slice_batches = slice_batches_for(scan.spans, len(scan.batches))
         edges = slice_edges(scan.batches, slice_batches)
-        walk, kept = _walk_slices(scan, edges)
+        walk, kept = _walk_slices(scan, edges, Path(folder))
         step("critical path, stalls and stage table")
+        scan._by_ready = None  # the membership rows by delivery served the slices' links
         run = scan.run(_empty_spans())
-        critical = _joined_path(walk, scan)
+        critical = _joined_path(walk)
         stalls = stall_summary(_with_per_batch_stages(run, kept), critical, warmup_batches=warmup_batches)
         # the membership rows (tens of bytes a sample) served the links and the stalls: free them first
         run = scan.run(_empty_spans(), scan.samples.iloc[:0])
         scan.samples = scan.samples.iloc[:0]
-        walk.rows.clear()
         stages = _stage_table(run, critical, stalls, kept)
     return SlicedAnalysis(run=run, critical=critical, stalls=stalls, stages=stages, slices=len(edges) - 1,
                           rereads=kept.rereads)
@@ -229,10 +232,13 @@ def _empty_spans() -> pd.DataFrame:
     return empty()
 
 
-def _walk_slices(scan: RunScan, edges: np.ndarray) -> tuple[_Walk, _Kept]:
-    """Read the slices from the last to the first; walk the path back and keep the stage-table numbers."""
+def _walk_slices(scan: RunScan, edges: np.ndarray, folder: Path) -> tuple[_Walk, _Kept]:
+    """Read the slices from the last to the first; walk the path back and keep the stage-table numbers (in
+    files under ``folder``)."""
     walk = _Walk(key=_SINK, rows=[], origin_s=0.0, end_s=_run_wall(scan))
-    kept = _Kept(spans=[], pieces=[], per_batch=pd.DataFrame({"stage": [], "rank": [], "batch_id": []}),
+    kept = _Kept(spans=Spill(folder, "spans", {"dur_s": np.float64, "cpu_s": np.float64}),
+                 pieces=Spill(folder, "pieces", _PIECE_DTYPES), pairs=set(),
+                 per_batch=pd.DataFrame({"stage": [], "rank": [], "batch_id": []}),
                  seen=set(), repeated=set(), names={}, thread_order=scan.threads.set_index(["rank", "pid", "tid"])["order"])
     lanes = _global_lanes(scan)
     t = scan.threads
@@ -406,10 +412,13 @@ def _run_wall(scan: RunScan) -> float:
     return max(0.0, scan.last_end_s) if scan.spans else 0.0
 
 
-def _joined_path(walk: _Walk, scan: RunScan) -> CriticalPath:
-    """The critical path from the joined nodes: a timeline of the path alone gives the same attribution."""
+def _joined_path(walk: _Walk) -> CriticalPath:
+    """The critical path from the joined nodes: a timeline of the path alone gives the same attribution.
+    The walk's rows are freed once joined (the path of a long run is one node in a few of its spans)."""
     rows = walk.rows[::-1]
+    walk.rows.clear()
     path = pd.concat(rows, ignore_index=True) if rows else pd.DataFrame({c: [] for c in NODE_COLUMNS})
+    del rows
     for c in ("kind", "stage", "side", "lane"):
         path[c] = path[c].astype(str).astype("category")
     n = len(path)
@@ -434,9 +443,8 @@ def _keep(kept: _Kept, sub: Run, own: np.ndarray, scan: RunScan, hi: float) -> N
     is_wait = (sp["stage"] == "wait").to_numpy()
     user = ~is_wait  # steps are cut like stages (stagestats._stage_pieces): an epoch timer has them as children
     keep = own & ~is_wait
-    cpu = sp["cpu_s"].to_numpy()[keep]
-    kept.spans.append((_codes(kept, sp["stage"])[keep], sp["dur_s"].to_numpy()[keep],
-                       None if np.isnan(cpu).all() else cpu))
+    kept.spans.append(_codes(kept, sp["stage"])[keep].astype(np.int64),
+                      {"dur_s": sp["dur_s"].to_numpy()[keep], "cpu_s": sp["cpu_s"].to_numpy()[keep]})
     _keep_per_batch(kept, sp, own)
     # a span reaching past the spans read gets its pieces from its whole thread over its whole extent
     end = sp["end_s"].to_numpy(np.float64)
@@ -460,10 +468,11 @@ def _keep_pieces(kept: _Kept, us: pd.DataFrame, take: np.ndarray) -> None:
         return
     p = pieces[take[pieces["span"].to_numpy(np.int64)]]
     th = pd.MultiIndex.from_arrays([p["rank"], p["pid"], p["tid"]])
-    kept.pieces.append({"stage": _codes(kept, p["stage"]), "label": _codes(kept, p["label"]),
-                        "sample_id": p["sample_id"].to_numpy(np.int64),
-                        "thread": kept.thread_order.reindex(th).to_numpy(np.int32),
-                        "start_s": p["start_s"].to_numpy(np.float64), "dur_s": p["dur_s"].to_numpy(np.float64)})
+    stage, label = _codes(kept, p["stage"]).astype(np.int64), _codes(kept, p["label"])
+    kept.pairs |= set(zip(*np.unique(np.column_stack([stage, label]), axis=0).T.tolist(), strict=True))
+    kept.pieces.append(stage, {"label": label, "sample_id": p["sample_id"].to_numpy(np.int64),
+                               "thread": kept.thread_order.reindex(th).to_numpy(np.int32),
+                               "start_s": p["start_s"].to_numpy(np.float64), "dur_s": p["dur_s"].to_numpy(np.float64)})
 
 
 def _keep_per_batch(kept: _Kept, sp: pd.DataFrame, own: np.ndarray) -> None:
@@ -495,48 +504,76 @@ def _with_per_batch_stages(run: Run, kept: _Kept) -> Run:
                t0_ns=run.t0_ns)
 
 
+#: The columns kept per piece of innermost stage (the key of its rows in the spill: ``stage``).
+_PIECE_DTYPES = {"label": np.int32, "sample_id": np.int64, "thread": np.int32,
+                 "start_s": np.float64, "dur_s": np.float64}
+
+
 def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept) -> StageStats:
-    """The stage table and slowest samples from the kept numbers, put in the whole run's order."""
+    """The stage table and slowest samples from the kept numbers, read back a group of stages at a time.
+
+    Each group holds whole stages and the whole labels of their time, each stage's spans in run order and its
+    pieces in the order of the whole run's pieces, so that every row is the whole run's (sums, percentiles and
+    slowest samples group by stage or label): memory holds one group's numbers, not the run's.
+    """
     names = np.array(sorted(kept.names, key=kept.names.get) or [""], dtype=object)
-    parts = kept.spans[::-1]
-    code = np.concatenate([c for c, _, _ in parts]) if parts else np.zeros(0, np.int16)
-    dur = np.concatenate([d for _, d, _ in parts]) if parts else np.zeros(0)
-    cpu = np.concatenate([np.full(len(d), np.nan) if c is None else c for _, d, c in parts]) if parts else np.zeros(0)
-    kept.spans.clear()
-    spans = pd.DataFrame({"stage": pd.Categorical.from_codes(code.astype(np.int64), categories=names),
-                          "dur_s": dur, "cpu_s": cpu}, copy=False)
-    del code, dur, cpu
-    pieces = _pieces(kept, names)
-    light = Run(run_dir=run.run_dir, header=run.header, spans=spans, batches=run.batches, samples=run.samples,
-                resources=run.resources, processes=run.processes, clock=run.clock, t0_ns=run.t0_ns)
-    table = _table(light, critical, critical.wall_s, pieces)
-    del light, spans
+    labels = _label_codes(kept, names)
+    rows = kept.spans.counts()
+    for k, n in kept.pieces.counts().items():
+        rows[k] = rows.get(k, 0) + n
+    tables, slowest = [], []
+    for group in key_groups(rows, sorted(kept.pairs)):
+        pieces = _group_pieces(kept, group, names, labels)
+        tables.append(_group_table(run, critical, names, kept.spans.read(group), pieces))
+        slowest.append(_slowest(pieces))
+        del pieces
+    tables = [t for t in tables if len(t)] or [_group_table(run, critical, names, kept.spans.read([]),
+                                                            _group_pieces(kept, [], names, labels))]
+    table = pd.concat(tables, ignore_index=True).sort_values(["total_s", "stage"], ascending=[False, True],
+                                                             kind="stable").reset_index(drop=True)
+    slow = [s for s in slowest if len(s)]
+    slow = (pd.concat(slow, ignore_index=True).sort_values("stage", kind="stable").reset_index(drop=True)
+            if slow else _slowest(_group_pieces(kept, [], names, labels)))
     cores = int(run.header.get("cores") or 1)
     busy = core_busy_during_stalls(run)
     saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
     input_on = critical.input_share >= 1.0 - 1.0 / PACE_SPEEDUP
     more, why = _more_workers(run, stalls, input_on, busy, cores, table, critical)
-    return StageStats(table=table, slowest=_slowest(pieces), cores=cores, core_busy_in_stalls=busy,
+    return StageStats(table=table, slowest=slow, cores=cores, core_busy_in_stalls=busy,
                       cores_saturated=saturated, more_workers=more, more_workers_reason=why)
 
 
-def _pieces(kept: _Kept, names: np.ndarray) -> pd.DataFrame:
-    """The kept pieces by thread (in the order threads first ran a stage), then time: the order of
-    :func:`pipeprobe.nesting.span_pieces` on the whole run; ``label`` categories sorted as text."""
-    parts = kept.pieces[::-1]
-    cols = {c: np.concatenate([p[c] for p in parts]) if parts else np.zeros(0) for c in
-            ("stage", "label", "sample_id", "thread", "start_s", "dur_s")}
-    kept.pieces.clear()
-    order = np.lexsort((cols["start_s"], cols["thread"]))
-    used = np.unique(cols["label"]).astype(np.int64)
+def _label_codes(kept: _Kept, names: np.ndarray) -> tuple[np.ndarray, list[str]]:
+    """The labels of the pieces as categories sorted as text (as :func:`pipeprobe.nesting.span_pieces` gives
+    them), and the recoding from ``kept.names`` codes to them."""
+    used = np.array(sorted({label for _, label in kept.pairs}), np.int64)
     text = names[used] if len(used) else np.zeros(0, object)
     by_text = np.argsort(text.astype(str), kind="stable")
     recode = np.zeros(len(names), np.int64)
     recode[used[by_text]] = np.arange(len(used))
-    del cols["thread"], cols["start_s"]  # each column is put in order and its unordered copy freed at once
+    return recode, list(text[by_text])
+
+
+def _group_pieces(kept: _Kept, group: list[int], names: np.ndarray, labels: tuple[np.ndarray, list[str]]) -> pd.DataFrame:
+    """The pieces of the stages in ``group`` by thread (in the order threads first ran a stage), then time: per
+    stage the order of :func:`pipeprobe.nesting.span_pieces` on the whole run."""
+    recode, categories = labels
+    cols = kept.pieces.read(group)
+    order = np.lexsort((cols.pop("start_s"), cols.pop("thread")))
+    # each column is put in order and its unordered copy freed at once
     return pd.DataFrame({
-        "stage": pd.Categorical.from_codes(cols.pop("stage")[order].astype(np.int64), categories=names),
-        "label": pd.Categorical.from_codes(recode[cols.pop("label")[order]], categories=list(text[by_text])),
-        "sample_id": cols.pop("sample_id")[order].astype(np.int64),
-        "dur_s": cols.pop("dur_s")[order].astype(np.float64),
+        "stage": pd.Categorical.from_codes(cols.pop("key")[order], categories=names),
+        "label": pd.Categorical.from_codes(recode[cols.pop("label")[order]], categories=categories),
+        "sample_id": cols.pop("sample_id")[order],
+        "dur_s": cols.pop("dur_s")[order],
     }, copy=False)
+
+
+def _group_table(run: Run, critical: CriticalPath, names: np.ndarray, spans: dict[str, np.ndarray],
+                 pieces: pd.DataFrame) -> pd.DataFrame:
+    """The stage table's rows of the stages of one group, from their spans (in run order) and pieces."""
+    frame = pd.DataFrame({"stage": pd.Categorical.from_codes(spans.pop("key"), categories=names),
+                          "dur_s": spans.pop("dur_s"), "cpu_s": spans.pop("cpu_s")}, copy=False)
+    light = Run(run_dir=run.run_dir, header=run.header, spans=frame, batches=run.batches, samples=run.samples,
+                resources=run.resources, processes=run.processes, clock=run.clock, t0_ns=run.t0_ns)
+    return _table(light, critical, critical.wall_s, pieces)
