@@ -104,8 +104,9 @@ def _runs(part: tuple[np.ndarray, np.ndarray, np.ndarray], want: np.ndarray) -> 
             for s, e in zip(starts, ends, strict=True)]
 
 
-def key_groups(rows: dict[int, int], together: list[tuple[int, int]], budget: int = GROUP_ROWS) -> list[list[int]]:
-    """Keys of ``rows`` packed into groups of at most ``budget`` rows (a key with more alone), in key order;
+def key_groups(rows: dict[int, int], together: list[tuple[int, int]], budget: int | None = None) -> list[list[int]]:
+    """Keys of ``rows`` packed into groups of at most ``budget`` rows (default :data:`GROUP_ROWS`; a key with
+    more alone), in key order;
     keys joined through the pairs of ``together`` (directly or through keys not in ``rows``) in one group.
 
     Examples
@@ -115,6 +116,7 @@ def key_groups(rows: dict[int, int], together: list[tuple[int, int]], budget: in
     >>> key_groups({0: 3, 1: 3, 2: 3, 5: 1}, [(0, 7), (2, 7)], budget=6)
     [[0, 2], [1, 5]]
     """
+    budget = GROUP_ROWS if budget is None else budget
     root = {k: k for pair in together for k in pair} | {k: k for k in rows}
 
     def find(k: int) -> int:

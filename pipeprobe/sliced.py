@@ -49,10 +49,11 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from ._grouplayout import Blocks, PieceLayout
 from ._progress import progress, step
 from ._slicereader import RunScan, read_range, scan_run
 from ._spill import Spill, key_groups
-from .critical import PACE_SPEEDUP, CriticalPath, critical_path
+from .critical import PACE_SPEEDUP, CriticalPath, path_attribution
 from .lanes import thread_lanes
 from .load import Run
 from .nesting import span_pieces
@@ -161,12 +162,15 @@ class _Kept:
     spans: Spill
     pieces: Spill
     pairs: set
+    span_blocks: Blocks
+    layout: PieceLayout
     per_batch: pd.DataFrame
     seen: set
     repeated: set
     names: dict
     thread_order: pd.Series
     rereads: int = 0
+    cpu_nan: bool = False
 
 
 def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int | None = None,
@@ -237,7 +241,8 @@ def _walk_slices(scan: RunScan, edges: np.ndarray, folder: Path) -> tuple[_Walk,
     files under ``folder``)."""
     walk = _Walk(key=_SINK, rows=[], origin_s=0.0, end_s=_run_wall(scan))
     kept = _Kept(spans=Spill(folder, "spans", {"dur_s": np.float64, "cpu_s": np.float64}),
-                 pieces=Spill(folder, "pieces", _PIECE_DTYPES), pairs=set(),
+                 pieces=Spill(folder, "pieces", _PIECE_DTYPES), pairs=set(), span_blocks=Blocks(),
+                 layout=PieceLayout(),
                  per_batch=pd.DataFrame({"stage": [], "rank": [], "batch_id": []}),
                  seen=set(), repeated=set(), names={}, thread_order=scan.threads.set_index(["rank", "pid", "tid"])["order"])
     lanes = _global_lanes(scan)
@@ -346,9 +351,10 @@ def _walk_back(walk: _Walk, tl: Timeline, edges: np.ndarray, k: int, context: in
     ids = _chain(walk, nodes, own & ~cut, own, v, lo)
     if ids is None:
         return False
-    rows = nodes.iloc[ids[::-1]].copy()
-    rows["lane"] = [lanes.get((int(r), int(p), int(t)), "") for r, p, t in
-                    zip(rows["rank"], rows["pid"], rows["tid"], strict=True)]
+    take = np.asarray(ids[::-1], np.int64)
+    rows = {c: np.asarray(nodes[c].array.take(take), dtype=object if c in _TEXT else None) for c in NODE_COLUMNS}
+    rows["lane"] = np.array([lanes.get((int(r), int(p), int(t)), "") for r, p, t in
+                             zip(rows["rank"], rows["pid"], rows["tid"], strict=True)], dtype=object)
     walk.rows.append(rows)
     return True
 
@@ -412,21 +418,31 @@ def _run_wall(scan: RunScan) -> float:
     return max(0.0, scan.last_end_s) if scan.spans else 0.0
 
 
+#: The text columns of the path's nodes (categories in the path, object arrays in the walk).
+_TEXT = ("kind", "stage", "side", "lane")
+
+
 def _joined_path(walk: _Walk) -> CriticalPath:
-    """The critical path from the joined nodes: a timeline of the path alone gives the same attribution.
-    The walk's rows are freed once joined (the path of a long run is one node in a few of its spans)."""
-    rows = walk.rows[::-1]
+    """The critical path from the joined nodes, with the attribution of :func:`pipeprobe.critical.critical_path`.
+
+    The path of a long run is one node in a few of its spans: it is joined a column at a time, each column's
+    pieces freed once joined, and attributed from its rows (no second copy of them).
+    """
+    parts = walk.rows[::-1]
     walk.rows.clear()
-    path = pd.concat(rows, ignore_index=True) if rows else pd.DataFrame({c: [] for c in NODE_COLUMNS})
-    del rows
-    for c in ("kind", "stage", "side", "lane"):
+    if not parts:
+        path = pd.DataFrame({c: [] for c in NODE_COLUMNS})
+    else:
+        path = pd.DataFrame({c: np.concatenate([p.pop(c) for p in parts]) for c in NODE_COLUMNS}, copy=False)
+    for c in _TEXT:
         path[c] = path[c].astype(str).astype("category")
     n = len(path)
     path["node"] = np.arange(n, dtype=np.int64)
     path["pred"] = np.arange(n, dtype=np.int64) - 1
     path["span"] = -1
-    tl = Timeline(path, pd.DataFrame({"src": [], "dst": [], "kind": []}), walk.origin_s, walk.end_s)
-    return critical_path(tl)
+    segments, shares, lanes = path_attribution(path, path["node"].to_numpy(), walk.origin_s, walk.end_s)
+    return CriticalPath(path=path, segments=segments, shares=shares, lanes=lanes, origin_s=walk.origin_s,
+                        end_s=walk.end_s)
 
 
 def _codes(kept: _Kept, column: pd.Series) -> np.ndarray:
@@ -443,8 +459,10 @@ def _keep(kept: _Kept, sub: Run, own: np.ndarray, scan: RunScan, hi: float) -> N
     is_wait = (sp["stage"] == "wait").to_numpy()
     user = ~is_wait  # steps are cut like stages (stagestats._stage_pieces): an epoch timer has them as children
     keep = own & ~is_wait
-    kept.spans.append(_codes(kept, sp["stage"])[keep].astype(np.int64),
-                      {"dur_s": sp["dur_s"].to_numpy()[keep], "cpu_s": sp["cpu_s"].to_numpy()[keep]})
+    code = _codes(kept, sp["stage"]).astype(np.int64)
+    kept.spans.append(code[keep], {"dur_s": sp["dur_s"].to_numpy()[keep], "cpu_s": sp["cpu_s"].to_numpy()[keep]})
+    kept.span_blocks.prepend(np.where(is_wait, -1, code)[own])  # the stage table's grouping drops the waits
+    kept.cpu_nan |= bool(np.isnan(sp["cpu_s"].to_numpy(np.float64)[own]).any())
     _keep_per_batch(kept, sp, own)
     # a span reaching past the spans read gets its pieces from its whole thread over its whole extent
     end = sp["end_s"].to_numpy(np.float64)
@@ -470,9 +488,11 @@ def _keep_pieces(kept: _Kept, us: pd.DataFrame, take: np.ndarray) -> None:
     th = pd.MultiIndex.from_arrays([p["rank"], p["pid"], p["tid"]])
     stage, label = _codes(kept, p["stage"]).astype(np.int64), _codes(kept, p["label"])
     kept.pairs |= set(zip(*np.unique(np.column_stack([stage, label]), axis=0).T.tolist(), strict=True))
-    kept.pieces.append(stage, {"label": label, "sample_id": p["sample_id"].to_numpy(np.int64),
-                               "thread": kept.thread_order.reindex(th).to_numpy(np.int32),
-                               "start_s": p["start_s"].to_numpy(np.float64), "dur_s": p["dur_s"].to_numpy(np.float64)})
+    cols = {"label": label, "sample_id": p["sample_id"].to_numpy(np.int64),
+            "thread": kept.thread_order.reindex(th).to_numpy(np.int32),
+            "start_s": p["start_s"].to_numpy(np.float64), "dur_s": p["dur_s"].to_numpy(np.float64)}
+    kept.layout.add(stage, label, cols["sample_id"], cols["thread"], cols["start_s"])
+    kept.pieces.append(stage, cols)
 
 
 def _keep_per_batch(kept: _Kept, sp: pd.DataFrame, own: np.ndarray) -> None:
@@ -513,27 +533,28 @@ def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept) 
     """The stage table and slowest samples from the kept numbers, read back a group of stages at a time.
 
     Each group holds whole stages and the whole labels of their time, each stage's spans in run order and its
-    pieces in the order of the whole run's pieces, so that every row is the whole run's (sums, percentiles and
-    slowest samples group by stage or label): memory holds one group's numbers, not the run's.
+    pieces in the order of the whole run's pieces, laid out so that pandas adds them up as it does the whole
+    run's (:mod:`pipeprobe._grouplayout`): every row is the whole run's, while memory holds one group's numbers.
     """
     names = np.array(sorted(kept.names, key=kept.names.get) or [""], dtype=object)
     labels = _label_codes(kept, names)
     rows = kept.spans.counts()
     for k, n in kept.pieces.counts().items():
         rows[k] = rows.get(k, 0) + n
+    stages_rising = kept.layout.stages_rising()
     tables, slowest = [], []
-    for group in key_groups(rows, sorted(kept.pairs)):
-        pieces = _group_pieces(kept, group, names, labels)
-        tables.append(_group_table(run, critical, names, kept.spans.read(group), pieces))
-        slowest.append(_slowest(pieces))
+    for group in [*key_groups(rows, sorted(kept.pairs)), []]:
+        if not group and tables:
+            break  # the empty group gives the empty table's columns when there is no stage at all
+        pieces = _group_pieces(kept, group, names, labels, stages_rising)
+        tables.append(_group_table(run, critical, names, _group_spans(kept, group), pieces))
+        slow = _slowest(pieces)
+        slowest.append(slow[slow["stage"] != labels[1][-1]])
         del pieces
-    tables = [t for t in tables if len(t)] or [_group_table(run, critical, names, kept.spans.read([]),
-                                                            _group_pieces(kept, [], names, labels))]
-    table = pd.concat(tables, ignore_index=True).sort_values(["total_s", "stage"], ascending=[False, True],
-                                                             kind="stable").reset_index(drop=True)
-    slow = [s for s in slowest if len(s)]
-    slow = (pd.concat(slow, ignore_index=True).sort_values("stage", kind="stable").reset_index(drop=True)
-            if slow else _slowest(_group_pieces(kept, [], names, labels)))
+    table = pd.concat([t for t in tables if len(t)] or tables[-1:], ignore_index=True)
+    table = table.sort_values(["total_s", "stage"], ascending=[False, True], kind="stable").reset_index(drop=True)
+    slow = pd.concat([t for t in slowest if len(t)] or slowest[-1:], ignore_index=True)
+    slow = slow.sort_values("stage", kind="stable").reset_index(drop=True)
     cores = int(run.header.get("cores") or 1)
     busy = core_busy_during_stalls(run)
     saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
@@ -545,33 +566,65 @@ def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept) 
 
 def _label_codes(kept: _Kept, names: np.ndarray) -> tuple[np.ndarray, list[str]]:
     """The labels of the pieces as categories sorted as text (as :func:`pipeprobe.nesting.span_pieces` gives
-    them), and the recoding from ``kept.names`` codes to them."""
+    them), then one more, a label no stage has (for the rows that set how pandas adds, see
+    :func:`_group_pieces`); and the recoding from ``kept.names`` codes to them."""
     used = np.array(sorted({label for _, label in kept.pairs}), np.int64)
     text = names[used] if len(used) else np.zeros(0, object)
     by_text = np.argsort(text.astype(str), kind="stable")
     recode = np.zeros(len(names), np.int64)
     recode[used[by_text]] = np.arange(len(used))
-    return recode, list(text[by_text])
+    categories = [str(t) for t in text[by_text]]
+    extra = "\x00"
+    while extra in categories:
+        extra += "\x00"
+    return recode, [*categories, extra]
 
 
-def _group_pieces(kept: _Kept, group: list[int], names: np.ndarray, labels: tuple[np.ndarray, list[str]]) -> pd.DataFrame:
+def _group_spans(kept: _Kept, group: list[int]) -> dict[str, np.ndarray]:
+    """The spans of the stages in ``group`` (codes, durations, CPU), laid out for pandas to add them up as it
+    adds the whole run's: sorted by stage where the whole run's stages come in blocks (one dropped row with no
+    CPU time in front where some span had none), else one dropped row at the end."""
+    cols = kept.spans.read(group)
+    if kept.span_blocks.rising:
+        order = np.argsort(cols["key"], kind="stable")
+        cols = {c: v[order] for c, v in cols.items()}
+        extra = {"key": [-1], "dur_s": [0.0], "cpu_s": [np.nan]} if kept.cpu_nan else None
+        return cols if extra is None else {c: np.concatenate([extra[c], v]) for c, v in cols.items()}
+    return {c: np.concatenate([v, [-1 if c == "key" else 0.0]]) for c, v in cols.items()}
+
+
+def _group_pieces(kept: _Kept, group: list[int], names: np.ndarray, labels: tuple[np.ndarray, list[str]],
+                  stages_rising: bool) -> pd.DataFrame:
     """The pieces of the stages in ``group`` by thread (in the order threads first ran a stage), then time: per
-    stage the order of :func:`pipeprobe.nesting.span_pieces` on the whole run."""
+    stage the order of :func:`pipeprobe.nesting.span_pieces` on the whole run.
+
+    Rows with no stage and the extra label, dropped by the sums, make pandas add up as it does for the whole
+    run: three in front (two samples of the extra label, the first again) where the whole run's (label,
+    sample) pairs are not each one block, one at the end where its stages are not.
+    """
     recode, categories = labels
     cols = kept.pieces.read(group)
     order = np.lexsort((cols.pop("start_s"), cols.pop("thread")))
-    # each column is put in order and its unordered copy freed at once
+    front = 3 if kept.layout.key_split else 0
+    end = 0 if stages_rising else 1
+    extra = len(categories) - 1
+
+    def placed(values: np.ndarray, head: list, tail: list) -> np.ndarray:
+        """The column in order, with the rows in front and at the end (each unordered copy freed at once)."""
+        return np.concatenate([np.asarray(head[:front], values.dtype), values[order], np.asarray(tail[:end], values.dtype)])
+
     return pd.DataFrame({
-        "stage": pd.Categorical.from_codes(cols.pop("key")[order], categories=names),
-        "label": pd.Categorical.from_codes(recode[cols.pop("label")[order]], categories=categories),
-        "sample_id": cols.pop("sample_id")[order],
-        "dur_s": cols.pop("dur_s")[order],
+        "stage": pd.Categorical.from_codes(placed(cols.pop("key"), [-1] * 3, [-1]), categories=names),
+        "label": pd.Categorical.from_codes(placed(recode[cols.pop("label")], [extra] * 3, [-1]),
+                                           categories=categories),
+        "sample_id": placed(cols.pop("sample_id"), [0, 1, 0], [-1]),
+        "dur_s": placed(cols.pop("dur_s"), [0.0] * 3, [0.0]),
     }, copy=False)
 
 
 def _group_table(run: Run, critical: CriticalPath, names: np.ndarray, spans: dict[str, np.ndarray],
                  pieces: pd.DataFrame) -> pd.DataFrame:
-    """The stage table's rows of the stages of one group, from their spans (in run order) and pieces."""
+    """The stage table's rows of the stages of one group, from their spans and pieces."""
     frame = pd.DataFrame({"stage": pd.Categorical.from_codes(spans.pop("key"), categories=names),
                           "dur_s": spans.pop("dur_s"), "cpu_s": spans.pop("cpu_s")}, copy=False)
     light = Run(run_dir=run.run_dir, header=run.header, spans=frame, batches=run.batches, samples=run.samples,
