@@ -48,6 +48,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from pandas.api.types import union_categoricals
 
 from ._grouplayout import Blocks, PieceLayout
 from ._progress import progress, step
@@ -352,9 +353,12 @@ def _walk_back(walk: _Walk, tl: Timeline, edges: np.ndarray, k: int, context: in
     if ids is None:
         return False
     take = np.asarray(ids[::-1], np.int64)
-    rows = {c: np.asarray(nodes[c].array.take(take), dtype=object if c in _TEXT else None) for c in NODE_COLUMNS}
-    rows["lane"] = np.array([lanes.get((int(r), int(p), int(t)), "") for r, p, t in
-                             zip(rows["rank"], rows["pid"], rows["tid"], strict=True)], dtype=object)
+    rows = {c: nodes[c].array.take(take) for c in NODE_COLUMNS if c not in (*_NUMBERED, "lane")}
+    rows = {c: v if c in _TEXT else np.asarray(v) for c, v in rows.items()}
+    names = sorted(set(lanes.values()) | {""})
+    rows["lane"] = pd.Categorical.from_codes([names.index(lanes.get((int(r), int(p), int(t)), "")) for r, p, t in
+                                              zip(rows["rank"], rows["pid"], rows["tid"], strict=True)],
+                                             categories=names)
     walk.rows.append(rows)
     return True
 
@@ -420,6 +424,16 @@ def _run_wall(scan: RunScan) -> float:
 
 #: The text columns of the path's nodes (categories in the path, object arrays in the walk).
 _TEXT = ("kind", "stage", "side", "lane")
+#: Node columns the joined path numbers anew (not kept during the walk).
+_NUMBERED = ("node", "pred", "span")
+
+
+def _joined_column(parts: list, text: bool) -> np.ndarray | pd.Categorical:
+    """One column of the path from its pieces: numbers joined, text as categories of the names used (sorted)."""
+    if not text:
+        return np.concatenate(parts)
+    joined = union_categoricals(parts, sort_categories=True).remove_unused_categories()
+    return pd.Categorical.from_codes(joined.codes, categories=pd.Index(joined.categories).astype(str))
 
 
 def _joined_path(walk: _Walk) -> CriticalPath:
@@ -430,16 +444,17 @@ def _joined_path(walk: _Walk) -> CriticalPath:
     """
     parts = walk.rows[::-1]
     walk.rows.clear()
+    n = sum(len(p["start_s"]) for p in parts)
+    numbered = {"node": np.arange(n, dtype=np.int64), "pred": np.arange(n, dtype=np.int64) - 1,
+                "span": np.full(n, -1, np.int64)}  # the path alone, numbered along it
     if not parts:
         path = pd.DataFrame({c: [] for c in NODE_COLUMNS})
+        for c in _TEXT:
+            path[c] = path[c].astype(str).astype("category")
+        path = path.assign(**numbered)
     else:
-        path = pd.DataFrame({c: np.concatenate([p.pop(c) for p in parts]) for c in NODE_COLUMNS}, copy=False)
-    for c in _TEXT:
-        path[c] = path[c].astype(str).astype("category")
-    n = len(path)
-    path["node"] = np.arange(n, dtype=np.int64)
-    path["pred"] = np.arange(n, dtype=np.int64) - 1
-    path["span"] = -1
+        path = pd.DataFrame({c: numbered[c] if c in _NUMBERED else _joined_column([p.pop(c) for p in parts], c in _TEXT)
+                             for c in NODE_COLUMNS}, copy=False)
     segments, shares, lanes = path_attribution(path, path["node"].to_numpy(), walk.origin_s, walk.end_s)
     return CriticalPath(path=path, segments=segments, shares=shares, lanes=lanes, origin_s=walk.origin_s,
                         end_s=walk.end_s)
