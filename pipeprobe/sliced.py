@@ -26,16 +26,21 @@ while holding the spans of one slice at a time. The steps:
     the slice is read again with four times the context (at most the whole
     run before it);
 ``stage table``
-    each slice's own spans and the pieces of their innermost stages, a few
-    numbers each, concatenated in time order, so that the sums, the
-    percentiles and the slowest samples are those of the whole run.
+    each slice's own spans (stage, duration, CPU time) and the pieces of
+    their innermost stages (label, sample, thread, start, duration) go to
+    files in a temporary folder (:mod:`pipeprobe._spill`), deleted at the
+    end, also on an error; the table is then built a group of whole stages
+    at a time (about :data:`pipeprobe._spill.GROUP_ROWS` rows), each stage's
+    numbers read back in the whole run's order and laid out so that pandas
+    adds them up as it adds the whole run's (:mod:`pipeprobe._grouplayout`):
+    the sums, percentiles and slowest samples are those of the whole run.
 
-What is kept across slices: the per-batch tables, the nodes of the
-critical path, and per span its stage, duration and CPU time and per
-piece its label, sample, thread, start and duration (about 50 bytes a
-span; exact percentiles and slowest samples need every duration). The
-dependency timeline (its nodes and edges, several hundred bytes a span)
-exists for one slice at a time.
+What is kept in memory across slices: the per-batch tables (waits, steps,
+membership rows), the nodes of the critical path (a result: one node in a
+few spans), and the index of the spilled numbers. The dependency timeline
+(its nodes and edges, several hundred bytes a span) exists for one slice
+at a time; the stage table's numbers (about 50 bytes a span on disk) for
+one group of stages at a time.
 """
 
 from __future__ import annotations
