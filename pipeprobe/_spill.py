@@ -63,8 +63,13 @@ class Spill:
         order = np.argsort(key, kind="stable")
         keys, first, counts = np.unique(key[order], return_index=True, return_counts=True)
         for c, path in self._paths.items():
-            with open(path, "ab") as f:
-                np.ascontiguousarray(columns[c][order], dtype=self._dtypes[c]).tofile(f)
+            try:
+                with open(path, "ab") as f:
+                    np.ascontiguousarray(columns[c][order], dtype=self._dtypes[c]).tofile(f)
+            except OSError as exc:
+                reason = (f"{exc.strerror or exc}: the analysis in slices keeps about 50 bytes a span on disk "
+                          "while it runs; set TMPDIR to a folder with room")
+                raise OSError(exc.errno, reason, str(path)) from exc
         self._parts.append((keys.astype(np.int64), first.astype(np.int64) + self._rows, counts.astype(np.int64)))
         self._rows += len(key)
         for k, n in zip(keys.tolist(), counts.tolist(), strict=True):

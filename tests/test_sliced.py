@@ -178,6 +178,25 @@ class TestBoundedMemory:
             analyze_sliced(run, slice_batches=2)
         assert ([], True) == (list((tmp_path / "tmp").iterdir()), "spans.dur_s" in seen)
 
+    def test_full_disk_is_one_line_saying_what_to_do(self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                     capsys: pytest.CaptureFixture) -> None:
+        """A disk too full for the spilled numbers: exit 2 and one line naming TMPDIR."""
+        import errno
+
+        from pipeprobe.cli import main
+
+        run = _pool_run(tmp_path / "run", 2)
+
+        def full(path: object, mode: str = "r") -> object:
+            if "a" in mode:
+                raise OSError(errno.ENOSPC, "No space left on device", str(path))
+            return open(path, mode)
+
+        monkeypatch.setattr(pipeprobe._spill, "open", full, raising=False)
+        assert 2 == main(["report", str(run), "--slice-batches", "2", "--quiet"])
+        err = capsys.readouterr().err.strip().splitlines()
+        assert (1, True) == (len(err), "No space left on device" in err[0] and "set TMPDIR" in err[0])
+
     def test_spill_reads_back_each_key_in_order(self, tmp_path: Path) -> None:
         """A key's rows come back in the order appended, the parts from the last appended (as a list would)."""
         rng = np.random.default_rng(4)
