@@ -156,7 +156,7 @@ class _Walk:
     """The join state of the critical path at a slice edge: the node to continue from, and the nodes so far."""
 
     key: tuple | None  # (kind, stage, rank, pid, tid, start_s, end_s) of the next node, None when done
-    rows: list[pd.DataFrame]
+    rows: list[dict]  # per slice the path nodes it owns, a column each (text as categories)
     origin_s: float = 0.0
     end_s: float = 0.0
 
