@@ -220,14 +220,16 @@ def path_attribution(path: pd.DataFrame, ids: np.ndarray, origin: float,
     seg = _segment_arrays(path, ids, origin, end)
     names = seg.pop("names")
     keep = seg.pop("seconds") > 0
-    seg = {k: v[keep] for k, v in seg.items()}
+    for k in list(seg):  # a column at a time: a long path's pieces are never held twice over
+        seg[k] = seg[k][keep]
     segments = pd.DataFrame({
         "start_s": seg["start_s"], "end_s": seg["end_s"], "seconds": seg["end_s"] - seg["start_s"],
         **{c: text_column(seg[c], names) for c in ("label", "kind", "side")},
         "node": seg["node"], "lane": text_column(seg["lane"], names),
         "batch_id": seg["batch_id"], "sample_id": seg["sample_id"],
-    })
-    codes = pd.DataFrame({c: seg[c] for c in ("label", "kind", "side", "lane")}).assign(seconds=segments["seconds"])
+    }, copy=False)  # fresh arrays: no second copy
+    codes = pd.DataFrame({c: seg.pop(c) for c in ("label", "kind", "side", "lane")},
+                         copy=False).assign(seconds=segments["seconds"])
     shares, lanes = _attribute_codes(codes, names, end - origin)
     return segments, shares, lanes
 
