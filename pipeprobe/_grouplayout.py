@@ -87,7 +87,11 @@ class PieceLayout:
     ``stage_split`` and ``key_split``: a stage's pieces, or a (label, sample)'s, are known not to form one
     block in the whole run's order. A batch proves it when they do not within it (its pieces keep their
     relative order in the whole run's). For the stages, the blocks of each batch are kept (few while no
-    stage is split) and joined at the end; for (label, sample), only what batches prove is known.
+    stage is split) and joined at the end; for (label, sample), only what batches prove is known (keeping
+    every pair seen would grow with the run). What this leaves open: a pair split only across batches, whose
+    pieces come back together in a group of stages while nothing of that group lies between them; the two ways
+    of adding differ only for a pair of three pieces or more (an epoch timer's own time per sample over three
+    epochs, say) and only in the last bits.
     """
 
     stage_split: bool = False
