@@ -71,9 +71,10 @@ class RunScan:
 
     @property
     def samples_by_ready(self) -> pd.DataFrame:
-        """The membership rows sorted by ``ready_s`` (for linking a span to a batch delivered later)."""
+        """The membership rows' ``rank, sample_id, ready_s`` sorted by ``ready_s`` (for finding when a span's
+        batch was delivered, later than the spans read)."""
         if self._by_ready is None:
-            self._by_ready = self.samples.sort_values("ready_s", kind="stable")
+            self._by_ready = self.samples[["rank", "sample_id", "ready_s"]].sort_values("ready_s", kind="stable")
         return self._by_ready
 
     _by_ready: pd.DataFrame | None = None

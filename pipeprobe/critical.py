@@ -207,21 +207,31 @@ def critical_path(timeline: Timeline) -> CriticalPath:
     sink = sink_node(timeline)
     ids = _walk(timeline.node_column("pred"), sink) if sink >= 0 else np.zeros(0, np.int64)
     path = timeline.node_rows(ids)  # the path's rows only: a large run's nodes frame is never built
+    segments, shares, lanes = path_attribution(path, ids, origin, end)
+    del path  # taken again from the timeline when read: a full epoch's path is large
+    return CriticalPath(segments=segments, shares=shares, lanes=lanes, origin_s=origin, end_s=end, timeline=timeline,
+                        ids=ids)
+
+
+def path_attribution(path: pd.DataFrame, ids: np.ndarray, origin: float,
+                     end: float) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    """``segments, shares, lanes`` of :class:`CriticalPath` from the path's rows (``ids``: their node ids) and
+    the time axis ``[origin, end]``; for a path joined from pieces (:mod:`pipeprobe.sliced`) as for one walked."""
     seg = _segment_arrays(path, ids, origin, end)
     names = seg.pop("names")
     keep = seg.pop("seconds") > 0
-    seg = {k: v[keep] for k, v in seg.items()}
+    for k in list(seg):  # a column at a time: a long path's pieces are never held twice over
+        seg[k] = seg[k][keep]
     segments = pd.DataFrame({
         "start_s": seg["start_s"], "end_s": seg["end_s"], "seconds": seg["end_s"] - seg["start_s"],
         **{c: text_column(seg[c], names) for c in ("label", "kind", "side")},
         "node": seg["node"], "lane": text_column(seg["lane"], names),
         "batch_id": seg["batch_id"], "sample_id": seg["sample_id"],
-    })
-    codes = pd.DataFrame({c: seg[c] for c in ("label", "kind", "side", "lane")}).assign(seconds=segments["seconds"])
+    }, copy=False)  # fresh arrays: no second copy
+    codes = pd.DataFrame({c: seg.pop(c) for c in ("label", "kind", "side", "lane")},
+                         copy=False).assign(seconds=segments["seconds"])
     shares, lanes = _attribute_codes(codes, names, end - origin)
-    del path  # taken again from the timeline when read: a full epoch's path is large
-    return CriticalPath(segments=segments, shares=shares, lanes=lanes, origin_s=origin, end_s=end, timeline=timeline,
-                        ids=ids)
+    return segments, shares, lanes
 
 
 def attribute(segments: pd.DataFrame, wall: float) -> tuple[pd.DataFrame, pd.DataFrame]:

@@ -26,31 +26,40 @@ while holding the spans of one slice at a time. The steps:
     the slice is read again with four times the context (at most the whole
     run before it);
 ``stage table``
-    each slice's own spans and the pieces of their innermost stages, a few
-    numbers each, concatenated in time order, so that the sums, the
-    percentiles and the slowest samples are those of the whole run.
+    each slice's own spans (stage, duration, CPU time) and the pieces of
+    their innermost stages (label, sample, thread, start, duration) go to
+    files in a temporary folder (:mod:`pipeprobe._spill`), deleted at the
+    end, also on an error; the table is then built a group of whole stages
+    at a time (about :data:`pipeprobe._spill.GROUP_ROWS` rows), each stage's
+    numbers read back in the whole run's order and laid out so that pandas
+    adds them up as it adds the whole run's (:mod:`pipeprobe._grouplayout`):
+    the sums, percentiles and slowest samples are those of the whole run.
 
-What is kept across slices: the per-batch tables, the nodes of the
-critical path, and per span its stage, duration and CPU time and per
-piece its label, sample, thread, start and duration (about 50 bytes a
-span; exact percentiles and slowest samples need every duration). The
-dependency timeline (its nodes and edges, several hundred bytes a span)
-exists for one slice at a time.
+What is kept in memory across slices: the per-batch tables (waits, steps,
+membership rows), the nodes of the critical path (a result: one node in a
+few spans), and the index of the spilled numbers. The dependency timeline
+(its nodes and edges, several hundred bytes a span) exists for one slice
+at a time; the stage table's numbers (about 50 bytes a span on disk) for
+one group of stages at a time.
 """
 
 from __future__ import annotations
 
 import math
 import os
+import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from pandas.api.types import union_categoricals
 
+from ._grouplayout import Blocks, PieceLayout
 from ._progress import progress, step
 from ._slicereader import RunScan, read_range, scan_run
-from .critical import PACE_SPEEDUP, CriticalPath, critical_path
+from ._spill import Spill, key_groups
+from .critical import PACE_SPEEDUP, CriticalPath, path_attribution
 from .lanes import thread_lanes
 from .load import Run
 from .nesting import span_pieces
@@ -147,23 +156,27 @@ class _Walk:
     """The join state of the critical path at a slice edge: the node to continue from, and the nodes so far."""
 
     key: tuple | None  # (kind, stage, rank, pid, tid, start_s, end_s) of the next node, None when done
-    rows: list[pd.DataFrame]
+    rows: list[dict]  # per slice the path nodes it owns, a column each (text as categories)
     origin_s: float = 0.0
     end_s: float = 0.0
 
 
 @dataclass
 class _Kept:
-    """Per own span and per own piece, the few numbers the stage table needs (one list entry per slice)."""
+    """Per own span and per own piece, the few numbers the stage table needs, on disk (one part per slice)."""
 
-    spans: list[tuple]
-    pieces: list[dict]
+    spans: Spill
+    pieces: Spill
+    pairs: set
+    span_blocks: Blocks
+    layout: PieceLayout
     per_batch: pd.DataFrame
     seen: set
     repeated: set
     names: dict
     thread_order: pd.Series
     rereads: int = 0
+    cpu_nan: bool = False
 
 
 def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int | None = None,
@@ -203,21 +216,21 @@ def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int | None = No
     scheduling (the critical path method: a longest path is a chain of
     last-arriving dependencies, so it can be followed back piece by piece).
     """
-    with progress("analysis in slices"):
+    with progress("analysis in slices"), tempfile.TemporaryDirectory(prefix="pipeprobe-slices-") as folder:
         step("reading the run's index")
         scan = scan_run(Path(run_dir))
         if slice_batches is None:
             slice_batches = slice_batches_for(scan.spans, len(scan.batches))
         edges = slice_edges(scan.batches, slice_batches)
-        walk, kept = _walk_slices(scan, edges)
+        walk, kept = _walk_slices(scan, edges, Path(folder))
         step("critical path, stalls and stage table")
+        scan._by_ready = None  # the membership rows by delivery served the slices' links
         run = scan.run(_empty_spans())
-        critical = _joined_path(walk, scan)
+        critical = _joined_path(walk)
         stalls = stall_summary(_with_per_batch_stages(run, kept), critical, warmup_batches=warmup_batches)
         # the membership rows (tens of bytes a sample) served the links and the stalls: free them first
         run = scan.run(_empty_spans(), scan.samples.iloc[:0])
         scan.samples = scan.samples.iloc[:0]
-        walk.rows.clear()
         stages = _stage_table(run, critical, stalls, kept)
     return SlicedAnalysis(run=run, critical=critical, stalls=stalls, stages=stages, slices=len(edges) - 1,
                           rereads=kept.rereads)
@@ -229,10 +242,14 @@ def _empty_spans() -> pd.DataFrame:
     return empty()
 
 
-def _walk_slices(scan: RunScan, edges: np.ndarray) -> tuple[_Walk, _Kept]:
-    """Read the slices from the last to the first; walk the path back and keep the stage-table numbers."""
+def _walk_slices(scan: RunScan, edges: np.ndarray, folder: Path) -> tuple[_Walk, _Kept]:
+    """Read the slices from the last to the first; walk the path back and keep the stage-table numbers (in
+    files under ``folder``)."""
     walk = _Walk(key=_SINK, rows=[], origin_s=0.0, end_s=_run_wall(scan))
-    kept = _Kept(spans=[], pieces=[], per_batch=pd.DataFrame({"stage": [], "rank": [], "batch_id": []}),
+    kept = _Kept(spans=Spill(folder, "spans", {"dur_s": np.float64, "cpu_s": np.float64}),
+                 pieces=Spill(folder, "pieces", _PIECE_DTYPES), pairs=set(), span_blocks=Blocks(),
+                 layout=PieceLayout(),
+                 per_batch=pd.DataFrame({"stage": [], "rank": [], "batch_id": []}),
                  seen=set(), repeated=set(), names={}, thread_order=scan.threads.set_index(["rank", "pid", "tid"])["order"])
     lanes = _global_lanes(scan)
     t = scan.threads
@@ -340,9 +357,13 @@ def _walk_back(walk: _Walk, tl: Timeline, edges: np.ndarray, k: int, context: in
     ids = _chain(walk, nodes, own & ~cut, own, v, lo)
     if ids is None:
         return False
-    rows = nodes.iloc[ids[::-1]].copy()
-    rows["lane"] = [lanes.get((int(r), int(p), int(t)), "") for r, p, t in
-                    zip(rows["rank"], rows["pid"], rows["tid"], strict=True)]
+    take = np.asarray(ids[::-1], np.int64)
+    rows = {c: nodes[c].array.take(take) for c in NODE_COLUMNS if c not in (*_NUMBERED, "lane")}
+    rows = {c: v if c in _TEXT else np.asarray(v) for c, v in rows.items()}
+    names = sorted(set(lanes.values()) | {""})
+    rows["lane"] = pd.Categorical.from_codes([names.index(lanes.get((int(r), int(p), int(t)), "")) for r, p, t in
+                                              zip(rows["rank"], rows["pid"], rows["tid"], strict=True)],
+                                             categories=names)
     walk.rows.append(rows)
     return True
 
@@ -406,18 +427,42 @@ def _run_wall(scan: RunScan) -> float:
     return max(0.0, scan.last_end_s) if scan.spans else 0.0
 
 
-def _joined_path(walk: _Walk, scan: RunScan) -> CriticalPath:
-    """The critical path from the joined nodes: a timeline of the path alone gives the same attribution."""
-    rows = walk.rows[::-1]
-    path = pd.concat(rows, ignore_index=True) if rows else pd.DataFrame({c: [] for c in NODE_COLUMNS})
-    for c in ("kind", "stage", "side", "lane"):
-        path[c] = path[c].astype(str).astype("category")
-    n = len(path)
-    path["node"] = np.arange(n, dtype=np.int64)
-    path["pred"] = np.arange(n, dtype=np.int64) - 1
-    path["span"] = -1
-    tl = Timeline(path, pd.DataFrame({"src": [], "dst": [], "kind": []}), walk.origin_s, walk.end_s)
-    return critical_path(tl)
+#: The text columns of the path's nodes (categories in the path, object arrays in the walk).
+_TEXT = ("kind", "stage", "side", "lane")
+#: Node columns the joined path numbers anew (not kept during the walk).
+_NUMBERED = ("node", "pred", "span")
+
+
+def _joined_column(parts: list, text: bool) -> np.ndarray | pd.Categorical:
+    """One column of the path from its pieces: numbers joined, text as categories of the names used (sorted)."""
+    if not text:
+        return np.concatenate(parts)
+    joined = union_categoricals(parts, sort_categories=True).remove_unused_categories()
+    return pd.Categorical.from_codes(joined.codes, categories=pd.Index(joined.categories).astype(str))
+
+
+def _joined_path(walk: _Walk) -> CriticalPath:
+    """The critical path from the joined nodes, with the attribution of :func:`pipeprobe.critical.critical_path`.
+
+    The path of a long run is one node in a few of its spans: it is joined a column at a time, each column's
+    pieces freed once joined, and attributed from its rows (no second copy of them).
+    """
+    parts = walk.rows[::-1]
+    walk.rows.clear()
+    n = sum(len(p["start_s"]) for p in parts)
+    numbered = {"node": np.arange(n, dtype=np.int64), "pred": np.arange(n, dtype=np.int64) - 1,
+                "span": np.full(n, -1, np.int64)}  # the path alone, numbered along it
+    if not parts:
+        path = pd.DataFrame({c: [] for c in NODE_COLUMNS})
+        for c in _TEXT:
+            path[c] = path[c].astype(str).astype("category")
+        path = path.assign(**numbered)
+    else:
+        path = pd.DataFrame({c: numbered[c] if c in _NUMBERED else _joined_column([p.pop(c) for p in parts], c in _TEXT)
+                             for c in NODE_COLUMNS}, copy=False)
+    segments, shares, lanes = path_attribution(path, path["node"].to_numpy(), walk.origin_s, walk.end_s)
+    return CriticalPath(path=path, segments=segments, shares=shares, lanes=lanes, origin_s=walk.origin_s,
+                        end_s=walk.end_s)
 
 
 def _codes(kept: _Kept, column: pd.Series) -> np.ndarray:
@@ -434,9 +479,10 @@ def _keep(kept: _Kept, sub: Run, own: np.ndarray, scan: RunScan, hi: float) -> N
     is_wait = (sp["stage"] == "wait").to_numpy()
     user = ~is_wait  # steps are cut like stages (stagestats._stage_pieces): an epoch timer has them as children
     keep = own & ~is_wait
-    cpu = sp["cpu_s"].to_numpy()[keep]
-    kept.spans.append((_codes(kept, sp["stage"])[keep], sp["dur_s"].to_numpy()[keep],
-                       None if np.isnan(cpu).all() else cpu))
+    code = _codes(kept, sp["stage"]).astype(np.int64)
+    kept.spans.append(code[keep], {"dur_s": sp["dur_s"].to_numpy()[keep], "cpu_s": sp["cpu_s"].to_numpy()[keep]})
+    kept.span_blocks.prepend(np.where(is_wait, -1, code)[own])  # the stage table's grouping drops the waits
+    kept.cpu_nan |= bool(np.isnan(sp["cpu_s"].to_numpy(np.float64)[own]).any())
     _keep_per_batch(kept, sp, own)
     # a span reaching past the spans read gets its pieces from its whole thread over its whole extent
     end = sp["end_s"].to_numpy(np.float64)
@@ -460,10 +506,13 @@ def _keep_pieces(kept: _Kept, us: pd.DataFrame, take: np.ndarray) -> None:
         return
     p = pieces[take[pieces["span"].to_numpy(np.int64)]]
     th = pd.MultiIndex.from_arrays([p["rank"], p["pid"], p["tid"]])
-    kept.pieces.append({"stage": _codes(kept, p["stage"]), "label": _codes(kept, p["label"]),
-                        "sample_id": p["sample_id"].to_numpy(np.int64),
-                        "thread": kept.thread_order.reindex(th).to_numpy(np.int32),
-                        "start_s": p["start_s"].to_numpy(np.float64), "dur_s": p["dur_s"].to_numpy(np.float64)})
+    stage, label = _codes(kept, p["stage"]).astype(np.int64), _codes(kept, p["label"])
+    kept.pairs |= set(zip(*np.unique(np.column_stack([stage, label]), axis=0).T.tolist(), strict=True))
+    cols = {"label": label, "sample_id": p["sample_id"].to_numpy(np.int64),
+            "thread": kept.thread_order.reindex(th).to_numpy(np.int32),
+            "start_s": p["start_s"].to_numpy(np.float64), "dur_s": p["dur_s"].to_numpy(np.float64)}
+    kept.layout.add(stage, label, cols["sample_id"], cols["thread"], cols["start_s"])
+    kept.pieces.append(stage, cols)
 
 
 def _keep_per_batch(kept: _Kept, sp: pd.DataFrame, own: np.ndarray) -> None:
@@ -495,48 +544,109 @@ def _with_per_batch_stages(run: Run, kept: _Kept) -> Run:
                t0_ns=run.t0_ns)
 
 
+#: The columns kept per piece of innermost stage (the key of its rows in the spill: ``stage``).
+_PIECE_DTYPES = {"label": np.int32, "sample_id": np.int64, "thread": np.int32,
+                 "start_s": np.float64, "dur_s": np.float64}
+
+
 def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept) -> StageStats:
-    """The stage table and slowest samples from the kept numbers, put in the whole run's order."""
+    """The stage table and slowest samples from the kept numbers, read back a group of stages at a time.
+
+    Each group holds whole stages and the whole labels of their time, each stage's spans in run order and its
+    pieces in the order of the whole run's pieces, laid out so that pandas adds them up as it does the whole
+    run's (:mod:`pipeprobe._grouplayout`): every row is the whole run's, while memory holds one group's numbers.
+    """
     names = np.array(sorted(kept.names, key=kept.names.get) or [""], dtype=object)
-    parts = kept.spans[::-1]
-    code = np.concatenate([c for c, _, _ in parts]) if parts else np.zeros(0, np.int16)
-    dur = np.concatenate([d for _, d, _ in parts]) if parts else np.zeros(0)
-    cpu = np.concatenate([np.full(len(d), np.nan) if c is None else c for _, d, c in parts]) if parts else np.zeros(0)
-    kept.spans.clear()
-    spans = pd.DataFrame({"stage": pd.Categorical.from_codes(code.astype(np.int64), categories=names),
-                          "dur_s": dur, "cpu_s": cpu}, copy=False)
-    del code, dur, cpu
-    pieces = _pieces(kept, names)
-    light = Run(run_dir=run.run_dir, header=run.header, spans=spans, batches=run.batches, samples=run.samples,
-                resources=run.resources, processes=run.processes, clock=run.clock, t0_ns=run.t0_ns)
-    table = _table(light, critical, critical.wall_s, pieces)
-    del light, spans
+    labels = _label_codes(kept, names)
+    rows = kept.spans.counts()
+    for k, n in kept.pieces.counts().items():
+        rows[k] = rows.get(k, 0) + n
+    stages_rising = kept.layout.stages_rising()
+    tables, slowest = [], []
+    for group in [*key_groups(rows, sorted(kept.pairs)), []]:
+        if not group and tables:
+            break  # the empty group gives the empty table's columns when there is no stage at all
+        pieces = _group_pieces(kept, group, names, labels, stages_rising)
+        tables.append(_group_table(run, critical, names, _group_spans(kept, group), pieces))
+        slow = _slowest(pieces)
+        slowest.append(slow[slow["stage"] != labels[1][-1]])
+        del pieces
+    table = pd.concat([t for t in tables if len(t)] or tables[-1:], ignore_index=True)
+    table = table.sort_values(["total_s", "stage"], ascending=[False, True], kind="stable").reset_index(drop=True)
+    slow = pd.concat([t for t in slowest if len(t)] or slowest[-1:], ignore_index=True)
+    slow = slow.sort_values("stage", kind="stable").reset_index(drop=True)
     cores = int(run.header.get("cores") or 1)
     busy = core_busy_during_stalls(run)
     saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
     input_on = critical.input_share >= 1.0 - 1.0 / PACE_SPEEDUP
     more, why = _more_workers(run, stalls, input_on, busy, cores, table, critical)
-    return StageStats(table=table, slowest=_slowest(pieces), cores=cores, core_busy_in_stalls=busy,
+    return StageStats(table=table, slowest=slow, cores=cores, core_busy_in_stalls=busy,
                       cores_saturated=saturated, more_workers=more, more_workers_reason=why)
 
 
-def _pieces(kept: _Kept, names: np.ndarray) -> pd.DataFrame:
-    """The kept pieces by thread (in the order threads first ran a stage), then time: the order of
-    :func:`pipeprobe.nesting.span_pieces` on the whole run; ``label`` categories sorted as text."""
-    parts = kept.pieces[::-1]
-    cols = {c: np.concatenate([p[c] for p in parts]) if parts else np.zeros(0) for c in
-            ("stage", "label", "sample_id", "thread", "start_s", "dur_s")}
-    kept.pieces.clear()
-    order = np.lexsort((cols["start_s"], cols["thread"]))
-    used = np.unique(cols["label"]).astype(np.int64)
+def _label_codes(kept: _Kept, names: np.ndarray) -> tuple[np.ndarray, list[str]]:
+    """The labels of the pieces as categories sorted as text (as :func:`pipeprobe.nesting.span_pieces` gives
+    them), then one more, a label no stage has (for the rows that set how pandas adds, see
+    :func:`_group_pieces`); and the recoding from ``kept.names`` codes to them."""
+    used = np.array(sorted({label for _, label in kept.pairs}), np.int64)
     text = names[used] if len(used) else np.zeros(0, object)
     by_text = np.argsort(text.astype(str), kind="stable")
     recode = np.zeros(len(names), np.int64)
     recode[used[by_text]] = np.arange(len(used))
-    del cols["thread"], cols["start_s"]  # each column is put in order and its unordered copy freed at once
+    categories = [str(t) for t in text[by_text]]
+    extra = "\x00"
+    while extra in categories:
+        extra += "\x00"
+    return recode, [*categories, extra]
+
+
+def _group_spans(kept: _Kept, group: list[int]) -> dict[str, np.ndarray]:
+    """The spans of the stages in ``group`` (codes, durations, CPU), laid out for pandas to add them up as it
+    adds the whole run's: sorted by stage where the whole run's stages come in blocks (one dropped row with no
+    CPU time in front where some span had none), else one dropped row at the end."""
+    cols = kept.spans.read(group)
+    if kept.span_blocks.rising:
+        order = np.argsort(cols["key"], kind="stable")
+        cols = {c: v[order] for c, v in cols.items()}
+        extra = {"key": [-1], "dur_s": [0.0], "cpu_s": [np.nan]} if kept.cpu_nan else None
+        return cols if extra is None else {c: np.concatenate([extra[c], v]) for c, v in cols.items()}
+    return {c: np.concatenate([v, [-1 if c == "key" else 0.0]]) for c, v in cols.items()}
+
+
+def _group_pieces(kept: _Kept, group: list[int], names: np.ndarray, labels: tuple[np.ndarray, list[str]],
+                  stages_rising: bool) -> pd.DataFrame:
+    """The pieces of the stages in ``group`` by thread (in the order threads first ran a stage), then time: per
+    stage the order of :func:`pipeprobe.nesting.span_pieces` on the whole run.
+
+    Rows with no stage and the extra label, dropped by the sums, make pandas add up as it does for the whole
+    run: three in front (two samples of the extra label, the first again) where the whole run's (label,
+    sample) pairs are not each one block, one at the end where its stages are not.
+    """
+    recode, categories = labels
+    cols = kept.pieces.read(group)
+    order = np.lexsort((cols.pop("start_s"), cols.pop("thread")))
+    front = 3 if kept.layout.key_split else 0
+    end = 0 if stages_rising else 1
+    extra = len(categories) - 1
+
+    def placed(values: np.ndarray, head: list, tail: list) -> np.ndarray:
+        """The column in order, with the rows in front and at the end (each unordered copy freed at once)."""
+        return np.concatenate([np.asarray(head[:front], values.dtype), values[order], np.asarray(tail[:end], values.dtype)])
+
     return pd.DataFrame({
-        "stage": pd.Categorical.from_codes(cols.pop("stage")[order].astype(np.int64), categories=names),
-        "label": pd.Categorical.from_codes(recode[cols.pop("label")[order]], categories=list(text[by_text])),
-        "sample_id": cols.pop("sample_id")[order].astype(np.int64),
-        "dur_s": cols.pop("dur_s")[order].astype(np.float64),
+        "stage": pd.Categorical.from_codes(placed(cols.pop("key"), [-1] * 3, [-1]), categories=names),
+        "label": pd.Categorical.from_codes(placed(recode[cols.pop("label")], [extra] * 3, [-1]),
+                                           categories=categories),
+        "sample_id": placed(cols.pop("sample_id"), [0, 1, 0], [-1]),
+        "dur_s": placed(cols.pop("dur_s"), [0.0] * 3, [0.0]),
     }, copy=False)
+
+
+def _group_table(run: Run, critical: CriticalPath, names: np.ndarray, spans: dict[str, np.ndarray],
+                 pieces: pd.DataFrame) -> pd.DataFrame:
+    """The stage table's rows of the stages of one group, from their spans and pieces."""
+    frame = pd.DataFrame({"stage": pd.Categorical.from_codes(spans.pop("key"), categories=names),
+                          "dur_s": spans.pop("dur_s"), "cpu_s": spans.pop("cpu_s")}, copy=False)
+    light = Run(run_dir=run.run_dir, header=run.header, spans=frame, batches=run.batches, samples=run.samples,
+                resources=run.resources, processes=run.processes, clock=run.clock, t0_ns=run.t0_ns)
+    return _table(light, critical, critical.wall_s, pieces)
