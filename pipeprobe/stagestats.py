@@ -108,8 +108,7 @@ def _stage_pieces(run: Run) -> pd.DataFrame:
     timer) counts the steps as its children, as it counts stages inside it.
     """
     sp = run.spans
-    return span_pieces(sp.loc[(sp["stage"] != "wait").to_numpy(), list(_PIECE_INPUT)],
-                       columns=("stage", "sample_id"))
+    return span_pieces(sp, columns=("stage", "sample_id"), rows=np.flatnonzero((sp["stage"] != "wait").to_numpy()))
 
 
 def _stage_key(sp: pd.DataFrame, leave_out: str) -> pd.Categorical:

@@ -29,7 +29,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ScenarioError
-from ..nesting import as_text, labels_inside, span_pieces
+from ..nesting import as_text, pieces_and_inside
 from ._contention import max_overlap, remove_contention, split_cpu
 from ._replay_path import CONSUMER_OVERHEAD, UNSTAGED, WORKER_OVERHEAD
 from .limits import MAX_PLAN_STAGES, OTHER_STAGES
@@ -277,10 +277,8 @@ def _batch_pieces(sp: pd.DataFrame, bid: np.ndarray) -> tuple[pd.DataFrame, dict
     ``step, outside your stages``; the step's CPU beyond its stages' is
     shared among all its pieces by duration (its CPU time is the process's).
     """
-    stage_spans = sp.loc[(sp["stage"] != "wait").to_numpy(), list(_PIECE_INPUT)]
-    inside = labels_inside(stage_spans)
-    pieces = span_pieces(stage_spans)
-    del stage_spans  # the pieces replace it: a large run holds one of the two at a time
+    rows = np.flatnonzero((sp["stage"] != "wait").to_numpy())
+    pieces, inside = pieces_and_inside(sp, columns=_PIECE_INPUT, rows=rows)  # one cut, no copy of the spans
     if not len(pieces):  # no stage or step spans at all: no pieces, with the columns the plan reads
         return sp.iloc[:0].assign(label=pd.Series(dtype=object)), inside
     of_batches = ((pieces["batch_id"] >= 0) & pieces["batch_id"].isin(bid)).to_numpy()
