@@ -48,7 +48,7 @@ from .record._loaders import COLLATE_STAGE, FETCH_STAGE
 #: The training step's stage name (``Probe.step``): a reserved stage, timed by pipeprobe.
 STEP_STAGE = "step"
 
-__all__ = ["Flat", "as_text", "flatten_spans", "inherit", "labels_inside", "own_label", "pieces_and_inside", "span_pieces", "stage_labels", "thread_order", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
+__all__ = ["Flat", "as_text", "flatten_spans", "inherit", "labels_inside", "own_label", "pieces_and_inside", "span_pieces", "stage_labels", "thread_codes", "thread_order", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
 
 #: Stages pipeprobe times by itself (the DataLoader hooks' and ``Probe.step``'s); their own time is what your
 #: stages inside them left.
@@ -179,6 +179,46 @@ def thread_order(start: np.ndarray, end: np.ndarray, thread: np.ndarray) -> np.n
     th, s0, e0 = thread[o], start[o], end[o]
     in_order = (th[1:] != th[:-1]) | (s0[1:] > s0[:-1]) | ((s0[1:] == s0[:-1]) & (e0[1:] <= e0[:-1]))
     return o if in_order.all() else np.lexsort((np.arange(len(start)), -end, start, thread))
+
+
+def thread_codes(spans: pd.DataFrame, rows: np.ndarray | None = None, sort: bool = False) -> np.ndarray:
+    """Per span (of ``rows``, or all), a code of its thread ``(rank, pid, tid)``: ``groupby(...).ngroup()``.
+
+    Threads are numbered in order of first appearance (``sort=False``) or of
+    ``(rank, pid, tid)`` (``sort=True``), as pandas numbers groups. Spans come
+    in long runs of one thread (a file per process), so only the first span of
+    each run is grouped, and the codes repeated: no hashing of every row.
+
+    Examples
+    --------
+    >>> sp = pd.DataFrame({"rank": [0, 0, 0, 0], "pid": [9, 9, 4, 9], "tid": [1, 1, 1, 2]})
+    >>> thread_codes(sp).tolist(), thread_codes(sp, sort=True).tolist(), thread_codes(sp, np.array([2, 3])).tolist()
+    ([0, 0, 1, 2], [1, 1, 0, 2], [0, 1])
+    """
+    keys = ("rank", "pid", "tid")
+    n = len(spans)
+    if n == 0 or (rows is not None and len(rows) == 0):
+        return np.zeros(0, np.int64)
+    cols = [spans[c].to_numpy() for c in keys]
+    change = np.zeros(n, bool)
+    change[0] = True
+    for c in cols:
+        change[1:] |= c[1:] != c[:-1]
+    head = np.flatnonzero(change)
+    heads = pd.DataFrame({k: c[head] for k, c in zip(keys, cols, strict=True)})
+    per_head = heads.groupby(list(keys), sort=sort or rows is not None, observed=True).ngroup().to_numpy(np.int64)
+    code = np.repeat(per_head, np.diff(np.append(head, n)))
+    if rows is None:
+        return code
+    code = code[rows]  # codes in key order; renumbered by first appearance among the rows (or kept sorted)
+    if sort:
+        first = np.unique(code)
+    else:
+        sub_head = np.flatnonzero(np.r_[True, code[1:] != code[:-1]])
+        first = pd.unique(code[sub_head])
+    lut = np.zeros(int(per_head.max()) + 1, np.int64)
+    lut[first] = np.arange(len(first))
+    return lut[code]
 
 
 def _is_flat(start: np.ndarray, end: np.ndarray, thread: np.ndarray, order: np.ndarray) -> bool:
@@ -332,7 +372,7 @@ def inherit(values: np.ndarray, parent: np.ndarray, depth: np.ndarray) -> np.nda
     [7, 7, 7]
     """
     out = np.asarray(values, np.int64).copy()
-    if not len(out):
+    if not len(out) or not (parent >= 0).any():  # nothing nests: every span keeps its own
         return out
     by_level = np.argsort(depth, kind="stable")
     cuts = np.searchsorted(depth[by_level], np.arange(1, int(depth.max()) + 2))  # where levels 1, 2, ... begin
@@ -499,11 +539,7 @@ class _Cut:
         """Cut the spans at ``rows`` (all when None), reading only the columns the cut needs."""
         if rows is not None:
             rows = np.asarray(rows, np.int64)
-            ids = pd.DataFrame({c: sp[c].to_numpy()[rows] for c in ("rank", "pid", "tid")}, copy=False)
-        else:
-            ids = sp
-        thread = ids.groupby(["rank", "pid", "tid"], sort=False, observed=True).ngroup().to_numpy(np.int64)
-        del ids
+        thread = thread_codes(sp, rows)
         start = sp["start_s"].to_numpy(np.float64)
         end = sp["end_s"].to_numpy(np.float64)
         flat = flatten_spans(start if rows is None else start[rows], end if rows is None else end[rows], thread)
@@ -551,6 +587,8 @@ def _own_cpu(cpu: np.ndarray | None, flat: Flat, piece_dur: np.ndarray, process_
         return np.full(len(flat.span), np.nan)
     n = len(cpu)
     has = flat.parent >= 0
+    if not has.any() and len(flat.span) == n and (np.bincount(flat.span, minlength=n) == 1).all():
+        return np.maximum(0.0, cpu)[flat.span]  # nothing nests, one piece a span: its own CPU (as below, faster)
     in_kids = np.bincount(flat.parent[has], weights=np.nan_to_num(cpu[has]), minlength=n)
     own = np.maximum(0.0, cpu - in_kids)
     own_dur = np.bincount(flat.span, weights=piece_dur, minlength=n)

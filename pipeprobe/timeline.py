@@ -89,7 +89,7 @@ import pandas as pd
 
 from ._nodecolumns import NODE_KINDS, SIDES, EdgeColumns, NodeColumns, narrow
 from .lanes import thread_lanes
-from .nesting import flatten_spans, inherit, stage_labels, thread_order
+from .nesting import flatten_spans, inherit, stage_labels, thread_codes, thread_order
 
 if TYPE_CHECKING:  # pragma: no cover
     import networkx
@@ -440,8 +440,7 @@ def _span_arrays(sp: pd.DataFrame) -> _Spans:
     is_step = code == (cats.index("step") if "step" in cats else -2)
     if "delivery" not in cats:
         cats.append("delivery")
-    th = (sp.groupby(["rank", "pid", "tid"], sort=True, observed=True).ngroup().to_numpy(np.int32)
-          if n_sp else np.zeros(0, np.int32))
+    th = thread_codes(sp, sort=True).astype(np.int32)
     lanes, lane = thread_lanes(sp)
     n_th = int(th.max()) + 1 if n_sp else 0
     first = np.full(n_th, -1, np.int64)
