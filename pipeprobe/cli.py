@@ -173,7 +173,8 @@ def _report_run(args: argparse.Namespace) -> int:
 
     if _sliced(args):
         return _sliced_report_run(args)
-    keep_freed_memory()
+    if args.own_process:
+        keep_freed_memory()
     path = None
     with progress("report", enabled=not args.quiet):  # shown only past a couple of seconds
         analysis = analyze(args.run_dir)
@@ -203,8 +204,9 @@ def keep_freed_memory() -> bool:
     A large report allocates tens of GB of short-lived arrays; glibc serves each large one from fresh
     ``mmap`` pages and hands it back on ``free``, so the kernel zeroes new pages for the next (half the
     CPU time of a 10 M-span report). With ``M_MMAP_MAX`` 0 and a 2 GiB trim threshold, freed arrays
-    are reused instead. Never called in a training process. Returns whether it was applied (Linux with
-    glibc, and no ``MALLOC_*`` tuning in the environment); silently skipped elsewhere.
+    are reused instead. Called only in the ``pipeprobe report`` process itself (``main()`` with no
+    arguments), never in a training process or a program that calls ``main([...])``. Returns whether it
+    was applied (Linux with glibc, and no ``MALLOC_*`` tuning in the environment); skipped elsewhere.
     """
     try:
         is_glibc = os.confstr("CS_GNU_LIBC_VERSION") or ""
@@ -384,6 +386,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; return the exit code."""
     parser = build_parser()
     args = parser.parse_args(argv)
+    args.own_process = argv is None  # the command line's own process (not main([...]) inside another program)
     previous = warnings.showwarning
     warnings.showwarning = _one_line_warning
     try:
