@@ -652,8 +652,7 @@ def _slot_edges(n: _Nodes) -> _Pairs:
     if not len(pw) or not len(loop):
         return none
     # each (batch, thread)'s first node: pw ascends, so a pair's first occurrence is its lowest id
-    _, first = np.unique((n.batch[pw] + 1) * (len(n.th_rank) + 1) + n.th[pw], return_index=True)
-    hd = np.sort(pw[first])
+    hd = pw[~pd.Index((n.batch[pw] + 1) * (len(n.th_rank) + 1) + n.th[pw]).duplicated(keep="first")]  # no sort
     prev = np.full(len(n.start), -1, np.int64)
     a_, b_ = _consecutive(n.thread_order, n.th[n.thread_order])
     prev[b_] = a_
