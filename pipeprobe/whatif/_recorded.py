@@ -337,8 +337,8 @@ def loader_tasks(spans: _UserSpans, batches: _Batches, keep: frozenset[str]) -> 
     first, last = np.full(nb, np.nan), np.full(nb, np.nan)
     if len(k):
         g = pd.DataFrame({"k": k, "s": spans.start_s[side], "e": spans.end_s[side]}).groupby("k")
-        first[g["s"].min().index.to_numpy()] = g["s"].min().to_numpy()
-        last[g["e"].max().index.to_numpy()] = g["e"].max().to_numpy()
+        lo, hi = g["s"].min(), g["e"].max()
+        first[lo.index.to_numpy()], last[hi.index.to_numpy()] = lo.to_numpy(), hi.to_numpy()
     if spans.inline:  # the consumer ran the task inside its wait: the whole wait is the task
         if np.isnan(first).all():
             ld[:, 0] = batches.wait_s
@@ -365,9 +365,15 @@ def batch_workers(spans: _UserSpans, loader: _LoaderTasks) -> _BatchWorkers:
     side = spans.worker_side
     k = spans.position[side]
     codes, uniq = pd.factorize(spans.thread[side])
-    firsts = pd.DataFrame({"k": k, "w": codes, "s": spans.start_s[side]}).sort_values("s").drop_duplicates("k")
-    wk[firsts["k"].to_numpy()] = firsts["w"].to_numpy()
-    spread = pd.DataFrame({"k": k, "w": codes}).groupby("k")["w"].nunique()
+    start = spans.start_s[side]
+    # each batch's earliest span (the first in span order among equal starts): no sort of the spans
+    earliest = np.full(nb, np.inf)
+    np.minimum.at(earliest, k, start)
+    at = np.flatnonzero(start == earliest[k])
+    at = at[~pd.Index(k[at]).duplicated(keep="first")]
+    wk[k[at]] = codes[at]
+    pairs = pd.unique(k * max(1, len(uniq)) + codes)  # the distinct (batch, worker) pairs
+    spread = np.bincount(pairs // max(1, len(uniq)), minlength=nb)
     notes: tuple[str, ...] = ()
     if (spread > 1).any():
         notes = (
