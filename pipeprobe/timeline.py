@@ -503,7 +503,10 @@ def _umbrellas(s: _Spans, d: _Deliveries) -> np.ndarray:
     A stage inside a step is no umbrella: it is a piece of the step's time (:func:`_innermost`).
     """
     umbrella = np.zeros(len(s.start), bool)
-    u_idx = np.flatnonzero(s.user)
+    st = np.flatnonzero(s.is_step)
+    on = np.zeros(len(s.th_rank), bool)  # threads with a delivery or a step: only their stages can be umbrellas
+    on[d.th], on[s.th[st]] = True, True
+    u_idx = np.flatnonzero(s.user & on[s.th])
     if not len(u_idx):
         return umbrella
     left = pd.DataFrame({"t": s.start[u_idx], "th": s.th[u_idx], "i": u_idx}).sort_values("t", kind="stable")
@@ -513,7 +516,6 @@ def _umbrellas(s: _Spans, d: _Deliveries) -> np.ndarray:
         a, ii = j["a"].to_numpy(np.float64), j["i"].to_numpy(np.int64)
         hit = ~np.isnan(a)
         umbrella[ii[hit]] = a[hit] < s.end[ii[hit]]
-    st = np.flatnonzero(s.is_step)
     if len(st):  # the first step starting at or after the stage also ends by the stage's end
         right = pd.DataFrame({"t": s.start[st], "th": s.th[st], "e": s.end[st]}).sort_values("t", kind="stable")
         j = pd.merge_asof(left, right, on="t", by="th", direction="forward")
