@@ -11,7 +11,7 @@ by tracemalloc in one extra run. Targets (issue #15), on the 2-core
 development machine: at 10 M spans, at most 60 s and 4 GiB peak resident
 memory for the whole report.
 
-Run: ``python bench/bench_analysis.py [--spans N] [--repeats R] [--traced] [--run DIR]``
+Run: ``python bench/bench_analysis.py [--spans N] [--repeats R] [--traced] [--run DIR] [--plain-malloc]``
 """
 
 from __future__ import annotations
@@ -33,6 +33,7 @@ from _synth import write_many_spans  # noqa: E402
 
 import pipeprobe  # noqa: E402
 from pipeprobe import analysis as _analysis  # noqa: E402
+from pipeprobe.cli import keep_freed_memory  # noqa: E402
 from pipeprobe.critical import critical_path  # noqa: E402
 from pipeprobe.report import Report, print_report  # noqa: E402
 from pipeprobe.stagestats import stage_stats  # noqa: E402
@@ -86,7 +87,11 @@ def main() -> None:
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--traced", action="store_true", help="one extra run under tracemalloc (slow)")
     ap.add_argument("--run", type=Path, help="analyse this run folder instead of writing one")
+    ap.add_argument("--plain-malloc", action="store_true",
+                    help="leave glibc's defaults (the CLI's report process keeps freed memory: cli.keep_freed_memory)")
     args = ap.parse_args()
+    if not args.plain_malloc:
+        print(f"glibc keeps freed memory, as in `pipeprobe report`: {keep_freed_memory()}")
     with tempfile.TemporaryDirectory() as tmp:
         run_dir = args.run or write_many_spans(Path(tmp) / "run", n_spans=args.spans)
         results = []

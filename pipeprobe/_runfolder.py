@@ -299,6 +299,10 @@ def _process_header(folder: Folder, bin_path: Path, rank: int, headers: dict[int
     return ph
 
 
+#: A span record as one opaque item of its size (a fast copy of selected records).
+_RAW_SPAN = np.dtype((np.void, tf.SPAN_RECORD.itemsize))
+
+
 def read_span_records(path: Path, ph: tf.ProcessHeader, axis: TimeAxis, problems: Problems) -> Records:
     """Read a span file in bounded pieces, dropping (and counting) records that cannot be true."""
     rf = tf.open_records(path, tf.CONTENT_SPANS)
@@ -322,7 +326,11 @@ def read_span_records(path: Path, ph: tf.ProcessHeader, axis: TimeAxis, problems
         unknown, outside, reversed_ = unknown + int(bad.sum()), outside + int(out.sum()), reversed_ + int(rev.sum())
         keep = ~(bad | out | rev)
         k = int(keep.sum())
-        recs_out[n:n + k], start_out[n:n + k], end_out[n:n + k] = recs[keep], start_ns[keep], end_ns[keep]
+        if k == len(recs):  # the usual chunk: every record kept, copied as it is
+            recs_out[n:n + k], start_out[n:n + k], end_out[n:n + k] = recs, start_ns, end_ns
+        else:  # records as opaque bytes: numpy picks those of a structured type field by field, far slower
+            recs_out[n:n + k] = recs.view(_RAW_SPAN)[keep].view(tf.SPAN_RECORD)
+            start_out[n:n + k], end_out[n:n + k] = start_ns[keep], end_ns[keep]
         n += k
         seen = True
     if unknown:

@@ -13,6 +13,9 @@ import math
 import os
 from dataclasses import dataclass
 
+import numpy as np
+import pandas as pd
+
 from ._progress import progress, step
 from .critical import DELIVERY, GAP, PACE_SPEEDUP, CriticalPath
 from .load import Run, load
@@ -167,14 +170,15 @@ def workers_restarted(run: Run) -> bool:
     sp = run.spans
     if sp.empty or "role" not in sp:
         return False
-    w = sp.loc[(sp["role"] == "worker") & (sp["epoch"] >= 0), ["epoch", "pid"]]  # two columns, not all
-    seen: set[int] = set()
-    for i, (_, pids) in enumerate(w.groupby("epoch", sort=True)["pid"]):
-        now = set(int(p) for p in pids.unique())
-        if i > 0 and now - seen:
-            return True
-        seen |= now
-    return False
+    epoch = sp["epoch"].to_numpy(np.int64)
+    w = np.flatnonzero((sp["role"] == "worker").to_numpy() & (epoch >= 0))
+    if not len(w):
+        return False
+    epoch = epoch[w]
+    pid, pids = pd.factorize(sp["pid"].to_numpy(np.int64)[w])
+    first = np.full(len(pids), np.iinfo(np.int64).max)
+    np.minimum.at(first, pid, epoch)  # each worker process's first epoch
+    return bool((first > epoch.min()).any())  # a process whose first epoch came after the run's first
 
 
 def suggest_actions(critical: CriticalPath, stalls: Stalls, stages: StageStats, *,

@@ -48,7 +48,7 @@ from .record._loaders import COLLATE_STAGE, FETCH_STAGE
 #: The training step's stage name (``Probe.step``): a reserved stage, timed by pipeprobe.
 STEP_STAGE = "step"
 
-__all__ = ["Flat", "as_text", "flatten_spans", "inherit", "labels_inside", "own_label", "span_pieces", "stage_labels", "thread_order", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
+__all__ = ["Flat", "as_text", "flatten_spans", "inherit", "labels_inside", "own_label", "pieces_and_inside", "span_pieces", "stage_labels", "thread_codes", "thread_order", "PIECE_COLUMNS", "AUTOMATIC_STAGES"]
 
 #: Stages pipeprobe times by itself (the DataLoader hooks' and ``Probe.step``'s); their own time is what your
 #: stages inside them left.
@@ -179,6 +179,46 @@ def thread_order(start: np.ndarray, end: np.ndarray, thread: np.ndarray) -> np.n
     th, s0, e0 = thread[o], start[o], end[o]
     in_order = (th[1:] != th[:-1]) | (s0[1:] > s0[:-1]) | ((s0[1:] == s0[:-1]) & (e0[1:] <= e0[:-1]))
     return o if in_order.all() else np.lexsort((np.arange(len(start)), -end, start, thread))
+
+
+def thread_codes(spans: pd.DataFrame, rows: np.ndarray | None = None, sort: bool = False) -> np.ndarray:
+    """Per span (of ``rows``, or all), a code of its thread ``(rank, pid, tid)``: ``groupby(...).ngroup()``.
+
+    Threads are numbered in order of first appearance (``sort=False``) or of
+    ``(rank, pid, tid)`` (``sort=True``), as pandas numbers groups. Spans come
+    in long runs of one thread (a file per process), so only the first span of
+    each run is grouped, and the codes repeated: no hashing of every row.
+
+    Examples
+    --------
+    >>> sp = pd.DataFrame({"rank": [0, 0, 0, 0], "pid": [9, 9, 4, 9], "tid": [1, 1, 1, 2]})
+    >>> thread_codes(sp).tolist(), thread_codes(sp, sort=True).tolist(), thread_codes(sp, np.array([2, 3])).tolist()
+    ([0, 0, 1, 2], [1, 1, 0, 2], [0, 1])
+    """
+    keys = ("rank", "pid", "tid")
+    n = len(spans)
+    if n == 0 or (rows is not None and len(rows) == 0):
+        return np.zeros(0, np.int64)
+    cols = [spans[c].to_numpy() for c in keys]
+    change = np.zeros(n, bool)
+    change[0] = True
+    for c in cols:
+        change[1:] |= c[1:] != c[:-1]
+    head = np.flatnonzero(change)
+    heads = pd.DataFrame({k: c[head] for k, c in zip(keys, cols, strict=True)})
+    per_head = heads.groupby(list(keys), sort=sort or rows is not None, observed=True).ngroup().to_numpy(np.int64)
+    code = np.repeat(per_head, np.diff(np.append(head, n)))
+    if rows is None:
+        return code
+    code = code[rows]  # codes in key order; renumbered by first appearance among the rows (or kept sorted)
+    if sort:
+        first = np.unique(code)
+    else:
+        sub_head = np.flatnonzero(np.r_[True, code[1:] != code[:-1]])
+        first = pd.unique(code[sub_head])
+    lut = np.zeros(int(per_head.max()) + 1, np.int64)
+    lut[first] = np.arange(len(first))
+    return lut[code]
 
 
 def _is_flat(start: np.ndarray, end: np.ndarray, thread: np.ndarray, order: np.ndarray) -> bool:
@@ -332,7 +372,7 @@ def inherit(values: np.ndarray, parent: np.ndarray, depth: np.ndarray) -> np.nda
     [7, 7, 7]
     """
     out = np.asarray(values, np.int64).copy()
-    if not len(out):
+    if not len(out) or not (parent >= 0).any():  # nothing nests: every span keeps its own
         return out
     by_level = np.argsort(depth, kind="stable")
     cuts = np.searchsorted(depth[by_level], np.arange(1, int(depth.max()) + 2))  # where levels 1, 2, ... begin
@@ -343,7 +383,8 @@ def inherit(values: np.ndarray, parent: np.ndarray, depth: np.ndarray) -> np.nda
     return out
 
 
-def span_pieces(spans: pd.DataFrame, columns: Sequence[str] | None = None) -> pd.DataFrame:
+def span_pieces(spans: pd.DataFrame, columns: Sequence[str] | None = None,
+                rows: np.ndarray | None = None) -> pd.DataFrame:
     """The pieces of a run's spans: each thread's time given to the innermost span running.
 
     Parameters
@@ -354,6 +395,9 @@ def span_pieces(spans: pd.DataFrame, columns: Sequence[str] | None = None) -> pd
     columns : sequence of str, optional
         The columns of ``spans`` to carry (default: all of them); the piece
         columns are always there. Fewer columns, less memory on a large run.
+    rows : ndarray of int, optional
+        The positions of the spans to cut (default: all): the same pieces as
+        ``span_pieces(spans.iloc[rows])``, without that copy of the spans.
 
     Returns
     -------
@@ -380,23 +424,43 @@ def span_pieces(spans: pd.DataFrame, columns: Sequence[str] | None = None) -> pd
     .. [1] Knuth, D. E. (1997). The Art of Computer Programming, Vol. 1, 2.3
        (a node's own time: its span less its children's).
     """
+    return pieces_and_inside(spans, columns, rows, inside=False)[0]
+
+
+def pieces_and_inside(spans: pd.DataFrame, columns: Sequence[str] | None = None, rows: np.ndarray | None = None,
+                      inside: bool = True) -> tuple[pd.DataFrame, dict[str, tuple[str, ...]]]:
+    """:func:`span_pieces` and :func:`labels_inside` of the same spans, from one cut (half the work of the two).
+
+    Examples
+    --------
+    >>> sp = pd.DataFrame({"stage": ["fetch", "augment"], "start_s": [0.0, 0.2], "end_s": [1.0, 0.8],
+    ...                    "rank": 0, "pid": 1, "tid": 1})
+    >>> p, held = pieces_and_inside(sp, columns=("stage",), rows=np.array([0, 1]))
+    >>> p["label"].tolist(), held
+    (['fetch, outside your stages', 'augment', 'fetch, outside your stages'], {'fetch': ('augment', 'fetch, outside your stages')})
+    """
     sp = spans.reset_index(drop=True)
     carry = list(sp.columns) if columns is None else [c for c in sp.columns if c in set(columns)]
-    if sp.empty:
-        return sp[carry].assign(span=np.zeros(0, np.int64), label=pd.Categorical([]))
-    flat, code, names, labels = _flatten_frame(sp)
+    if rows is not None and len(rows) == len(sp) and bool((np.diff(rows) == 1).all()):
+        rows = None  # every row, in order: no index needed
+    if (len(sp) if rows is None else len(rows)) == 0:
+        return sp.iloc[:0][carry].assign(span=np.zeros(0, np.int64), label=pd.Categorical([])), {}
+    cut = _Cut.of(sp, rows)
+    flat, code = cut.flat, cut.code
+    at = flat.span if rows is None else np.asarray(rows, np.int64)[flat.span]  # the pieces' rows of ``spans``
     dur = flat.end - flat.start
     # column by column (categoricals stay codes): no copy of the columns a piece replaces
-    out = {c: (None if c in PIECE_COLUMNS else sp[c].array.take(flat.span)) for c in carry}
+    out = {c: (None if c in PIECE_COLUMNS else sp[c].array.take(at)) for c in carry}
     out["span"] = flat.span
-    cats, label_code = np.unique(labels.astype(str), return_inverse=True)
+    cats, label_code = np.unique(cut.labels.astype(str), return_inverse=True)
     out["label"] = pd.Categorical.from_codes(label_code[code[flat.span]], categories=list(cats))
     out["start_s"], out["end_s"], out["dur_s"] = flat.start, flat.end, dur
-    out["cpu_s"] = _own_cpu(sp, flat, dur, code == (list(names).index(STEP_STAGE) if STEP_STAGE in names else -1))
+    step = code == (list(cut.names).index(STEP_STAGE) if STEP_STAGE in cut.names else -1)
+    out["cpu_s"] = _own_cpu(cut.column(sp, "cpu_s", np.float64), flat, dur, step)
     for col in ("sample_id", "batch_id", "epoch"):
         if col in carry:
-            out[col] = inherit(sp[col].to_numpy(np.int64), flat.parent, flat.depth)[flat.span]
-    return pd.DataFrame(out, copy=False)  # fresh arrays: no second copy of the pieces
+            out[col] = inherit(cut.column(sp, col, np.int64), flat.parent, flat.depth)[flat.span]
+    return pd.DataFrame(out, copy=False), (cut.inside() if inside else {})  # fresh arrays: no second copy
 
 
 def labels_inside(spans: pd.DataFrame) -> dict[str, tuple[str, ...]]:
@@ -414,23 +478,7 @@ def labels_inside(spans: pd.DataFrame) -> dict[str, tuple[str, ...]]:
     {'augment': ('augment (own time)', 'resize'), 'fetch': ('augment (own time)', 'fetch, outside your stages', 'resize')}
     """
     sp = spans.reset_index(drop=True)
-    if sp.empty:
-        return {}
-    flat, code, names, labels = _flatten_frame(sp)
-    if not (flat.children > 0).any():
-        return {}
-    k = len(names)
-    piece_code = code[flat.span]
-    pairs = [piece_code * k + piece_code]  # (stage around, stage of the piece) as one int
-    up = flat.parent[flat.span]
-    while (up >= 0).any():  # one step up per nesting level, all pieces at once
-        has = up >= 0
-        pairs.append(code[up[has]] * k + piece_code[has])
-        up = np.where(has, flat.parent[np.maximum(up, 0)], -1)
-    pair = np.unique(np.concatenate(pairs))
-    outer, inner = pair // k, pair % k
-    enclosing = np.unique(code[flat.children > 0])
-    return {str(names[c]): tuple(sorted(str(labels[i]) for i in inner[outer == c])) for c in enclosing}
+    return _Cut.of(sp, None).inside() if len(sp) else {}
 
 
 def as_text(values: pd.Series) -> np.ndarray:
@@ -475,28 +523,72 @@ def stage_labels(names: Sequence[str], code: np.ndarray, children: np.ndarray) -
     return np.array([own_label(str(n)) if e else str(n) for n, e in zip(names, enclosing, strict=True)], dtype=object)
 
 
-def _flatten_frame(sp: pd.DataFrame) -> tuple[Flat, np.ndarray, np.ndarray, np.ndarray]:
-    """:func:`flatten_spans` of a span frame: ``(flat, stage code per span, stage names, label per name)``."""
-    thread = sp.groupby(["rank", "pid", "tid"], sort=False, observed=True).ngroup().to_numpy(np.int64)
-    flat = flatten_spans(sp["start_s"].to_numpy(np.float64), sp["end_s"].to_numpy(np.float64), thread)
-    cat = sp["stage"].astype("category").cat
-    names = np.array([str(x) for x in cat.categories], dtype=object)
-    code = cat.codes.to_numpy(np.int64)
-    return flat, code, names, stage_labels(names, code, flat.children)
+@dataclass(frozen=True)
+class _Cut:
+    """:func:`flatten_spans` of a span frame (of its ``rows``, or all): the pieces, each span's stage code,
+    the stage names and the label of each name."""
+
+    flat: Flat
+    code: np.ndarray
+    names: np.ndarray
+    labels: np.ndarray
+    rows: np.ndarray | None
+
+    @classmethod
+    def of(cls, sp: pd.DataFrame, rows: np.ndarray | None) -> _Cut:
+        """Cut the spans at ``rows`` (all when None), reading only the columns the cut needs."""
+        if rows is not None:
+            rows = np.asarray(rows, np.int64)
+        thread = thread_codes(sp, rows)
+        start = sp["start_s"].to_numpy(np.float64)
+        end = sp["end_s"].to_numpy(np.float64)
+        flat = flatten_spans(start if rows is None else start[rows], end if rows is None else end[rows], thread)
+        cat = sp["stage"].astype("category").cat
+        names = np.array([str(x) for x in cat.categories], dtype=object)
+        code = cat.codes.to_numpy(np.int64)
+        if rows is not None:
+            code = code[rows]
+        return cls(flat, code, names, stage_labels(names, code, flat.children), rows)
+
+    def column(self, sp: pd.DataFrame, name: str, dtype: type) -> np.ndarray | None:
+        """Per cut span, column ``name`` of ``sp`` (None when ``sp`` has no such column)."""
+        if name not in sp:
+            return None
+        values = sp[name].to_numpy(dtype)
+        return values if self.rows is None else values[self.rows]
+
+    def inside(self) -> dict[str, tuple[str, ...]]:
+        """:func:`labels_inside` of the cut spans."""
+        flat, code, names, labels = self.flat, self.code, self.names, self.labels
+        if not (flat.children > 0).any():
+            return {}
+        k = len(names)
+        piece_code = code[flat.span]
+        pairs = [piece_code * k + piece_code]  # (stage around, stage of the piece) as one int
+        up = flat.parent[flat.span]
+        while (up >= 0).any():  # one step up per nesting level, all pieces at once
+            has = up >= 0
+            pairs.append(code[up[has]] * k + piece_code[has])
+            up = np.where(has, flat.parent[np.maximum(up, 0)], -1)
+        pair = np.unique(np.concatenate(pairs))
+        outer, inner = pair // k, pair % k
+        enclosing = np.unique(code[flat.children > 0])
+        return {str(names[c]): tuple(sorted(str(labels[i]) for i in inner[outer == c])) for c in enclosing}
 
 
-def _own_cpu(sp: pd.DataFrame, flat: Flat, piece_dur: np.ndarray, process_clock: np.ndarray) -> np.ndarray:
+def _own_cpu(cpu: np.ndarray | None, flat: Flat, piece_dur: np.ndarray, process_clock: np.ndarray) -> np.ndarray:
     """Per piece: its span's CPU time less its children's, shared among the span's pieces by duration.
 
     ``process_clock`` marks spans whose CPU time is the process's, all threads (the step: its
     math-library pools work while the stages inside it run): their CPU beyond their children's is
     shared by duration among all pieces inside them, theirs and their stages', not theirs alone.
     """
-    if "cpu_s" not in sp:
+    if cpu is None:
         return np.full(len(flat.span), np.nan)
-    cpu = sp["cpu_s"].to_numpy(np.float64)
     n = len(cpu)
     has = flat.parent >= 0
+    if not has.any() and len(flat.span) == n and (np.bincount(flat.span, minlength=n) == 1).all():
+        return np.maximum(0.0, cpu)[flat.span]  # nothing nests, one piece a span: its own CPU (as below, faster)
     in_kids = np.bincount(flat.parent[has], weights=np.nan_to_num(cpu[has]), minlength=n)
     own = np.maximum(0.0, cpu - in_kids)
     own_dur = np.bincount(flat.span, weights=piece_dur, minlength=n)

@@ -108,8 +108,7 @@ def _stage_pieces(run: Run) -> pd.DataFrame:
     timer) counts the steps as its children, as it counts stages inside it.
     """
     sp = run.spans
-    return span_pieces(sp.loc[(sp["stage"] != "wait").to_numpy(), list(_PIECE_INPUT)],
-                       columns=("stage", "sample_id"))
+    return span_pieces(sp, columns=("stage", "sample_id"), rows=np.flatnonzero((sp["stage"] != "wait").to_numpy()))
 
 
 def _stage_key(sp: pd.DataFrame, leave_out: str) -> pd.Categorical:
@@ -183,10 +182,28 @@ def _label_sample_seconds(pieces: pd.DataFrame) -> tuple[np.ndarray, np.ndarray,
         values, uniques = pd.factorize(sample, sort=True)  # ranks sort as the ids do
         values = values.astype(np.int64)
     span = int(values.max()) + 1 if len(values) else 1
-    sums = pd.Series(pieces["dur_s"].to_numpy(np.float64)[has]).groupby(label * span + values, sort=False).sum()
-    key = sums.index.to_numpy(np.int64)
+    key, sums = _group_sums(label * span + values, pieces["dur_s"].to_numpy(np.float64)[has])
     ids = key % span if uniques is None else uniques[key % span]
-    return key // span, ids, sums.to_numpy(np.float64)
+    return key // span, ids, sums
+
+
+def _group_sums(key: np.ndarray, values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Each distinct key, in order of first appearance, and the sum of its values: the numbers of
+    ``pd.Series(values).groupby(key, sort=False).sum()`` (pandas' compensated sum), from one hash pass.
+
+    A key seen once keeps its value (what pandas' sum of one value gives, ``0.0 + value``); only the
+    keys seen more than once, or with a value that is not finite, are summed by pandas.
+    """
+    codes, uniques = pd.factorize(key)
+    first = np.empty(len(uniques), np.int64)
+    first[codes[::-1]] = np.arange(len(key) - 1, -1, -1)
+    sums = values[first] + 0.0
+    again = (np.bincount(codes, minlength=len(uniques)) > 1) | ~np.isfinite(sums)
+    if again.any():
+        rows = np.flatnonzero(again[codes])
+        part = pd.Series(values[rows]).groupby(codes[rows], sort=False).sum()
+        sums[part.index.to_numpy(np.int64)] = part.to_numpy(np.float64)
+    return np.asarray(uniques, np.int64), sums
 
 
 def _slowest(pieces: pd.DataFrame) -> pd.DataFrame:

@@ -89,7 +89,7 @@ import pandas as pd
 
 from ._nodecolumns import NODE_KINDS, SIDES, EdgeColumns, NodeColumns, narrow
 from .lanes import thread_lanes
-from .nesting import flatten_spans, inherit, stage_labels, thread_order
+from .nesting import flatten_spans, inherit, stage_labels, thread_codes, thread_order
 
 if TYPE_CHECKING:  # pragma: no cover
     import networkx
@@ -440,8 +440,7 @@ def _span_arrays(sp: pd.DataFrame) -> _Spans:
     is_step = code == (cats.index("step") if "step" in cats else -2)
     if "delivery" not in cats:
         cats.append("delivery")
-    th = (sp.groupby(["rank", "pid", "tid"], sort=True, observed=True).ngroup().to_numpy(np.int32)
-          if n_sp else np.zeros(0, np.int32))
+    th = thread_codes(sp, sort=True).astype(np.int32)
     lanes, lane = thread_lanes(sp)
     n_th = int(th.max()) + 1 if n_sp else 0
     first = np.full(n_th, -1, np.int64)
@@ -504,7 +503,10 @@ def _umbrellas(s: _Spans, d: _Deliveries) -> np.ndarray:
     A stage inside a step is no umbrella: it is a piece of the step's time (:func:`_innermost`).
     """
     umbrella = np.zeros(len(s.start), bool)
-    u_idx = np.flatnonzero(s.user)
+    st = np.flatnonzero(s.is_step)
+    on = np.zeros(len(s.th_rank), bool)  # threads with a delivery or a step: only their stages can be umbrellas
+    on[d.th], on[s.th[st]] = True, True
+    u_idx = np.flatnonzero(s.user & on[s.th])
     if not len(u_idx):
         return umbrella
     left = pd.DataFrame({"t": s.start[u_idx], "th": s.th[u_idx], "i": u_idx}).sort_values("t", kind="stable")
@@ -514,7 +516,6 @@ def _umbrellas(s: _Spans, d: _Deliveries) -> np.ndarray:
         a, ii = j["a"].to_numpy(np.float64), j["i"].to_numpy(np.int64)
         hit = ~np.isnan(a)
         umbrella[ii[hit]] = a[hit] < s.end[ii[hit]]
-    st = np.flatnonzero(s.is_step)
     if len(st):  # the first step starting at or after the stage also ends by the stage's end
         right = pd.DataFrame({"t": s.start[st], "th": s.th[st], "e": s.end[st]}).sort_values("t", kind="stable")
         j = pd.merge_asof(left, right, on="t", by="th", direction="forward")
@@ -653,8 +654,7 @@ def _slot_edges(n: _Nodes) -> _Pairs:
     if not len(pw) or not len(loop):
         return none
     # each (batch, thread)'s first node: pw ascends, so a pair's first occurrence is its lowest id
-    _, first = np.unique((n.batch[pw] + 1) * (len(n.th_rank) + 1) + n.th[pw], return_index=True)
-    hd = np.sort(pw[first])
+    hd = pw[~pd.Index((n.batch[pw] + 1) * (len(n.th_rank) + 1) + n.th[pw]).duplicated(keep="first")]  # no sort
     prev = np.full(len(n.start), -1, np.int64)
     a_, b_ = _consecutive(n.thread_order, n.th[n.thread_order])
     prev[b_] = a_

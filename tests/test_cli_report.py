@@ -99,3 +99,61 @@ def test_compare_escapes_control_characters(tmp_path, capsys):
     assert EXIT_OK == main(["compare", str(a), str(b)])
     out = capsys.readouterr().out
     assert (False, True) == ("\x1b" in out, "stage dec\\x1b[2Jode mean_s" in out)
+
+
+_MALLINFO = """
+import ctypes, sys
+import numpy as np
+from pipeprobe.cli import keep_freed_memory
+class Info(ctypes.Structure):
+    _fields_ = [(n, ctypes.c_size_t) for n in ("arena ordblks smblks hblks hblkhd usmblks fsmblks uordblks "
+                                                 "fordblks keepcost").split()]
+libc = ctypes.CDLL(None)
+libc.mallinfo2.restype = Info
+applied = keep_freed_memory() if sys.argv[1] == "keep" else False
+a = np.ones(2**24)  # 128 MiB
+print(int(applied), libc.mallinfo2().hblkhd >= a.nbytes)
+"""
+
+
+def _glibc_with_mallinfo2() -> bool:
+    import ctypes
+    import os
+    import sys
+
+    try:
+        return sys.platform.startswith("linux") and os.confstr("CS_GNU_LIBC_VERSION").startswith("glibc") and hasattr(
+            ctypes.CDLL(None), "mallinfo2")
+    except (ValueError, OSError, AttributeError):
+        return False
+
+
+class TestKeepFreedMemory:
+    @pytest.mark.skipif(not _glibc_with_mallinfo2(), reason="needs glibc 2.33 or later (mallinfo2)")
+    @pytest.mark.parametrize(("mode", "expected"), [("keep", "1 False"), ("plain", "0 True")])
+    def test_large_arrays_come_from_the_heap(self, mode, expected):
+        """After it, a 128 MiB array is no mmap chunk (glibc manual, mallopt: M_MMAP_MAX 0 disables mmap)."""
+        import os
+        import subprocess
+        import sys
+
+        env = {k: v for k, v in os.environ.items() if not k.startswith("MALLOC_")}
+        out = subprocess.run([sys.executable, "-c", _MALLINFO, mode], capture_output=True, text=True, env=env,
+                             check=True, timeout=120)
+        assert expected == out.stdout.strip()
+
+    def test_only_the_commands_own_in_memory_report(self, simple_run_dir, monkeypatch, capsys):
+        """main([...]) inside a program and the sliced report never retune the allocator; the CLI process does."""
+        import pipeprobe.cli as cli
+
+        calls = []
+        monkeypatch.setattr(cli, "keep_freed_memory", lambda: calls.append(1))
+        assert EXIT_OK == main(["report", str(simple_run_dir), "--json", "--slice-batches", "0"])
+        monkeypatch.setattr(cli.sys, "argv", ["pipeprobe", "report", str(simple_run_dir), "--json",
+                                              "--slice-batches", "1"])
+        assert EXIT_OK == main()
+        monkeypatch.setattr(cli.sys, "argv", ["pipeprobe", "report", str(simple_run_dir), "--json",
+                                              "--slice-batches", "0"])
+        assert EXIT_OK == main()
+        capsys.readouterr()
+        assert [1] == calls

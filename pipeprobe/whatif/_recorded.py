@@ -29,7 +29,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import ScenarioError
-from ..nesting import as_text, labels_inside, span_pieces
+from ..nesting import as_text, pieces_and_inside
 from ._contention import max_overlap, remove_contention, split_cpu
 from ._replay_path import CONSUMER_OVERHEAD, UNSTAGED, WORKER_OVERHEAD
 from .limits import MAX_PLAN_STAGES, OTHER_STAGES
@@ -277,10 +277,8 @@ def _batch_pieces(sp: pd.DataFrame, bid: np.ndarray) -> tuple[pd.DataFrame, dict
     ``step, outside your stages``; the step's CPU beyond its stages' is
     shared among all its pieces by duration (its CPU time is the process's).
     """
-    stage_spans = sp.loc[(sp["stage"] != "wait").to_numpy(), list(_PIECE_INPUT)]
-    inside = labels_inside(stage_spans)
-    pieces = span_pieces(stage_spans)
-    del stage_spans  # the pieces replace it: a large run holds one of the two at a time
+    rows = np.flatnonzero((sp["stage"] != "wait").to_numpy())
+    pieces, inside = pieces_and_inside(sp, columns=_PIECE_INPUT, rows=rows)  # one cut, no copy of the spans
     if not len(pieces):  # no stage or step spans at all: no pieces, with the columns the plan reads
         return sp.iloc[:0].assign(label=pd.Series(dtype=object)), inside
     of_batches = ((pieces["batch_id"] >= 0) & pieces["batch_id"].isin(bid)).to_numpy()
@@ -339,8 +337,8 @@ def loader_tasks(spans: _UserSpans, batches: _Batches, keep: frozenset[str]) -> 
     first, last = np.full(nb, np.nan), np.full(nb, np.nan)
     if len(k):
         g = pd.DataFrame({"k": k, "s": spans.start_s[side], "e": spans.end_s[side]}).groupby("k")
-        first[g["s"].min().index.to_numpy()] = g["s"].min().to_numpy()
-        last[g["e"].max().index.to_numpy()] = g["e"].max().to_numpy()
+        lo, hi = g["s"].min(), g["e"].max()
+        first[lo.index.to_numpy()], last[hi.index.to_numpy()] = lo.to_numpy(), hi.to_numpy()
     if spans.inline:  # the consumer ran the task inside its wait: the whole wait is the task
         if np.isnan(first).all():
             ld[:, 0] = batches.wait_s
@@ -367,9 +365,15 @@ def batch_workers(spans: _UserSpans, loader: _LoaderTasks) -> _BatchWorkers:
     side = spans.worker_side
     k = spans.position[side]
     codes, uniq = pd.factorize(spans.thread[side])
-    firsts = pd.DataFrame({"k": k, "w": codes, "s": spans.start_s[side]}).sort_values("s").drop_duplicates("k")
-    wk[firsts["k"].to_numpy()] = firsts["w"].to_numpy()
-    spread = pd.DataFrame({"k": k, "w": codes}).groupby("k")["w"].nunique()
+    start = spans.start_s[side]
+    # each batch's earliest span (the first in span order among equal starts): no sort of the spans
+    earliest = np.full(nb, np.inf)
+    np.minimum.at(earliest, k, start)
+    at = np.flatnonzero(start == earliest[k])
+    at = at[~pd.Index(k[at]).duplicated(keep="first")]
+    wk[k[at]] = codes[at]
+    pairs = pd.unique(k * max(1, len(uniq)) + codes)  # the distinct (batch, worker) pairs
+    spread = np.bincount(pairs // max(1, len(uniq)), minlength=nb)
     notes: tuple[str, ...] = ()
     if (spread > 1).any():
         notes = (
