@@ -96,10 +96,6 @@ class StageStats:
         return None if hit.empty else hit.iloc[0].to_dict()
 
 
-#: The span columns the stage pieces are cut from (fewer columns: less memory on a large run); the pieces
-#: carry on only the stage and the sample id.
-_PIECE_INPUT = ("stage", "start_s", "end_s", "rank", "pid", "tid", "sample_id")
-
 
 def _stage_pieces(run: Run) -> pd.DataFrame:
     """The stage and step spans (not waits) cut into the pieces of the innermost one running.

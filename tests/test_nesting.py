@@ -101,6 +101,31 @@ class TestFlatten:
         assert pytest.approx(0.9) == float(p["cpu_s"].sum())
 
 
+class TestInPlace:
+    @given(st.lists(st.tuples(st.integers(0, 40), st.integers(0, 12), st.integers(0, 2), st.sampled_from(
+        ["wait", "fetch", "decode", "step"])), min_size=1, max_size=30), st.integers(0, 2 ** 30))
+    @settings(max_examples=100, deadline=None)
+    def test_rows_cut_as_the_copy_would(self, rows, seed):
+        """span_pieces(spans, rows=r) and pieces_and_inside give the pieces of spans.iloc[r] exactly, and
+        thread_codes numbers threads as pandas' groupby(...).ngroup() does (pandas, the reference)."""
+        from pipeprobe.nesting import labels_inside, pieces_and_inside, thread_codes
+
+        n = len(rows)
+        sp = pd.DataFrame({"stage": pd.Categorical([r[3] for r in rows]), "start_s": [float(r[0]) for r in rows],
+                           "end_s": [float(r[0] + r[1]) for r in rows], "rank": 0, "pid": [r[2] % 2 for r in rows],
+                           "tid": [r[2] for r in rows], "sample_id": [-1 if r[1] % 3 else r[0] for r in rows],
+                           "batch_id": [r[0] // 10 if r[1] % 2 else -1 for r in rows], "cpu_s": [r[1] / 2 for r in rows]})
+        keep = np.flatnonzero(np.random.default_rng(seed).random(n) < 0.7)
+        copy = sp.iloc[keep].reset_index(drop=True)
+        expected = span_pieces(copy)
+        got, inside = pieces_and_inside(sp, rows=keep)
+        pd.testing.assert_frame_equal(expected, got[list(expected.columns)])
+        assert labels_inside(copy) == inside
+        for sort in (False, True):
+            ref = copy.groupby(["rank", "pid", "tid"], sort=sort).ngroup().to_numpy(np.int64)
+            assert ref.tolist() == thread_codes(sp, keep, sort=sort).tolist()
+
+
 class TestHandWorkedShares:
     def test_critical_path_shares(self, tmp_path):
         """Shares of the hand-worked run: augment 8/30, decode 6/30, fetch's own 6/30, collate 2/30, step 8/30."""
