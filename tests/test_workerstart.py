@@ -120,6 +120,26 @@ class TestTimedAtClose:
         assert 0.03 <= ws["collate_s"] < 0.3
         assert 0 < ws["latency_s"] < ws["first_batch_s"] and 0 < ws["handoff_s"] < ws["first_batch_s"]
 
+    def test_a_dataset_failing_after_the_first_batch_keeps_the_start_timed(self, tmp_path):
+        """A dataset that fails on its 10th item (the loop caught it): the worker's start is still timed from
+        the first batch, without a warning; the batch's way to the loop, which needs later batches, is not."""
+        class FailsLater(Counting):
+            def __getitem__(self, i):
+                if i == 9:
+                    raise OSError("item 9 unreadable")
+                return super().__getitem__(i)
+
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            loader = DataLoader(FailsLater(n=32, rounds=10), batch_size=8)
+            with pipeprobe.Probe(tmp_path / "run", report=False) as probe:
+                with pytest.raises(OSError, match="item 9"):
+                    for _batch in probe.watch(loader):
+                        pass
+        ws = _header(tmp_path / "run")["worker_start"]
+        assert ([], True, False) == ([str(w.message) for w in seen if "worker's start" in str(w.message)],
+                                     ws["first_batch_s"] > 0, "latency_s" in ws)
+
     def test_a_loader_with_workers_is_not_timed_again(self, tmp_path):
         """A DataLoader with workers shows their starts in its spans: no worker_start in the header."""
         _loop(DataLoader(Counting(n=16), batch_size=8, num_workers=1), tmp_path / "run", epochs=1)

@@ -179,9 +179,13 @@ def _timed_starts(one: Any, items: list | None) -> list[dict[str, Any]]:
         t1 = perf_counter()
         first = next(it)
         first_batch = perf_counter() - t1
-        way = _way_to_the_loop(it, first, first_batch) if stamped else {}
+        way, broke = {}, False
+        try:
+            way = _way_to_the_loop(it, first, first_batch) if stamped else {}
+        except Exception:  # noqa: BLE001 - a later batch the job's dataset cannot load: the start is still timed
+            broke = True
         t2 = perf_counter()
-        if items is not None:  # no batch left: this next() ends the epoch and stops the worker, as torch does
+        if items is not None and not broke:  # no batch left: this next() ends the epoch and stops the worker
             next(it, None)
         shutdown = getattr(it, "_shutdown_workers", None)
         if shutdown is not None:
