@@ -40,6 +40,22 @@ class TestDecision:
         assert 1.5 == pytest.approx(a.speedup, rel=0.06)
         assert "cores hold it back" in a.reason
 
+    def test_workers_restarted_every_epoch_cost_their_stops(self):
+        """30 ms tasks behind a 10 ms step, 3 epochs of 20 batches, each worker started at every epoch costing
+        the loop 50 ms to stop. By hand (bottleneck law per epoch, plus the stops): max(20 x 30 / w, 20 x 10)
+        ms + (w - 1) x 50 ms is 600, 350, 310, 350, 400 ms for w = 1..5 (ceil(20 / 3) = 7 tasks of 30 ms
+        for w = 3): three workers. More workers are slower here even on unlimited cores, so the count is
+        found by a scan, not a bisection against 64 workers (which replay slower than one)."""
+        from dataclasses import replace
+
+        from pipeprobe.whatif._lifecycle import WorkerLifecycle
+
+        plan = plan_from_durations([0.03] * 60, [0.01] * 60, epoch=[0] * 20 + [1] * 20 + [2] * 20, workers=1,
+                                   prefetch=2, cores=8)
+        plan = replace(plan, lifecycle=WorkerLifecycle(True, True, boot_s=(0.0,), fork_s=0.0, stop_s=0.05))
+        a = worker_advice(plan)
+        assert ("yes", 3, 3) == (a.more_workers, a.workers, a.unlimited_workers)
+
     def test_step_paced_run_gets_no(self):
         """5 ms tasks on 2 workers behind a 10 ms step: the step sets the pace, more workers gain nothing."""
         plan = plan_from_durations([0.005] * 100, [0.01] * 100, workers=2, prefetch=4, cores=8)

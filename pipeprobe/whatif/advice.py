@@ -7,9 +7,11 @@ disagree. Its steps:
 
 1. replay the recorded configuration (the yardstick); steps 2 and 3
    replay the first :data:`SEARCH_BATCHES` batches;
-2. with unlimited cores, bisect for the fewest workers whose replay is
-   within :data:`SETTLE_TOLERANCE` of 64 workers' (more workers never slow
-   the replay down there, so the wall time is monotone in the count);
+2. with unlimited cores, replay the counts from one upward until
+   :data:`SCAN_PATIENCE` counts in a row gain less than
+   :data:`SETTLE_TOLERANCE`, and take the fewest workers within it of the
+   fastest (not a bisection: workers started at every epoch cost the loop
+   their start and stop, so more can be slower even on unlimited cores);
 3. on this machine's cores, replay every count up to that one (counts past
    it only add tasks sharing the same cores) and take the fewest within
    :data:`SETTLE_TOLERANCE` of the fastest; replay that count, and step 2's
@@ -56,6 +58,9 @@ __all__ = ["WorkerAdvice", "worker_advice", "advised_actions", "advised_analysis
 SETTLE_TOLERANCE = 0.02
 #: Most workers the advice replays.
 MAX_ADVISED_WORKERS = 64
+#: The count scan of step 2 stops after this many counts in a row that did not make the replay faster
+#: by SETTLE_TOLERANCE (our choice: past an uneven split of shards or a start cost that outgrows the gain).
+SCAN_PATIENCE = 4
 #: The search replays the first this many batches (a few dozen replays stay quick on long runs); the
 #: counts it finds are then replayed on the whole plan, and every figure the advice states is from those.
 SEARCH_BATCHES = 1000
@@ -189,18 +194,30 @@ def _with_workers(plan: ReplayPlan, workers: int, cores: float | None = None) ->
 
 
 def _settled_count(plan: ReplayPlan) -> int:
-    """Step 2: fewest workers within SETTLE_TOLERANCE of 64 workers' replay at unlimited cores."""
-    best = _with_workers(plan, MAX_ADVISED_WORKERS, math.inf).wall_s
+    """Step 2: the fewest workers within SETTLE_TOLERANCE of the fastest count at unlimited cores.
+
+    The counts are replayed from one upward. More workers are not always
+    faster even on unlimited cores: each one started at every epoch costs
+    the loop its start and stop (:mod:`pipeprobe.whatif._lifecycle`), and an
+    iterable dataset split by shards loads unevenly on some counts. So the
+    scan goes on past a slower count and stops only when
+    :data:`SCAN_PATIENCE` counts in a row brought the fastest wall down by
+    less than SETTLE_TOLERANCE, or at :data:`MAX_ADVISED_WORKERS`.
+    """
+    walls: dict[int, float] = {}
+    anchor, since = math.inf, 0
+    for w in range(1, MAX_ADVISED_WORKERS + 1):
+        walls[w] = _with_workers(plan, w, math.inf).wall_s
+        if walls[w] < anchor * (1 - SETTLE_TOLERANCE):
+            anchor, since = walls[w], 0
+        else:
+            since += 1
+            if since >= SCAN_PATIENCE:
+                break
+    best = min(walls.values())
     if not math.isfinite(best):
         return MAX_ADVISED_WORKERS
-    lo, hi = 1, MAX_ADVISED_WORKERS
-    while lo < hi:
-        mid = (lo + hi) // 2
-        if _with_workers(plan, mid, math.inf).wall_s <= best * (1 + SETTLE_TOLERANCE):
-            hi = mid
-        else:
-            lo = mid + 1
-    return lo
+    return min(w for w, wall in walls.items() if wall <= best * (1 + SETTLE_TOLERANCE))
 
 
 def _decide(plan: ReplayPlan, base: Replay, advised: int, rep: Replay, unlimited: int,
