@@ -16,11 +16,16 @@ scenario the base configuration is recorded (``--record``: a
 ``pipeprobe.Probe`` opened right before the loop, ``probe.watch`` and
 ``probe.step``), the replay predicts the changed configuration from that
 recording, and the changed configuration is rerun for real WITHOUT
-pipeprobe. Base and rerun alternate, ``--reps`` times each, each in a fresh
-process, each started when the machine is quiet if it gets quiet within
-``--quiet-wait`` seconds; the table compares the median prediction with the
-median measured loop time, over all runs and over the quiet runs (other
-processes used less than a quarter core while it ran).
+pipeprobe. Each rerun runs right next to the base it is predicted from
+(:func:`repetition_plan`; order reversed on odd repetitions), ``--reps``
+times each, each in a fresh process, each started when the machine is quiet
+if it gets quiet within ``--quiet-wait`` seconds. A fixed workload timed in
+the bench's process right before and after every run (:func:`speed_probe`)
+says how fast the machine ran then. The table compares the median
+prediction with the median measured loop time, the median of each
+prediction against its own rerun ("paired"), and that with the two runs'
+speed probes taken out ("speed-corrected"), over all runs and over the
+quiet runs (other processes used less than a quarter core while it ran).
 
 Stalls: every recorded base run, and every job once per repetition under
 ``python -m pipeprobe run`` (unchanged but for its stage decorators), give
@@ -48,6 +53,8 @@ import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
+
+import numpy as np
 
 HERE = Path(__file__).resolve().parent
 JOBS = HERE / "realjobs"
@@ -109,8 +116,9 @@ class Row:
     """What the repetitions of one scenario gave."""
 
     scenario: Scenario
-    predicted: list[tuple[float, float, Any, float]] = field(default_factory=list)  # (s, other cores, range, miss)
-    measured: list[tuple[float, float]] = field(default_factory=list)  # (s, other cores)
+    # (s, other cores, range, miss, the machine's speed index while the base was recorded)
+    predicted: list[tuple[float, float, Any, float, float]] = field(default_factory=list)
+    measured: list[tuple[float, float, float]] = field(default_factory=list)  # (s, other cores, speed index)
     refused: str = ""
 
 
@@ -192,6 +200,29 @@ def _cpu_snapshot() -> tuple[float, float]:
     return busy, kids.ru_utime + kids.ru_stime
 
 
+def speed_probe(rounds: int = 5) -> float:
+    """Seconds of a fixed workload in this process (the median of ``rounds``): how fast the machine runs now.
+
+    PIL rotations and smoothing as the jobs' ``augment`` does, and a small
+    matrix product; about 30 ms a round. Timed right before and right after
+    every run, its mean over the session's median is that run's speed index.
+    """
+    from PIL import Image, ImageFilter
+
+    img = Image.new("RGB", (96, 96), (120, 160, 200))
+    a = np.arange(96 * 96, dtype=np.float32).reshape(96, 96) / 9216.0
+    times = []
+    for _ in range(rounds):
+        t0 = time.perf_counter()
+        x = img
+        for r in range(30):
+            x = x.rotate(3 + r % 5, resample=Image.BICUBIC).filter(ImageFilter.SMOOTH_MORE)
+        for _ in range(20):
+            a = (a @ a) / 96.0
+        times.append(time.perf_counter() - t0)
+    return statistics.median(times)
+
+
 def run_job(config: Config, data: dict[str, Path], *, record: Path | None = None, launch: Path | None = None,
             quiet_wait: float) -> dict[str, Any]:
     """Run the job in a fresh process; its JSON plus ``other_cores`` (what other processes used meanwhile).
@@ -205,15 +236,18 @@ def run_job(config: Config, data: dict[str, Path], *, record: Path | None = None
         cmd += ["--record", str(record)]
     if launch is not None:
         cmd = [sys.executable, "-m", "pipeprobe", "run", "--out", str(launch), "--quiet", "--", *cmd]
+    before = speed_probe()
     busy0, kids0 = _cpu_snapshot()
     t0 = time.monotonic()
     done = subprocess.run(cmd, capture_output=True, text=True, timeout=600)
     wall = time.monotonic() - t0
     busy1, kids1 = _cpu_snapshot()
+    after = speed_probe()
     if done.returncode != 0:
         raise RuntimeError(f"{config.job} {config.argv()} failed:\n{done.stderr[-2000:]}")
     out = json.loads(done.stdout.strip().splitlines()[-1])
     out["other_cores"] = max(0.0, ((busy1 - busy0) - (kids1 - kids0)) / wall)
+    out["probe_s"] = (before + after) / 2
     return out
 
 
@@ -272,48 +306,68 @@ class Stall:
     own_s: float
     other_cores: float
     item_cpu_s: float = float("nan")
+    probe_s: float = float("nan")
+
+
+def repetition_plan(rows: list[Row], rep: int) -> list[tuple[str, Config, Config | None]]:
+    """The runs of one repetition: each recorded base right next to the reruns predicted from it.
+
+    ``(kind, config, base)``: a base, then each target predicted from it (a
+    target of two bases is rerun next to each), then the ``pipeprobe run``
+    recordings; on odd repetitions every group and the order of the groups
+    are reversed, so a slow drift of the machine weighs on bases and reruns
+    alike.
+    """
+    groups: dict[Config, list[Config]] = {}
+    for row in rows:
+        if not row.refused:
+            targets = groups.setdefault(row.scenario.base, [])
+            if row.scenario.target not in targets:
+                targets.append(row.scenario.target)
+    plan = []
+    for base, targets in groups.items():
+        group = [("base", base, None)] + [("target", t, base) for t in targets]
+        plan.append(group[::-1] if rep % 2 else group)
+    plan.append([("launch", c, None) for c in launched(sorted({b.job for b in groups}))])
+    if rep % 2:
+        plan.reverse()
+    return [run for group in plan for run in group]
 
 
 def one_repetition(rows: list[Row], stalls: list[Stall], data: dict[str, Path], work: Path, rep: int,
                    quiet_wait: float) -> None:
-    """Record every base once, rerun every target once (order reversed on odd repetitions), predict."""
-    bases = list(dict.fromkeys(r.scenario.base for r in rows if not r.refused))
-    targets = list(dict.fromkeys(r.scenario.target for r in rows if not r.refused))
-    plan = [("base", c) for c in bases] + [("target", c) for c in targets]
-    plan += [("launch", c) for c in launched(sorted({c.job for c in bases}))]
-    if rep % 2:
-        plan.reverse()
-    recorded: dict[Config, tuple[Path, float]] = {}
-    measured: dict[Config, tuple[float, float]] = {}
-    for n, (kind, config) in enumerate(plan):
+    """Record every base once, rerun every target next to its base (:func:`repetition_plan`), predict."""
+    recorded: dict[Config, tuple[Path, float, float]] = {}
+    measured: dict[tuple[Config, Config], tuple[float, float, float]] = {}
+    for n, (kind, config, base) in enumerate(repetition_plan(rows, rep)):
         folder = work / f"rep{rep}-{n}-{kind}-{config.job}"
         if kind == "base":
             out = run_job(config, data, record=folder, quiet_wait=quiet_wait)
-            recorded[config] = (folder, out["other_cores"])
+            recorded[config] = (folder, out["other_cores"], out["probe_s"])
             stall, item = recorded_stall(folder)
             stalls.append(Stall(f"{config.job} {_short(config)} (Probe.watch)", stall, out["next_s"],
-                                out["other_cores"], item))
+                                out["other_cores"], item, out["probe_s"]))
         elif kind == "launch":
             out = run_job(config, data, launch=folder, quiet_wait=quiet_wait)
             stall, item = recorded_stall(folder)
             stalls.append(Stall(f"{config.job} {_short(config)} (pipeprobe run)", stall, out["next_s"],
-                                out["other_cores"], item))
+                                out["other_cores"], item, out["probe_s"]))
         else:
             out = run_job(config, data, quiet_wait=quiet_wait)
-            measured[config] = (out["wall_s"], out["other_cores"])
+            measured[(base, config)] = (out["wall_s"], out["other_cores"], out["probe_s"])
         with open(work / "runs.jsonl", "a", encoding="utf-8") as log:  # what each run measured, by folder
             log.write(json.dumps({"kind": kind, "folder": folder.name, "argv": config.argv(), **out}) + "\n")
     for row in rows:
         if row.refused:
             continue
-        folder, other = recorded[row.scenario.base]
+        folder, other, probe_s = recorded[row.scenario.base]
         try:
             seconds, span, miss = predict(folder, row.scenario)
         except LookupError as exc:
             row.refused = str(exc)
             continue
-        row.predicted.append((seconds, other, span, miss))
-        row.measured.append(measured[row.scenario.target])
+        row.predicted.append((seconds, other, span, miss, probe_s))
+        row.measured.append(measured[(row.scenario.base, row.scenario.target)])
 
 
 def launched(jobs: list[str]) -> list[Config]:
@@ -337,29 +391,45 @@ def _fmt_range(spans: list[Any]) -> str:
     return f"{statistics.median(s[0] for s in spans):.2f} to {statistics.median(s[1] for s in spans):.2f}"
 
 
-def scenario_table(rows: list[Row], keep: Any) -> tuple[list[str], list[float]]:
-    """Markdown lines of the prediction table over the runs ``keep(other_cores)`` admits, and the errors."""
-    lines = ["| job and scenario | predicted s | range s | measured s | error | in range | reruns' spread | runs A/B |",
-             "|---|---|---|---|---|---|---|---|"]
-    errors = []
+#: The three errors of a scenario row: medians against medians, the median of each base against the rerun
+#: made next to it, and the same with the machine's speed index of each run taken out.
+ERROR_KINDS = ("medians", "paired", "speed-corrected")
+
+
+def scenario_table(rows: list[Row], keep: Any) -> tuple[list[str], dict[str, list[float]]]:
+    """Markdown lines of the prediction table over the runs ``keep(other_cores)`` admits, and the errors by kind.
+
+    ``paired``: the median over repetitions of each prediction against the
+    rerun made right after (or before) its base. ``speed-corrected``: the same,
+    each prediction scaled by the speed probe's seconds around the rerun over
+    those around the base (:func:`speed_probe`), so that the machine running
+    faster or slower between the two does not count as the model's error.
+    """
+    lines = ["| job and scenario | predicted s | range s | measured s | error | paired | speed-corrected | in range "
+             "| reruns' spread | runs |", "|---|---|---|---|---|---|---|---|---|---|"]
+    errors: dict[str, list[float]] = {k: [] for k in ERROR_KINDS}
     for row in rows:
         name = row.scenario.name
         if row.refused:
-            lines.append(f"| {name} | {NOT_SUPPORTED} | - | - | - | - | - | - |")
+            lines.append(f"| {name} | {NOT_SUPPORTED} | - | - | - | - | - | - | - | - |")
             continue
-        p = [x for x in row.predicted if keep(x[1])]
-        m = [x[0] for x in row.measured if keep(x[1])]
-        if not p or not m:
-            lines.append(f"| {name} | - | - | - | - | - | - | {len(p)}/{len(m)} |")
+        pairs = [(p, m) for p, m in zip(row.predicted, row.measured, strict=True) if keep(p[1]) and keep(m[1])]
+        if not pairs:
+            lines.append(f"| {name} | - | - | - | - | - | - | - | - | 0 |")
             continue
-        pm, mm = statistics.median(x[0] for x in p), statistics.median(m)
-        errors.append(pm / mm - 1)
-        spans = [x[2] for x in p]
-        inside = "-" if all(s is None for s in spans) else (
-            "yes" if any(s is not None and s[0] <= mm <= s[1] for s in spans) else "no")
-        spread = (max(m) - min(m)) / 2 / mm  # half the reruns' range: how far one rerun can land from the median
+        pm, mm = statistics.median(p[0] for p, _ in pairs), statistics.median(m[0] for _, m in pairs)
+        paired = statistics.median(p[0] / m[0] - 1 for p, m in pairs)
+        corrected = statistics.median(p[0] * m[2] / (p[4] * m[0]) - 1 for p, m in pairs)
+        for kind, err in zip(ERROR_KINDS, (pm / mm - 1, paired, corrected), strict=True):
+            errors[kind].append(err)
+        spans = [p[2] for p, _ in pairs]
+        inside = "-" if all(x is None for x in spans) else (
+            "yes" if any(x is not None and x[0] <= mm <= x[1] for x in spans) else "no")
+        ms = [m[0] for _, m in pairs]
+        spread = (max(ms) - min(ms)) / 2 / mm  # half the reruns' range: how far one rerun can land from the median
         lines.append(f"| {name} | {pm:.3f} | {_fmt_range(spans)} | {mm:.3f} | {100 * (pm / mm - 1):+.1f} % | "
-                     f"{inside} | +-{100 * spread:.1f} % | {len(p)}/{len(m)} |")
+                     f"{100 * paired:+.1f} % | {100 * corrected:+.1f} % | {inside} | +-{100 * spread:.1f} % | "
+                     f"{len(pairs)} |")
     return lines, errors
 
 
@@ -384,6 +454,28 @@ def verdict(errors: list[float], limit: float, median_limit: float | None = None
     return f"median |error| {100 * med:.1f} %, max {100 * worst:.1f} %: {'PASS' if ok else 'FAIL'}"
 
 
+def probe_follows_items(stalls: list[Stall]) -> str:
+    """How well the speed probe around each recorded run follows that run's median CPU per loader item.
+
+    Both over their median per recorded configuration (so each run's speed
+    relative to its like), then Pearson's correlation and the least-squares
+    slope of item on probe over all recorded runs.
+    """
+    xs, ys = [], []
+    for label in dict.fromkeys(s.label for s in stalls):
+        mine = [s for s in stalls if s.label == label and s.item_cpu_s == s.item_cpu_s and s.probe_s == s.probe_s]
+        if len(mine) > 1:
+            mp, mi = statistics.median(s.probe_s for s in mine), statistics.median(s.item_cpu_s for s in mine)
+            xs += [s.probe_s / mp for s in mine]
+            ys += [s.item_cpu_s / mi for s in mine]
+    if len(xs) < 3 or np.std(xs) == 0 or np.std(ys) == 0:
+        return "too few recorded runs to say"
+    r = float(np.corrcoef(xs, ys)[0, 1])
+    slope = float(np.polyfit(xs, ys, 1)[0])
+    return (f"correlation {r:.2f}, slope {slope:.2f} over {len(xs)} recorded runs (probe spread "
+            f"{min(xs):.2f} to {max(xs):.2f}, item CPU {min(ys):.2f} to {max(ys):.2f}, each over its median)")
+
+
 def print_report(rows: list[Row], stalls: list[Stall], reps: int) -> None:
     print(f"\nreal jobs, {reps} alternating repetitions, {os.cpu_count()} cores, pipeprobe {pipeprobe.__version__}")
     for title, keep in (("all runs", lambda other: True),
@@ -391,7 +483,10 @@ def print_report(rows: list[Row], stalls: list[Stall], reps: int) -> None:
         lines, errors = scenario_table(rows, keep)
         print(f"\npredicted (replay of the recorded base) against measured (rerun without pipeprobe), {title}\n")
         print("\n".join(lines))
-        print(f"\n{verdict(errors, MAX_ERROR, MEDIAN_ERROR)} (targets: each within 10 %, median within 5 %)")
+        for kind in ERROR_KINDS:
+            print(f"\n{kind}: {verdict(errors[kind], MAX_ERROR, MEDIAN_ERROR)} (targets: each within 10 %, median "
+                  "within 5 %)", end="")
+        print()
     lines, errors = stall_table(stalls)
     print("\nrecorded stall against the job's own time in next(loader)\n")
     print("\n".join(lines))
@@ -403,11 +498,13 @@ def print_report(rows: list[Row], stalls: list[Stall], reps: int) -> None:
         if len(items) > 1:
             print(f"  {label}: " + ", ".join(f"{1e3 * x:.2f}" for x in items)
                   + f" (max / min {max(items) / min(items):.2f})")
-    print("\nevery run: predicted (other load of the base run, the replay's miss on the base run) / measured (other load)")
+    print(f"\ndoes the speed probe follow the jobs' own speed? {probe_follows_items(stalls)}")
+    print("\nevery run: predicted (other load of the base run, the replay's miss on the base run, speed probe ms) / "
+          "measured (other load, speed probe ms)")
     for row in rows:
         print(f"  {row.scenario.name}: " + (row.refused or ", ".join(
-            f"{p:.2f} ({po:.2f}, {100 * miss:+.0f} %) / {m:.2f} ({mo:.2f})"
-            for (p, po, _, miss), (m, mo) in zip(row.predicted, row.measured))))
+            f"{p:.2f} ({po:.2f}, {100 * miss:+.0f} %, {1e3 * pf:.1f}) / {m:.2f} ({mo:.2f}, {1e3 * mf:.1f})"
+            for (p, po, _, miss, pf), (m, mo, mf) in zip(row.predicted, row.measured, strict=True))))
     for s in stalls:
         print(f"  stall {s.label}: {s.recorded_s:.3f} / {s.own_s:.3f} (other load {s.other_cores:.2f})")
 
