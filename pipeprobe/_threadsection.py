@@ -31,6 +31,8 @@ def threads_text(c: ThreadCheck) -> list[str]:
     if c.skipped is not None:
         return [fit(f"threads  check skipped: {c.skipped}")]
     head = "oversubscribed" if c.oversubscribed else "the threads fit the cores"
+    if c.workers == 0:
+        return _beside_others_text(c, head)
     lines = [fit(f"threads  {head}: the step on up to {c.step_threads} thread(s), {c.workers} worker(s), "
                  f"{c.cores} cores")]
     lines += wrap(f"pools: {_pools(c)}; the step used {c.step_cores:.2f} cores alone; workers "
@@ -54,6 +56,16 @@ def threads_text(c: ThreadCheck) -> list[str]:
     if c.advice:
         lines += wrap(f"fix: {c.advice}", "    ", "  ")
     return lines
+
+
+def _beside_others_text(c: ThreadCheck, head: str) -> list[str]:
+    """A run without loader workers whose step's threads shared the cores with other processes."""
+    lines = [fit(f"threads  {head}: the step on up to {c.step_threads} thread(s), no loader workers, {c.cores} "
+                 "cores")]
+    lines += wrap(f"pools: {_pools(c)}; the step used {c.step_cores:.2f} cores; other processes kept "
+                  f"{c.background_cores:.1f} cores busy (the run has no steps without them to say what it cost)",
+                  "    ", "  ")
+    return lines + wrap(f"fix: {c.advice}", "    ", "  ")
 
 
 def threads_data(c: ThreadCheck) -> dict[str, Any]:

@@ -52,6 +52,9 @@ MIN_STEPS = 3
 UNEXPLAINED_MARGIN = 1.10
 #: Cores the step keeps however busy the machine was (as the replay's plan does).
 MIN_CORES_LEFT = 0.25
+#: A run without workers counts as oversubscribed when the step's threads and the other processes' busy
+#: cores exceed the cores by more than this (our choice: a quarter core, below it the samples' noise).
+BESIDE_OTHERS_MARGIN = 0.25
 
 
 @dataclass(frozen=True)
@@ -347,7 +350,7 @@ def _cores_alone(steps: _StepLoad) -> float:
     return float(np.median(used)) if len(used) else 1.0
 
 
-def _advice(cores: int, k: int, workers: int, oversubscribed: bool) -> str:
+def _advice(cores: int, k: int, workers: int, oversubscribed: bool, pools: list[dict[str, Any]]) -> str:
     """Step 4: the fix on this machine: threads for the step, or workers."""
     if not oversubscribed:
         return ""
@@ -359,7 +362,30 @@ def _advice(cores: int, k: int, workers: int, oversubscribed: bool) -> str:
     keep = (f"; or keep {k} step threads and use {w} worker{'s' if w != 1 else ''}" if w < workers else "")
     return (f"give the step {t} thread{'s' if t != 1 else ''} beside {workers} worker{'s' if workers != 1 else ''} "
             f"on {cores} cores (torch.set_num_threads({t}), threadpoolctl.threadpool_limits({t}), or "
-            f"OMP_NUM_THREADS={t} before the start){keep}")
+            f"OMP_NUM_THREADS={t} before the start){keep}{_passive_hint(pools)}")
+
+
+def _advice_beside_others(cores: int, k: int, background: float, pools: list[dict[str, Any]]) -> str:
+    """Step 4 for a run without workers: threads for the step on the cores other processes left it.
+
+    Examples
+    --------
+    >>> _advice_beside_others(2, 2, 1.0, [{"api": "openmp", "library": "openmp", "threads": 2}])[:61]
+    'give the step 1 thread while other processes keep 1.0 of the'
+    """
+    t = max(1, cores - math.ceil(background - BESIDE_OTHERS_MARGIN))
+    text = (f"give the step {t} thread{'s' if t != 1 else ''} while other processes keep {background:.1f} of the "
+            f"{cores} cores busy (torch.set_num_threads({t}), threadpoolctl.threadpool_limits({t}), or "
+            f"OMP_NUM_THREADS={t} before the start)")
+    return text + _passive_hint(pools)
+
+
+def _passive_hint(pools: list[dict[str, Any]]) -> str:
+    """For an OpenMP pool: its waiting threads can sleep instead of spinning (they spin by default)."""
+    if not any(p.get("api") == "openmp" for p in pools):
+        return ""
+    return ("; or OMP_WAIT_POLICY=PASSIVE before the start, so the pool's threads sleep at a barrier instead of "
+            "spinning while a partner waits for a core")
 
 
 def check_threads(run: Run, background_cores: float = 0.0) -> ThreadCheck:
@@ -398,10 +424,15 @@ def check_threads(run: Run, background_cores: float = 0.0) -> ThreadCheck:
     if not len(steps.dur_s):
         return ThreadCheck(skipped="the run has no training steps (probe.step())", wall_s=float(run.wall_s))
     if steps.workers == 0:  # nothing to compare, but the step's cores say how wide a replay with workers runs it
+        alone, bg = _cores_alone(steps), float(background_cores)
+        if k > 1 and k + bg > cores + BESIDE_OTHERS_MARGIN:  # the step's pool beside other processes' work
+            return ThreadCheck(skipped=None, cores=cores, step_threads=k, step_cores=alone, pools=tuple(pools),
+                               oversubscribed=True, wall_s=float(run.wall_s), background_cores=bg,
+                               advice=_advice_beside_others(cores, k, bg, pools))
         return ThreadCheck(skipped="the loader ran no worker processes", cores=cores, step_threads=k,
-                           step_cores=_cores_alone(steps), pools=tuple(pools), wall_s=float(run.wall_s))
+                           step_cores=alone, pools=tuple(pools), wall_s=float(run.wall_s))
     found = _compare(steps, cores, k, float(background_cores))
     return ThreadCheck(skipped=None, cores=cores, step_threads=k, pools=tuple(pools), workers=steps.workers,
                        wall_s=float(run.wall_s), **found,
-                       advice=_advice(cores, k, steps.workers, found["oversubscribed"]),
+                       advice=_advice(cores, k, steps.workers, found["oversubscribed"], pools),
                        background_cores=float(background_cores))

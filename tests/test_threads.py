@@ -193,6 +193,54 @@ class TestThreadCheck:
 ONE_THREAD = {**POOLS, "pools": [{"api": "blas", "library": "openblas", "threads": 1}]}
 
 
+OPENMP = {**POOLS, "pools": [{"api": "openmp", "library": "openmp", "threads": 2}]}
+
+
+def _inline_run(tmp_path: Path, pools: dict = OPENMP) -> Path:
+    """Eight 10 ms steps, each after a 5 ms 'crop' in the loop (no loader workers); the step used 2 cores."""
+    main, t = [], 0.0
+    for b in range(8):
+        main += [wait(t, t + 5.0, b), stage("crop", t, t + 5.0, batch=b, cpu_ms=5.0),
+                 step(t + 5.0, t + 15.0, b, cpu_ms=20.0)]
+        t += 15.0
+    return write_run(tmp_path, {1: main}, cores=2, header_extra={"threads": pools, "step_cpu": "process"})
+
+
+class TestBesideOtherProcesses:
+    """A run without loader workers whose step's thread pool shared the cores with other processes' work.
+
+    On our steps job (bench/realjobs/steps.py, 2 cores, one core kept busy by other work) the step's
+    OpenMP pool of 2 threads took 7.0-7.4 s, against 1.3-1.5 s with 1 thread and 1.5-2.0 s with
+    OMP_WAIT_POLICY=PASSIVE (measured 2026-12-04, README "The step's threads").
+    """
+
+    def test_other_processes_oversubscribe_the_steps_pool(self, tmp_path: Path) -> None:
+        """2 step threads + 1 core of other work > 2 cores: flagged, with the thread count that fits (2 - 1)."""
+        c = check_threads(pipeprobe.load(_inline_run(tmp_path)), background_cores=1.0)
+        assert (None, True, 0) == (c.skipped, c.oversubscribed, c.workers)
+        assert c.advice.startswith("give the step 1 thread while other processes keep 1.0 of the 2 cores busy")
+        assert "OMP_WAIT_POLICY=PASSIVE" in c.advice
+
+    @pytest.mark.parametrize("background", [0.0, 0.2])
+    def test_a_quiet_machine_keeps_the_check_skipped(self, tmp_path: Path, background: float) -> None:
+        """No other work (or less than a quarter core beyond the cores): nothing to compare, the check is skipped."""
+        c = check_threads(pipeprobe.load(_inline_run(tmp_path)), background_cores=background)
+        assert ("the loader ran no worker processes", False) == (c.skipped, c.oversubscribed)
+
+    def test_the_steps_action_carries_the_fix(self, tmp_path: Path) -> None:
+        """The step's own action names the thread fix (no separate action without a measured cost)."""
+        from pipeprobe.analysis import Action, thread_actions
+
+        c = check_threads(pipeprobe.load(_inline_run(tmp_path)), background_cores=1.0)
+        got = thread_actions([Action("step", "Make the step faster", 0.1)], c)
+        assert (["step"], True) == ([a.kind for a in got], c.advice in got[0].text)
+
+    def test_passive_hint_only_for_an_openmp_pool(self, tmp_path: Path) -> None:
+        """The waiting policy is OpenMP's: a BLAS-only pool's fix does not name it."""
+        c = check_threads(pipeprobe.load(_inline_run(tmp_path, POOLS)), background_cores=1.0)
+        assert (True, False) == (c.oversubscribed, "OMP_WAIT_POLICY" in c.advice)
+
+
 class TestThreadAction:
     """The thread fix among the top actions (issue #11 §2), at stake what the steps lost."""
 
