@@ -354,9 +354,8 @@ def _advice(cores: int, k: int, workers: int, oversubscribed: bool, pools: list[
     """Step 4: the fix on this machine: threads for the step, or workers."""
     if not oversubscribed:
         return ""
-    if k == 1:
-        return "" if workers < cores else (f"the step runs on one thread; {workers} workers beside it on {cores} "
-                                           f"cores: try {max(1, cores - 1)}")
+    if k == 1:  # no pool to fit: how many workers is the worker advice's to say (whatif/advice.py, by replay)
+        return ""
     t = max(1, cores - max(1, workers))
     w = max(1, cores - k)
     keep = (f"; or keep {k} step threads and use {w} worker{'s' if w != 1 else ''}" if w < workers else "")

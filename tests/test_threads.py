@@ -274,6 +274,14 @@ class TestThreadAction:
                             [x for x in data["actions"] if x["kind"] == "threads"])
 
 
+    def test_a_one_thread_step_leaves_the_worker_count_to_the_worker_advice(self, tmp_path: Path) -> None:
+        """One step thread, one busy worker and a core of other work on 2 cores: oversubscribed, but the thread
+        check names no worker count (on a loaded demo it said "try 1" beside the worker advice's "3 workers");
+        the worker advice decides the count, by replay."""
+        c = check_threads(pipeprobe.load(_contended_run(tmp_path, 20.0, pools=ONE_THREAD)), background_cores=1.0)
+        assert (True, "") == (c.oversubscribed, c.advice)
+
+
 class TestRange:
     def test_unexplained_slowdown_gives_a_range(self, tmp_path: Path) -> None:
         """Steps 2x slower beside a worker where sharing explains 1.5x: the prediction is a range around it."""
