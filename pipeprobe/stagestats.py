@@ -129,7 +129,20 @@ def _own_time(pieces: pd.DataFrame) -> pd.DataFrame:
     return own.set_axis(own.index.astype(str))
 
 
-def _table(run: Run, critical: CriticalPath | None, wall_s: float, pieces: pd.DataFrame) -> pd.DataFrame:
+def critical_seconds(segments: pd.DataFrame) -> pd.Series | None:
+    """Critical-path seconds per label of the stage and step pieces (None without pieces), as the table reads them."""
+    if not len(segments):
+        return None
+    return segments[segments["kind"].isin(["stage", "step"])].groupby("label")["seconds"].sum()
+
+
+def input_stage_labels(segments: pd.DataFrame) -> set[str]:
+    """Labels of the input-side stages on the critical path."""
+    return set(segments.loc[(segments["side"] == "input") & (segments["kind"] == "stage"), "label"])
+
+
+def _table(run: Run, crit: pd.Series | None, wall_s: float, pieces: pd.DataFrame) -> pd.DataFrame:
+    """The stage table; ``crit``: :func:`critical_seconds` of the critical path (None: no time on it)."""
     sp = run.spans
     key = _stage_key(sp, "wait")
     cols = list(STAGE_COLUMNS)
@@ -145,9 +158,7 @@ def _table(run: Run, critical: CriticalPath | None, wall_s: float, pieces: pd.Da
     own = _own_time(pieces)
     t["own_s"] = own["own_s"].reindex(t.index).fillna(t["total_s"])
     t["label"] = own["label"].reindex(t.index).fillna(pd.Series(t.index, index=t.index))
-    if critical is not None and len(critical.segments):
-        seg = critical.segments
-        crit = seg[seg["kind"].isin(["stage", "step"])].groupby("label")["seconds"].sum()
+    if crit is not None:
         by_label = crit.reindex(t["label"].to_numpy()).fillna(0.0).to_numpy()
         # a stage that encloses others only where the timeline leaves it out (inside a step, around an epoch)
         # is on the path under its own name elsewhere
@@ -312,7 +323,7 @@ def core_busy_during_stalls(run: Run) -> float:
 
 
 def _more_workers(run: Run, stalls: Stalls | None, input_on_path: bool | None, busy: float, cores: int,
-                  table: pd.DataFrame, critical: CriticalPath | None) -> tuple[str, str]:
+                  table: pd.DataFrame, input_labels: set[str] | None) -> tuple[str, str]:
     if input_on_path is False:
         return "no", "the step sets the pace; more workers would wait on it too"
     if stalls is not None and stalls.total_s <= 0:
@@ -325,10 +336,8 @@ def _more_workers(run: Run, stalls: Stalls | None, input_on_path: bool | None, b
         return "no", (f"all {cores} cores were {pct} busy while the loop waited: more workers would share "
                       "the same cores; make the input stages cheaper instead")
     ratio = float("nan")
-    if critical is not None and len(table):
-        inp = critical.segments
-        names = set(inp.loc[(inp["side"] == "input") & (inp["kind"] == "stage"), "label"])
-        t = table[table["stage"].isin(names)]
+    if input_labels is not None and len(table):
+        t = table[table["stage"].isin(input_labels)]
         if len(t) and t["cpu_s"].notna().any():
             ratio = float(t["cpu_s"].sum() / t["total_s"].sum()) if t["total_s"].sum() > 0 else float("nan")
     if not math.isnan(ratio) and ratio < 0.5:
@@ -376,10 +385,11 @@ def stage_stats(run: Run, critical: CriticalPath | None = None, stalls: Stalls |
     """
     wall = critical.wall_s if critical is not None else (stalls.wall_s if stalls is not None else run.wall_s)
     pieces = _stage_pieces(run)
-    table = _table(run, critical, wall, pieces)
+    table = _table(run, critical_seconds(critical.segments) if critical is not None else None, wall, pieces)
     cores = int(run.header.get("cores") or 1)
     busy = core_busy_during_stalls(run)
     saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
-    more, why = _more_workers(run, stalls, input_on_path, busy, cores, table, critical)
+    labels = input_stage_labels(critical.segments) if critical is not None else None
+    more, why = _more_workers(run, stalls, input_on_path, busy, cores, table, labels)
     return StageStats(table=table, slowest=_slowest(pieces), cores=cores, core_busy_in_stalls=busy,
                       cores_saturated=saturated, more_workers=more, more_workers_reason=why)

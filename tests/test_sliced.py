@@ -220,6 +220,88 @@ def _rising_by_definition(seq: list[int]) -> bool:
     return len(blocks) == len(set(blocks)) and (-1 not in blocks or blocks[0] == -1)
 
 
+def _in_tmp(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    """A fresh folder that the analysis' temporary folders go to."""
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path / "tmp"))
+    (tmp_path / "tmp").mkdir()
+    return tmp_path / "tmp"
+
+
+class TestPathOnDisk:
+    @pytest.mark.parametrize("shape", list(RUNS))
+    def test_path_read_from_disk_is_the_in_memory_path(self, tmp_path: Path, shape: str) -> None:
+        """critical.path, built from the files on request, is the whole-run analysis' path, numbered along it."""
+        d = RUNS[shape](tmp_path / "run")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            expected = pipeprobe.analyze(d).critical.path
+            with analyze_sliced(d, slice_batches=2) as s:
+                got = s.critical.path
+        n = len(expected)
+        text = {c: lambda f, c=c: f[c].astype(str) for c in ("kind", "stage", "side", "lane")}  # categories: those used
+        expected = expected.assign(node=np.arange(n), pred=np.arange(n) - 1, span=-1, **text)
+        pd.testing.assert_frame_equal(expected.reset_index(drop=True), got.assign(**text), check_exact=True)
+
+    @pytest.mark.parametrize("shape", list(RUNS))
+    def test_segments_read_from_disk_are_the_in_memory_segments(self, tmp_path: Path, shape: str) -> None:
+        """critical.segments, built from the files on request, are the whole run's pieces, nodes numbered along
+        the path (they tile the run: critical path method)."""
+        d = RUNS[shape](tmp_path / "run")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            a = pipeprobe.analyze(d).critical
+            with analyze_sliced(d, slice_batches=1) as s:
+                got = s.critical.segments
+        along = np.searchsorted(a.path["node"].to_numpy(), a.segments["node"].to_numpy())
+        expected = a.segments.assign(node=np.where(a.segments["node"].to_numpy() < 0, -1, along))
+        pd.testing.assert_frame_equal(expected, got, check_exact=True)
+
+    def test_node_count_and_ends_without_reading_the_path(self, tmp_path: Path) -> None:
+        """node_count, length_s, head_s and batches answer from the files as the in-memory path does."""
+        d = _pool_run(tmp_path / "run", 6)
+        a = pipeprobe.analyze(d).critical
+        with analyze_sliced(d, slice_batches=2) as s:
+            c = s.critical
+            got = (c.node_count, c.length_s, c.head_s, c.batches)
+            assert None is c._path
+        assert (a.node_count, a.length_s, a.head_s, a.batches) == got
+
+    def test_closed_analysis_says_to_read_the_path_first(self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+        """After close, a path read before stays; one not read is a ValueError saying to read it first; no file is left."""
+        tmp = _in_tmp(tmp_path, monkeypatch)
+        s = analyze_sliced(_pool_run(tmp_path / "run", 2), slice_batches=2)
+        path = s.critical.path
+        s.close()
+        with pytest.raises(ValueError, match="read critical.path and critical.segments before closing"):
+            _ = s.critical.segments
+        assert ([], True) == (list(tmp.iterdir()), s.critical.path is path)
+
+    def test_files_stay_while_the_analysis_is_kept(self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+        """A kept analysis holds only its path's files; they go when it is garbage-collected."""
+        import gc
+
+        tmp = _in_tmp(tmp_path, monkeypatch)
+        s = analyze_sliced(_pool_run(tmp_path / "run", 2), slice_batches=2)
+        kept = sorted(p.name.split(".")[0] for p in tmp.rglob("*") if p.is_file())
+        del s
+        gc.collect()
+        assert ({"path"}, []) == (set(kept), list(tmp.iterdir()))
+
+    @pytest.mark.parametrize("where", ["_spilled_path", "summarise_stalls", "_walk_back"])
+    def test_no_file_left_after_an_error(self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, where: str) -> None:
+        """An error in the walk, the path's sums or the stalls passes through unchanged and leaves no file."""
+        tmp = _in_tmp(tmp_path, monkeypatch)
+        run = _pool_run(tmp_path / "run", 2)
+
+        def failing(*args: object, **kwargs: object) -> None:
+            raise KeyboardInterrupt(f"stopped in {where}")
+
+        monkeypatch.setattr(pipeprobe.sliced, where, failing)
+        with pytest.raises(KeyboardInterrupt, match=f"stopped in {where}"):
+            analyze_sliced(run, slice_batches=2)
+        assert [] == list(tmp.iterdir())
+
+
 class TestGroupLayout:
     @settings(max_examples=200, deadline=None)
     @given(st.lists(st.lists(st.integers(-1, 3), max_size=6), max_size=5))
