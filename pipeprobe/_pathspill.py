@@ -196,19 +196,32 @@ class PathStore:
         return self.names.names.index(name) if name in self.names.names else -2
 
     def stall_pairs(self, b: pd.DataFrame, stalled: np.ndarray) -> pd.DataFrame:
-        """:func:`pipeprobe.stalls._stall_pairs` of the whole path, found a part at a time."""
-        names = pd.Index(self.names.names).astype(str)
-        got, offset = [], 0
+        """Pairs of (stalled batch, piece of the path inside its stall) that blame the stalls as
+        :func:`pipeprobe.stalls._stall_pairs` of the whole path does, in a few rows per stall (:class:`_StallSums`).
+        """
+        ready = b["ready_s"].to_numpy(np.float64)
+        sums = _StallSums()
+        waiting: list[pd.DataFrame] = []
+        offset = 0
         for p in self.pieces():
             seg = pd.DataFrame({"start_s": p["start_s"], "end_s": p["end_s"],
-                                "label": pd.Categorical.from_codes(p["label"], categories=names),
-                                "lane": pd.Categorical.from_codes(p["lane"], categories=names),
+                                "label": pd.Categorical.from_codes(p["label"], categories=self._text_names()),
+                                "lane": pd.Categorical.from_codes(p["lane"], categories=self._text_names()),
                                 "sample_id": p["sample_id"]}, copy=False)
             pairs = _stall_pairs(b, seg, stalled)
-            got.append(pairs.assign(order=pairs["order"].to_numpy() + offset))
+            waiting.append(pairs.assign(order=pairs["order"].to_numpy() + offset))
             offset += len(seg)
-        pairs = pd.concat(got, ignore_index=True)
-        return pairs.sort_values("row", kind="stable").reset_index(drop=True)
+            if not len(seg):
+                continue
+            pairs = pd.concat(waiting, ignore_index=True).sort_values("row", kind="stable")
+            done = ready[pairs["row"].to_numpy(np.int64)] <= float(p["end_s"][-1])  # later pieces start after
+            sums.add(pairs[done])
+            waiting = [pairs[~done]]
+        sums.add(pd.concat(waiting, ignore_index=True).sort_values("row", kind="stable"))
+        return sums.pairs()
+
+    def _text_names(self) -> pd.Index:
+        return pd.Index(self.names.names).astype(str)
 
     def _check(self) -> None:
         if not self.is_open:
@@ -220,3 +233,61 @@ def _positive(pieces: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
     """The pieces of more than no time (as :func:`pipeprobe.critical.path_attribution` keeps them)."""
     keep = pieces["seconds"] > 0
     return {c: v[keep] for c, v in pieces.items()}
+
+
+#: The key :func:`pipeprobe.stalls._blame` sums the pairs by.
+_BLAME_KEY = ["row", "label", "lane"]
+
+
+class _StallSums:
+    """The blame's sums of the pairs, taken a set of whole stalls at a time, and the pairs that give them.
+
+    :func:`pipeprobe.stalls._blame` sums the pairs per (stall, label, lane) with one pandas group-by over all
+    of them, which adds one value after another (``ufunc.reduceat``) when every group is one block of rows,
+    compensated otherwise (:mod:`pipeprobe._grouplayout`): which of the two, only the whole set of pairs tells.
+    So each set of stalls is summed both ways, the samples of each way's largest group per stall kept,
+    and :meth:`pairs` gives per group one row holding the sum of the way the whole set takes, then the
+    kept samples as rows of no time: :func:`~pipeprobe.stalls._blame` finds from them the same sums (a sum
+    plus zeros), the same largest group and the same samples, in the same order.
+    """
+
+    def __init__(self) -> None:
+        self.groups: list[pd.DataFrame] = []
+        self.samples: list[pd.DataFrame] = []
+        self.blocks = True
+        self.empty: pd.DataFrame | None = None
+
+    def add(self, pairs: pd.DataFrame) -> None:
+        """The pairs of whole stalls, sorted by stall, each stall's in the path's order."""
+        if self.empty is None:
+            self.empty = pairs.iloc[:0]
+        if not len(pairs):
+            return
+        gid = pairs.groupby(_BLAME_KEY, sort=False).ngroup().to_numpy(np.int64)
+        self.blocks &= bool(pd.Index(gid).is_monotonic_increasing)
+        sec = pairs["sec"].to_numpy(np.float64)
+        # compensated: a dropped key at the end; one value after another: the groups laid out as blocks
+        kahan = pd.Series(np.r_[sec, 0.0]).groupby(np.r_[gid.astype(np.float64), np.nan], sort=False).sum()
+        order = np.argsort(gid, kind="stable")
+        blocks = pd.Series(sec[order]).groupby(gid[order], sort=False).sum()
+        first = np.unique(gid, return_index=True)[1]
+        g = pairs.iloc[first][[*_BLAME_KEY, "order"]].reset_index(drop=True)
+        g = g.assign(kahan=kahan.to_numpy(np.float64), blocks=blocks.to_numpy(np.float64))
+        top = np.zeros(len(gid) and gid.max() + 1, bool)
+        for way in ("kahan", "blocks"):  # as _blame picks the largest group per stall
+            ranked = g.sort_values(["row", way, "label"], ascending=[True, False, True], kind="stable")
+            top[ranked.drop_duplicates("row", keep="first").index.to_numpy()] = True
+        mine = top[gid] & (pairs["sample"].to_numpy() >= 0)
+        kept = pairs[mine].assign(group=gid[mine]).drop_duplicates(["group", "sample"], keep="first")
+        self.groups.append(g)
+        self.samples.append(kept.drop(columns="group").assign(sec=0.0))
+
+    def pairs(self) -> pd.DataFrame:
+        """The rows that stand for all the pairs (see the class docstring)."""
+        if not self.groups:
+            return self.empty
+        way = "blocks" if self.blocks else "kahan"
+        g = pd.concat(self.groups, ignore_index=True)
+        g = g.assign(sec=g[way], sample=-1)[["row", "label", "lane", "sec", "sample", "order"]]
+        out = pd.concat([g, *self.samples], ignore_index=True)
+        return out.sort_values(["row", "order"], kind="stable").reset_index(drop=True)

@@ -302,6 +302,39 @@ class TestPathOnDisk:
         assert [] == list(tmp.iterdir())
 
 
+def _blame_of(pairs: pd.DataFrame, rows: int) -> pd.DataFrame:
+    from pipeprobe.stalls import _blame
+
+    b = pd.DataFrame({"wait_start_s": np.zeros(rows), "ready_s": np.ones(rows)})
+    got = _blame(b, lambda b, stalled: pairs, {"collate"})
+    return got.assign(blame_sample_ids=[tuple(x) for x in got["blame_sample_ids"]])
+
+
+class TestStallSums:
+    @settings(max_examples=150, deadline=None)
+    @given(st.integers(0, 10_000), st.integers(1, 8), st.integers(1, 80), st.integers(1, 4))
+    def test_few_rows_per_stall_blame_as_all_pairs(self, seed: int, rows: int, n: int, sets: int) -> None:
+        """Stalls summed a set of whole stalls at a time give _blame's blame of all pairs at once, bit for bit, both
+        when each (stall, label, lane) is one block of pairs (pandas adds with ufunc.reduceat) and when not
+        (compensated, Kahan 1965)."""
+        from pipeprobe._pathspill import _StallSums
+
+        rng = np.random.default_rng(seed)
+        row = np.sort(rng.integers(0, rows, n))
+        label = rng.choice(["decode", "read", "collate", "unexplained gap"], n)
+        if seed % 2:  # one label per stall: every group one block
+            label = np.array(["decode", "read", "collate", "unexplained gap"])[row % 4]
+        pairs = pd.DataFrame({"row": row, "label": label.astype(object),
+                              "lane": rng.choice(["worker 1", "worker 2"], n).astype(object),
+                              "sec": rng.choice([0.1, 0.7, 1e-3 / 3, 0.005000000000000001], n),
+                              "sample": rng.integers(-1, 6, n), "order": np.arange(n)})
+        sums = _StallSums()
+        cuts = np.unique(np.r_[0, rng.integers(0, rows + 1, sets - 1), rows + 1])
+        for lo, hi in zip(cuts[:-1], cuts[1:], strict=True):  # sets of whole stalls, in any order
+            sums.add(pairs[(row >= lo) & (row < hi)])
+        pd.testing.assert_frame_equal(_blame_of(pairs, rows), _blame_of(sums.pairs(), rows), check_exact=True)
+
+
 class TestGroupLayout:
     @settings(max_examples=200, deadline=None)
     @given(st.lists(st.lists(st.integers(-1, 3), max_size=6), max_size=5))
