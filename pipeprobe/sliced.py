@@ -253,14 +253,15 @@ def _analyse(run_dir: Path, slice_batches: int | None, warmup_batches: int | Non
     edges = slice_edges(scan.batches, slice_batches)
     walk, kept = _walk_slices(scan, edges, store)
     step("critical path, stalls and stage table")
-    scan._by_ready = None  # the membership rows by delivery served the slices' links
-    run = scan.run(_empty_spans())
+    # the membership rows (about 28 bytes a sample) served the slices' links: the stalls need only their count
+    # and the median of samples per batch
+    samples = len(scan.samples)
+    scan.samples = scan.samples.iloc[:0]
+    run = scan.run(_empty_spans(), _empty_samples())
     critical, crit, inputs = _spilled_path(walk)
     pairs = store.stall_pairs if store.piece_count else None
-    stalls = summarise_stalls(_with_per_batch_stages(run, kept), critical.wall_s, pairs, warmup_batches=warmup_batches)
-    # the membership rows (tens of bytes a sample) served the links and the stalls: free them first
-    run = scan.run(_empty_spans(), scan.samples.iloc[:0])
-    scan.samples = scan.samples.iloc[:0]
+    stalls = summarise_stalls(_with_per_batch_stages(run, kept, samples, scan.batch_samples), critical.wall_s, pairs,
+                              warmup_batches=warmup_batches)
     try:
         stages = _stage_table(run, critical, stalls, kept, crit, inputs)
     finally:
@@ -274,6 +275,11 @@ def _empty_spans() -> pd.DataFrame:
     from .load import _empty_spans as empty
 
     return empty()
+
+
+def _empty_samples() -> pd.DataFrame:
+    return pd.DataFrame({c: np.zeros(0, np.float64 if c == "ready_s" else np.int64)
+                         for c in ("rank", "batch_id", "sample_id", "ready_s")})
 
 
 def _walk_slices(scan: RunScan, edges: np.ndarray, store: PathStore) -> tuple[_Walk, _Kept]:
@@ -329,7 +335,7 @@ def _latest_delivery(scan: RunScan, sp: pd.DataFrame, own: np.ndarray) -> float:
     unlinked = own & (batch < 0) & (sp["sample_id"].to_numpy() >= 0)
     latest = -np.inf
     if unlinked.any():  # the first membership row of the sample at or after the span ended, as load links it
-        left = pd.DataFrame({"end_s": sp["end_s"].to_numpy()[unlinked], "rank": rank[unlinked],
+        left = pd.DataFrame({"end_s": sp["end_s"].to_numpy()[unlinked], "rank": rank[unlinked].astype(np.int32),
                              "sample_id": sp["sample_id"].to_numpy(np.int64)[unlinked]}).sort_values("end_s")
         j = pd.merge_asof(left, scan.samples_by_ready, left_on="end_s", right_on="ready_s",
                           by=["rank", "sample_id"], direction="forward")
@@ -533,18 +539,25 @@ def _keep_per_batch(kept: _Kept, sp: pd.DataFrame, own: np.ndarray) -> None:
     kept.per_batch = f[~f["stage"].isin(kept.repeated)].drop_duplicates()
 
 
-def _with_per_batch_stages(run: Run, kept: _Kept) -> Run:
-    """``run`` with stand-in spans from which stalls finds the same per-batch stages as from all spans.
+def _with_per_batch_stages(run: Run, kept: _Kept, samples: int, batch_samples: float) -> Run:
+    """``run`` with stand-in spans and membership rows from which stalls finds the same per-batch stages as
+    from all of them.
 
     :func:`pipeprobe.stalls.stall_summary` reads the spans only for the
     stages timed once per batch: one row per stage seen with a batch and a
-    sample, two alike for a stage seen twice in one batch.
+    sample, two alike for a stage seen twice in one batch; and the
+    membership rows only for whether there are any and whether the median
+    batch holds more than one sample (``samples`` rows, ``batch_samples``
+    the median): none, one row, or two of one batch.
     """
     names = sorted(kept.seen) + sorted(kept.repeated)
     n = len(names)
     spans = pd.DataFrame({"stage": names, "rank": np.zeros(n, np.int64), "batch_id": np.zeros(n, np.int64),
                           "sample_id": np.zeros(n, np.int64)})
-    return Run(run_dir=run.run_dir, header=run.header, spans=spans, batches=run.batches, samples=run.samples,
+    rows = 0 if not samples else 1 if batch_samples <= 1 else 2
+    members = pd.DataFrame({"rank": np.zeros(rows, np.int64), "batch_id": np.zeros(rows, np.int64),
+                            "sample_id": np.arange(rows, dtype=np.int64), "ready_s": np.zeros(rows)})
+    return Run(run_dir=run.run_dir, header=run.header, spans=spans, batches=run.batches, samples=members,
                resources=run.resources, processes=run.processes, problems=run.problems, clock=run.clock,
                t0_ns=run.t0_ns)
 
