@@ -63,7 +63,15 @@ from .critical import PACE_SPEEDUP, CriticalPath
 from .lanes import thread_lanes
 from .load import Run
 from .nesting import span_pieces
-from .stagestats import SATURATED_FROM, StageStats, _more_workers, _slowest, _table, core_busy_during_stalls
+from .stagestats import (
+    SATURATED_FROM,
+    StageStats,
+    _more_workers,
+    _own_time,
+    _slowest,
+    _table,
+    core_busy_during_stalls,
+)
 from .stalls import Stalls, summarise_stalls
 from .timeline import NODE_COLUMNS, Timeline, build_timeline, sink_node
 
@@ -586,10 +594,10 @@ def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept, 
         if not group and tables:
             break  # the empty group gives the empty table's columns when there is no stage at all
         pieces = _group_pieces(kept, group, names, labels, stages_rising)
-        tables.append(_group_table(run, crit, critical.wall_s, names, _group_spans(kept, group), pieces))
-        slow = _slowest(pieces)
+        own, slow = _own_time(pieces), _slowest(pieces)
+        del pieces  # the spans' numbers are read once the pieces' are freed: one of the two in memory at a time
+        tables.append(_group_table(run, crit, critical.wall_s, names, _group_spans(kept, group), own))
         slowest.append(slow[slow["stage"] != labels[1][-1]])
-        del pieces
     table = pd.concat([t for t in tables if len(t)] or tables[-1:], ignore_index=True)
     table = table.sort_values(["total_s", "stage"], ascending=[False, True], kind="stable").reset_index(drop=True)
     slow = pd.concat([t for t in slowest if len(t)] or slowest[-1:], ignore_index=True)
@@ -662,10 +670,10 @@ def _group_pieces(kept: _Kept, group: list[int], names: np.ndarray, labels: tupl
 
 
 def _group_table(run: Run, crit: pd.Series | None, wall_s: float, names: np.ndarray, spans: dict[str, np.ndarray],
-                 pieces: pd.DataFrame) -> pd.DataFrame:
-    """The stage table's rows of the stages of one group, from their spans and pieces."""
+                 own: pd.DataFrame) -> pd.DataFrame:
+    """The stage table's rows of the stages of one group, from their spans and their pieces' own time."""
     frame = pd.DataFrame({"stage": pd.Categorical.from_codes(spans.pop("key"), categories=names),
                           "dur_s": spans.pop("dur_s"), "cpu_s": spans.pop("cpu_s")}, copy=False)
     light = Run(run_dir=run.run_dir, header=run.header, spans=frame, batches=run.batches, samples=run.samples,
                 resources=run.resources, processes=run.processes, clock=run.clock, t0_ns=run.t0_ns)
-    return _table(light, crit, wall_s, pieces)
+    return _table(light, crit, wall_s, None, own)

@@ -141,8 +141,10 @@ def input_stage_labels(segments: pd.DataFrame) -> set[str]:
     return set(segments.loc[(segments["side"] == "input") & (segments["kind"] == "stage"), "label"])
 
 
-def _table(run: Run, crit: pd.Series | None, wall_s: float, pieces: pd.DataFrame) -> pd.DataFrame:
-    """The stage table; ``crit``: :func:`critical_seconds` of the critical path (None: no time on it)."""
+def _table(run: Run, crit: pd.Series | None, wall_s: float, pieces: pd.DataFrame | None,
+           own: pd.DataFrame | None = None) -> pd.DataFrame:
+    """The stage table; ``crit``: :func:`critical_seconds` of the critical path (None: no time on it); ``own``:
+    :func:`_own_time` of ``pieces`` when worked out before (the pieces then freed: None)."""
     sp = run.spans
     key = _stage_key(sp, "wait")
     cols = list(STAGE_COLUMNS)
@@ -155,7 +157,7 @@ def _table(run: Run, crit: pd.Series | None, wall_s: float, pieces: pd.DataFrame
     t["cpu_s"] = sp["cpu_s"].groupby(key, sort=False, observed=True).sum(min_count=1)
     t = t.set_axis(pd.Index(t.index.astype(str), dtype=object))
     t["cpu_ratio"] = (t["cpu_s"] / t["total_s"].where(t["total_s"] > 0)).astype(float)
-    own = _own_time(pieces)
+    own = _own_time(pieces) if own is None else own
     t["own_s"] = own["own_s"].reindex(t.index).fillna(t["total_s"])
     t["label"] = own["label"].reindex(t.index).fillna(pd.Series(t.index, index=t.index))
     if crit is not None:
