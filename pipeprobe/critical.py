@@ -250,7 +250,7 @@ def path_attribution(path: pd.DataFrame, ids: np.ndarray, origin: float,
 
 
 def segment_frame(seg: dict[str, np.ndarray], names: list[str]) -> pd.DataFrame:
-    """:attr:`CriticalPath.segments` from the pieces' arrays (text as codes into ``names``), pieces of no time left out."""
+    """:attr:`CriticalPath.segments` from the arrays of its pieces of more than no time (text as codes into ``names``)."""
     return pd.DataFrame({
         "start_s": seg["start_s"], "end_s": seg["end_s"], "seconds": seg["end_s"] - seg["start_s"],
         **{c: text_column(seg[c], names) for c in ("label", "kind", "side")},

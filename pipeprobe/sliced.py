@@ -24,23 +24,30 @@ while holding the spans of one slice at a time. The steps:
     walk checks itself: a dependency that ends before the context read, or
     none where context was cut off, means the context was too short, and
     the slice is read again with four times the context (at most the whole
-    run before it);
+    run before it). Each slice's path nodes go to files in a temporary
+    folder as the walk finds them (:mod:`pipeprobe._pathspill`);
+``path sums``
+    the shares per label and per thread, the stage table's seconds on the
+    path and the stall blame are worked out from those files a slice's
+    nodes at a time, in path order, adding up as the whole path's are added;
 ``stage table``
     each slice's own spans (stage, duration, CPU time) and the pieces of
     their innermost stages (label, sample, thread, start, duration) go to
-    files in a temporary folder (:mod:`pipeprobe._spill`), deleted at the
-    end, also on an error; the table is then built a group of whole stages
+    files in the same folder (:mod:`pipeprobe._spill`), deleted once the
+    table is built; the table is built a group of whole stages
     at a time (about :data:`pipeprobe._spill.GROUP_ROWS` rows), each stage's
     numbers read back in the whole run's order and laid out so that pandas
     adds them up as it adds the whole run's (:mod:`pipeprobe._grouplayout`):
     the sums, percentiles and slowest samples are those of the whole run.
 
-What is kept in memory across slices: the per-batch tables (waits, steps,
-membership rows), the nodes of the critical path (a result: one node in a
-few spans), and the index of the spilled numbers. The dependency timeline
-(its nodes and edges, several hundred bytes a span) exists for one slice
-at a time; the stage table's numbers (about 50 bytes a span on disk) for
-one group of stages at a time.
+What is kept in memory across slices: the per-batch tables (waits, steps;
+the membership rows, about 28 bytes a sample, until the walk ends) and the
+index of the files. The dependency timeline (its nodes and edges, several
+hundred bytes a span) exists for one slice at a time; the stage table's
+numbers for one group of stages at a time (a stage larger than a group:
+all its numbers at once). The path's files stay until the analysis is
+closed (:meth:`SlicedAnalysis.close`, a ``with`` block) or garbage-collected:
+``critical.path`` and ``critical.segments`` are built from them when read.
 """
 
 from __future__ import annotations

@@ -203,9 +203,16 @@ def _group_sums(key: np.ndarray, values: np.ndarray) -> tuple[np.ndarray, np.nda
     A key seen once keeps its value (what pandas' sum of one value gives, ``0.0 + value``); only the
     keys seen more than once, or with a value that is not finite, are summed by pandas.
     """
-    codes, uniques = pd.factorize(key)
-    first = np.empty(len(uniques), np.int64)
-    first[codes[::-1]] = np.arange(len(key) - 1, -1, -1)
+    ordered = np.sort(key)
+    once = bool((ordered[1:] != ordered[:-1]).all())
+    del ordered
+    if once:  # every key seen once (one piece per sample and label): no hash table, each row its own group
+        codes, uniques = np.arange(len(key), dtype=np.int64), key
+        first = codes
+    else:
+        codes, uniques = pd.factorize(key)
+        first = np.empty(len(uniques), np.int64)
+        first[codes[::-1]] = np.arange(len(key) - 1, -1, -1)
     sums = values[first] + 0.0
     again = (np.bincount(codes, minlength=len(uniques)) > 1) | ~np.isfinite(sums)
     if again.any():
