@@ -30,7 +30,8 @@ from . import _runfolder as _rf
 from . import tracefile as tf
 from .load import Run, _batches, _link, _span_columns, _time_ordered_frame, worker_slots
 
-__all__ = ["RunScan", "scan_run", "read_range", "count_records", "PIECE_RECORDS"]
+__all__ = ["RunScan", "scan_run", "read_range", "count_records", "latest_first_delivery", "PIECE_RECORDS",
+           "SEARCH_ROWS"]
 
 #: Records per indexed piece of a span file (3 MiB): a range reads at most this much beyond what it needs.
 PIECE_RECORDS = 1 << 16
@@ -61,7 +62,7 @@ class RunScan:
     axis: _rf.TimeAxis
     files: list[_File]
     batches: pd.DataFrame
-    samples: pd.DataFrame
+    samples: pd.DataFrame  # sorted by ready_s; pos: the row's place in the files' order; rank, batch_id 32-bit
     processes: pd.DataFrame
     threads: pd.DataFrame
     resources: pd.DataFrame
@@ -70,12 +71,6 @@ class RunScan:
     last_end_s: float = 0.0
 
     batch_samples: float = 0.0  # the median of samples per batch (of the batches with membership rows)
-
-    @property
-    def samples_by_ready(self) -> pd.DataFrame:
-        """The membership rows sorted by ``ready_s`` (for finding when a span's batch was delivered, later than
-        the spans read): ``samples`` itself, kept in that order (``rank`` and ``batch_id`` 32-bit)."""
-        return self.samples
 
     def run(self, spans: pd.DataFrame, samples: pd.DataFrame | None = None) -> Run:
         """A :class:`Run` with the whole run's tables and the given spans."""
@@ -372,3 +367,35 @@ def _samples_between(sm: pd.DataFrame, lo_s: float, hi_s: float) -> pd.DataFrame
     order = np.argsort(pos, kind="stable")
     return pd.DataFrame({c: sm[c].to_numpy()[a:b][order].astype(np.float64 if c == "ready_s" else np.int64)
                          for c in ("rank", "batch_id", "sample_id", "ready_s")}, index=pos[order].astype(np.int64))
+
+
+#: Membership rows searched at once for the first delivery of a span's sample (bounds that search's memory).
+SEARCH_ROWS = 1 << 20
+
+
+def latest_first_delivery(scan: RunScan, end_s: np.ndarray, rank: np.ndarray, sample_id: np.ndarray) -> float:
+    """Per span (its end, rank and sample), the first membership row of its sample ready at or after it ended,
+    as :func:`pipeprobe.load.load` links them: the latest of their ready times (-inf when none).
+
+    The rows are searched :data:`SEARCH_ROWS` at a time from the earliest end on, each span until its row
+    is found: the first match in a stretch of rows in delivery order is the first of all, as no earlier row
+    was left out.
+    """
+    sm = scan.samples
+    ready = sm["ready_s"].to_numpy(np.float64)
+    left = pd.DataFrame({"end_s": end_s, "rank": rank.astype(np.int32),
+                         "sample_id": sample_id.astype(np.int64)}).sort_values("end_s", kind="stable")
+    latest, a = -np.inf, 0
+    while len(left):
+        a = max(a, int(np.searchsorted(ready, left["end_s"].iloc[0], side="left")))
+        if a >= len(ready):
+            break
+        b = min(len(ready), a + SEARCH_ROWS)
+        got = pd.merge_asof(left, sm.iloc[a:b], left_on="end_s", right_on="ready_s", by=["rank", "sample_id"],
+                            direction="forward")["ready_s"].to_numpy(np.float64)
+        found = ~np.isnan(got)
+        if found.any():
+            latest = max(latest, float(got[found].max()))
+        left = left.iloc[np.flatnonzero(~found)]
+        a = b
+    return latest

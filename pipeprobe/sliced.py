@@ -64,7 +64,7 @@ import pandas as pd
 from ._grouplayout import Blocks, PieceLayout
 from ._pathspill import NUMBERED, TEXT, PathStore
 from ._progress import progress, step
-from ._slicereader import RunScan, read_range, scan_run
+from ._slicereader import RunScan, latest_first_delivery, read_range, scan_run
 from ._spill import Spill, key_groups
 from .critical import PACE_SPEEDUP, CriticalPath
 from .lanes import thread_lanes
@@ -350,12 +350,8 @@ def _latest_delivery(scan: RunScan, sp: pd.DataFrame, own: np.ndarray) -> float:
     unlinked = own & (batch < 0) & (sp["sample_id"].to_numpy() >= 0)
     latest = -np.inf
     if unlinked.any():  # the first membership row of the sample at or after the span ended, as load links it
-        left = pd.DataFrame({"end_s": sp["end_s"].to_numpy()[unlinked], "rank": rank[unlinked].astype(np.int32),
-                             "sample_id": sp["sample_id"].to_numpy(np.int64)[unlinked]}).sort_values("end_s")
-        j = pd.merge_asof(left, scan.samples_by_ready, left_on="end_s", right_on="ready_s",
-                          by=["rank", "sample_id"], direction="forward")
-        if j["ready_s"].notna().any():
-            latest = float(j["ready_s"].max())
+        latest = latest_first_delivery(scan, sp["end_s"].to_numpy(np.float64)[unlinked], rank[unlinked],
+                                       sp["sample_id"].to_numpy(np.int64)[unlinked])
     linked = own & (batch >= 0)
     if linked.any():
         bt = scan.batches

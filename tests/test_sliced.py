@@ -30,6 +30,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import pipeprobe
+import pipeprobe._slicereader
 import pipeprobe._spill
 import pipeprobe.sliced
 from pipeprobe._grouplayout import Blocks
@@ -145,6 +146,33 @@ class TestBoundedMemory:
         with tempfile.TemporaryDirectory() as d, pytest.MonkeyPatch.context() as mp:
             mp.setattr(pipeprobe._spill, "GROUP_ROWS", 1)
             assert [] == differences(_pool_run(Path(d) / "run", seed, batches, workers), slice_batches)
+
+    @pytest.mark.parametrize("shape", list(RUNS))
+    def test_delivery_search_in_small_stretches_agrees_exactly(self, tmp_path: Path, shape: str,
+                                                               monkeypatch: pytest.MonkeyPatch) -> None:
+        """With the membership rows searched 3 at a time for a span's later delivery, the two still agree exactly."""
+        monkeypatch.setattr(pipeprobe._slicereader, "SEARCH_ROWS", 3)
+        assert [] == differences(RUNS[shape](tmp_path / "run"), 1)
+
+    @settings(max_examples=100, deadline=None)
+    @given(st.integers(0, 10_000), st.integers(1, 60), st.integers(1, 30), st.integers(1, 7))
+    def test_delivery_search_is_merge_asof_of_all_rows(self, seed: int, rows: int, spans: int, stretch: int) -> None:
+        """The latest first delivery found a few rows at a time is pandas' merge_asof (forward) over all rows."""
+        from pipeprobe._slicereader import RunScan, latest_first_delivery
+
+        rng = np.random.default_rng(seed)
+        sm = pd.DataFrame({"rank": rng.integers(0, 2, rows).astype(np.int32), "batch_id": np.zeros(rows, np.int32),
+                           "sample_id": rng.integers(0, 5, rows), "ready_s": np.sort(rng.integers(0, 20, rows) / 2)})
+        end, rank, sample = rng.integers(0, 22, spans) / 2, rng.integers(0, 2, spans), rng.integers(0, 5, spans)
+        left = pd.DataFrame({"end_s": end, "rank": rank.astype(np.int32), "sample_id": sample}).sort_values("end_s")
+        got = pd.merge_asof(left, sm, left_on="end_s", right_on="ready_s", by=["rank", "sample_id"],
+                            direction="forward")["ready_s"]
+        expected = float(got.max()) if got.notna().any() else -np.inf
+        scan = RunScan(root=Path("."), header={}, axis=None, files=[], batches=sm.iloc[:0], samples=sm,
+                       processes=sm.iloc[:0], threads=sm.iloc[:0], resources=sm.iloc[:0])
+        with pytest.MonkeyPatch.context() as mp:
+            mp.setattr(pipeprobe._slicereader, "SEARCH_ROWS", stretch)
+            assert expected == latest_first_delivery(scan, end, rank, sample)
 
     def test_spill_files_are_deleted(self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
         """The numbers kept on disk during the analysis are gone when it returns."""
