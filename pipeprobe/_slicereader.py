@@ -30,7 +30,8 @@ from . import _runfolder as _rf
 from . import tracefile as tf
 from .load import Run, _batches, _link, _span_columns, _time_ordered_frame, worker_slots
 
-__all__ = ["RunScan", "scan_run", "read_range", "count_records", "PIECE_RECORDS"]
+__all__ = ["RunScan", "scan_run", "read_range", "count_records", "latest_first_delivery", "PIECE_RECORDS",
+           "SEARCH_ROWS"]
 
 #: Records per indexed piece of a span file (3 MiB): a range reads at most this much beyond what it needs.
 PIECE_RECORDS = 1 << 16
@@ -61,7 +62,7 @@ class RunScan:
     axis: _rf.TimeAxis
     files: list[_File]
     batches: pd.DataFrame
-    samples: pd.DataFrame
+    samples: pd.DataFrame  # sorted by ready_s; pos: the row's place in the files' order; rank, batch_id 32-bit
     processes: pd.DataFrame
     threads: pd.DataFrame
     resources: pd.DataFrame
@@ -69,15 +70,7 @@ class RunScan:
     spans: int = 0
     last_end_s: float = 0.0
 
-    @property
-    def samples_by_ready(self) -> pd.DataFrame:
-        """The membership rows' ``rank, sample_id, ready_s`` sorted by ``ready_s`` (for finding when a span's
-        batch was delivered, later than the spans read)."""
-        if self._by_ready is None:
-            self._by_ready = self.samples[["rank", "sample_id", "ready_s"]].sort_values("ready_s", kind="stable")
-        return self._by_ready
-
-    _by_ready: pd.DataFrame | None = None
+    batch_samples: float = 0.0  # the median of samples per batch (of the batches with membership rows)
 
     def run(self, spans: pd.DataFrame, samples: pd.DataFrame | None = None) -> Run:
         """A :class:`Run` with the whole run's tables and the given spans."""
@@ -102,7 +95,7 @@ class _Gather:
     """What the scan collects while it reads the files."""
 
     consumer: list[pd.DataFrame] = field(default_factory=list)
-    members: list[pd.DataFrame] = field(default_factory=list)
+    members: list[dict[str, np.ndarray]] = field(default_factory=list)
     threads: list[pd.DataFrame] = field(default_factory=list)
     lives: list[dict[str, Any]] = field(default_factory=list)
     rows: list[dict[str, Any]] = field(default_factory=list)
@@ -211,9 +204,8 @@ def _scan_file(path: Path, rank: int, pid: int, name: str, ph: tf.ProcessHeader,
                 "error": (r["flags"][cons] & tf.FLAG_ERROR) != 0}))
             if member.any():
                 mr = recs[member]
-                members.append(pd.DataFrame({"rank": rank, "batch_id": mr["batch_id"].astype(np.int64),
-                                             "sample_id": mr["sample_id"].astype(np.int64),
-                                             "ready_s": end_ns[member] / 1e9, "epoch": mr["epoch"].astype(np.int64)}))
+                members.append({"rank": np.full(len(mr), rank, np.int32), "batch_id": mr["batch_id"].astype(np.int32),
+                                "sample_id": mr["sample_id"].astype(np.int64), "ready_s": end_ns[member] / 1e9})
             if k:
                 threads.append(_thread_piece(r, s0, s1, rank, pid, at))
             at += len(recs)
@@ -274,22 +266,35 @@ def _count_problems(path: Path, counts: np.ndarray, problems: _rf.Problems) -> N
 def _assemble(root: Path, first: dict[str, Any], axis: _rf.TimeAxis, files: list[_File], got: _Gather,
               resources: pd.DataFrame, problems: list[str]) -> RunScan:
     """The per-batch tables of the whole run, built as :func:`pipeprobe.load.load` builds them."""
-    cols = ["rank", "batch_id", "sample_id", "ready_s", "epoch"]
-    samples = (pd.concat(got.members, ignore_index=True) if got.members
-               else pd.DataFrame({c: np.zeros(0, float if c == "ready_s" else np.int64) for c in cols}))
+    samples, median = _membership(got.members)
     consumer = (pd.concat(got.consumer, ignore_index=True) if got.consumer else
                 pd.DataFrame({"stage": [], "start_s": [], "end_s": [], "batch_id": [], "epoch": [], "rank": [],
                               "error": []}))
     consumer["stage"] = consumer["stage"].astype("category")
-    batches = _batches(consumer, samples)
+    batches = _batches(consumer, pd.DataFrame({c: samples[c].to_numpy(np.int64) for c in ("rank", "batch_id")}))
     processes = pd.DataFrame(got.rows, columns=["pid", "ppid", "rank", "role", "host", "spans", "file"])
     slots = worker_slots(pd.DataFrame(got.lives, columns=["rank", "pid", "role", "start_s", "end_s"]))
     processes["slot"] = [slots.get((int(r), int(p)), 0) for r, p in zip(processes["rank"], processes["pid"], strict=True)]
     threads = _thread_table(got.threads, files)
     return RunScan(root=root, header=first, axis=axis, files=files, batches=batches,
-                   samples=samples[["rank", "batch_id", "sample_id", "ready_s"]], processes=processes,
+                   samples=samples, batch_samples=median, processes=processes,
                    threads=threads, resources=resources, problems=problems, spans=got.spans,
                    last_end_s=(got.last_end_ns / 1e9) if got.last_end_ns is not None else 0.0)
+
+
+def _membership(members: list[dict[str, np.ndarray]]) -> tuple[pd.DataFrame, float]:
+    """The membership rows sorted by ``ready_s`` (stable), ``pos`` their place in the files' order, in narrow
+    types (about 28 bytes a row; ``pieces`` is emptied as it is read); and the median of samples per batch."""
+    dtypes = {"rank": np.int32, "batch_id": np.int32, "sample_id": np.int64, "ready_s": np.float64}
+    cols = {c: np.concatenate([m.pop(c) for m in members]) if members else np.zeros(0, t) for c, t in dtypes.items()}
+    members.clear()
+    key = cols["rank"].astype(np.int64) * (1 << 33) + cols["batch_id"] + 1
+    median = float(np.median(np.unique(key, return_counts=True)[1])) if len(key) else 0.0
+    del key
+    order = np.argsort(cols["ready_s"], kind="stable")
+    cols = {c: v[order] for c, v in cols.items()}
+    cols["pos"] = order.astype(np.int32 if len(order) < (1 << 31) else np.int64)
+    return pd.DataFrame(cols, copy=False), median
 
 
 def _thread_table(pieces: list[pd.DataFrame], files: list[_File]) -> pd.DataFrame:
@@ -347,9 +352,50 @@ def read_range(scan: RunScan, lo_s: float, hi_s: float, link_hi_s: float | None 
     files = [f for f in scan.files if thread is None or (f.rank, f.pid) == thread[:2]]
     parts = [(f.rank, f.pid, f.header, _file_range(f, scan.axis, lo_ns, hi_ns, thread)) for f in files]
     cols = _span_columns(parts)
-    sm = scan.samples
     top = hi_s if link_hi_s is None else link_hi_s
-    ready = sm["ready_s"].to_numpy(np.float64)
-    samples = sm[(ready >= lo_s) & (ready <= top)]
+    samples = _samples_between(scan.samples, lo_s, top)
     _link(cols, samples, scan.batches)
     return scan.run(_time_ordered_frame(cols), samples)
+
+
+def _samples_between(sm: pd.DataFrame, lo_s: float, hi_s: float) -> pd.DataFrame:
+    """The membership rows ready in ``[lo_s, hi_s]`` as :func:`pipeprobe.load.load` has them: in the files'
+    order, with their row numbers there as index, 64-bit."""
+    ready = sm["ready_s"].to_numpy(np.float64)
+    a, b = np.searchsorted(ready, lo_s, side="left"), np.searchsorted(ready, hi_s, side="right")
+    pos = sm["pos"].to_numpy()[a:b]
+    order = np.argsort(pos, kind="stable")
+    return pd.DataFrame({c: sm[c].to_numpy()[a:b][order].astype(np.float64 if c == "ready_s" else np.int64)
+                         for c in ("rank", "batch_id", "sample_id", "ready_s")}, index=pos[order].astype(np.int64))
+
+
+#: Membership rows searched at once for the first delivery of a span's sample (bounds that search's memory).
+SEARCH_ROWS = 1 << 20
+
+
+def latest_first_delivery(scan: RunScan, end_s: np.ndarray, rank: np.ndarray, sample_id: np.ndarray) -> float:
+    """Per span (its end, rank and sample), the first membership row of its sample ready at or after it ended,
+    as :func:`pipeprobe.load.load` links them: the latest of their ready times (-inf when none).
+
+    The rows are searched :data:`SEARCH_ROWS` at a time from the earliest end on, each span until its row
+    is found: the first match in a stretch of rows in delivery order is the first of all, as no earlier row
+    was left out.
+    """
+    sm = scan.samples
+    ready = sm["ready_s"].to_numpy(np.float64)
+    left = pd.DataFrame({"end_s": end_s, "rank": rank.astype(np.int32),
+                         "sample_id": sample_id.astype(np.int64)}).sort_values("end_s", kind="stable")
+    latest, a = -np.inf, 0
+    while len(left):
+        a = max(a, int(np.searchsorted(ready, left["end_s"].iloc[0], side="left")))
+        if a >= len(ready):
+            break
+        b = min(len(ready), a + SEARCH_ROWS)
+        got = pd.merge_asof(left, sm.iloc[a:b], left_on="end_s", right_on="ready_s", by=["rank", "sample_id"],
+                            direction="forward")["ready_s"].to_numpy(np.float64)
+        found = ~np.isnan(got)
+        if found.any():
+            latest = max(latest, float(got[found].max()))
+        left = left.iloc[np.flatnonzero(~found)]
+        a = b
+    return latest

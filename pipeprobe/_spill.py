@@ -16,6 +16,7 @@ one group.
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Iterator
 
 import numpy as np
 
@@ -95,6 +96,37 @@ class Spill:
                     chunks.append(np.fromfile(f, dtype=dt, count=n))
             out[c] = np.concatenate(chunks) if chunks else np.zeros(0, dt)
         return out
+
+
+    def parts(self) -> Iterator[dict[str, np.ndarray]]:
+        """Each part's rows (by key within it, as appended), from the last part appended to the first."""
+        for keys, first, counts in reversed(self._parts):
+            a, n = int(first[0]), int(counts.sum())
+            yield {"key": np.repeat(keys, counts), **{c: self._range(c, a, n) for c in self._paths}}
+
+    def column(self, name: str) -> np.ndarray:
+        """One column of every row, the parts from the last appended to the first."""
+        got = [self._range(name, int(first[0]), int(counts.sum())) for _, first, counts in reversed(self._parts)]
+        return np.concatenate(got) if got else np.zeros(0, self._dtypes[name])
+
+    def remove(self) -> None:
+        """Delete the files (the spill is empty and unusable afterwards)."""
+        for path in self._paths.values():
+            path.unlink(missing_ok=True)
+        self._parts.clear()
+        self._counts.clear()
+        self._rows = 0
+
+    @property
+    def rows(self) -> int:
+        """Rows appended, over all parts."""
+        return self._rows
+
+    def _range(self, name: str, first: int, count: int) -> np.ndarray:
+        dt = self._dtypes[name]
+        with open(self._paths[name], "rb") as f:
+            f.seek(first * dt.itemsize)
+            return np.fromfile(f, dtype=dt, count=count)
 
 
 def _runs(part: tuple[np.ndarray, np.ndarray, np.ndarray], want: np.ndarray) -> list[tuple[int, int, np.ndarray]]:

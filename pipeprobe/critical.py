@@ -65,6 +65,9 @@ class CriticalPath:
     the first time :attr:`path` is read (a full epoch's path has millions
     of nodes; until then it keeps a reference to the timeline); :attr:`node_count`,
     :attr:`batches`, :attr:`length_s` and :attr:`head_s` are answered without them.
+    From :func:`pipeprobe.sliced.analyze_sliced`, :attr:`path` and :attr:`segments`
+    are read from files on disk the first time they are read (a ``store``, see
+    :mod:`pipeprobe._pathspill`).
 
     Attributes
     ----------
@@ -82,33 +85,50 @@ class CriticalPath:
         The run's time axis (from the timeline).
     """
 
-    __slots__ = ("_path", "_timeline", "_ids", "segments", "shares", "lanes", "origin_s", "end_s")
+    __slots__ = ("_path", "_timeline", "_ids", "_segments", "_store", "shares", "lanes", "origin_s", "end_s")
 
     def __init__(self, path: pd.DataFrame | None = None, segments: pd.DataFrame | None = None,
                  shares: pd.DataFrame | None = None, lanes: pd.DataFrame | None = None, origin_s: float = 0.0,
-                 end_s: float = 0.0, *, timeline: Timeline | None = None, ids: np.ndarray | None = None) -> None:
-        if (path is None) == (ids is None) or segments is None or shares is None or lanes is None:
-            raise TypeError("CriticalPath takes path (or timeline and ids), segments, shares and lanes")
-        self._path, self._timeline, self._ids = path, timeline, ids
-        self.segments, self.shares, self.lanes = segments, shares, lanes
+                 end_s: float = 0.0, *, timeline: Timeline | None = None, ids: np.ndarray | None = None,
+                 store: Any = None) -> None:
+        given = store is not None or ((path is None) != (ids is None) and segments is not None)
+        if not given or shares is None or lanes is None:
+            raise TypeError("CriticalPath takes path (or timeline and ids, or a store), segments, shares and lanes")
+        self._path, self._timeline, self._ids, self._store = path, timeline, ids, store
+        self._segments = segments
+        self.shares, self.lanes = shares, lanes
         self.origin_s, self.end_s = float(origin_s), float(end_s)
 
     @property
     def path(self) -> pd.DataFrame:
-        """See the class docstring (taken from the timeline on first read)."""
+        """See the class docstring (taken from the timeline, or the store, on first read)."""
         if self._path is None:
-            self._path = self._timeline.node_rows(self._ids)
-            self._timeline = None
+            if self._store is not None:
+                self._path = self._store.path()
+            else:
+                self._path = self._timeline.node_rows(self._ids)
+                self._timeline = None
         return self._path
+
+    @property
+    def segments(self) -> pd.DataFrame:
+        """See the class docstring (built from the store on first read)."""
+        if self._segments is None:
+            self._segments = self._store.segments()
+        return self._segments
 
     @property
     def node_count(self) -> int:
         """Nodes on the path (``len(path)``), without building it."""
-        return len(self._ids) if self._path is None else len(self._path)
+        if self._path is not None:
+            return len(self._path)
+        return self._store.node_count if self._store is not None else len(self._ids)
 
     def _column(self, name: str) -> np.ndarray:
         if self._path is not None:
             return self._path[name].to_numpy()
+        if self._store is not None:
+            return self._store.column(name)
         return self._timeline.node_column(name)[self._ids]
 
     def __repr__(self) -> str:
@@ -222,16 +242,21 @@ def path_attribution(path: pd.DataFrame, ids: np.ndarray, origin: float,
     keep = seg.pop("seconds") > 0
     for k in list(seg):  # a column at a time: a long path's pieces are never held twice over
         seg[k] = seg[k][keep]
-    segments = pd.DataFrame({
+    segments = segment_frame(seg, names)
+    codes = pd.DataFrame({c: seg.pop(c) for c in ("label", "kind", "side", "lane")},
+                         copy=False).assign(seconds=segments["seconds"])
+    shares, lanes = _attribute_codes(codes, names, end - origin)
+    return segments, shares, lanes
+
+
+def segment_frame(seg: dict[str, np.ndarray], names: list[str]) -> pd.DataFrame:
+    """:attr:`CriticalPath.segments` from the arrays of its pieces of more than no time (text as codes into ``names``)."""
+    return pd.DataFrame({
         "start_s": seg["start_s"], "end_s": seg["end_s"], "seconds": seg["end_s"] - seg["start_s"],
         **{c: text_column(seg[c], names) for c in ("label", "kind", "side")},
         "node": seg["node"], "lane": text_column(seg["lane"], names),
         "batch_id": seg["batch_id"], "sample_id": seg["sample_id"],
     }, copy=False)  # fresh arrays: no second copy
-    codes = pd.DataFrame({c: seg.pop(c) for c in ("label", "kind", "side", "lane")},
-                         copy=False).assign(seconds=segments["seconds"])
-    shares, lanes = _attribute_codes(codes, names, end - origin)
-    return segments, shares, lanes
 
 
 def attribute(segments: pd.DataFrame, wall: float) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -267,37 +292,61 @@ def _segment_arrays(path: pd.DataFrame, ids: np.ndarray, origin: float, end: flo
     """The pieces tiling ``[origin, end]``, as arrays: per path node the wait before it (a gap, or the
     delivery before a delivery node) and the node itself, then the tail after the last node. Text
     columns are codes into ``names`` (see :mod:`pipeprobe._coded`)."""
-    names = Names([GAP, DELIVERY, "gap", "delivery", ""])
+    names = segment_names()
     k = len(path)
-    ready = path["ready_s"].to_numpy(np.float64)
-    start = path["start_s"].to_numpy(np.float64)
-    stop = path["end_s"].to_numpy(np.float64)
-    kind = names.recode(*codes_of(path["kind"])) if k else np.zeros(0, np.int64)
-    stage = names.recode(*codes_of(path["stage"])) if k else np.zeros(0, np.int64)
-    side = names.recode(*codes_of(path["side"])) if k else np.zeros(0, np.int64)
-    lane = names.recode(*codes_of(path["lane"])) if k else np.zeros(0, np.int64)
-    is_deliv = kind == names.code("delivery")
-    tail_start = float(stop[-1]) if k else origin
+    coded = {c: names.recode(*codes_of(path[c])) if k else np.zeros(0, np.int64) for c in ("kind", "stage", "side", "lane")}
+    cols = {c: path[c].to_numpy(np.float64) for c in ("ready_s", "start_s", "end_s")}
+    cols |= {c: path[c].to_numpy(np.int64) for c in ("batch_id", "sample_id")}
+    pieces = node_pieces(cols | coded, ids, names)
+    tail = tail_piece(float(cols["end_s"][-1]) if k else origin, end, names)
+    out: dict[str, Any] = {c: np.concatenate([v, tail[c]]) for c, v in pieces.items()}
+    out["names"] = names.names
+    return out
 
-    def pairs(before: Any, at: np.ndarray, tail: Any) -> np.ndarray:
-        """Per node ``before`` then ``at``; then ``tail``."""
-        both = np.column_stack([np.broadcast_to(before, (k,)), at]) if k else np.zeros((0, 2), at.dtype)
-        return np.concatenate([both.ravel(), np.asarray([tail], both.dtype)])
+
+def segment_names() -> Names:
+    """The names the pieces' text columns start from (the codes of :func:`node_pieces` and :func:`tail_piece`)."""
+    return Names([GAP, DELIVERY, "gap", "delivery", ""])
+
+
+def node_pieces(cols: dict[str, np.ndarray], ids: np.ndarray, names: Names) -> dict[str, np.ndarray]:
+    """Per path node, the wait before it and the node itself: two rows of :data:`SEGMENT_COLUMNS` (``seconds``
+    included, pieces of no time too), the text columns as codes into ``names`` (from :func:`segment_names`).
+
+    ``cols`` holds the nodes' ``ready_s, start_s, end_s, batch_id, sample_id`` and their ``kind, stage, side,
+    lane`` as codes into ``names``; ``ids`` their node ids. Each node's rows depend on that node alone, so
+    the path's pieces are those of its parts, one after another (:mod:`pipeprobe._pathspill`).
+    """
+    k = len(ids)
+    kind, lane = cols["kind"], cols["lane"]
+    is_deliv = kind == names.code("delivery")
+
+    def pairs(before: Any, at: np.ndarray) -> np.ndarray:
+        """Per node ``before`` then ``at``."""
+        return np.column_stack([np.broadcast_to(before, (k,)), at]).ravel() if k else np.zeros(0, np.asarray(at).dtype)
 
     wait_kind = np.where(is_deliv, names.code("delivery"), names.code("gap"))
-    seg_start = pairs(ready, start, tail_start)
-    seg_end = pairs(start, stop, end)
+    seg_start = pairs(cols["ready_s"], cols["start_s"])
+    seg_end = pairs(cols["start_s"], cols["end_s"])
     return {
         "start_s": seg_start, "end_s": seg_end, "seconds": seg_end - seg_start,
-        "label": pairs(np.where(is_deliv, names.code(DELIVERY), names.code(GAP)), stage, names.code(GAP)),
-        "kind": pairs(wait_kind, kind, names.code("gap")),
-        "side": pairs(wait_kind, side, names.code("gap")),
-        "node": pairs(ids, ids, -1),
-        "lane": pairs(np.where(is_deliv, lane, names.code("")), lane, names.code("")),
-        "batch_id": pairs(path["batch_id"].to_numpy(np.int64), path["batch_id"].to_numpy(np.int64), -1),
-        "sample_id": pairs(path["sample_id"].to_numpy(np.int64), path["sample_id"].to_numpy(np.int64), -1),
-        "names": names.names,
+        "label": pairs(np.where(is_deliv, names.code(DELIVERY), names.code(GAP)), cols["stage"]),
+        "kind": pairs(wait_kind, kind),
+        "side": pairs(wait_kind, cols["side"]),
+        "node": pairs(ids, ids),
+        "lane": pairs(np.where(is_deliv, lane, names.code("")), lane),
+        "batch_id": pairs(cols["batch_id"], cols["batch_id"]),
+        "sample_id": pairs(cols["sample_id"], cols["sample_id"]),
     }
+
+
+def tail_piece(start: float, end: float, names: Names) -> dict[str, np.ndarray]:
+    """The piece after the last node (from ``start``, the end of the last node, to the end of the run): a gap."""
+    gap = names.code(GAP)
+    return {"start_s": np.array([start]), "end_s": np.array([end]), "seconds": np.array([end]) - np.array([start]),
+            "label": np.array([gap]), "kind": np.array([names.code("gap")]), "side": np.array([names.code("gap")]),
+            "node": np.array([-1]), "lane": np.array([names.code("")]), "batch_id": np.array([-1]),
+            "sample_id": np.array([-1])}
 
 
 def critical_path_length(timeline: Timeline) -> float:

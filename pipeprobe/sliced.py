@@ -24,23 +24,30 @@ while holding the spans of one slice at a time. The steps:
     walk checks itself: a dependency that ends before the context read, or
     none where context was cut off, means the context was too short, and
     the slice is read again with four times the context (at most the whole
-    run before it);
+    run before it). Each slice's path nodes go to files in a temporary
+    folder as the walk finds them (:mod:`pipeprobe._pathspill`);
+``path sums``
+    the shares per label and per thread, the stage table's seconds on the
+    path and the stall blame are worked out from those files a slice's
+    nodes at a time, in path order, adding up as the whole path's are added;
 ``stage table``
     each slice's own spans (stage, duration, CPU time) and the pieces of
     their innermost stages (label, sample, thread, start, duration) go to
-    files in a temporary folder (:mod:`pipeprobe._spill`), deleted at the
-    end, also on an error; the table is then built a group of whole stages
+    files in the same folder (:mod:`pipeprobe._spill`), deleted once the
+    table is built; the table is built a group of whole stages
     at a time (about :data:`pipeprobe._spill.GROUP_ROWS` rows), each stage's
     numbers read back in the whole run's order and laid out so that pandas
     adds them up as it adds the whole run's (:mod:`pipeprobe._grouplayout`):
     the sums, percentiles and slowest samples are those of the whole run.
 
-What is kept in memory across slices: the per-batch tables (waits, steps,
-membership rows), the nodes of the critical path (a result: one node in a
-few spans), and the index of the spilled numbers. The dependency timeline
-(its nodes and edges, several hundred bytes a span) exists for one slice
-at a time; the stage table's numbers (about 50 bytes a span on disk) for
-one group of stages at a time.
+What is kept in memory across slices: the per-batch tables (waits, steps;
+the membership rows, about 28 bytes a sample, until the walk ends) and the
+index of the files. The dependency timeline (its nodes and edges, several
+hundred bytes a span) exists for one slice at a time; the stage table's
+numbers for one group of stages at a time (a stage larger than a group:
+all its numbers at once). The path's files stay until the analysis is
+closed (:meth:`SlicedAnalysis.close`, a ``with`` block) or garbage-collected:
+``critical.path`` and ``critical.segments`` are built from them when read.
 """
 
 from __future__ import annotations
@@ -53,18 +60,26 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from pandas.api.types import union_categoricals
 
 from ._grouplayout import Blocks, PieceLayout
+from ._pathspill import NUMBERED, TEXT, PathStore
 from ._progress import progress, step
-from ._slicereader import RunScan, read_range, scan_run
+from ._slicereader import RunScan, latest_first_delivery, read_range, scan_run
 from ._spill import Spill, key_groups
-from .critical import PACE_SPEEDUP, CriticalPath, path_attribution
+from .critical import PACE_SPEEDUP, CriticalPath
 from .lanes import thread_lanes
 from .load import Run
 from .nesting import span_pieces
-from .stagestats import SATURATED_FROM, StageStats, _more_workers, _slowest, _table, core_busy_during_stalls
-from .stalls import Stalls, stall_summary
+from .stagestats import (
+    SATURATED_FROM,
+    StageStats,
+    _more_workers,
+    _own_time,
+    _slowest,
+    _table,
+    core_busy_during_stalls,
+)
+from .stalls import Stalls, summarise_stalls
 from .timeline import NODE_COLUMNS, Timeline, build_timeline, sink_node
 
 __all__ = ["SlicedAnalysis", "analyze_sliced", "slice_edges", "SLICE_SPANS", "slice_batches_for", "AUTO_SLICE_SPANS"]
@@ -89,7 +104,11 @@ class SlicedAnalysis:
         a time, and the membership rows are freed before the stage table is built).
     critical : CriticalPath
         The critical path (``path`` holds its nodes; ``node`` and ``pred``
-        number them along the path) and its attribution.
+        number them along the path) and its attribution. ``path`` and
+        ``segments`` are read from files in a temporary folder (under
+        ``TMPDIR``) when first read; :meth:`close` (or a ``with`` block)
+        deletes the files, as does the garbage collector once the critical
+        path is no longer referenced.
     stalls : Stalls
     stages : StageStats
     slices : int
@@ -109,6 +128,20 @@ class SlicedAnalysis:
     def wall_s(self) -> float:
         """Wall time of the run."""
         return self.critical.wall_s
+
+    def close(self) -> None:
+        """Delete the files that hold the critical path's nodes (``critical.path`` and ``critical.segments``
+        are built from them when first read; afterwards reading one not yet read raises ValueError). Also done
+        at the end of a ``with`` block, when the critical path is garbage-collected, and at exit."""
+        store = self.critical._store
+        if store is not None:
+            store.close()
+
+    def __enter__(self) -> SlicedAnalysis:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
 
     def stage_shares(self) -> dict[str, float]:
         """Critical-path share of wall time per label, as :meth:`pipeprobe.Analysis.stage_shares`."""
@@ -156,7 +189,7 @@ class _Walk:
     """The join state of the critical path at a slice edge: the node to continue from, and the nodes so far."""
 
     key: tuple | None  # (kind, stage, rank, pid, tid, start_s, end_s) of the next node, None when done
-    rows: list[dict]  # per slice the path nodes it owns, a column each (text as categories)
+    store: PathStore  # per slice the path nodes it owns, on disk
     origin_s: float = 0.0
     end_s: float = 0.0
 
@@ -216,22 +249,39 @@ def analyze_sliced(run_dir: str | os.PathLike, *, slice_batches: int | None = No
     scheduling (the critical path method: a longest path is a chain of
     last-arriving dependencies, so it can be followed back piece by piece).
     """
-    with progress("analysis in slices"), tempfile.TemporaryDirectory(prefix="pipeprobe-slices-") as folder:
-        step("reading the run's index")
-        scan = scan_run(Path(run_dir))
-        if slice_batches is None:
-            slice_batches = slice_batches_for(scan.spans, len(scan.batches))
-        edges = slice_edges(scan.batches, slice_batches)
-        walk, kept = _walk_slices(scan, edges, Path(folder))
-        step("critical path, stalls and stage table")
-        scan._by_ready = None  # the membership rows by delivery served the slices' links
-        run = scan.run(_empty_spans())
-        critical = _joined_path(walk)
-        stalls = stall_summary(_with_per_batch_stages(run, kept), critical, warmup_batches=warmup_batches)
-        # the membership rows (tens of bytes a sample) served the links and the stalls: free them first
-        run = scan.run(_empty_spans(), scan.samples.iloc[:0])
-        scan.samples = scan.samples.iloc[:0]
-        stages = _stage_table(run, critical, stalls, kept)
+    store = PathStore(Path(tempfile.mkdtemp(prefix="pipeprobe-slices-")))
+    try:
+        with progress("analysis in slices"):
+            return _analyse(Path(run_dir), slice_batches, warmup_batches, store)
+    except BaseException:
+        store.close()  # the files go now, not when the traceback is freed
+        raise
+
+
+def _analyse(run_dir: Path, slice_batches: int | None, warmup_batches: int | None, store: PathStore) -> SlicedAnalysis:
+    """The steps of :func:`analyze_sliced`; the path's files stay in ``store.folder``, the stage table's are
+    deleted when it is built."""
+    step("reading the run's index")
+    scan = scan_run(run_dir)
+    if slice_batches is None:
+        slice_batches = slice_batches_for(scan.spans, len(scan.batches))
+    edges = slice_edges(scan.batches, slice_batches)
+    walk, kept = _walk_slices(scan, edges, store)
+    step("critical path, stalls and stage table")
+    # the membership rows (about 28 bytes a sample) served the slices' links: the stalls need only their count
+    # and the median of samples per batch
+    samples = len(scan.samples)
+    scan.samples = scan.samples.iloc[:0]
+    run = scan.run(_empty_spans(), _empty_samples())
+    critical, crit, inputs = _spilled_path(walk)
+    pairs = store.stall_pairs if store.piece_count else None
+    stalls = summarise_stalls(_with_per_batch_stages(run, kept, samples, scan.batch_samples), critical.wall_s, pairs,
+                              warmup_batches=warmup_batches)
+    try:
+        stages = _stage_table(run, critical, stalls, kept, crit, inputs)
+    finally:
+        kept.spans.remove()
+        kept.pieces.remove()
     return SlicedAnalysis(run=run, critical=critical, stalls=stalls, stages=stages, slices=len(edges) - 1,
                           rereads=kept.rereads)
 
@@ -242,10 +292,16 @@ def _empty_spans() -> pd.DataFrame:
     return empty()
 
 
-def _walk_slices(scan: RunScan, edges: np.ndarray, folder: Path) -> tuple[_Walk, _Kept]:
-    """Read the slices from the last to the first; walk the path back and keep the stage-table numbers (in
-    files under ``folder``)."""
-    walk = _Walk(key=_SINK, rows=[], origin_s=0.0, end_s=_run_wall(scan))
+def _empty_samples() -> pd.DataFrame:
+    return pd.DataFrame({c: np.zeros(0, np.float64 if c == "ready_s" else np.int64)
+                         for c in ("rank", "batch_id", "sample_id", "ready_s")})
+
+
+def _walk_slices(scan: RunScan, edges: np.ndarray, store: PathStore) -> tuple[_Walk, _Kept]:
+    """Read the slices from the last to the first; walk the path back and keep the path's nodes and the
+    stage-table numbers (in files under ``store.folder``)."""
+    folder = store.folder
+    walk = _Walk(key=_SINK, store=store, origin_s=0.0, end_s=_run_wall(scan))
     kept = _Kept(spans=Spill(folder, "spans", {"dur_s": np.float64, "cpu_s": np.float64}),
                  pieces=Spill(folder, "pieces", _PIECE_DTYPES), pairs=set(), span_blocks=Blocks(),
                  layout=PieceLayout(),
@@ -294,12 +350,8 @@ def _latest_delivery(scan: RunScan, sp: pd.DataFrame, own: np.ndarray) -> float:
     unlinked = own & (batch < 0) & (sp["sample_id"].to_numpy() >= 0)
     latest = -np.inf
     if unlinked.any():  # the first membership row of the sample at or after the span ended, as load links it
-        left = pd.DataFrame({"end_s": sp["end_s"].to_numpy()[unlinked], "rank": rank[unlinked],
-                             "sample_id": sp["sample_id"].to_numpy(np.int64)[unlinked]}).sort_values("end_s")
-        j = pd.merge_asof(left, scan.samples_by_ready, left_on="end_s", right_on="ready_s",
-                          by=["rank", "sample_id"], direction="forward")
-        if j["ready_s"].notna().any():
-            latest = float(j["ready_s"].max())
+        latest = latest_first_delivery(scan, sp["end_s"].to_numpy(np.float64)[unlinked], rank[unlinked],
+                                       sp["sample_id"].to_numpy(np.int64)[unlinked])
     linked = own & (batch >= 0)
     if linked.any():
         bt = scan.batches
@@ -358,13 +410,11 @@ def _walk_back(walk: _Walk, tl: Timeline, edges: np.ndarray, k: int, context: in
     if ids is None:
         return False
     take = np.asarray(ids[::-1], np.int64)
-    rows = {c: nodes[c].array.take(take) for c in NODE_COLUMNS if c not in (*_NUMBERED, "lane")}
-    rows = {c: v if c in _TEXT else np.asarray(v) for c, v in rows.items()}
-    names = sorted(set(lanes.values()) | {""})
-    rows["lane"] = pd.Categorical.from_codes([names.index(lanes.get((int(r), int(p), int(t)), "")) for r, p, t in
-                                              zip(rows["rank"], rows["pid"], rows["tid"], strict=True)],
-                                             categories=names)
-    walk.rows.append(rows)
+    rows = {c: nodes[c].array.take(take) for c in NODE_COLUMNS if c not in (*NUMBERED, "lane")}
+    rows = {c: v if c in TEXT else np.asarray(v) for c, v in rows.items()}
+    rows["lane"] = [lanes.get((int(r), int(p), int(t)), "") for r, p, t in
+                    zip(rows["rank"], rows["pid"], rows["tid"], strict=True)]
+    walk.store.append(rows)
     return True
 
 
@@ -427,42 +477,14 @@ def _run_wall(scan: RunScan) -> float:
     return max(0.0, scan.last_end_s) if scan.spans else 0.0
 
 
-#: The text columns of the path's nodes (categories in the path, object arrays in the walk).
-_TEXT = ("kind", "stage", "side", "lane")
-#: Node columns the joined path numbers anew (not kept during the walk).
-_NUMBERED = ("node", "pred", "span")
-
-
-def _joined_column(parts: list, text: bool) -> np.ndarray | pd.Categorical:
-    """One column of the path from its pieces: numbers joined, text as categories of the names used (sorted)."""
-    if not text:
-        return np.concatenate(parts)
-    joined = union_categoricals(parts, sort_categories=True).remove_unused_categories()
-    return pd.Categorical.from_codes(joined.codes, categories=pd.Index(joined.categories).astype(str))
-
-
-def _joined_path(walk: _Walk) -> CriticalPath:
-    """The critical path from the joined nodes, with the attribution of :func:`pipeprobe.critical.critical_path`.
-
-    The path of a long run is one node in a few of its spans: it is joined a column at a time, each column's
-    pieces freed once joined, and attributed from its rows (no second copy of them).
-    """
-    parts = walk.rows[::-1]
-    walk.rows.clear()
-    n = sum(len(p["start_s"]) for p in parts)
-    numbered = {"node": np.arange(n, dtype=np.int64), "pred": np.arange(n, dtype=np.int64) - 1,
-                "span": np.full(n, -1, np.int64)}  # the path alone, numbered along it
-    if not parts:
-        path = pd.DataFrame({c: [] for c in NODE_COLUMNS})
-        for c in _TEXT:
-            path[c] = path[c].astype(str).astype("category")
-        path = path.assign(**numbered)
-    else:
-        path = pd.DataFrame({c: numbered[c] if c in _NUMBERED else _joined_column([p.pop(c) for p in parts], c in _TEXT)
-                             for c in NODE_COLUMNS}, copy=False)
-    segments, shares, lanes = path_attribution(path, path["node"].to_numpy(), walk.origin_s, walk.end_s)
-    return CriticalPath(path=path, segments=segments, shares=shares, lanes=lanes, origin_s=walk.origin_s,
-                        end_s=walk.end_s)
+def _spilled_path(walk: _Walk) -> tuple[CriticalPath, pd.Series | None, set[str]]:
+    """The critical path from its nodes on disk, with the attribution of :func:`pipeprobe.critical.critical_path`;
+    and for the stage table its seconds per label and its input stages (:meth:`PathStore.attribution`)."""
+    store = walk.store
+    store.origin_s, store.end_s = walk.origin_s, walk.end_s
+    shares, lanes, crit, inputs = store.attribution()
+    return (CriticalPath(shares=shares, lanes=lanes, origin_s=walk.origin_s, end_s=walk.end_s, store=store),
+            crit, inputs)
 
 
 def _codes(kept: _Kept, column: pd.Series) -> np.ndarray:
@@ -528,18 +550,25 @@ def _keep_per_batch(kept: _Kept, sp: pd.DataFrame, own: np.ndarray) -> None:
     kept.per_batch = f[~f["stage"].isin(kept.repeated)].drop_duplicates()
 
 
-def _with_per_batch_stages(run: Run, kept: _Kept) -> Run:
-    """``run`` with stand-in spans from which stalls finds the same per-batch stages as from all spans.
+def _with_per_batch_stages(run: Run, kept: _Kept, samples: int, batch_samples: float) -> Run:
+    """``run`` with stand-in spans and membership rows from which stalls finds the same per-batch stages as
+    from all of them.
 
     :func:`pipeprobe.stalls.stall_summary` reads the spans only for the
     stages timed once per batch: one row per stage seen with a batch and a
-    sample, two alike for a stage seen twice in one batch.
+    sample, two alike for a stage seen twice in one batch; and the
+    membership rows only for whether there are any and whether the median
+    batch holds more than one sample (``samples`` rows, ``batch_samples``
+    the median): none, one row, or two of one batch.
     """
     names = sorted(kept.seen) + sorted(kept.repeated)
     n = len(names)
     spans = pd.DataFrame({"stage": names, "rank": np.zeros(n, np.int64), "batch_id": np.zeros(n, np.int64),
                           "sample_id": np.zeros(n, np.int64)})
-    return Run(run_dir=run.run_dir, header=run.header, spans=spans, batches=run.batches, samples=run.samples,
+    rows = 0 if not samples else 1 if batch_samples <= 1 else 2
+    members = pd.DataFrame({"rank": np.zeros(rows, np.int64), "batch_id": np.zeros(rows, np.int64),
+                            "sample_id": np.arange(rows, dtype=np.int64), "ready_s": np.zeros(rows)})
+    return Run(run_dir=run.run_dir, header=run.header, spans=spans, batches=run.batches, samples=members,
                resources=run.resources, processes=run.processes, problems=run.problems, clock=run.clock,
                t0_ns=run.t0_ns)
 
@@ -549,7 +578,8 @@ _PIECE_DTYPES = {"label": np.int32, "sample_id": np.int64, "thread": np.int32,
                  "start_s": np.float64, "dur_s": np.float64}
 
 
-def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept) -> StageStats:
+def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept, crit: pd.Series | None,
+                 inputs: set[str]) -> StageStats:
     """The stage table and slowest samples from the kept numbers, read back a group of stages at a time.
 
     Each group holds whole stages and the whole labels of their time, each stage's spans in run order and its
@@ -567,10 +597,10 @@ def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept) 
         if not group and tables:
             break  # the empty group gives the empty table's columns when there is no stage at all
         pieces = _group_pieces(kept, group, names, labels, stages_rising)
-        tables.append(_group_table(run, critical, names, _group_spans(kept, group), pieces))
-        slow = _slowest(pieces)
+        own, slow = _own_time(pieces), _slowest(pieces)
+        del pieces  # the spans' numbers are read once the pieces' are freed: one of the two in memory at a time
+        tables.append(_group_table(run, crit, critical.wall_s, names, _group_spans(kept, group), own))
         slowest.append(slow[slow["stage"] != labels[1][-1]])
-        del pieces
     table = pd.concat([t for t in tables if len(t)] or tables[-1:], ignore_index=True)
     table = table.sort_values(["total_s", "stage"], ascending=[False, True], kind="stable").reset_index(drop=True)
     slow = pd.concat([t for t in slowest if len(t)] or slowest[-1:], ignore_index=True)
@@ -579,7 +609,7 @@ def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept) 
     busy = core_busy_during_stalls(run)
     saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
     input_on = critical.input_share >= 1.0 - 1.0 / PACE_SPEEDUP
-    more, why = _more_workers(run, stalls, input_on, busy, cores, table, critical)
+    more, why = _more_workers(run, stalls, input_on, busy, cores, table, inputs)
     return StageStats(table=table, slowest=slow, cores=cores, core_busy_in_stalls=busy,
                       cores_saturated=saturated, more_workers=more, more_workers_reason=why)
 
@@ -642,11 +672,11 @@ def _group_pieces(kept: _Kept, group: list[int], names: np.ndarray, labels: tupl
     }, copy=False)
 
 
-def _group_table(run: Run, critical: CriticalPath, names: np.ndarray, spans: dict[str, np.ndarray],
-                 pieces: pd.DataFrame) -> pd.DataFrame:
-    """The stage table's rows of the stages of one group, from their spans and pieces."""
+def _group_table(run: Run, crit: pd.Series | None, wall_s: float, names: np.ndarray, spans: dict[str, np.ndarray],
+                 own: pd.DataFrame) -> pd.DataFrame:
+    """The stage table's rows of the stages of one group, from their spans and their pieces' own time."""
     frame = pd.DataFrame({"stage": pd.Categorical.from_codes(spans.pop("key"), categories=names),
                           "dur_s": spans.pop("dur_s"), "cpu_s": spans.pop("cpu_s")}, copy=False)
     light = Run(run_dir=run.run_dir, header=run.header, spans=frame, batches=run.batches, samples=run.samples,
                 resources=run.resources, processes=run.processes, clock=run.clock, t0_ns=run.t0_ns)
-    return _table(light, critical, critical.wall_s, pieces)
+    return _table(light, crit, wall_s, None, own)

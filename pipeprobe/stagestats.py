@@ -129,7 +129,22 @@ def _own_time(pieces: pd.DataFrame) -> pd.DataFrame:
     return own.set_axis(own.index.astype(str))
 
 
-def _table(run: Run, critical: CriticalPath | None, wall_s: float, pieces: pd.DataFrame) -> pd.DataFrame:
+def critical_seconds(segments: pd.DataFrame) -> pd.Series | None:
+    """Critical-path seconds per label of the stage and step pieces (None without pieces), as the table reads them."""
+    if not len(segments):
+        return None
+    return segments[segments["kind"].isin(["stage", "step"])].groupby("label")["seconds"].sum()
+
+
+def input_stage_labels(segments: pd.DataFrame) -> set[str]:
+    """Labels of the input-side stages on the critical path."""
+    return set(segments.loc[(segments["side"] == "input") & (segments["kind"] == "stage"), "label"])
+
+
+def _table(run: Run, crit: pd.Series | None, wall_s: float, pieces: pd.DataFrame | None,
+           own: pd.DataFrame | None = None) -> pd.DataFrame:
+    """The stage table; ``crit``: :func:`critical_seconds` of the critical path (None: no time on it); ``own``:
+    :func:`_own_time` of ``pieces`` when worked out before (the pieces then freed: None)."""
     sp = run.spans
     key = _stage_key(sp, "wait")
     cols = list(STAGE_COLUMNS)
@@ -142,12 +157,10 @@ def _table(run: Run, critical: CriticalPath | None, wall_s: float, pieces: pd.Da
     t["cpu_s"] = sp["cpu_s"].groupby(key, sort=False, observed=True).sum(min_count=1)
     t = t.set_axis(pd.Index(t.index.astype(str), dtype=object))
     t["cpu_ratio"] = (t["cpu_s"] / t["total_s"].where(t["total_s"] > 0)).astype(float)
-    own = _own_time(pieces)
+    own = _own_time(pieces) if own is None else own
     t["own_s"] = own["own_s"].reindex(t.index).fillna(t["total_s"])
     t["label"] = own["label"].reindex(t.index).fillna(pd.Series(t.index, index=t.index))
-    if critical is not None and len(critical.segments):
-        seg = critical.segments
-        crit = seg[seg["kind"].isin(["stage", "step"])].groupby("label")["seconds"].sum()
+    if crit is not None:
         by_label = crit.reindex(t["label"].to_numpy()).fillna(0.0).to_numpy()
         # a stage that encloses others only where the timeline leaves it out (inside a step, around an epoch)
         # is on the path under its own name elsewhere
@@ -190,9 +203,16 @@ def _group_sums(key: np.ndarray, values: np.ndarray) -> tuple[np.ndarray, np.nda
     A key seen once keeps its value (what pandas' sum of one value gives, ``0.0 + value``); only the
     keys seen more than once, or with a value that is not finite, are summed by pandas.
     """
-    codes, uniques = pd.factorize(key)
-    first = np.empty(len(uniques), np.int64)
-    first[codes[::-1]] = np.arange(len(key) - 1, -1, -1)
+    ordered = np.sort(key)
+    once = bool((ordered[1:] != ordered[:-1]).all())
+    del ordered
+    if once:  # every key seen once (one piece per sample and label): no hash table, each row its own group
+        codes, uniques = np.arange(len(key), dtype=np.int64), key
+        first = codes
+    else:
+        codes, uniques = pd.factorize(key)
+        first = np.empty(len(uniques), np.int64)
+        first[codes[::-1]] = np.arange(len(key) - 1, -1, -1)
     sums = values[first] + 0.0
     again = (np.bincount(codes, minlength=len(uniques)) > 1) | ~np.isfinite(sums)
     if again.any():
@@ -312,7 +332,7 @@ def core_busy_during_stalls(run: Run) -> float:
 
 
 def _more_workers(run: Run, stalls: Stalls | None, input_on_path: bool | None, busy: float, cores: int,
-                  table: pd.DataFrame, critical: CriticalPath | None) -> tuple[str, str]:
+                  table: pd.DataFrame, input_labels: set[str] | None) -> tuple[str, str]:
     if input_on_path is False:
         return "no", "the step sets the pace; more workers would wait on it too"
     if stalls is not None and stalls.total_s <= 0:
@@ -325,10 +345,8 @@ def _more_workers(run: Run, stalls: Stalls | None, input_on_path: bool | None, b
         return "no", (f"all {cores} cores were {pct} busy while the loop waited: more workers would share "
                       "the same cores; make the input stages cheaper instead")
     ratio = float("nan")
-    if critical is not None and len(table):
-        inp = critical.segments
-        names = set(inp.loc[(inp["side"] == "input") & (inp["kind"] == "stage"), "label"])
-        t = table[table["stage"].isin(names)]
+    if input_labels is not None and len(table):
+        t = table[table["stage"].isin(input_labels)]
         if len(t) and t["cpu_s"].notna().any():
             ratio = float(t["cpu_s"].sum() / t["total_s"].sum()) if t["total_s"].sum() > 0 else float("nan")
     if not math.isnan(ratio) and ratio < 0.5:
@@ -376,10 +394,11 @@ def stage_stats(run: Run, critical: CriticalPath | None = None, stalls: Stalls |
     """
     wall = critical.wall_s if critical is not None else (stalls.wall_s if stalls is not None else run.wall_s)
     pieces = _stage_pieces(run)
-    table = _table(run, critical, wall, pieces)
+    table = _table(run, critical_seconds(critical.segments) if critical is not None else None, wall, pieces)
     cores = int(run.header.get("cores") or 1)
     busy = core_busy_during_stalls(run)
     saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
-    more, why = _more_workers(run, stalls, input_on_path, busy, cores, table, critical)
+    labels = input_stage_labels(critical.segments) if critical is not None else None
+    more, why = _more_workers(run, stalls, input_on_path, busy, cores, table, labels)
     return StageStats(table=table, slowest=_slowest(pieces), cores=cores, core_busy_in_stalls=busy,
                       cores_saturated=saturated, more_workers=more, more_workers_reason=why)

@@ -12,6 +12,7 @@ The report's verdict (what sets the pace) is made one layer up, in
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 import pandas as pd
@@ -136,12 +137,25 @@ def stall_summary(run: Run, critical: CriticalPath | None = None, *, warmup_batc
     queueing network models. ACM Computing Surveys 10(3), 225-261 (busy
     and idle time measured over an observation period).
     """
+    if wall_s is None:
+        wall_s = critical.wall_s if critical is not None else run.wall_s
+    seg = critical.segments if critical is not None else None
+    pairs = None if seg is None or not len(seg) else (lambda b, stalled: _stall_pairs(b, seg, stalled))
+    return summarise_stalls(run, wall_s, pairs, warmup_batches=warmup_batches)
+
+
+#: Per stalled batch, the critical path's pieces inside its stall (:func:`_stall_pairs`), from the
+#: batches sorted by rank and start of wait and the rows of those stalled.
+PairsOf = Callable[[pd.DataFrame, np.ndarray], pd.DataFrame]
+
+
+def summarise_stalls(run: Run, wall_s: float, pairs: PairsOf | None, *, warmup_batches: int | None = None) -> Stalls:
+    """:func:`stall_summary` with the critical path given as the pairs of its pieces and the stalls (None: no
+    blame); for a path read piece by piece from disk (:mod:`pipeprobe.sliced`)."""
     if warmup_batches is None:
         warmup_batches = _default_warmup(run)
     if warmup_batches < 0:
         raise ValueError(f"warmup_batches must be >= 0, got {warmup_batches}")
-    if wall_s is None:
-        wall_s = critical.wall_s if critical is not None else run.wall_s
     b = run.batches.copy()
     ranks = max(1, int(b["rank"].nunique())) if len(b) else 1
     b = b.sort_values(["rank", "wait_start_s"], kind="stable").reset_index(drop=True)
@@ -172,7 +186,7 @@ def stall_summary(run: Run, critical: CriticalPath | None = None, *, warmup_batc
                                            per_epoch["stall_s"] / per_epoch["cycle_s"].where(per_epoch["cycle_s"] > 0),
                                            0.0)
     per_epoch = per_epoch[["epoch", "batches", "stall_s", "cycle_s", "stall_fraction", "warmup_stall_s"]]
-    b = _blame(b, critical, _per_batch_stages(run))
+    b = _blame(b, pairs, _per_batch_stages(run))
     b = b.sort_values(["rank", "batch_id"], kind="stable").reset_index(drop=True)
     return Stalls(
         total_s=total,
@@ -225,7 +239,7 @@ def _stall_pairs(b: pd.DataFrame, seg: pd.DataFrame, stalled: np.ndarray) -> pd.
 BLAME_IDS = 8
 
 
-def _blame(b: pd.DataFrame, critical: CriticalPath | None, per_batch: set[str] = frozenset()) -> pd.DataFrame:
+def _blame(b: pd.DataFrame, pairs_of: PairsOf | None, per_batch: set[str] = frozenset()) -> pd.DataFrame:
     """Add the blame columns: what the critical path ran longest inside each stall, and on which samples."""
     n = len(b)
     blame = np.full(n, "", object)
@@ -235,9 +249,8 @@ def _blame(b: pd.DataFrame, critical: CriticalPath | None, per_batch: set[str] =
     counts = np.zeros(n, np.int64)
     text = np.full(n, "", object)
     stalled = np.flatnonzero(b["ready_s"].to_numpy(np.float64) > b["wait_start_s"].to_numpy(np.float64))
-    seg = critical.segments if critical is not None else None
-    if seg is not None and len(seg) and len(stalled):
-        pairs = _stall_pairs(b, seg, stalled)
+    if pairs_of is not None and len(stalled):
+        pairs = pairs_of(b, stalled)
         g = pairs.groupby(["row", "label", "lane"], sort=False)["sec"].sum().reset_index()
         g = g.sort_values(["row", "sec", "label"], ascending=[True, False, True], kind="stable")
         top = g.drop_duplicates("row", keep="first")

@@ -30,6 +30,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import pipeprobe
+import pipeprobe._slicereader
 import pipeprobe._spill
 import pipeprobe.sliced
 from pipeprobe._grouplayout import Blocks
@@ -146,6 +147,33 @@ class TestBoundedMemory:
             mp.setattr(pipeprobe._spill, "GROUP_ROWS", 1)
             assert [] == differences(_pool_run(Path(d) / "run", seed, batches, workers), slice_batches)
 
+    @pytest.mark.parametrize("shape", list(RUNS))
+    def test_delivery_search_in_small_stretches_agrees_exactly(self, tmp_path: Path, shape: str,
+                                                               monkeypatch: pytest.MonkeyPatch) -> None:
+        """With the membership rows searched 3 at a time for a span's later delivery, the two still agree exactly."""
+        monkeypatch.setattr(pipeprobe._slicereader, "SEARCH_ROWS", 3)
+        assert [] == differences(RUNS[shape](tmp_path / "run"), 1)
+
+    @settings(max_examples=100, deadline=None)
+    @given(st.integers(0, 10_000), st.integers(1, 60), st.integers(1, 30), st.integers(1, 7))
+    def test_delivery_search_is_merge_asof_of_all_rows(self, seed: int, rows: int, spans: int, stretch: int) -> None:
+        """The latest first delivery found a few rows at a time is pandas' merge_asof (forward) over all rows."""
+        from pipeprobe._slicereader import RunScan, latest_first_delivery
+
+        rng = np.random.default_rng(seed)
+        sm = pd.DataFrame({"rank": rng.integers(0, 2, rows).astype(np.int32), "batch_id": np.zeros(rows, np.int32),
+                           "sample_id": rng.integers(0, 5, rows), "ready_s": np.sort(rng.integers(0, 20, rows) / 2)})
+        end, rank, sample = rng.integers(0, 22, spans) / 2, rng.integers(0, 2, spans), rng.integers(0, 5, spans)
+        left = pd.DataFrame({"end_s": end, "rank": rank.astype(np.int32), "sample_id": sample}).sort_values("end_s")
+        got = pd.merge_asof(left, sm, left_on="end_s", right_on="ready_s", by=["rank", "sample_id"],
+                            direction="forward")["ready_s"]
+        expected = float(got.max()) if got.notna().any() else -np.inf
+        scan = RunScan(root=Path("."), header={}, axis=None, files=[], batches=sm.iloc[:0], samples=sm,
+                       processes=sm.iloc[:0], threads=sm.iloc[:0], resources=sm.iloc[:0])
+        with pytest.MonkeyPatch.context() as mp:
+            mp.setattr(pipeprobe._slicereader, "SEARCH_ROWS", stretch)
+            assert expected == latest_first_delivery(scan, end, rank, sample)
+
     def test_spill_files_are_deleted(self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
         """The numbers kept on disk during the analysis are gone when it returns."""
         run = _pool_run(tmp_path / "run", 2)
@@ -218,6 +246,121 @@ def _rising_by_definition(seq: list[int]) -> bool:
     """Every code one contiguous block and -1 only in front: pandas' group ids by first appearance rise."""
     blocks = [c for i, c in enumerate(seq) if i == 0 or seq[i - 1] != c]
     return len(blocks) == len(set(blocks)) and (-1 not in blocks or blocks[0] == -1)
+
+
+def _in_tmp(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    """A fresh folder that the analysis' temporary folders go to."""
+    monkeypatch.setattr(tempfile, "tempdir", str(tmp_path / "tmp"))
+    (tmp_path / "tmp").mkdir()
+    return tmp_path / "tmp"
+
+
+class TestPathOnDisk:
+    @pytest.mark.parametrize("shape", list(RUNS))
+    def test_path_read_from_disk_is_the_in_memory_path(self, tmp_path: Path, shape: str) -> None:
+        """critical.path, built from the files on request, is the whole-run analysis' path, numbered along it."""
+        d = RUNS[shape](tmp_path / "run")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            expected = pipeprobe.analyze(d).critical.path
+            with analyze_sliced(d, slice_batches=2) as s:
+                got = s.critical.path
+        n = len(expected)
+        text = {c: lambda f, c=c: f[c].astype(str) for c in ("kind", "stage", "side", "lane")}  # categories: those used
+        expected = expected.assign(node=np.arange(n), pred=np.arange(n) - 1, span=-1, **text)
+        pd.testing.assert_frame_equal(expected.reset_index(drop=True), got.assign(**text), check_exact=True)
+
+    @pytest.mark.parametrize("shape", list(RUNS))
+    def test_segments_read_from_disk_are_the_in_memory_segments(self, tmp_path: Path, shape: str) -> None:
+        """critical.segments, built from the files on request, are the whole run's pieces, nodes numbered along
+        the path (they tile the run: critical path method)."""
+        d = RUNS[shape](tmp_path / "run")
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            a = pipeprobe.analyze(d).critical
+            with analyze_sliced(d, slice_batches=1) as s:
+                got = s.critical.segments
+        along = np.searchsorted(a.path["node"].to_numpy(), a.segments["node"].to_numpy())
+        expected = a.segments.assign(node=np.where(a.segments["node"].to_numpy() < 0, -1, along))
+        pd.testing.assert_frame_equal(expected, got, check_exact=True)
+
+    def test_node_count_and_ends_without_reading_the_path(self, tmp_path: Path) -> None:
+        """node_count, length_s, head_s and batches answer from the files as the in-memory path does."""
+        d = _pool_run(tmp_path / "run", 6)
+        a = pipeprobe.analyze(d).critical
+        with analyze_sliced(d, slice_batches=2) as s:
+            c = s.critical
+            got = (c.node_count, c.length_s, c.head_s, c.batches)
+            assert None is c._path
+        assert (a.node_count, a.length_s, a.head_s, a.batches) == got
+
+    def test_closed_analysis_says_to_read_the_path_first(self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+        """After close, a path read before stays; one not read is a ValueError saying to read it first; no file is left."""
+        tmp = _in_tmp(tmp_path, monkeypatch)
+        s = analyze_sliced(_pool_run(tmp_path / "run", 2), slice_batches=2)
+        path = s.critical.path
+        s.close()
+        with pytest.raises(ValueError, match="read critical.path and critical.segments before closing"):
+            _ = s.critical.segments
+        assert ([], True) == (list(tmp.iterdir()), s.critical.path is path)
+
+    def test_files_stay_while_the_analysis_is_kept(self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+        """A kept analysis holds only its path's files; they go when it is garbage-collected."""
+        import gc
+
+        tmp = _in_tmp(tmp_path, monkeypatch)
+        s = analyze_sliced(_pool_run(tmp_path / "run", 2), slice_batches=2)
+        kept = sorted(p.name.split(".")[0] for p in tmp.rglob("*") if p.is_file())
+        del s
+        gc.collect()
+        assert ({"path"}, []) == (set(kept), list(tmp.iterdir()))
+
+    @pytest.mark.parametrize("where", ["_spilled_path", "summarise_stalls", "_walk_back"])
+    def test_no_file_left_after_an_error(self, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, where: str) -> None:
+        """An error in the walk, the path's sums or the stalls passes through unchanged and leaves no file."""
+        tmp = _in_tmp(tmp_path, monkeypatch)
+        run = _pool_run(tmp_path / "run", 2)
+
+        def failing(*args: object, **kwargs: object) -> None:
+            raise KeyboardInterrupt(f"stopped in {where}")
+
+        monkeypatch.setattr(pipeprobe.sliced, where, failing)
+        with pytest.raises(KeyboardInterrupt, match=f"stopped in {where}"):
+            analyze_sliced(run, slice_batches=2)
+        assert [] == list(tmp.iterdir())
+
+
+def _blame_of(pairs: pd.DataFrame, rows: int) -> pd.DataFrame:
+    from pipeprobe.stalls import _blame
+
+    b = pd.DataFrame({"wait_start_s": np.zeros(rows), "ready_s": np.ones(rows)})
+    got = _blame(b, lambda b, stalled: pairs, {"collate"})
+    return got.assign(blame_sample_ids=[tuple(x) for x in got["blame_sample_ids"]])
+
+
+class TestStallSums:
+    @settings(max_examples=150, deadline=None)
+    @given(st.integers(0, 10_000), st.integers(1, 8), st.integers(1, 80), st.integers(1, 4))
+    def test_few_rows_per_stall_blame_as_all_pairs(self, seed: int, rows: int, n: int, sets: int) -> None:
+        """Stalls summed a set of whole stalls at a time give _blame's blame of all pairs at once, bit for bit, both
+        when each (stall, label, lane) is one block of pairs (pandas adds with ufunc.reduceat) and when not
+        (compensated, Kahan 1965)."""
+        from pipeprobe._pathspill import _StallSums
+
+        rng = np.random.default_rng(seed)
+        row = np.sort(rng.integers(0, rows, n))
+        label = rng.choice(["decode", "read", "collate", "unexplained gap"], n)
+        if seed % 2:  # one label per stall: every group one block
+            label = np.array(["decode", "read", "collate", "unexplained gap"])[row % 4]
+        pairs = pd.DataFrame({"row": row, "label": label.astype(object),
+                              "lane": rng.choice(["worker 1", "worker 2"], n).astype(object),
+                              "sec": rng.choice([0.1, 0.7, 1e-3 / 3, 0.005000000000000001], n),
+                              "sample": rng.integers(-1, 6, n), "order": np.arange(n)})
+        sums = _StallSums()
+        cuts = np.unique(np.r_[0, rng.integers(0, rows + 1, sets - 1), rows + 1])
+        for lo, hi in zip(cuts[:-1], cuts[1:], strict=True):  # sets of whole stalls, in any order
+            sums.add(pairs[(row >= lo) & (row < hi)])
+        pd.testing.assert_frame_equal(_blame_of(pairs, rows), _blame_of(sums.pairs(), rows), check_exact=True)
 
 
 class TestGroupLayout:
