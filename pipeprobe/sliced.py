@@ -293,7 +293,7 @@ def _give_back_freed() -> None:
     """Ask glibc to hand the memory freed so far back to the system (``malloc_trim``; elsewhere nothing).
 
     The walk and the stalls free millions of small objects whose pages glibc keeps; the next phase's
-    peak then sits on top of them (0.26 GiB at 30 M stage spans).
+    peak then sits on top of them (about 0.1 GiB at 30 M stage spans).
     """
     try:
         if not sys.platform.startswith("linux") or not (os.confstr("CS_GNU_LIBC_VERSION") or "").startswith("glibc"):
