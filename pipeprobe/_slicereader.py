@@ -266,12 +266,13 @@ def _count_problems(path: Path, counts: np.ndarray, problems: _rf.Problems) -> N
 def _assemble(root: Path, first: dict[str, Any], axis: _rf.TimeAxis, files: list[_File], got: _Gather,
               resources: pd.DataFrame, problems: list[str]) -> RunScan:
     """The per-batch tables of the whole run, built as :func:`pipeprobe.load.load` builds them."""
-    samples, median = _membership(got.members)
+    samples, counts = _membership(got.members)
     consumer = (pd.concat(got.consumer, ignore_index=True) if got.consumer else
                 pd.DataFrame({"stage": [], "start_s": [], "end_s": [], "batch_id": [], "epoch": [], "rank": [],
                               "error": []}))
     consumer["stage"] = consumer["stage"].astype("category")
-    batches = _batches(consumer, pd.DataFrame({c: samples[c].to_numpy(np.int64) for c in ("rank", "batch_id")}))
+    batches = _batches(consumer, samples.iloc[:0], counts)
+    median = float(np.median(counts["samples"].to_numpy())) if len(counts) else 0.0
     processes = pd.DataFrame(got.rows, columns=["pid", "ppid", "rank", "role", "host", "spans", "file"])
     slots = worker_slots(pd.DataFrame(got.lives, columns=["rank", "pid", "role", "start_s", "end_s"]))
     processes["slot"] = [slots.get((int(r), int(p)), 0) for r, p in zip(processes["rank"], processes["pid"], strict=True)]
@@ -282,19 +283,21 @@ def _assemble(root: Path, first: dict[str, Any], axis: _rf.TimeAxis, files: list
                    last_end_s=(got.last_end_ns / 1e9) if got.last_end_ns is not None else 0.0)
 
 
-def _membership(members: list[dict[str, np.ndarray]]) -> tuple[pd.DataFrame, float]:
+def _membership(members: list[dict[str, np.ndarray]]) -> tuple[pd.DataFrame, pd.DataFrame]:
     """The membership rows sorted by ``ready_s`` (stable), ``pos`` their place in the files' order, in narrow
-    types (about 28 bytes a row; ``pieces`` is emptied as it is read); and the median of samples per batch."""
+    types (about 28 bytes a row; ``members`` is emptied as it is read); and their count per batch (``rank,
+    batch_id, samples``, sorted, as ``groupby(["rank", "batch_id"]).size()`` gives it)."""
     dtypes = {"rank": np.int32, "batch_id": np.int32, "sample_id": np.int64, "ready_s": np.float64}
     cols = {c: np.concatenate([m.pop(c) for m in members]) if members else np.zeros(0, t) for c, t in dtypes.items()}
     members.clear()
-    key = cols["rank"].astype(np.int64) * (1 << 33) + cols["batch_id"] + 1
-    median = float(np.median(np.unique(key, return_counts=True)[1])) if len(key) else 0.0
-    del key
+    key, n = np.unique(cols["rank"].astype(np.int64) * (1 << 33) + cols["batch_id"] + (1 << 32), return_counts=True)
+    counts = pd.DataFrame({"rank": key >> 33, "batch_id": (key & ((1 << 33) - 1)) - (1 << 32), "samples": n})
+    del key, n
     order = np.argsort(cols["ready_s"], kind="stable")
-    cols = {c: v[order] for c, v in cols.items()}
+    for c in dtypes:  # a column at a time: one copy more at most
+        cols[c] = cols[c][order]
     cols["pos"] = order.astype(np.int32 if len(order) < (1 << 31) else np.int64)
-    return pd.DataFrame(cols, copy=False), median
+    return pd.DataFrame(cols, copy=False), counts
 
 
 def _thread_table(pieces: list[pd.DataFrame], files: list[_File]) -> pd.DataFrame:

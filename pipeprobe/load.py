@@ -343,7 +343,9 @@ def worker_slots(spans: pd.DataFrame) -> dict[tuple[int, int], int]:
     return out
 
 
-def _batches(spans: pd.DataFrame, samples: pd.DataFrame) -> pd.DataFrame:
+def _batches(spans: pd.DataFrame, samples: pd.DataFrame, counts: pd.DataFrame | None = None) -> pd.DataFrame:
+    """The per-batch table; ``counts`` (``rank, batch_id, samples``, sorted), when given, stands for the
+    membership rows' count per batch."""
     waits = spans[(spans["stage"] == "wait") & ~spans["error"]]  # a failed wait delivered nothing
     b = pd.DataFrame(
         {
@@ -362,8 +364,9 @@ def _batches(spans: pd.DataFrame, samples: pd.DataFrame) -> pd.DataFrame:
         b = b.merge(agg.reset_index(), on=["rank", "batch_id"], how="left")
     else:
         b = b.assign(step_start_s=np.nan, step_end_s=np.nan, step_s=np.nan)
-    if len(samples):
+    if counts is None and len(samples):
         counts = samples.groupby(["rank", "batch_id"]).size().rename("samples").reset_index()
+    if counts is not None and len(counts):
         b = b.merge(counts, on=["rank", "batch_id"], how="left")
         b["samples"] = b["samples"].fillna(0).astype(np.int64)
     else:
