@@ -369,7 +369,7 @@ def _advice_beside_others(cores: int, k: int, background: float, pools: list[dic
 
     Examples
     --------
-    >>> _advice_beside_others(2, 2, 1.0, [{"api": "openmp", "library": "openmp", "threads": 2}])[:61]
+    >>> _advice_beside_others(2, 2, 1.0, [{"api": "openmp", "library": "openmp", "threads": 2}])[:60]
     'give the step 1 thread while other processes keep 1.0 of the'
     """
     t = max(1, cores - math.ceil(background - BESIDE_OTHERS_MARGIN))
