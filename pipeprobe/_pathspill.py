@@ -99,7 +99,9 @@ class PathStore:
         cols = {c: np.asarray(v) for c, v in columns.items() if c not in TEXT}
         for c in ("kind", "stage", "side"):
             cols[c] = self.names.recode(*codes_of(pd.Series(columns[c])))
-        cols["lane"] = np.array([self.names.code(str(x)) for x in columns["lane"]], np.int64)
+        lanes = pd.unique(np.asarray(columns["lane"], object))  # in order of first appearance, as coded one by one
+        table = np.array([self.names.code(str(x)) for x in lanes], np.int64)
+        cols["lane"] = table[pd.Index(lanes).get_indexer(np.asarray(columns["lane"], object))]
         self._spill.append(np.zeros(n, np.int64), cols)
 
     @property

@@ -269,12 +269,12 @@ def thread_actions(actions: list[Action] | tuple[Action, ...], threads: ThreadCh
     L. Kleinrock, *Queueing Systems, Volume 2*, Wiley, 1976, ch. 4 (processor sharing: the cost measured).
     """
     out = [a for a in actions if a.kind != "threads"]
-    if threads is not None and threads.skipped is None and threads.oversubscribed and threads.advice \
-            and threads.workers == 0:  # beside other processes: the step's own action carries the fix
+    fits = threads is None or threads.skipped is not None or not threads.oversubscribed or not threads.advice
+    if not fits and threads.workers == 0:  # beside other processes: the step's own action carries the fix
         fix = (f"; first fit its {threads.step_threads} math-library threads to the cores other processes left: "
                f"{threads.advice}")
         out = [replace(a, text=a.text + fix) if a.kind == "step" else a for a in out]
-    elif threads is not None and threads.skipped is None and threads.oversubscribed and threads.advice:
+    elif not fits:
         slower = (f"; steps ran {threads.slowdown:.2f}x slower beside busy workers"
                   if math.isfinite(threads.slowdown) and threads.slowdown > 1.0 else "")
         out.append(Action("threads", f"Fit the threads to the {threads.cores} cores: the step's math-library "

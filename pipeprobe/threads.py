@@ -360,8 +360,7 @@ def _advice(cores: int, k: int, workers: int, oversubscribed: bool, pools: list[
     w = max(1, cores - k)
     keep = (f"; or keep {k} step threads and use {w} worker{'s' if w != 1 else ''}" if w < workers else "")
     return (f"give the step {t} thread{'s' if t != 1 else ''} beside {workers} worker{'s' if workers != 1 else ''} "
-            f"on {cores} cores (torch.set_num_threads({t}), threadpoolctl.threadpool_limits({t}), or "
-            f"OMP_NUM_THREADS={t} before the start){keep}{_passive_hint(pools)}")
+            f"on {cores} cores {_threads_how(t)}{keep}{_passive_hint(pools)}")
 
 
 def _advice_beside_others(cores: int, k: int, background: float, pools: list[dict[str, Any]]) -> str:
@@ -373,10 +372,13 @@ def _advice_beside_others(cores: int, k: int, background: float, pools: list[dic
     'give the step 1 thread while other processes keep 1.0 of the'
     """
     t = max(1, cores - math.ceil(background - BESIDE_OTHERS_MARGIN))
-    text = (f"give the step {t} thread{'s' if t != 1 else ''} while other processes keep {background:.1f} of the "
-            f"{cores} cores busy (torch.set_num_threads({t}), threadpoolctl.threadpool_limits({t}), or "
-            f"OMP_NUM_THREADS={t} before the start)")
-    return text + _passive_hint(pools)
+    return (f"give the step {t} thread{'s' if t != 1 else ''} while other processes keep {background:.1f} of the "
+            f"{cores} cores busy {_threads_how(t)}{_passive_hint(pools)}")
+
+
+def _threads_how(t: int) -> str:
+    """The three ways to give the step ``t`` threads."""
+    return f"(torch.set_num_threads({t}), threadpoolctl.threadpool_limits({t}), or OMP_NUM_THREADS={t} before the start)"
 
 
 def _passive_hint(pools: list[dict[str, Any]]) -> str:
