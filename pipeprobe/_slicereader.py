@@ -28,7 +28,7 @@ import pandas as pd
 
 from . import _runfolder as _rf
 from . import tracefile as tf
-from .load import Run, _batches, _link, _span_columns, _time_ordered_frame, worker_slots
+from .load import Run, _batches, _link, _move_wait_cpu, _span_columns, _time_ordered_frame, worker_slots
 
 __all__ = ["RunScan", "scan_run", "read_range", "count_records", "latest_first_delivery", "PIECE_RECORDS",
            "SEARCH_ROWS"]
@@ -201,7 +201,8 @@ def _scan_file(path: Path, rank: int, pid: int, name: str, ph: tf.ProcessHeader,
                 "stage": np.asarray(ph.stages, object)[r["stage"][cons]], "start_s": s0[cons] / 1e9,
                 "end_s": s1[cons] / 1e9, "batch_id": r["batch_id"][cons].astype(np.int64),
                 "epoch": r["epoch"][cons].astype(np.int64), "rank": rank,
-                "error": (r["flags"][cons] & tf.FLAG_ERROR) != 0}))
+                "error": (r["flags"][cons] & tf.FLAG_ERROR) != 0,
+                "cpu_s": np.where(r["cpu_ns"][cons] < 0, np.nan, r["cpu_ns"][cons] / 1e9)}))
             if member.any():
                 mr = recs[member]
                 members.append({"rank": np.full(len(mr), rank, np.int32), "batch_id": mr["batch_id"].astype(np.int32),
@@ -269,7 +270,7 @@ def _assemble(root: Path, first: dict[str, Any], axis: _rf.TimeAxis, files: list
     samples, counts = _membership(got.members)
     consumer = (pd.concat(got.consumer, ignore_index=True) if got.consumer else
                 pd.DataFrame({"stage": [], "start_s": [], "end_s": [], "batch_id": [], "epoch": [], "rank": [],
-                              "error": []}))
+                              "error": [], "cpu_s": []}))
     consumer["stage"] = consumer["stage"].astype("category")
     batches = _batches(consumer, samples.iloc[:0], counts)
     median = float(np.median(counts["samples"].to_numpy())) if len(counts) else 0.0
@@ -355,6 +356,7 @@ def read_range(scan: RunScan, lo_s: float, hi_s: float, link_hi_s: float | None 
     files = [f for f in scan.files if thread is None or (f.rank, f.pid) == thread[:2]]
     parts = [(f.rank, f.pid, f.header, _file_range(f, scan.axis, lo_ns, hi_ns, thread)) for f in files]
     cols = _span_columns(parts)
+    _move_wait_cpu(cols)
     top = hi_s if link_hi_s is None else link_hi_s
     samples = _samples_between(scan.samples, lo_s, top)
     _link(cols, samples, scan.batches)

@@ -75,6 +75,8 @@ BATCH_COLUMNS = {
     "step_end_s": "the training step ended",
     "step_s": "step duration",
     "samples": "number of samples known to be in the batch",
+    "others_cpu_s": "CPU seconds the training process's other threads used during the wait (NaN unknown): "
+                    "a math-library pool still spinning after the step shows here",
 }
 
 
@@ -222,6 +224,7 @@ def load(run_dir: str | os.PathLike, *, ranks: Iterable[int] | None = None) -> R
         step("merging spans")
         cols = _span_columns(_take_records(procs))
         batches = _batches(_consumer_frame(cols), samples)
+        _move_wait_cpu(cols)
         for message in check_step_alignment(folder.root, batches, axis.clock):
             problems.add(message)
         step("linking worker spans")
@@ -354,6 +357,7 @@ def _batches(spans: pd.DataFrame, samples: pd.DataFrame, counts: pd.DataFrame | 
             "epoch": waits["epoch"].to_numpy(np.int64),
             "wait_start_s": waits["start_s"].to_numpy(),
             "ready_s": waits["end_s"].to_numpy(),
+            "others_cpu_s": waits["cpu_s"].to_numpy(np.float64) if "cpu_s" in waits else np.nan,
         }
     )
     b = b[b["batch_id"] >= 0].drop_duplicates(["rank", "batch_id"], keep="last")
@@ -451,8 +455,16 @@ def _consumer_frame(cols: _Columns) -> pd.DataFrame:
     a = cols.arrays
     codes = [cols.stages.get_loc(name) for name in ("wait", "step") if name in cols.stages]
     rows = np.flatnonzero(np.isin(a["stage"], codes)) if codes else np.zeros(0, np.int64)
-    frame = {c: a[c][rows] for c in ("start_s", "end_s", "batch_id", "epoch", "rank", "error")}
+    frame = {c: a[c][rows] for c in ("start_s", "end_s", "batch_id", "epoch", "rank", "error", "cpu_s")}
     return pd.DataFrame({"stage": _stage_column(cols, a["stage"][rows]), **frame})
+
+
+def _move_wait_cpu(cols: _Columns) -> None:
+    """Leave the waits without CPU time in the spans, in place: theirs is the process's other threads'
+    (``Run.batches.others_cpu_s``), not the waiting thread's, which the span columns document."""
+    if "wait" in cols.stages:
+        a = cols.arrays
+        a["cpu_s"][a["stage"] == cols.stages.get_loc("wait")] = np.nan
 
 
 def _link(cols: _Columns, samples: pd.DataFrame, batches: pd.DataFrame) -> None:

@@ -50,6 +50,8 @@ IDLE_LOAD = 0.1
 MIN_STEPS = 3
 #: Observed over explained slow-down above which the recording shows contention the model misses.
 UNEXPLAINED_MARGIN = 1.10
+#: A wait whose other threads ran for less than this share of it saw the pool's spin end (our choice).
+SPIN_ENDED = 0.8
 #: Cores the step keeps however busy the machine was (as the replay's plan does).
 MIN_CORES_LEFT = 0.25
 #: A run without workers counts as oversubscribed when the step's threads and the other processes' busy
@@ -103,6 +105,11 @@ class ThreadCheck:
         processor sharing explains the step's slow-down on the cores left).
     advice : str
         The fix in concrete terms ("" when none is needed).
+    spin_s : float
+        CPU seconds each of the step pool's other threads kept running
+        after a step, while the loop waited for its next batch (OpenMP
+        pools spin before they sleep): the median over the waits long
+        enough to see it stop, else the longest seen; 0 when none ran.
     """
 
     skipped: str | None
@@ -124,6 +131,7 @@ class ThreadCheck:
     wall_s: float = 0.0
     advice: str = ""
     background_cores: float = 0.0
+    spin_s: float = 0.0
 
     @property
     def step_width(self) -> float:
@@ -389,6 +397,36 @@ def _passive_hint(pools: list[dict[str, Any]]) -> str:
             "spinning while a partner waits for a core")
 
 
+def _spin_after_steps(run: Run, k: int) -> float:
+    """CPU seconds each of the step's ``k - 1`` other pool threads ran on after a step (see :attr:`ThreadCheck.spin_s`).
+
+    A wait records the CPU the process's other threads used during it (the
+    header's ``wait_cpu``). Where that ended well before the wait did, the
+    pool stopped spinning on its own: the median of those waits is the
+    pool's spin. Where none did, the spin lasted every wait: the longest
+    seen is a lower bound.
+
+    Examples
+    --------
+    >>> import pipeprobe, tempfile
+    >>> from pipeprobe._example_runs import write_example_run
+    >>> _spin_after_steps(pipeprobe.load(write_example_run(tempfile.mkdtemp(), batches=4)), 2)
+    0.0
+    """
+    b = run.batches
+    if "others_cpu_s" not in b or not len(b):
+        return 0.0
+    b = b[b["rank"] == b["rank"].min()]
+    others = b["others_cpu_s"].to_numpy(np.float64)[1:] / max(1, k - 1)  # the first wait follows no step
+    wait = b["wait_s"].to_numpy(np.float64)[1:]
+    ok = np.isfinite(others)
+    others, wait = others[ok], wait[ok]
+    if not len(others) or not (others > 0).any():
+        return 0.0
+    ended = others < SPIN_ENDED * wait
+    return float(np.median(others[ended])) if ended.sum() >= MIN_STEPS else float(others.max())
+
+
 def check_threads(run: Run, background_cores: float = 0.0) -> ThreadCheck:
     """Check whether the step's threads and the loader workers wanted more CPU than the cores.
 
@@ -424,16 +462,17 @@ def check_threads(run: Run, background_cores: float = 0.0) -> ThreadCheck:
     steps = _steps_under_load(run)
     if not len(steps.dur_s):
         return ThreadCheck(skipped="the run has no training steps (probe.step())", wall_s=float(run.wall_s))
+    spin = _spin_after_steps(run, k)
     if steps.workers == 0:  # nothing to compare, but the step's cores say how wide a replay with workers runs it
         alone, bg = _cores_alone(steps), float(background_cores)
         if k > 1 and k + bg > cores + BESIDE_OTHERS_MARGIN:  # the step's pool beside other processes' work
             return ThreadCheck(skipped=None, cores=cores, step_threads=k, step_cores=alone, pools=tuple(pools),
                                oversubscribed=True, wall_s=float(run.wall_s), background_cores=bg,
-                               advice=_advice_beside_others(cores, k, bg, pools))
+                               advice=_advice_beside_others(cores, k, bg, pools), spin_s=spin)
         return ThreadCheck(skipped="the loader ran no worker processes", cores=cores, step_threads=k,
-                           step_cores=alone, pools=tuple(pools), wall_s=float(run.wall_s))
+                           step_cores=alone, pools=tuple(pools), wall_s=float(run.wall_s), spin_s=spin)
     found = _compare(steps, cores, k, float(background_cores))
     return ThreadCheck(skipped=None, cores=cores, step_threads=k, pools=tuple(pools), workers=steps.workers,
                        wall_s=float(run.wall_s), **found,
                        advice=_advice(cores, k, steps.workers, found["oversubscribed"], pools),
-                       background_cores=float(background_cores))
+                       background_cores=float(background_cores), spin_s=spin)

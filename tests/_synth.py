@@ -53,9 +53,11 @@ def stage(name: str, start_ms: float, end_ms: float, *, sample: int | None = Non
     return Row("stage", start_ms, end_ms, name, sample, batch, epoch, tid, cpu_ms)
 
 
-def wait(start_ms: float, end_ms: float, batch: int, *, epoch: int | None = 0, tid: int | None = None) -> Row:
-    """The consumer waiting for ``batch``: it was ready at ``end_ms``."""
-    return Row("wait", start_ms, end_ms, "wait", None, batch, epoch, tid)
+def wait(start_ms: float, end_ms: float, batch: int, *, epoch: int | None = 0, tid: int | None = None,
+         cpu_ms: float | None = None) -> Row:
+    """The consumer waiting for ``batch``: it was ready at ``end_ms`` (``cpu_ms``: the CPU time the process's
+    other threads used meanwhile, None: not taken)."""
+    return Row("wait", start_ms, end_ms, "wait", None, batch, epoch, tid, cpu_ms)
 
 
 def step(start_ms: float, end_ms: float, batch: int, *, epoch: int | None = 0, tid: int | None = None,

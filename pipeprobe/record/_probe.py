@@ -15,7 +15,7 @@ import weakref
 from collections import deque
 from dataclasses import replace
 from pathlib import Path
-from time import monotonic_ns
+from time import monotonic_ns, process_time_ns, thread_time_ns
 from typing import Any, Callable, Iterable, Iterator, TypeVar
 
 from .. import __version__, _live
@@ -25,7 +25,7 @@ from . import _clocksync, _closing, _signals, _window, _workerstart
 from . import _recorder as _r
 from ._recorder import RECORDER
 from ._spans import _check_epoch, _check_id, _Noop, _Span, _StepSpan, stage
-from ._threads import STEP_CPU_PROCESS, read_thread_pools
+from ._threads import STEP_CPU_PROCESS, WAIT_CPU_OTHERS, read_thread_pools
 
 __all__ = ["Probe"]
 
@@ -98,8 +98,12 @@ class _Watched:
         # A caller that drives this generator with send(t) (pipeprobe run's loop
         # steps) hands in the instant its own next() began: the wait starts there.
         item = _kept = sent = None
+        cpu = rec.cpu_time
         while True:
             t0 = monotonic_ns() if sent is None else sent
+            # The CPU the process's other threads use while the loop waits: a math-library pool that
+            # keeps spinning after the step takes it from the workers (see _delivered).
+            c0 = process_time_ns() - thread_time_ns() if cpu else 0
             _kept = None  # the batch before last: freed here, inside the wait
             on = rec.on
             if on:
@@ -119,13 +123,14 @@ class _Watched:
                     rec.record(t0, monotonic_ns(), -1, -1, bid, wait_code | _ERROR_BITS)
                 raise
             if on and rec.on:
-                self._delivered(item, bid, t0, wait_code, member_code, index_queue, kept)
+                self._delivered(item, bid, t0, c0, wait_code, member_code, index_queue, kept)
             sent = yield item
 
-    def _delivered(self, item: Any, bid: int, t0: int, wait_code: int, member_code: int,
+    def _delivered(self, item: Any, bid: int, t0: int, c0: int, wait_code: int, member_code: int,
                    index_queue: deque | None, kept: bool) -> None:
         """Record batch ``bid`` just taken (when the window ``kept`` it): its sample ids at delivery, then its
-        wait up to now."""
+        wait up to now, with the CPU time the process's other threads used since ``c0`` (their CPU clock
+        then: process less this thread; the header's ``wait_cpu`` says waits hold it)."""
         rec = RECORDER
         t1 = monotonic_ns()
         rec.next_batch = bid + 1
@@ -138,7 +143,8 @@ class _Watched:
                 for sid in ids:
                     rec.record(t1, t1, -1, sid, bid, member_code)
             if kept:
-                rec.record(t0, monotonic_ns(), -1, -1, bid, wait_code)
+                others = max(0, process_time_ns() - thread_time_ns() - c0) if rec.cpu_time else -1
+                rec.record(t0, monotonic_ns(), others, -1, bid, wait_code)
         except Exception as exc:  # noqa: BLE001 - never take training down
             rec.fail(exc)
 
@@ -287,7 +293,7 @@ class Probe:
             pipeprobe_version=__version__, python_version=platform.python_version(), platform=platform.platform(),
             pid=os.getpid(), rank=self.rank, world_size=self.world_size, cpu_time=bool(cpu_time),
             sample_interval_s=float(sample_interval_s), flush_interval_s=float(flush_interval_s),
-            extra={**_window.header_fields(parsed_window), **({"step_cpu": STEP_CPU_PROCESS} if cpu_time else {})},
+            extra={**_window.header_fields(parsed_window), **({"step_cpu": STEP_CPU_PROCESS, "wait_cpu": WAIT_CPU_OTHERS} if cpu_time else {})},
         )
         rec.window, rec.spans_on = parsed_window, parsed_window is None  # a window opens at its first batch
         self._open_run(float(sample_interval_s))

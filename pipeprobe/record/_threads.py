@@ -17,10 +17,13 @@ import os
 import sys
 from typing import Any
 
-__all__ = ["read_thread_pools", "STEP_CPU_PROCESS"]
+__all__ = ["read_thread_pools", "STEP_CPU_PROCESS", "WAIT_CPU_OTHERS"]
 
 #: Value of the run header's ``step_cpu`` field: step records hold the CPU time of every thread of the process.
 STEP_CPU_PROCESS = "process"
+#: Value of the run header's ``wait_cpu`` field: wait records hold the CPU time the process's other threads
+#: used during the wait (a math-library pool that keeps spinning after a step shows there).
+WAIT_CPU_OTHERS = "other-threads"
 #: Pools kept in the header at most (a process loads a handful).
 MAX_POOLS = 16
 

@@ -37,7 +37,7 @@ from .limits import MAX_PLAN_STAGES, OTHER_STAGES
 if TYPE_CHECKING:  # pragma: no cover
     from ..load import Run
 
-__all__ = ["Work", "consumer_batches", "user_spans", "loader_tasks", "batch_workers", "consumer_work",
+__all__ = ["Work", "PoolSpin", "consumer_batches", "user_spans", "loader_tasks", "batch_workers", "consumer_work",
            "without_contention", "loader_config", "loader_times"]
 
 
@@ -406,19 +406,38 @@ def consumer_work(spans: _UserSpans, batches: _Batches, keep: frozenset[str]) ->
     return _ConsumerWork(seconds, end)
 
 
+@dataclass(frozen=True)
+class PoolSpin:
+    """The step pool's other threads after each step: CPU seconds each runs on, and how many they are."""
+
+    cpu_s: float = 0.0
+    threads: float = 1.0
+
+    def intervals(self, batches: _Batches) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """The recorded spins as a task kind of :func:`remove_contention`: from each wait's start (the step
+        before it ended), for the spin or the wait, whichever was shorter (the next step ends it)."""
+        start = batches.wait_start_s[1:]
+        dur = np.minimum(self.cpu_s, batches.wait_s[1:])
+        return start, start + dur, dur, dur
+
+
 def without_contention(loader: _LoaderTasks, consumer: _ConsumerWork, batches: _Batches,
-                        cores: float, step_width: float = 1.0) -> tuple[Work, Work]:
+                        cores: float, step_width: float = 1.0, spin: PoolSpin | None = None) -> tuple[Work, Work]:
     """Step 4: both sides' work with the slow-down of sharing the recorded cores taken out of the CPU parts.
 
-    The consumer's work runs on ``step_width`` threads (see :attr:`ReplayPlan.step_width`).
+    The consumer's work runs on ``step_width`` threads (see :attr:`ReplayPlan.step_width`); the step pool's
+    threads that spin after each step (``spin``) load the cores too.
     """
     ld, lc = loader.seconds.dur_s, loader.seconds.cpu_s
     cd, cc = consumer.seconds.dur_s, consumer.seconds.cpu_s
     first, ready = loader.first_s, batches.ready_s
     task_wall = np.maximum(0.0, loader.last_s - first)
-    lslow, cslow = remove_contention(
-        [(first, first + task_wall, ld.sum(1), lc.sum(1)), (ready, ready + cd.sum(1), cd.sum(1), cc.sum(1))], cores,
-        [1.0, step_width])
+    tasks = [(first, first + task_wall, ld.sum(1), lc.sum(1)), (ready, ready + cd.sum(1), cd.sum(1), cc.sum(1))]
+    widths = [1.0, step_width]
+    if spin is not None and spin.cpu_s > 0:
+        tasks.append(spin.intervals(batches))
+        widths.append(spin.threads)
+    lslow, cslow = remove_contention(tasks, cores, widths)[:2]
     lio, lcpu = split_cpu(ld, lc, lslow)
     cio, ccpu = split_cpu(cd, cc, cslow)
     return Work(loader.seconds.names, lio, lcpu), Work(consumer.seconds.names, cio, ccpu)

@@ -296,7 +296,7 @@ class _Replayer:
                  "task_s", "task_u", "work_s", "work_u", "epoch_first", "epoch_list", "epoch_index", "epoch_stop",
                  "epoch_dispatch", "worker_start", "ready_pending", "ready_skip", "handoff", "latency", "worker_gap", "dispatch",
                  "policy", "queue", "cpu", "log", "consumer", "state", "waiting_for", "wait_began", "ready_pool", "next_request", "last_task_of",
-                 "finished_at", "step_width")
+                 "finished_at", "step_width", "spin", "spin_s", "spin_threads")
 
     def __init__(self, plan: ReplayPlan, loader: Work, consumer: Work, settings: Settings) -> None:
         self.plan = plan
@@ -331,7 +331,10 @@ class _Replayer:
         self.queue = EventQueue()
         # the consumer's work runs on the step's threads (the cores it used alone; see pipeprobe.threads)
         self.step_width = plan.step_width
-        self.cpu = CpuShare(settings.cores, W + 1, extra_threads=plan.step_width - 1.0)
+        # the step pool's other threads spin on after each step (an entity of their own on the cores)
+        self.spin, self.spin_s, self.spin_threads = W + 1, plan.spin_s, plan.spin_threads
+        spinning = plan.spin_threads if plan.spin_s > 0 else 0.0
+        self.cpu = CpuShare(settings.cores, W + 1, extra_threads=plan.step_width - 1.0 + spinning)
         if plan.step_lockstep > 1.0:
             self.cpu.lockstep[W] = plan.step_lockstep
         self.log = BatchLog(nb)
@@ -438,11 +441,16 @@ class _Replayer:
         if self.workers and nr < self.n and (not self.barrier or self.epoch_list[nr] == self.epoch_list[b]):
             self.next_request = nr + 1
             self._request(nr, now, after=b, at_wait=-1)
-        self.cpu.start(self.consumer, b, self.work_s[b], self.work_u[b], now, self.step_width)
+        cpu = self.cpu
+        if self.spin in cpu.finish:  # the next step puts the spinning pool to work
+            cpu.stop(self.spin, now)
+        cpu.start(self.consumer, b, self.work_s[b], self.work_u[b], now, self.step_width)
 
     def _on_task_finished(self, now: float, entity: int) -> None:
         """A task ends on the CPU: a worker's loader task, the consumer's work, or its own loading."""
         b = self.cpu.stop(entity, now)
+        if entity == self.spin:  # the pool's threads went to sleep
+            return
         log = self.log
         if entity != self.consumer:
             log.end_s[b] = now
@@ -457,6 +465,8 @@ class _Replayer:
             self._on_handoff(now, b)  # taken at once, no handoff
         else:
             log.done_s[b] = now
+            if self.spin_s > 0:
+                self.cpu.start(self.spin, -1, self.spin_s, 1.0, now, self.spin_threads)
             k = len(log.taken_order)  # batches taken so far = the position the consumer asks for next
             if k < self.n:
                 self.queue.schedule(now, self._on_resume, k)

@@ -76,6 +76,7 @@ from ._contention import background_cores, cores_left
 from ._lifecycle import WorkerLifecycle, lifecycle_from_header, measure_lifecycle
 from ._loader import POLICIES
 from ._recorded import (
+    PoolSpin,
     Work,
     batch_workers,
     consumer_batches,
@@ -171,6 +172,13 @@ class ReplayPlan:
         Per epoch and worker (in start order): the loop's first ask to the
         worker's first task, when a replay of another worker count set it;
         None: every first request of an epoch waits ``epoch_dispatch_s``.
+    spin_s : float
+        CPU seconds each of the step pool's other threads runs on after a
+        step (:attr:`pipeprobe.threads.ThreadCheck.spin_s`); the replay
+        runs them beside the loop until the next step starts or the time
+        is spent (0: they sleep at once).
+    spin_threads : float
+        Threads that spin after a step (the step's pool less the loop's own).
     """
 
     batch_id: np.ndarray
@@ -203,6 +211,8 @@ class ReplayPlan:
     lifecycle: Any = None
     workers_kept: bool = False
     epoch_worker_start_s: np.ndarray | None = None
+    spin_s: float = 0.0
+    spin_threads: float = 1.0
 
     @property
     def batches(self) -> int:
@@ -323,8 +333,9 @@ def build_plan(
     cores = int(run.header.get("cores") or 1)
     background = background_cores(run.resources, batches.rank, cores, run.spans) if spans.cpu_known else 0.0
     threads = check_threads(run, background)
+    spin = PoolSpin(threads.spin_s, max(1.0, threads.step_threads - 1.0))
     loader_side, consumer_side = without_contention(loader, consumer, batches, cores_left(cores, background),
-                                                    threads.step_width)
+                                                    threads.step_width, spin)
     config = loader_config(batches, loader, by_worker, workers, prefetch, policy)
     times = loader_times(batches, loader, by_worker, config)
     plan = ReplayPlan(
@@ -340,7 +351,7 @@ def build_plan(
                *config.notes],
         background_cores=background, prefetch_inferred=config.prefetch_inferred,
         folded_stages=loader.seconds.folded + consumer.seconds.folded, inside=spans.inside,
-        step_width=threads.step_width, threads=threads,
+        step_width=threads.step_width, threads=threads, spin_s=spin.cpu_s, spin_threads=spin.threads,
     )
     return replace(plan, lifecycle=_lifecycle_of(run, plan, loader.first_s, by_worker.worker, batches.wait_start_s))
 

@@ -1,0 +1,116 @@
+"""The step pool's threads that run on after a step: recorded at the waits, estimated, and replayed."""
+
+from __future__ import annotations
+
+import threading
+import time
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import pytest
+from _synth import step, wait, write_run
+
+import pipeprobe
+from pipeprobe.threads import check_threads
+from pipeprobe.whatif.engine import replay
+from pipeprobe.whatif.plan import plan_from_durations
+
+OPENMP_2 = {"pools": [{"api": "openmp", "library": "libgomp", "threads": 2}], "usable_cores": 2}
+
+
+def _burn(seconds: float, spent: list[float]) -> None:
+    t = time.thread_time()
+    while time.thread_time() - t < seconds:
+        pass
+    spent.append(time.thread_time() - t)
+
+
+class TestRecording:
+    def test_wait_holds_the_cpu_other_threads_used(self, tmp_path: Path) -> None:
+        """Each wait's others_cpu_s holds a helper thread's CPU during it (the helper's own clock), the wait spans none."""
+        spent: list[float] = []
+
+        def batches():
+            for i in range(4):
+                helper = threading.Thread(target=_burn, args=(0.02, spent))
+                helper.start()
+                helper.join()
+                yield i
+
+        with pipeprobe.Probe(tmp_path / "run", report=False, sample_interval_s=30.0) as probe:
+            for _ in probe.watch(batches()):
+                with probe.step():
+                    pass
+        run = pipeprobe.load(tmp_path / "run")
+        others = run.batches["others_cpu_s"].to_numpy()
+        extra = others - np.array(spent)
+        waits = run.spans[run.spans["stage"] == "wait"]
+        assert (True, True, "other-threads") == (bool((extra >= -1e-4).all() and (extra < 0.01).all()),
+                                                 bool(waits["cpu_s"].isna().all()), run.header["wait_cpu"])
+
+    def test_no_other_thread_no_cpu(self, tmp_path: Path) -> None:
+        """A loop whose process runs no other thread while it waits records (almost) no such CPU."""
+        with pipeprobe.Probe(tmp_path / "run", report=False, sample_interval_s=30.0) as probe:
+            for _ in probe.watch(range(4)):
+                time.sleep(0.005)
+        others = pipeprobe.load(tmp_path / "run").batches["others_cpu_s"].to_numpy()
+        assert [True] * 4 == list(others < 0.002)
+
+
+def _spin_run(tmp_path: Path, wait_ms: float, others_ms: float, threads: int = 2) -> Path:
+    """Five batches: each wait (after the first) saw ``others_ms`` of the process's other threads' CPU."""
+    rows, t = [], 0.0
+    for b in range(5):
+        rows.append(wait(t, t + wait_ms, b, cpu_ms=others_ms if b else 0.0))
+        rows.append(step(t + wait_ms, t + wait_ms + 10.0, b, cpu_ms=10.0 * threads))
+        t += wait_ms + 10.0
+    pools = {**OPENMP_2, "pools": [{"api": "openmp", "library": "libgomp", "threads": threads}]}
+    return write_run(tmp_path, {1: rows}, cores=2, header_extra={"threads": pools, "step_cpu": "process",
+                                                                  "wait_cpu": "other-threads"})
+
+
+class TestEstimate:
+    def test_spin_that_ends_inside_the_wait(self, tmp_path: Path) -> None:
+        """Waits of 20 ms with 4 ms of the other pool thread's CPU: it spins 4 ms after each step (hand-worked)."""
+        check = check_threads(pipeprobe.load(_spin_run(tmp_path, 20.0, 4.0)))
+        assert 0.004 == pytest.approx(check.spin_s, abs=1e-9)
+
+    def test_spin_shared_by_the_pool_threads(self, tmp_path: Path) -> None:
+        """A pool of 4 threads: 12 ms of other threads' CPU is 4 ms for each of the 3 beside the loop (hand-worked)."""
+        check = check_threads(pipeprobe.load(_spin_run(tmp_path, 20.0, 12.0, threads=4)))
+        assert 0.004 == pytest.approx(check.spin_s, abs=1e-9)
+
+    def test_spin_longer_than_every_wait(self, tmp_path: Path) -> None:
+        """Waits of 3 ms filled with spin: the longest seen, 3 ms, is what the run shows (a lower bound)."""
+        check = check_threads(pipeprobe.load(_spin_run(tmp_path, 3.0, 3.0)))
+        assert 0.003 == pytest.approx(check.spin_s, abs=1e-9)
+
+    def test_plan_carries_the_spin(self, tmp_path: Path) -> None:
+        """The replay plan runs the pool's one other thread for the spin after each step."""
+        from pipeprobe.whatif.plan import build_plan
+
+        plan = build_plan(pipeprobe.load(_spin_run(tmp_path, 20.0, 4.0)))
+        assert (0.004, 1.0) == (pytest.approx(plan.spin_s, abs=1e-9), plan.spin_threads)
+
+
+class TestReplay:
+    """Processor sharing (Kleinrock 1976, ch. 4) worked by hand on one core: 10 ms CPU-bound loader tasks, a
+    2 ms CPU-bound step."""
+
+    def _plan(self, workers: int, spin_s: float):
+        plan = plan_from_durations([0.010] * 3, [0.002] * 3, task_cpu_s=[0.010] * 3, step_cpu_s=[0.002] * 3,
+                                   workers=workers, prefetch=1, cores=1)
+        return replace(plan, spin_s=spin_s, spin_threads=1.0)
+
+    def test_spin_takes_the_workers_share(self, tmp_path: Path) -> None:
+        """One worker: 36 ms without spin; a 4 ms spin after each step halves the worker's speed for 8 ms of
+        each of the first two batches' waits: 44 ms (hand-worked)."""
+        base, spun = replay(self._plan(1, 0.0)).wall_s, replay(self._plan(1, 0.004)).wall_s
+        assert (0.036, 0.044) == (pytest.approx(base, abs=1e-9), pytest.approx(spun, abs=1e-9))
+
+    def test_next_step_ends_the_spin(self, tmp_path: Path) -> None:
+        """No workers, a 30 ms spin: the loop's own 10 ms load runs at half speed beside it (20 ms), then the
+        step puts the pool to work and runs alone: 10 + 2 + 2 x (20 + 2) = 56 ms (hand-worked)."""
+        spun = replay(self._plan(0, 0.030)).wall_s
+        assert 0.056 == pytest.approx(spun, abs=1e-9)
