@@ -26,10 +26,24 @@ def _pools(c: ThreadCheck) -> str:
     return ", ".join(f"{p['library'] or p['api']} {p['threads']}" for p in c.pools) or "none seen"
 
 
+#: Spin after a step the section mentions (our choice: below it, the CPU of the probe's own threads).
+SPIN_SHOWN_S = 0.0005
+
+
+def _spin_text(c: ThreadCheck) -> list[str]:
+    """The step pool's threads that ran on after each step, when they did."""
+    if c.spin_s < SPIN_SHOWN_S:
+        return []
+    n = max(1, c.step_threads - 1)
+    return wrap(f"after each step the pool's {'other thread' if n == 1 else f'{n} other threads'} ran on for "
+                f"{1e3 * c.spin_s:.1f} ms (spinning while the loop waited: CPU loader workers cannot use; the "
+                "replay counts it)", "    ", "  ")
+
+
 def threads_text(c: ThreadCheck) -> list[str]:
     """The section's lines: skipped (and why), or the pools, the load, what it cost and the fix."""
     if c.skipped is not None:
-        return [fit(f"threads  check skipped: {c.skipped}")]
+        return [fit(f"threads  check skipped: {c.skipped}"), *_spin_text(c)]
     head = "oversubscribed" if c.oversubscribed else "the threads fit the cores"
     if c.workers == 0:
         return _beside_others_text(c, head)
@@ -50,6 +64,7 @@ def threads_text(c: ThreadCheck) -> list[str]:
     else:
         lines.append(fit(f"  too few steps with busy ({c.busy_steps}) and idle ({c.idle_steps}) workers to "
                          "compare the step's time"))
+    lines += _spin_text(c)
     if c.is_unexplained:
         lines += wrap("the step slowed down more than sharing the cores explains (threads waiting for each "
                       "other): what-if predictions of this run come with a range", "    ", "  ")
@@ -65,7 +80,7 @@ def _beside_others_text(c: ThreadCheck, head: str) -> list[str]:
     lines += wrap(f"pools: {_pools(c)}; the step used {c.step_cores:.2f} cores; other processes kept "
                   f"{c.background_cores:.1f} cores busy (the run has no steps without them to say what it cost)",
                   "    ", "  ")
-    return lines + wrap(f"fix: {c.advice}", "    ", "  ")
+    return lines + _spin_text(c) + wrap(f"fix: {c.advice}", "    ", "  ")
 
 
 def threads_data(c: ThreadCheck) -> dict[str, Any]:
@@ -76,4 +91,4 @@ def threads_data(c: ThreadCheck) -> dict[str, Any]:
         "oversubscribed": c.oversubscribed, "busy_steps": c.busy_steps, "idle_steps": c.idle_steps,
         "busy_step_s": c.busy_step_s, "idle_step_s": c.idle_step_s, "slowdown": c.slowdown,
         "explained_slowdown": c.explained_slowdown, "unexplained": c.unexplained, "cost_s": c.cost_s,
-        "advice": c.advice, "background_cores": c.background_cores})}
+        "advice": c.advice, "background_cores": c.background_cores, "spin_s": c.spin_s})}

@@ -114,3 +114,14 @@ class TestReplay:
         step puts the pool to work and runs alone: 10 + 2 + 2 x (20 + 2) = 56 ms (hand-worked)."""
         spun = replay(self._plan(0, 0.030)).wall_s
         assert 0.056 == pytest.approx(spun, abs=1e-9)
+
+
+class TestReport:
+    def test_report_names_the_spin(self, tmp_path: Path) -> None:
+        """The threads section says how long the pool ran on after each step; the JSON holds it."""
+        from pipeprobe.report import format_report, report_dict
+
+        rep = pipeprobe.analyze(_spin_run(tmp_path, 20.0, 4.0))
+        text = format_report(rep)
+        assert (True, 0.004) == ("after each step the pool's other thread ran on for 4.0 ms" in " ".join(
+            text.split()), pytest.approx(report_dict(rep)["threads"]["spin_s"], abs=1e-9))
