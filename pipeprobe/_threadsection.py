@@ -26,13 +26,9 @@ def _pools(c: ThreadCheck) -> str:
     return ", ".join(f"{p['library'] or p['api']} {p['threads']}" for p in c.pools) or "none seen"
 
 
-#: Spin after a step the section mentions (our choice: below it, the CPU of the probe's own threads).
-SPIN_SHOWN_S = 0.0005
-
-
 def _spin_text(c: ThreadCheck) -> list[str]:
     """The step pool's threads that ran on after each step, when they did."""
-    if c.spin_s < SPIN_SHOWN_S:
+    if not c.spins:
         return []
     n = max(1, c.step_threads - 1)
     return wrap(f"after each step the pool's {'other thread' if n == 1 else f'{n} other threads'} ran on for "

@@ -50,6 +50,8 @@ IDLE_LOAD = 0.1
 MIN_STEPS = 3
 #: Observed over explained slow-down above which the recording shows contention the model misses.
 UNEXPLAINED_MARGIN = 1.10
+#: Spin after a step that counts as a spinning pool (our choice: below it, the CPU of the probe's own threads).
+SPIN_MIN_S = 0.0005
 #: A wait whose other threads ran for less than this share of it saw the pool's spin end (our choice).
 SPIN_ENDED = 0.8
 #: Cores the step keeps however busy the machine was (as the replay's plan does).
@@ -139,6 +141,12 @@ class ThreadCheck:
         if not math.isfinite(self.step_cores):  # a skipped check keeps 1.0, but for a run without workers
             return 1.0
         return float(min(max(self.step_cores, 1.0), self.step_threads))
+
+    @property
+    def spins(self) -> bool:
+        """The step's pool has several threads and they ran on after the steps (:attr:`spin_s`): its
+        threads spin at barriers, so they make progress only while all of them have a core."""
+        return self.step_threads > 1 and self.spin_s >= SPIN_MIN_S
 
     @property
     def is_unexplained(self) -> bool:

@@ -87,11 +87,32 @@ class TestEstimate:
         assert 0.003 == pytest.approx(check.spin_s, abs=1e-9)
 
     def test_plan_carries_the_spin(self, tmp_path: Path) -> None:
-        """The replay plan runs the pool's one other thread for the spin after each step."""
+        """The replay plan runs the pool's one other thread for the spin after each step, and the step's two
+        threads in lockstep (they used 2 cores: 20 ms of CPU in 10 ms steps)."""
         from pipeprobe.whatif.plan import build_plan
 
         plan = build_plan(pipeprobe.load(_spin_run(tmp_path, 20.0, 4.0)))
-        assert (0.004, 1.0) == (pytest.approx(plan.spin_s, abs=1e-9), plan.spin_threads)
+        assert (0.004, 1.0, 2.0) == (pytest.approx(plan.spin_s, abs=1e-9), plan.spin_threads, plan.step_lockstep)
+
+    def test_pool_that_sleeps_shares_the_cores(self, tmp_path: Path) -> None:
+        """A pool whose threads ran nothing after the steps (a passive wait policy) is replayed under plain
+        processor sharing."""
+        from pipeprobe.whatif.plan import build_plan
+
+        plan = build_plan(pipeprobe.load(_spin_run(tmp_path, 20.0, 0.0)))
+        assert (0.0, 1.0) == (plan.spin_s, plan.step_lockstep)
+
+
+class TestContention:
+    def test_lockstep_pool_slowed_by_its_share_and_its_partners(self) -> None:
+        """A 2-thread pool in lockstep on [0, 10] beside a task on [0, 5], 2 cores: 3 threads want 2 cores on
+        [0, 5], so the pool runs 2 x 3/2 = 3 times slower there and at full speed after: mean 2; the task
+        1.5 (hand-worked; processor sharing, Kleinrock 1976, with co-scheduling, Ousterhout 1982)."""
+        from pipeprobe.whatif._contention import _segments_mean_slowdown
+
+        slow = _segments_mean_slowdown(np.array([0.0, 0.0]), np.array([10.0, 5.0]), np.array([2.0, 1.0]), 2.0,
+                                       np.array([2.0, 1.0]))
+        assert [2.0, 1.5] == pytest.approx(slow.tolist(), abs=1e-12)
 
 
 class TestReplay:

@@ -25,8 +25,14 @@ __all__ = ["remove_contention", "split_cpu", "cores_left", "background_cores", "
 MIN_CORES_LEFT = 0.25
 
 
-def _segments_mean_slowdown(starts: np.ndarray, ends: np.ndarray, weights: np.ndarray, cores: float) -> np.ndarray:
-    """Mean of ``max(1, n(t) / cores)`` over each interval, ``n(t)`` the weighted count of open intervals."""
+def _segments_mean_slowdown(starts: np.ndarray, ends: np.ndarray, weights: np.ndarray, cores: float,
+                            lockstep: np.ndarray | None = None) -> np.ndarray:
+    """Mean of ``max(1, n(t) / cores)`` over each interval, ``n(t)`` the weighted count of open intervals.
+
+    A task with a ``lockstep`` factor ``L > 1`` (a pool whose threads must run together) is slowed
+    ``L n(t) / cores`` wherever ``n(t)`` exceeds the cores, as :class:`~pipeprobe.whatif._cores.CpuShare`
+    replays it.
+    """
     if len(starts) == 0:
         return np.ones(0)
     t = np.concatenate([starts, ends])
@@ -34,20 +40,26 @@ def _segments_mean_slowdown(starts: np.ndarray, ends: np.ndarray, weights: np.nd
     order = np.argsort(t, kind="stable")
     t, d = t[order], d[order]
     n = np.cumsum(d)  # load on [t[i], t[i+1])
-    slow = np.maximum(1.0, n / cores)
     seg = np.diff(t)
-    integral = np.concatenate([[0.0], np.cumsum(slow[:-1] * seg)])
     i0 = np.searchsorted(t, starts, side="left")
     i1 = np.searchsorted(t, ends, side="left")
     dur = ends - starts
-    with np.errstate(invalid="ignore", divide="ignore"):
-        out = (integral[i1] - integral[i0]) / dur
-    return np.where(dur > 0, out, 1.0)
+
+    def mean_of(level: np.ndarray) -> np.ndarray:
+        integral = np.concatenate([[0.0], np.cumsum(level[:-1] * seg)])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(dur > 0, (integral[i1] - integral[i0]) / dur, 1.0)
+
+    out = mean_of(np.maximum(1.0, n / cores))
+    if lockstep is not None and (lockstep > 1.0).any():
+        over = mean_of(np.where(n > cores, n / cores, 0.0))
+        out = out + (lockstep - 1.0) * np.where(dur > 0, over, 0.0)
+    return out
 
 
 def remove_contention(
     tasks: list[tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]], cores: float,
-    widths: list[float] | None = None,
+    widths: list[float] | None = None, lockstep: list[float] | None = None,
 ) -> list[np.ndarray]:
     """Per task, the mean CPU slowdown it suffered from sharing ``cores`` with the other tasks.
 
@@ -57,7 +69,9 @@ def remove_contention(
     The CPU part of a task is slowed by the load ``n(t) / cores`` when that
     exceeds 1; its off-CPU part is not. ``widths`` gives the threads each
     task kind runs on (1 each by default: a training step on a pool of
-    threads loads the cores with each of them).
+    threads loads the cores with each of them); ``lockstep`` how much
+    slower a kind's pool runs whenever the cores are oversubscribed (1 each
+    by default; see :attr:`pipeprobe.whatif.plan.ReplayPlan.step_lockstep`).
     """
     starts = np.concatenate([t[0] for t in tasks])
     ends = np.concatenate([t[1] for t in tasks])
@@ -65,9 +79,10 @@ def remove_contention(
     cpu = np.concatenate([t[3] for t in tasks])
     u = np.where(cpu > 0, 1.0, 0.0)
     width = np.concatenate([np.full(len(t[0]), w) for t, w in zip(tasks, widths or [1.0] * len(tasks))])
+    lock = np.concatenate([np.full(len(t[0]), x) for t, x in zip(tasks, lockstep or [1.0] * len(tasks))])
     slow = np.ones(len(starts))
     for _ in range(3):
-        slow = _segments_mean_slowdown(starts, ends, u * width, float(cores))
+        slow = _segments_mean_slowdown(starts, ends, u * width, float(cores), lock)
         cpu_free = np.minimum(cpu, wall / slow)
         nominal = wall - cpu_free * (slow - 1.0)
         with np.errstate(invalid="ignore", divide="ignore"):
