@@ -92,7 +92,7 @@ class TestEstimate:
         from pipeprobe.whatif.plan import build_plan
 
         plan = build_plan(pipeprobe.load(_spin_run(tmp_path, 20.0, 4.0)))
-        assert (0.004, 1.0, 2.0) == (pytest.approx(plan.spin_s, abs=1e-9), plan.spin_threads, plan.step_lockstep)
+        assert (0.004, 1.0, 2.0) == (pytest.approx(plan.spin_s, abs=1e-9), plan.spin_threads, plan.step_together)
 
     def test_pool_that_sleeps_shares_the_cores(self, tmp_path: Path) -> None:
         """A pool whose threads ran nothing after the steps (a passive wait policy) is replayed under plain
@@ -100,7 +100,7 @@ class TestEstimate:
         from pipeprobe.whatif.plan import build_plan
 
         plan = build_plan(pipeprobe.load(_spin_run(tmp_path, 20.0, 0.0)))
-        assert (0.0, 1.0) == (plan.spin_s, plan.step_lockstep)
+        assert (0.0, 1.0) == (plan.spin_s, plan.step_together)
 
 
 class TestContention:

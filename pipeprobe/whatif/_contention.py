@@ -19,6 +19,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from ._cores import lockstep_speed
+
 __all__ = ["remove_contention", "split_cpu", "cores_left", "background_cores", "max_overlap"]
 
 #: Cores a run keeps however busy the machine was (a quarter core: a process is never starved entirely).
@@ -26,12 +28,12 @@ MIN_CORES_LEFT = 0.25
 
 
 def _segments_mean_slowdown(starts: np.ndarray, ends: np.ndarray, weights: np.ndarray, cores: float,
-                            lockstep: np.ndarray | None = None) -> np.ndarray:
+                            together: np.ndarray | None = None) -> np.ndarray:
     """Mean of ``max(1, n(t) / cores)`` over each interval, ``n(t)`` the weighted count of open intervals.
 
-    A task with a ``lockstep`` factor ``L > 1`` (a pool whose threads must run together) is slowed
-    ``L n(t) / cores`` wherever ``n(t)`` exceeds the cores, as :class:`~pipeprobe.whatif._cores.CpuShare`
-    replays it.
+    A task with ``together`` ``k > 1`` threads (a pool whose threads must run together) is slowed
+    ``1 / lockstep_speed(cores / n(t), k, cores)`` wherever ``n(t)`` exceeds the cores, as
+    :class:`~pipeprobe.whatif._cores.CpuShare` replays it.
     """
     if len(starts) == 0:
         return np.ones(0)
@@ -51,15 +53,18 @@ def _segments_mean_slowdown(starts: np.ndarray, ends: np.ndarray, weights: np.nd
             return np.where(dur > 0, (integral[i1] - integral[i0]) / dur, 1.0)
 
     out = mean_of(np.maximum(1.0, n / cores))
-    if lockstep is not None and (lockstep > 1.0).any():
-        over = mean_of(np.where(n > cores, n / cores, 0.0))
-        out = out + (lockstep - 1.0) * np.where(dur > 0, over, 0.0)
+    for k in np.unique(together[together > 1.0]) if together is not None else ():
+        with np.errstate(invalid="ignore", divide="ignore"):
+            r = np.where(n > cores, cores / n, 1.0)
+        speed = np.array([lockstep_speed(x, float(k), cores) for x in r.tolist()])
+        mine = together == k
+        out[mine] = mean_of(1.0 / speed)[mine]
     return out
 
 
 def remove_contention(
     tasks: list[tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]], cores: float,
-    widths: list[float] | None = None, lockstep: list[float] | None = None,
+    widths: list[float] | None = None, together: list[float] | None = None,
 ) -> list[np.ndarray]:
     """Per task, the mean CPU slowdown it suffered from sharing ``cores`` with the other tasks.
 
@@ -69,9 +74,9 @@ def remove_contention(
     The CPU part of a task is slowed by the load ``n(t) / cores`` when that
     exceeds 1; its off-CPU part is not. ``widths`` gives the threads each
     task kind runs on (1 each by default: a training step on a pool of
-    threads loads the cores with each of them); ``lockstep`` how much
-    slower a kind's pool runs whenever the cores are oversubscribed (1 each
-    by default; see :attr:`pipeprobe.whatif.plan.ReplayPlan.step_lockstep`).
+    threads loads the cores with each of them); ``together`` the threads of
+    a kind's pool that progress only together (1 each by default; see
+    :attr:`pipeprobe.whatif.plan.ReplayPlan.step_together`).
     """
     starts = np.concatenate([t[0] for t in tasks])
     ends = np.concatenate([t[1] for t in tasks])
@@ -79,7 +84,7 @@ def remove_contention(
     cpu = np.concatenate([t[3] for t in tasks])
     u = np.where(cpu > 0, 1.0, 0.0)
     width = np.concatenate([np.full(len(t[0]), w) for t, w in zip(tasks, widths or [1.0] * len(tasks))])
-    lock = np.concatenate([np.full(len(t[0]), x) for t, x in zip(tasks, lockstep or [1.0] * len(tasks))])
+    lock = np.concatenate([np.full(len(t[0]), x) for t, x in zip(tasks, together or [1.0] * len(tasks))])
     slow = np.ones(len(starts))
     for _ in range(3):
         slow = _segments_mean_slowdown(starts, ends, u * width, float(cores), lock)

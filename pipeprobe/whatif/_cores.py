@@ -29,7 +29,7 @@ from __future__ import annotations
 
 import math
 
-__all__ = ["cpu_speed", "progress_rate", "CpuShare"]
+__all__ = ["cpu_speed", "progress_rate", "lockstep_speed", "CpuShare"]
 
 #: Steps at most when solving for the common CPU speed: Newton converges in a handful, bisection
 #: (where Newton would leave the bracket) gains a bit per step.
@@ -48,6 +48,35 @@ def progress_rate(u: float, r: float) -> float:
     0.6666666666666666
     """
     return 1.0 / (1.0 - u + u / r) if r < 1.0 else 1.0
+
+
+def lockstep_speed(r: float, k: float, cores: float) -> float:
+    """The CPU speed of a pool of ``k`` threads that progress only while all of them hold a core, when the
+    runnable threads share ``cores`` cores at speed ``r`` each.
+
+    Threads that spin at barriers behave so (co-scheduling, Ousterhout
+    1982): a thread whose partner has no core spins and gets nothing done.
+    With ``n = cores / r`` threads wanting the cores, ``cores`` of them run
+    at a time; taken at random, all ``k`` of the pool run together with the
+    hypergeometric probability ``prod_{i < k} (cores - i) / (n - i)``
+    (written with gamma functions, so ``k``, ``n`` and ``cores`` may be
+    fractional); a pool at most as wide as the cores, so ``k`` is capped there.
+
+    Examples
+    --------
+    >>> round(lockstep_speed(2 / 3, 2, 2), 6)  # a 2-thread pool and one busy worker on 2 cores: a third
+    0.333333
+    >>> round(lockstep_speed(0.5, 2, 2), 6)  # ... and two busy workers: both of the 4 threads run 1 time in 6
+    0.166667
+    >>> lockstep_speed(1.0, 2, 2)
+    1.0
+    """
+    if r >= 1.0 or k <= 1.0:
+        return r
+    k = min(k, cores)
+    n = cores / r
+    lg = math.lgamma
+    return math.exp(lg(cores + 1.0) - lg(cores - k + 1.0) - lg(n + 1.0) + lg(n - k + 1.0))
 
 
 def cpu_speed(us: list[float], cores: float, widths: list[float] | None = None) -> float:
@@ -119,16 +148,20 @@ class CpuShare:
     (2.0, 0)
     """
 
-    __slots__ = ("cores", "contended", "finish", "batch", "_u", "_rem", "_rho", "_last_t", "_widths", "lockstep")
+    __slots__ = ("cores", "contended", "finish", "batch", "_u", "_rem", "_rho", "_last_t", "_widths", "lockstep",
+                 "together")
 
     def __init__(self, cores: float, entities: int, extra_threads: float = 0.0) -> None:
         self.cores = cores
         self.contended = cores < entities + extra_threads
         #: entity -> threads of its running task, where not 1
         self._widths: dict[int, float] = {}
-        #: entity -> how much slower its tasks progress whenever the cores are oversubscribed (threads that
-        #: wait for a descheduled partner at each barrier; the pessimistic end of a prediction's range)
+        #: entity -> how much slower its tasks progress whenever the cores are oversubscribed (a pool that
+        #: gains nothing from its threads then; the pessimistic end of a prediction's range)
         self.lockstep: dict[int, float] = {}
+        #: entity -> threads that progress only together (:func:`lockstep_speed`) in its tasks that run on
+        #: several threads (a pool whose threads spin at barriers)
+        self.together: dict[int, float] = {}
         #: entity -> finish time of its running task, in the order the tasks started (ties go to the
         #: earliest start)
         self.finish: dict[int, float] = {}
@@ -189,7 +222,10 @@ class CpuShare:
         u, rho, finish = self._u, self._rho, self.finish
         for e, rem in self._rem.items():
             ue = u[e]
-            rr = 1.0 / (1.0 - ue + ue / r) if r < 1.0 else 1.0  # progress_rate(ue, r), inlined for speed
+            if r < 1.0 and e in self.together and e in wd:
+                rr = progress_rate(ue, lockstep_speed(r, self.together[e], self.cores))
+            else:
+                rr = 1.0 / (1.0 - ue + ue / r) if r < 1.0 else 1.0  # progress_rate(ue, r), inlined for speed
             if r < 1.0 and e in self.lockstep:
                 rr /= self.lockstep[e]
             rho[e] = rr

@@ -160,5 +160,6 @@ def load_range(plan: ReplayPlan, base_wall_s: float, scenario: Scenario, predict
         return min(other, predicted_s), predicted_s
     pool = _pool_joined(plan, scenario)
     if pool:  # as the thread range's high end: the pool loses its speed-up whenever the cores are oversubscribed
-        other = max(other, replay(replace(plan, step_lockstep=float(pool)), scenario).wall_s * scale)
+        other = max(other, replay(replace(plan, step_lockstep=float(pool), step_together=1.0),
+                                  scenario).wall_s * scale)
     return predicted_s, max(other, predicted_s)

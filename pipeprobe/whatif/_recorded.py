@@ -423,24 +423,24 @@ class PoolSpin:
 
 def without_contention(loader: _LoaderTasks, consumer: _ConsumerWork, batches: _Batches,
                         cores: float, step_width: float = 1.0, spin: PoolSpin | None = None,
-                        step_lockstep: float = 1.0) -> tuple[Work, Work]:
+                        step_together: float = 1.0) -> tuple[Work, Work]:
     """Step 4: both sides' work with the slow-down of sharing the recorded cores taken out of the CPU parts.
 
-    The consumer's work runs on ``step_width`` threads (see :attr:`ReplayPlan.step_width`), ``step_lockstep``
-    times slower while the cores are oversubscribed; the step pool's threads that spin after each step
-    (``spin``) load the cores too.
+    The consumer's work runs on ``step_width`` threads (see :attr:`ReplayPlan.step_width`), ``step_together``
+    of them only together (:attr:`ReplayPlan.step_together`); the step pool's threads that spin after each
+    step (``spin``) load the cores too.
     """
     ld, lc = loader.seconds.dur_s, loader.seconds.cpu_s
     cd, cc = consumer.seconds.dur_s, consumer.seconds.cpu_s
     first, ready = loader.first_s, batches.ready_s
     task_wall = np.maximum(0.0, loader.last_s - first)
     tasks = [(first, first + task_wall, ld.sum(1), lc.sum(1)), (ready, ready + cd.sum(1), cd.sum(1), cc.sum(1))]
-    widths, lockstep = [1.0, step_width], [1.0, step_lockstep]
+    widths, together = [1.0, step_width], [1.0, step_together]
     if spin is not None and spin.cpu_s > 0:
         tasks.append(spin.intervals(batches))
         widths.append(spin.threads)
-        lockstep.append(1.0)
-    lslow, cslow = remove_contention(tasks, cores, widths, lockstep)[:2]
+        together.append(1.0)
+    lslow, cslow = remove_contention(tasks, cores, widths, together)[:2]
     lio, lcpu = split_cpu(ld, lc, lslow)
     cio, ccpu = split_cpu(cd, cc, cslow)
     return Work(loader.seconds.names, lio, lcpu), Work(consumer.seconds.names, cio, ccpu)

@@ -16,9 +16,7 @@ partner spins or sleeps, and the step takes as long as its slowest thread.
 The low end is the processor-sharing replay, and, where part of the
 recorded slow-down is unexplained, the replay without that part. The high
 end replays the step as a pool that loses its speed-up whenever the cores
-are oversubscribed (the prediction itself does so for a pool whose
-threads spin after the step, :attr:`~pipeprobe.threads.ThreadCheck.spins`: they spin
-at barriers too, so the pool runs only while all of them hold a core) (its threads wait for a descheduled partner at each
+are oversubscribed (its threads wait for a descheduled partner at each
 barrier, so its CPU seconds run as if on one thread), or, where the
 recording shows more, the unexplained slow-down grown in proportion to the
 threads beyond the cores.
@@ -70,11 +68,8 @@ def range_reason(plan: ReplayPlan, scenario: Scenario) -> str:
         return (f"the step ran {check.slowdown:.2f}x slower beside busy workers where processor sharing explains "
                 f"{check.explained_slowdown:.2f}x")
     if check.step_threads > 1 and workers > 0 and _excess(check, workers, cores) > recorded + 0.25:
-        spin = (f"; its pool's threads spin ({1e3 * check.spin_s:.1f} ms after each step), so the prediction runs "
-                "them in lockstep while the cores are oversubscribed, the low end shares the cores evenly"
-                if plan.step_lockstep > 1.0 else "")
         return (f"{check.step_threads} step threads and {workers} workers oversubscribe {cores:.3g} cores more than "
-                f"the recorded run did{spin}")
+                "the recorded run did")
     return ""
 
 
@@ -110,11 +105,10 @@ def wall_range(plan: ReplayPlan, base_wall_s: float, scenario: Scenario, predict
     new_excess = _excess(check, workers, cores)
     grown = 1.0 + (x - 1.0) * (new_excess / rec_excess if rec_excess > 0 else 1.0)
     low = predicted_s
-    if plan.step_lockstep > 1.0:  # a spinning pool, predicted in lockstep: the low end shares the cores evenly
-        low = min(low, replay(replace(plan, step_lockstep=1.0), scenario).wall_s * scale)
     if x > 1.0:
         relieved = replace(scenario, faster={**scenario.faster, "step": step * recorded_mix})
         low = min(low, replay(plan, relieved).wall_s * scale)
-    lockstep = max(float(check.step_threads), grown, plan.step_lockstep)  # a pool of k threads gains at most k-fold
-    high = max(predicted_s, replay(replace(plan, step_lockstep=lockstep), scenario).wall_s * scale)
+    lockstep = max(float(check.step_threads), grown)  # a pool of k threads gains at most k-fold
+    high = max(predicted_s,
+               replay(replace(plan, step_lockstep=lockstep, step_together=1.0), scenario).wall_s * scale)
     return low, high

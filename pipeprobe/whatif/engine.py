@@ -337,6 +337,8 @@ class _Replayer:
         self.cpu = CpuShare(settings.cores, W + 1, extra_threads=plan.step_width - 1.0 + spinning)
         if plan.step_lockstep > 1.0:
             self.cpu.lockstep[W] = plan.step_lockstep
+        if plan.step_together > 1.0:
+            self.cpu.together[W] = plan.step_together
         self.log = BatchLog(nb)
         self.consumer = W  # the consumer's entity on the cores; workers are 0 .. W - 1
         self.state = _BUSY

@@ -159,12 +159,15 @@ class ReplayPlan:
         The run's thread check (None for a plan not built from a run).
     step_lockstep : float
         How much slower the consumer's work progresses whenever the cores
-        are oversubscribed, beyond processor sharing (1: not at all). A
-        pool whose threads spin (:attr:`pipeprobe.threads.ThreadCheck.spins`)
-        runs in lockstep: its ``step_width`` threads progress only while all
-        of them hold a core (co-scheduling, Ousterhout 1982), so it is
-        ``step_width``; the high end of a prediction's range sets it for
-        other pools (see :mod:`pipeprobe.whatif._threadrange`).
+        are oversubscribed, beyond processor sharing (1: not at all; the
+        high end of a prediction's range sets it, see
+        :mod:`pipeprobe.whatif._threadrange`).
+    step_together : float
+        Threads of the step's pool that progress only while all of them
+        hold a core (co-scheduling, Ousterhout 1982;
+        :func:`pipeprobe.whatif._cores.lockstep_speed`): ``step_width``
+        for a pool whose threads spin
+        (:attr:`pipeprobe.threads.ThreadCheck.spins`), else 1.
     lifecycle : WorkerLifecycle or None
         What starting and stopping one loader worker cost in the run
         (:mod:`pipeprobe.whatif._lifecycle`); a replay with another worker
@@ -211,6 +214,7 @@ class ReplayPlan:
     step_width: float = 1.0
     threads: Any = None
     step_lockstep: float = 1.0
+    step_together: float = 1.0
     lifecycle: Any = None
     workers_kept: bool = False
     epoch_worker_start_s: np.ndarray | None = None
@@ -337,9 +341,9 @@ def build_plan(
     background = background_cores(run.resources, batches.rank, cores, run.spans) if spans.cpu_known else 0.0
     threads = check_threads(run, background)
     spin = PoolSpin(threads.spin_s, max(1.0, threads.step_threads - 1.0))
-    lockstep = threads.step_width if threads.spins else 1.0  # spinning threads need their partners on a core
+    together = threads.step_width if threads.spins else 1.0  # spinning threads need their partners on a core
     loader_side, consumer_side = without_contention(loader, consumer, batches, cores_left(cores, background),
-                                                    threads.step_width, spin, lockstep)
+                                                    threads.step_width, spin, together)
     config = loader_config(batches, loader, by_worker, workers, prefetch, policy)
     times = loader_times(batches, loader, by_worker, config)
     plan = ReplayPlan(
@@ -356,7 +360,7 @@ def build_plan(
         background_cores=background, prefetch_inferred=config.prefetch_inferred,
         folded_stages=loader.seconds.folded + consumer.seconds.folded, inside=spans.inside,
         step_width=threads.step_width, threads=threads, spin_s=spin.cpu_s, spin_threads=spin.threads,
-        step_lockstep=lockstep,
+        step_together=together,
     )
     return replace(plan, lifecycle=_lifecycle_of(run, plan, loader.first_s, by_worker.worker, batches.wait_start_s))
 
