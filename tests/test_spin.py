@@ -146,3 +146,24 @@ class TestReport:
         text = format_report(rep)
         assert (True, 0.004) == ("after each step the pool's other thread ran on for 4.0 ms" in " ".join(
             text.split()), pytest.approx(report_dict(rep)["threads"]["spin_s"], abs=1e-9))
+
+
+class TestTogether:
+    """A 2-thread step beside one CPU-bound worker on 2 cores (hand-worked): 30 ms loader tasks, a 10 ms step
+    that keeps both threads busy, two batches."""
+
+    def _plan(self, together: float):
+        plan = plan_from_durations([0.030] * 2, [0.010] * 2, task_cpu_s=[0.030] * 2, step_cpu_s=[0.010] * 2,
+                                   workers=1, prefetch=1, cores=2)
+        return replace(plan, step_width=2.0, step_together=together)
+
+    def test_pool_shares_the_cores_evenly(self) -> None:
+        """Processor sharing (Kleinrock 1976): 3 threads on 2 cores run at 2/3, the step takes 15 ms beside
+        the worker's second task, which ends at 65 ms; the last step alone: 75 ms."""
+        assert 0.075 == pytest.approx(replay(self._plan(1.0)).wall_s, abs=1e-9)
+
+    def test_pool_that_runs_only_together(self) -> None:
+        """Co-scheduling (Ousterhout 1982): both step threads hold a core 1/3 of the time (hypergeometric:
+        2/3 x 1/2), so the first step takes 30 ms; the worker at 2/3 meanwhile ends at 70 ms; the last step
+        alone: 80 ms."""
+        assert 0.080 == pytest.approx(replay(self._plan(2.0)).wall_s, abs=1e-9)
