@@ -50,10 +50,9 @@ IDLE_LOAD = 0.1
 MIN_STEPS = 3
 #: Observed over explained slow-down above which the recording shows contention the model misses.
 UNEXPLAINED_MARGIN = 1.10
-#: Spin after a step that counts as a spinning pool (our choice: below it, the CPU of the probe's own threads).
+#: Spin after a step that counts as a spinning pool (our choice: below it, the CPU of the probe's own threads and
+#: of the loader's queue feeders).
 SPIN_MIN_S = 0.0005
-#: A wait whose other threads ran for less than this share of it saw the pool's spin end (our choice).
-SPIN_ENDED = 0.8
 #: Cores the step keeps however busy the machine was (as the replay's plan does).
 MIN_CORES_LEFT = 0.25
 #: A run without workers counts as oversubscribed when the step's threads and the other processes' busy
@@ -110,8 +109,8 @@ class ThreadCheck:
     spin_s : float
         CPU seconds each of the step pool's other threads kept running
         after a step, while the loop waited for its next batch (OpenMP
-        pools spin before they sleep): the median over the waits long
-        enough to see it stop, else the longest seen; 0 when none ran.
+        pools spin before they sleep): the mean over the run's waits; 0
+        when none ran.
     """
 
     skipped: str | None
@@ -409,10 +408,13 @@ def _spin_after_steps(run: Run, k: int) -> float:
     """CPU seconds each of the step's ``k - 1`` other pool threads ran on after a step (see :attr:`ThreadCheck.spin_s`).
 
     A wait records the CPU the process's other threads used during it (the
-    header's ``wait_cpu``). Where that ended well before the wait did, the
-    pool stopped spinning on its own: the median of those waits is the
-    pool's spin. Where none did, the spin lasted every wait: the longest
-    seen is a lower bound.
+    header's ``wait_cpu``); the mean over the waits that follow a step,
+    shared among the pool's other threads, is what the pool spent after a
+    step in this run. (Where the pool's spin outlasted the waits, it shows
+    only as long as they were: a lower bound of the library's spin. The
+    kernel adds a running thread's CPU time to its process's clock at its
+    scheduler ticks, so single waits read in steps of a few milliseconds;
+    their mean does not.)
 
     Examples
     --------
@@ -426,13 +428,8 @@ def _spin_after_steps(run: Run, k: int) -> float:
         return 0.0
     b = b[b["rank"] == b["rank"].min()]
     others = b["others_cpu_s"].to_numpy(np.float64)[1:] / max(1, k - 1)  # the first wait follows no step
-    wait = b["wait_s"].to_numpy(np.float64)[1:]
-    ok = np.isfinite(others)
-    others, wait = others[ok], wait[ok]
-    if not len(others) or not (others > 0).any():
-        return 0.0
-    ended = others < SPIN_ENDED * wait
-    return float(np.median(others[ended])) if ended.sum() >= MIN_STEPS else float(others.max())
+    others = others[np.isfinite(others)]
+    return float(others.mean()) if len(others) else 0.0
 
 
 def check_threads(run: Run, background_cores: float = 0.0) -> ThreadCheck:

@@ -71,6 +71,16 @@ def _spin_run(tmp_path: Path, wait_ms: float, others_ms: float, threads: int = 2
 
 
 class TestEstimate:
+    def test_mean_over_the_waits(self, tmp_path: Path) -> None:
+        """Waits reading 0, 4, 0 and 8 ms of other threads' CPU (the kernel's tick steps): 3 ms a step, the mean."""
+        rows, t = [], 0.0
+        for b, others in enumerate([0.0, 0.0, 4.0, 0.0, 8.0]):
+            rows += [wait(t, t + 20.0, b, cpu_ms=others), step(t + 20.0, t + 30.0, b, cpu_ms=20.0)]
+            t += 30.0
+        d = write_run(tmp_path, {1: rows}, cores=2, header_extra={"threads": OPENMP_2, "step_cpu": "process",
+                                                                   "wait_cpu": "other-threads"})
+        assert 0.003 == pytest.approx(check_threads(pipeprobe.load(d)).spin_s, abs=1e-9)
+
     def test_spin_that_ends_inside_the_wait(self, tmp_path: Path) -> None:
         """Waits of 20 ms with 4 ms of the other pool thread's CPU: it spins 4 ms after each step (hand-worked)."""
         check = check_threads(pipeprobe.load(_spin_run(tmp_path, 20.0, 4.0)))
@@ -82,7 +92,7 @@ class TestEstimate:
         assert 0.004 == pytest.approx(check.spin_s, abs=1e-9)
 
     def test_spin_longer_than_every_wait(self, tmp_path: Path) -> None:
-        """Waits of 3 ms filled with spin: the longest seen, 3 ms, is what the run shows (a lower bound)."""
+        """Waits of 3 ms filled with spin: 3 ms is what the run shows (a lower bound)."""
         check = check_threads(pipeprobe.load(_spin_run(tmp_path, 3.0, 3.0)))
         assert 0.003 == pytest.approx(check.spin_s, abs=1e-9)
 

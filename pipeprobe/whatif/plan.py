@@ -340,7 +340,7 @@ def build_plan(
     cores = int(run.header.get("cores") or 1)
     background = background_cores(run.resources, batches.rank, cores, run.spans) if spans.cpu_known else 0.0
     threads = check_threads(run, background)
-    spin = PoolSpin(threads.spin_s, max(1.0, threads.step_threads - 1.0))
+    spin = PoolSpin(threads.spin_s if threads.spins else 0.0, max(1.0, threads.step_threads - 1.0))
     together = threads.step_width if threads.spins else 1.0  # spinning threads need their partners on a core
     loader_side, consumer_side = without_contention(loader, consumer, batches, cores_left(cores, background),
                                                     threads.step_width, spin, together)
