@@ -82,6 +82,7 @@ from .stagestats import (
 )
 from .stalls import Stalls, summarise_stalls
 from .timeline import NODE_COLUMNS, Timeline, build_timeline, sink_node
+from .tracefile import usable_cores
 
 __all__ = ["SlicedAnalysis", "analyze_sliced", "slice_edges", "SLICE_SPANS", "slice_batches_for", "AUTO_SLICE_SPANS"]
 
@@ -624,7 +625,7 @@ def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept, 
     table = table.sort_values(["total_s", "stage"], ascending=[False, True], kind="stable").reset_index(drop=True)
     slow = pd.concat([t for t in slowest if len(t)] or slowest[-1:], ignore_index=True)
     slow = slow.sort_values("stage", kind="stable").reset_index(drop=True)
-    cores = int(run.header.get("cores") or 1)
+    cores = usable_cores(run.header)
     busy = core_busy_during_stalls(run)
     saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
     input_on = critical.input_share >= 1.0 - 1.0 / PACE_SPEEDUP

@@ -20,6 +20,7 @@ from .critical import CriticalPath
 from .load import Run
 from .nesting import span_pieces
 from .stalls import Stalls
+from .tracefile import usable_core_ids, usable_cores
 
 __all__ = ["StageStats", "stage_stats", "STAGE_COLUMNS", "SLOWEST_COLUMNS", "SATURATED_FROM", "TAIL_FRACTION"]
 
@@ -281,7 +282,7 @@ def _covered(t: np.ndarray, s0: np.ndarray, s1: np.ndarray) -> np.ndarray:
 
 
 def core_busy_during_stalls(run: Run) -> float:
-    """Mean busy fraction of all cores while the loop stalled (NaN when unknown).
+    """Mean busy fraction of the cores the run could use while the loop stalled (NaN when unknown).
 
     Each per-core resource sample covers the time since the previous one;
     samples are weighted by how much of that time the consumer (lowest rank)
@@ -314,6 +315,9 @@ def core_busy_during_stalls(run: Run) -> float:
     """
     res = run.resources
     res = res[(res["pid"] == 0) & (res["core"] >= 0)]
+    ids = usable_core_ids(run.header)
+    if ids is not None:
+        res = res[res["core"].isin(ids)]
     if res.empty:
         return float("nan")
     res = res[res["rank"] == res["rank"].min()]
@@ -395,7 +399,7 @@ def stage_stats(run: Run, critical: CriticalPath | None = None, stalls: Stalls |
     wall = critical.wall_s if critical is not None else (stalls.wall_s if stalls is not None else run.wall_s)
     pieces = _stage_pieces(run)
     table = _table(run, critical_seconds(critical.segments) if critical is not None else None, wall, pieces)
-    cores = int(run.header.get("cores") or 1)
+    cores = usable_cores(run.header)
     busy = core_busy_during_stalls(run)
     saturated = None if math.isnan(busy) else bool(busy >= SATURATED_FROM)
     labels = input_stage_labels(critical.segments) if critical is not None else None

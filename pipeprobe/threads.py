@@ -36,6 +36,7 @@ import numpy as np
 import pandas as pd
 
 from .nesting import span_pieces
+from .tracefile import usable_cores
 
 if TYPE_CHECKING:  # pragma: no cover
     from .load import Run
@@ -264,10 +265,7 @@ def _thread_facts(run: Run) -> tuple[str | None, int, list[dict[str, Any]]]:
         return _unread(threads), 1, []
     if h.get("step_cpu") != "process":
         return "the steps' CPU time was not recorded (cpu_time=False)", 1, []
-    cores = threads.get("usable_cores") if isinstance(threads, dict) else None
-    if not isinstance(cores, int) or isinstance(cores, bool) or cores < 1:
-        cores = int(h.get("cores") or 1)
-    return None, int(cores), pools
+    return None, usable_cores(h), pools
 
 
 def _mean_load(starts: np.ndarray, ends: np.ndarray, weights: np.ndarray, a: np.ndarray, b: np.ndarray) -> np.ndarray:

@@ -45,6 +45,8 @@ import numpy as np
 from .errors import TraceFormatError
 
 __all__ = [
+    "usable_cores",
+    "usable_core_ids",
     "FORMAT_VERSION",
     "SPAN_RECORD",
     "RESOURCE_RECORD",
@@ -628,3 +630,39 @@ class ProcessHeader:
             cpu_time=bool(data.get("cpu_time")),
             extra=_extra(data, (f.name for f in fields(cls))),
         )
+
+
+def usable_cores(header: Mapping[str, Any]) -> int:
+    """Cores the run's training process could use: its CPU affinity's count from the header's ``threads``
+    facts, else the machine's ``cores`` (folders recorded before 0.2.0; a process pinned to some cores, as
+    batch schedulers do, could use only those).
+
+    Examples
+    --------
+    >>> usable_cores({"cores": 16, "threads": {"usable_cores": 4}}), usable_cores({"cores": 16})
+    (4, 16)
+    """
+    threads = header.get("threads")
+    n = threads.get("usable_cores") if isinstance(threads, dict) else None
+    if isinstance(n, int) and not isinstance(n, bool) and 1 <= n <= 1 << 20:
+        return n
+    cores = header.get("cores")
+    return int(cores) if isinstance(cores, int) and not isinstance(cores, bool) and cores >= 1 else 1
+
+
+def usable_core_ids(header: Mapping[str, Any]) -> frozenset[int] | None:
+    """The ids of the cores the training process could use (the header's ``threads.affinity``; None:
+    not recorded, then every core counts).
+
+    Examples
+    --------
+    >>> sorted(usable_core_ids({"threads": {"affinity": [2, 3]}})), usable_core_ids({})
+    ([2, 3], None)
+    """
+    threads = header.get("threads")
+    ids = threads.get("affinity") if isinstance(threads, dict) else None
+    if not isinstance(ids, list) or not ids:
+        return None
+    if not all(isinstance(i, int) and not isinstance(i, bool) and 0 <= i < 1 << 20 for i in ids):
+        return None
+    return frozenset(ids)

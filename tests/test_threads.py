@@ -351,3 +351,37 @@ class TestWorkerCountedOnce:
         d = write_run(tmp_path, {1: main, 2: worker}, cores=2, header_extra={"threads": POOLS, "step_cpu": "process"})
         check = check_threads(pipeprobe.load(d))
         assert (1, pytest.approx(1.0)) == (check.workers, check.worker_load)
+
+
+class TestAffinity:
+    """A process pinned to some of the machine's cores (as batch schedulers do) can use only those."""
+
+    def test_header_records_the_cores_the_process_may_use(self, tmp_path: Path) -> None:
+        """A probe in a process pinned to core 0 records 1 usable core and its id (the process's own affinity)."""
+        import subprocess
+        import sys
+
+        code = ("import os, pipeprobe; os.sched_setaffinity(0, {0})\n"
+                f"with pipeprobe.Probe({str(tmp_path / 'run')!r}, report=False) as probe:\n"
+                "    for _ in probe.watch(range(2)):\n        pass\n")
+        subprocess.run([sys.executable, "-c", code], check=True, timeout=120)
+        facts = pipeprobe.load(tmp_path / "run").header["threads"]
+        assert (1, [0]) == (facts["usable_cores"], facts["affinity"])
+
+    def test_other_cores_busy_take_nothing_from_the_run(self, tmp_path: Path) -> None:
+        """8 cores, the run pinned to cores 0 and 1, other jobs keeping cores 2 to 7 busy: the replay gives the
+        run its 2 cores, none of them taken (common practice: a cpuset confines a job to its cores)."""
+        from _synth import write_resources
+
+        from pipeprobe.whatif.plan import build_plan
+
+        rows = []
+        for b in range(6):
+            rows += [stage("decode", 30 * b, 30 * b + 20, sample=b, batch=b, cpu_ms=20.0),
+                     wait(30 * b, 30 * b + 20, b), step(30 * b + 20, 30 * b + 30, b, cpu_ms=10.0)]
+        pools = {"pools": [], "usable_cores": 2, "affinity": [0, 1]}
+        d = write_run(tmp_path, {1: rows}, cores=8, header_extra={"threads": pools, "step_cpu": "process"})
+        write_resources(d, [(t, 0, core, 100.0 if core >= 2 else 50.0) for t in (0, 60, 120, 180)
+                            for core in range(8)] + [(t, 1, -1, 100.0) for t in (0, 60, 120, 180)])
+        plan = build_plan(pipeprobe.load(d))
+        assert (2, 0.0) == (plan.cores, plan.background_cores)

@@ -26,6 +26,8 @@ STEP_CPU_PROCESS = "process"
 WAIT_CPU_OTHERS = "other-threads"
 #: Pools kept in the header at most (a process loads a handful).
 MAX_POOLS = 16
+#: Core ids listed in the header at most (beyond, only their count).
+MAX_AFFINITY = 4096
 
 
 def _usable_cores() -> int:
@@ -34,6 +36,15 @@ def _usable_cores() -> int:
         return len(os.sched_getaffinity(0))
     except (AttributeError, OSError):
         return os.cpu_count() or 1
+
+
+def _affinity() -> list[int] | None:
+    """The ids of the cores this process may run on, when the system says (None: unknown or too many to list)."""
+    try:
+        ids = sorted(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        return None
+    return ids if len(ids) <= MAX_AFFINITY else None
 
 
 def _pools() -> list[dict[str, Any]] | None:
@@ -66,9 +77,10 @@ def read_thread_pools() -> dict[str, Any]:
     Examples
     --------
     >>> sorted(read_thread_pools())
-    ['error', 'pools', 'torch_intra_op', 'usable_cores']
+    ['affinity', 'error', 'pools', 'torch_intra_op', 'usable_cores']
     """
-    out: dict[str, Any] = {"usable_cores": _usable_cores(), "pools": None, "torch_intra_op": None, "error": None}
+    out: dict[str, Any] = {"usable_cores": _usable_cores(), "affinity": _affinity(), "pools": None,
+                           "torch_intra_op": None, "error": None}
     try:
         out["pools"] = _pools()
         out["torch_intra_op"] = _torch_intra_op()

@@ -111,7 +111,8 @@ def cores_left(cores: float, background: float) -> float:
     return max(MIN_CORES_LEFT, float(cores) - float(background))
 
 
-def background_cores(resources: Any, rank: int, cores: int, spans: Any = None) -> float:
+def background_cores(resources: Any, rank: int, cores: int, spans: Any = None,
+                     core_ids: frozenset[int] | None = None) -> float:
     """Cores the machine's other processes kept busy: system-wide busy cores minus this run's processes.
 
     ``resources`` is :attr:`pipeprobe.load.Run.resources`. The median over
@@ -121,7 +122,9 @@ def background_cores(resources: Any, rank: int, cores: int, spans: Any = None) -
     (``spans``, :attr:`pipeprobe.load.Run.spans`, when given): the
     sampler finds new child processes only now and then (loader workers
     started anew each epoch can live and die between two looks), the
-    spans' thread CPU clocks miss nothing they timed.
+    spans' thread CPU clocks miss nothing they timed. With ``core_ids``
+    (the cores the run could use), only those cores' busy time counts:
+    other processes on other cores took nothing from the run.
 
     Examples
     --------
@@ -147,7 +150,10 @@ def background_cores(resources: Any, rank: int, cores: int, spans: Any = None) -
     if len(times) < 3:
         return 0.0
     res = res[res["t_s"] > times[0]]
-    system = res[(res["pid"] == 0) & (res["core"] >= 0)].groupby("t_s")["cpu_pct"].sum() / 100.0
+    per_core = res[(res["pid"] == 0) & (res["core"] >= 0)]
+    if core_ids is not None:
+        per_core = per_core[per_core["core"].isin(core_ids)]
+    system = per_core.groupby("t_s")["cpu_pct"].sum() / 100.0
     ours = res[(res["pid"] > 0) & (res["core"] < 0)].groupby("t_s")["cpu_pct"].sum() / 100.0
     both = pd.concat([system.rename("system"), ours.rename("ours")], axis=1).dropna()
     if both.empty:

@@ -72,6 +72,7 @@ from ..analysis import workers_restarted
 from ..errors import ScenarioError
 from ..nesting import own_label
 from ..threads import check_threads
+from ..tracefile import usable_core_ids, usable_cores
 from ._contention import background_cores, cores_left
 from ._lifecycle import WorkerLifecycle, lifecycle_from_header, measure_lifecycle
 from ._loader import POLICIES
@@ -337,8 +338,9 @@ def build_plan(
     loader = loader_tasks(spans, batches, keep)
     by_worker = batch_workers(spans, loader)
     consumer = consumer_work(spans, batches, keep)
-    cores = int(run.header.get("cores") or 1)
-    background = background_cores(run.resources, batches.rank, cores, run.spans) if spans.cpu_known else 0.0
+    cores = usable_cores(run.header)
+    background = (background_cores(run.resources, batches.rank, cores, run.spans, usable_core_ids(run.header))
+                  if spans.cpu_known else 0.0)
     threads = check_threads(run, background)
     spin = PoolSpin(threads.spin_s if threads.spins else 0.0, max(1.0, threads.step_threads - 1.0))
     together = threads.step_width if threads.spins else 1.0  # spinning threads need their partners on a core
