@@ -177,3 +177,45 @@ def test_large_stages_of_the_sliced_analysis_go_piece_by_piece(tmp_path: Path, m
     assert (4, True) == (len(used), all(u is not None for u in used))
     pd.testing.assert_frame_equal(a.stages.table, s.stages.table, check_exact=True)
     pd.testing.assert_frame_equal(a.stages.slowest, s.stages.slowest, check_exact=True)
+
+
+class TestRunningSums:
+    @settings(max_examples=300, deadline=None)
+    @given(st.lists(st.tuples(st.integers(0, 4), _FLOATS), min_size=1, max_size=60), st.lists(st.integers(0, 60), max_size=4),
+           st.booleans())
+    def test_are_pandas_group_sums_or_say_they_are_not(self, rows: list[tuple[int, float]], cuts: list[int],
+                                                       sort: bool) -> None:
+        """Part by part, the sums are pandas' group-by sums of all rows (first seen first, or sorted), and
+        ``compensated`` is False exactly where pandas adds one value after another (pandas 3.1 ops.is_monotonic)."""
+        from pipeprobe._pathspill import _RunningSums
+
+        key, values = np.array([r[0] for r in rows]), np.array([r[1] for r in rows])
+        r = _RunningSums(sorted_keys=sort)
+        for k, v in zip(_split(key, cuts), _split(values, cuts), strict=True):
+            r.add(k, v)
+        g = pd.Series(values).groupby(key, sort=sort)
+        expected = g.sum()
+        got_keys, got = r.result()
+        assert (g._grouper.is_monotonic, expected.index.tolist()) == (r.blocks is not False, got_keys.tolist())
+        if r.compensated:
+            assert expected.to_numpy().tolist() == got.tolist()
+
+
+def test_the_path_shares_are_summed_part_by_part(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """On the 4-worker run the path's shares and stage seconds come from the running sums (its lanes, each one
+    block, are added at once as pandas adds them) and equal the in-memory analysis' (pipeprobe.analyze, exact)."""
+    from _synth import write_many_spans
+
+    import pipeprobe._pathspill
+
+    run = write_many_spans(tmp_path / "run", 1500, workers=4, batch_size=8)
+    at_once = []
+    real = pipeprobe._pathspill.PathStore._summed_at_once
+    monkeypatch.setattr(pipeprobe._pathspill.PathStore, "_summed_at_once",
+                        lambda self, which, *a: at_once.append(which) or real(self, which, *a))
+    s = pipeprobe.sliced.analyze_sliced(run, slice_batches=3)
+    a = pipeprobe.analyze(run)
+    assert ["lanes"] == at_once
+    pd.testing.assert_frame_equal(a.critical.shares, s.critical.shares, check_exact=True)
+    pd.testing.assert_frame_equal(a.critical.lanes, s.critical.lanes, check_exact=True)
+    pd.testing.assert_frame_equal(a.stages.table, s.stages.table, check_exact=True)
