@@ -43,7 +43,7 @@ from ._bigstage import kahan
 from ._coded import codes_of
 from ._spill import Spill
 from .critical import _attribute_codes, _shares_and_lanes, node_pieces, segment_frame, segment_names, tail_piece
-from .stalls import _stall_pairs
+from .stalls import BLAME_IDS, _stall_pairs
 from .timeline import NODE_COLUMNS
 
 __all__ = ["PathStore", "TEXT", "NUMBERED"]
@@ -382,8 +382,11 @@ class _StallSums:
             top[ranked.drop_duplicates("row", keep="first").index.to_numpy()] = True
         mine = top[gid] & (pairs["sample"].to_numpy() >= 0)
         kept = pairs[mine].assign(group=gid[mine]).drop_duplicates(["group", "sample"], keep="first")
-        self.groups.append(g)
-        self.samples.append(kept.drop(columns="group").assign(sec=0.0))
+        # the blame names the first BLAME_IDS samples and counts the rest: the rest travel as a count per group
+        rank = kept.groupby("group", sort=False).cumcount().to_numpy()
+        more = np.bincount(kept["group"].to_numpy()[rank >= BLAME_IDS], minlength=len(g))
+        self.groups.append(g.assign(more=more[:len(g)]))
+        self.samples.append(kept[rank < BLAME_IDS].drop(columns="group").assign(sec=0.0, more=0))
 
     def pairs(self) -> pd.DataFrame:
         """The rows that stand for all the pairs (see the class docstring)."""
@@ -391,6 +394,6 @@ class _StallSums:
             return self.empty
         way = "blocks" if self.blocks else "kahan"
         g = pd.concat(self.groups, ignore_index=True)
-        g = g.assign(sec=g[way], sample=-1)[["row", "label", "lane", "sec", "sample", "order"]]
+        g = g.assign(sec=g[way], sample=-1)[["row", "label", "lane", "sec", "sample", "order", "more"]]
         out = pd.concat([g, *self.samples], ignore_index=True)
         return out.sort_values(["row", "order"], kind="stable").reset_index(drop=True)
