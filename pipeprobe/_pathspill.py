@@ -14,10 +14,12 @@ slice's nodes) at a time, in path order:
     parts' pieces one after another, then the tail;
 ``attribution``
     the shares per label and per thread, and the stage table's seconds per
-    label, summed by the same pandas calls over the same numbers in the
-    same order as :func:`pipeprobe.critical.path_attribution` and the stage
-    table sum them (held for the sums: a label code and a number per
-    piece, about 16 bytes);
+    label, the same sums over the same numbers in the same order as
+    :func:`pipeprobe.critical.path_attribution` and the stage table's
+    pandas calls give: carried part by part with their compensation
+    (:class:`_RunningSums`) where pandas adds compensated; a grouping whose
+    keys are each one block of pieces (pandas then adds one value after
+    another) is summed from all pieces at once (a key and a number each);
 ``stall pairs``
     the pieces inside each stall, found part by part and put in the order
     :func:`pipeprobe.stalls._stall_pairs` gives them for the whole path.
@@ -351,7 +353,9 @@ class _StallSums:
     So each set of stalls is summed both ways, the samples of each way's largest group per stall kept,
     and :meth:`pairs` gives per group one row holding the sum of the way the whole set takes, then the
     kept samples as rows of no time: :func:`~pipeprobe.stalls._blame` finds from them the same sums (a sum
-    plus zeros), the same largest group and the same samples, in the same order.
+    plus zeros), the same largest group and the same samples, in the same order. Of each group's samples only
+    the first :data:`~pipeprobe.stalls.BLAME_IDS` (those the blame names) are rows; the group's row counts the
+    rest (column ``more``).
     """
 
     def __init__(self) -> None:

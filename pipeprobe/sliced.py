@@ -38,14 +38,19 @@ while holding the spans of one slice at a time. The steps:
     at a time (about :data:`pipeprobe._spill.GROUP_ROWS` rows), each stage's
     numbers read back in the whole run's order and laid out so that pandas
     adds them up as it adds the whole run's (:mod:`pipeprobe._grouplayout`):
-    the sums, percentiles and slowest samples are those of the whole run.
+    the sums, percentiles and slowest samples are those of the whole run. A
+    stage with more rows than a group is worked out a slice's part at a time
+    (:mod:`pipeprobe._bigstage`: sums carried with their compensation, exact
+    percentiles by selection, each sample's seconds a share of the samples
+    at a time).
 
 What is kept in memory across slices: the per-batch tables (waits, steps;
 the membership rows, about 28 bytes a sample, until the walk ends) and the
 index of the files. The dependency timeline (its nodes and edges, several
 hundred bytes a span) exists for one slice at a time; the stage table's
-numbers for one group of stages at a time (a stage larger than a group:
-all its numbers at once). The path's files stay until the analysis is
+numbers for one group of stages at a time (a stage larger than a group: a
+slice's part of it, and its seconds per sample, 8 bytes each, for the sum of
+all samples largest first). The path's files stay until the analysis is
 closed (:meth:`SlicedAnalysis.close`, a ``with`` block) or garbage-collected:
 ``critical.path`` and ``critical.segments`` are built from them when read.
 """
