@@ -14,10 +14,12 @@ slice's nodes) at a time, in path order:
     parts' pieces one after another, then the tail;
 ``attribution``
     the shares per label and per thread, and the stage table's seconds per
-    label, summed by the same pandas calls over the same numbers in the
-    same order as :func:`pipeprobe.critical.path_attribution` and the stage
-    table sum them (held for the sums: a label code and a number per
-    piece, about 16 bytes);
+    label, the same sums over the same numbers in the same order as
+    :func:`pipeprobe.critical.path_attribution` and the stage table's
+    pandas calls give: carried part by part with their compensation
+    (:class:`_RunningSums`) where pandas adds compensated; a grouping whose
+    keys are each one block of pieces (pandas then adds one value after
+    another) is summed from all pieces at once (a key and a number each);
 ``stall pairs``
     the pieces inside each stall, found part by part and put in the order
     :func:`pipeprobe.stalls._stall_pairs` gives them for the whole path.
@@ -39,10 +41,11 @@ from typing import Iterator
 import numpy as np
 import pandas as pd
 
+from ._bigstage import kahan
 from ._coded import codes_of
 from ._spill import Spill
-from .critical import _attribute_codes, node_pieces, segment_frame, segment_names, tail_piece
-from .stalls import _stall_pairs
+from .critical import _attribute_codes, _shares_and_lanes, node_pieces, segment_frame, segment_names, tail_piece
+from .stalls import BLAME_IDS, _stall_pairs
 from .timeline import NODE_COLUMNS
 
 __all__ = ["PathStore", "TEXT", "NUMBERED"]
@@ -161,7 +164,57 @@ class PathStore:
     def attribution(self) -> tuple[pd.DataFrame, pd.DataFrame, pd.Series | None, set[str]]:
         """``shares, lanes`` of the path, and for the stage table its seconds per stage or step label (None
         without pieces) and the labels of its input stages: the sums of the whole path's pieces, in its order.
+
+        Each sum is carried from part to part (:class:`_RunningSums`); where pandas would add the whole path's
+        pieces one value after another (each key one block of rows), all pieces are read again and summed at once.
         """
+        names = self.names.names
+        wide = len(names) + 1
+        rank = np.empty(len(names), np.int64)
+        rank[np.argsort(np.array(names, dtype=object).astype(str), kind="stable")] = np.arange(len(names))
+        shares, lanes, stage = _RunningSums(), _RunningSums(), _RunningSums(sorted_keys=True)
+        stage_kinds, no_lane = [self._code("stage"), self._code("step")], self._code("")
+        inputs: set[int] = set()
+        self.piece_count = 0
+        for p in self.pieces():
+            self.piece_count += len(p["seconds"])
+            label, kind, side, lane = (p[c].astype(np.int64) for c in ("label", "kind", "side", "lane"))
+            sec = p["seconds"]
+            shares.add((label * wide + kind) * wide + side, sec)
+            lanes.add(lane[lane != no_lane], sec[lane != no_lane])
+            on = np.isin(kind, stage_kinds)
+            stage.add(rank[label[on]], sec[on])
+            inputs |= set(np.unique(label[(kind == self._code("stage")) & (side == self._code("input"))]).tolist())
+        if not self.piece_count or not stage.state:
+            return self._attribution_at_once()
+        keys, sums = shares.result() if shares.compensated else self._summed_at_once("shares", wide, rank)
+        by_key = pd.DataFrame({"label": keys // (wide * wide), "kind": keys // wide % wide, "side": keys % wide,
+                               "seconds": sums})
+        keys, sums = lanes.result() if lanes.compensated else self._summed_at_once("lanes", wide, rank)
+        shares_, lanes_ = _shares_and_lanes(by_key, pd.DataFrame({"lane": keys, "seconds": sums}), names,
+                                            self.end_s - self.origin_s)
+        keys, sums = stage.result() if stage.compensated else self._summed_at_once("stage", wide, rank)
+        text = np.array(names, dtype=object)[np.argsort(rank)[keys]]
+        crit = pd.Series(sums, index=pd.Index([str(x) for x in text]), name="seconds").rename_axis("label")
+        return shares_, lanes_, crit, {str(names[c]) for c in inputs}
+
+    def _summed_at_once(self, which: str, wide: int, rank: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The keys and sums of one of :meth:`attribution`'s groupings (``shares``, ``lanes``, ``stage``) from all
+        the path's pieces at once (a key and a number each): pandas adds them one value after another."""
+        keys, values = [], []
+        for p in self.pieces():
+            label, kind, side, lane = (p[c].astype(np.int64) for c in ("label", "kind", "side", "lane"))
+            take = {"shares": np.ones(len(label), bool), "lanes": lane != self._code(""),
+                    "stage": np.isin(kind, [self._code("stage"), self._code("step")])}[which]
+            key = {"shares": (label * wide + kind) * wide + side, "lanes": lane,
+                   "stage": rank[label] if len(label) else label}[which]
+            keys.append(key[take])
+            values.append(p["seconds"][take])
+        sums = pd.Series(np.concatenate(values)).groupby(np.concatenate(keys), sort=which == "stage").sum()
+        return sums.index.to_numpy(np.int64), sums.to_numpy(np.float64)
+
+    def _attribution_at_once(self) -> tuple[pd.DataFrame, pd.DataFrame, pd.Series | None, set[str]]:
+        """:meth:`attribution` from all the path's pieces at once (a label code and a number each)."""
         narrow = np.int16 if len(self.names.names) < (1 << 15) else np.int32
         cols: dict[str, list[np.ndarray]] = {c: [] for c in ("label", "kind", "side", "lane", "seconds")}
         self.piece_count = 0
@@ -231,6 +284,56 @@ class PathStore:
                              "read critical.path and critical.segments before closing it")
 
 
+class _RunningSums:
+    """Per key, pandas' group-by sum of values given part by part, the keys in the order they first appear
+    (``sorted_keys``: as pandas sorts them), while pandas adds them compensated (:func:`pipeprobe._bigstage.kahan`).
+
+    pandas adds one value after another instead when its group ids rise along the rows and no value is NaN
+    (:mod:`pipeprobe._grouplayout`): each key one block of rows (``sorted_keys``: the keys never falling).
+    ``compensated`` says whether the whole sequence given so far is the compensated case.
+
+    Examples
+    --------
+    >>> r = _RunningSums()
+    >>> r.add(np.array([1, 2, 1]), np.array([0.5, 1.0, 0.25]))
+    >>> r.add(np.array([2]), np.array([2.0]))
+    >>> [k.tolist() for k in r.result()], r.compensated
+    ([[1, 2], [0.75, 3.0]], True)
+    """
+
+    def __init__(self, sorted_keys: bool = False) -> None:
+        self.sorted_keys = sorted_keys
+        self.state: dict[int, tuple[float, float]] = {}
+        self.blocks = True
+        self.nan = False
+        self._last: int | None = None
+
+    def add(self, key: np.ndarray, values: np.ndarray) -> None:
+        """The next rows: their keys (integers) and values."""
+        if not len(key):
+            return
+        self.nan |= bool(np.isnan(values).any())
+        if self.sorted_keys:
+            self.blocks &= bool((key[1:] >= key[:-1]).all()) and (self._last is None or int(key[0]) >= self._last)
+        else:
+            runs = key[np.r_[0, np.flatnonzero(key[1:] != key[:-1]) + 1]].tolist()
+            new = runs[1:] if runs[0] == self._last else runs
+            self.blocks &= len(set(new)) == len(new) and not any(k in self.state for k in new)
+        self._last = int(key[-1])
+        uniq, first = np.unique(key, return_index=True)
+        for k in uniq[np.argsort(first)].tolist():
+            self.state[k] = kahan(values[key == k], self.state.get(k, (0.0, 0.0)))
+
+    @property
+    def compensated(self) -> bool:
+        return not self.blocks or self.nan
+
+    def result(self) -> tuple[np.ndarray, np.ndarray]:
+        """The keys (first seen first, or sorted) and their sums."""
+        keys = sorted(self.state) if self.sorted_keys else list(self.state)
+        return np.array(keys, np.int64), np.array([self.state[k][0] for k in keys], np.float64)
+
+
 def _positive(pieces: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
     """The pieces of more than no time (as :func:`pipeprobe.critical.path_attribution` keeps them)."""
     keep = pieces["seconds"] > 0
@@ -250,7 +353,9 @@ class _StallSums:
     So each set of stalls is summed both ways, the samples of each way's largest group per stall kept,
     and :meth:`pairs` gives per group one row holding the sum of the way the whole set takes, then the
     kept samples as rows of no time: :func:`~pipeprobe.stalls._blame` finds from them the same sums (a sum
-    plus zeros), the same largest group and the same samples, in the same order.
+    plus zeros), the same largest group and the same samples, in the same order. Of each group's samples only
+    the first :data:`~pipeprobe.stalls.BLAME_IDS` (those the blame names) are rows; the group's row counts the
+    rest (column ``more``).
     """
 
     def __init__(self) -> None:
@@ -281,8 +386,11 @@ class _StallSums:
             top[ranked.drop_duplicates("row", keep="first").index.to_numpy()] = True
         mine = top[gid] & (pairs["sample"].to_numpy() >= 0)
         kept = pairs[mine].assign(group=gid[mine]).drop_duplicates(["group", "sample"], keep="first")
-        self.groups.append(g)
-        self.samples.append(kept.drop(columns="group").assign(sec=0.0))
+        # the blame names the first BLAME_IDS samples and counts the rest: the rest travel as a count per group
+        rank = kept.groupby("group", sort=False).cumcount().to_numpy()
+        more = np.bincount(kept["group"].to_numpy()[rank >= BLAME_IDS], minlength=len(g))
+        self.groups.append(g.assign(more=more[:len(g)]))
+        self.samples.append(kept[rank < BLAME_IDS].drop(columns="group").assign(sec=0.0, more=0))
 
     def pairs(self) -> pd.DataFrame:
         """The rows that stand for all the pairs (see the class docstring)."""
@@ -290,6 +398,6 @@ class _StallSums:
             return self.empty
         way = "blocks" if self.blocks else "kahan"
         g = pd.concat(self.groups, ignore_index=True)
-        g = g.assign(sec=g[way], sample=-1)[["row", "label", "lane", "sec", "sample", "order"]]
+        g = g.assign(sec=g[way], sample=-1)[["row", "label", "lane", "sec", "sample", "order", "more"]]
         out = pd.concat([g, *self.samples], ignore_index=True)
         return out.sort_values(["row", "order"], kind="stable").reset_index(drop=True)

@@ -49,6 +49,7 @@ class Spill:
     """
 
     def __init__(self, folder: Path, name: str, dtypes: dict[str, np.dtype]) -> None:
+        self.folder = folder
         self._dtypes = {c: np.dtype(t) for c, t in dtypes.items()}
         self._paths = {c: folder / f"{name}.{c}" for c in dtypes}
         self._parts: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []  # per part: keys, first rows, counts
@@ -80,11 +81,11 @@ class Spill:
         """Rows per key, over all parts."""
         return dict(sorted(self._counts.items()))
 
-    def read(self, keys: list[int] | np.ndarray) -> dict[str, np.ndarray]:
-        """The rows of ``keys``, and their key as column ``key``: per part from the last appended to the first,
-        within a part by key, each key's rows in the order appended."""
+    def read(self, keys: list[int] | np.ndarray, *, oldest_first: bool = False) -> dict[str, np.ndarray]:
+        """The rows of ``keys``, and their key as column ``key``: per part from the last appended to the first
+        (``oldest_first``: from the first), within a part by key, each key's rows in the order appended."""
         want = np.asarray(keys, np.int64)
-        runs = [r for part in reversed(self._parts) for r in _runs(part, want)]
+        runs = [r for part in (self._parts if oldest_first else reversed(self._parts)) for r in _runs(part, want)]
         ranges = [(a, n) for a, n, _ in runs]
         out = {"key": np.concatenate([k for _, _, k in runs]) if runs else np.zeros(0, np.int64)}
         for c, path in self._paths.items():
@@ -97,6 +98,14 @@ class Spill:
             out[c] = np.concatenate(chunks) if chunks else np.zeros(0, dt)
         return out
 
+
+    def key_parts(self, key: int, columns: tuple[str, ...]) -> Iterator[dict[str, np.ndarray]]:
+        """The rows of one key, part by part from the last appended to the first (only ``columns``; parts
+        without the key skipped): one part's rows in memory at a time."""
+        want = np.array([key], np.int64)
+        for part in reversed(self._parts):
+            for first, count, _ in _runs(part, want):
+                yield {c: self._range(c, first, count) for c in columns}
 
     def parts(self) -> Iterator[dict[str, np.ndarray]]:
         """Each part's rows (by key within it, as appended), from the last part appended to the first."""

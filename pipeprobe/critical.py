@@ -273,11 +273,18 @@ def attribute(segments: pd.DataFrame, wall: float) -> tuple[pd.DataFrame, pd.Dat
 def _attribute_codes(codes: pd.DataFrame, names: list[str], wall: float) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Shares per (label, kind, side) and per lane from coded pieces (``names`` spell the codes)."""
     shares = codes.groupby(["label", "kind", "side"], sort=False)["seconds"].sum().reset_index()
+    on = codes[codes["lane"].to_numpy() != names.index("")]
+    return _shares_and_lanes(shares, on.groupby("lane", sort=False)["seconds"].sum().reset_index(), names, wall)
+
+
+def _shares_and_lanes(shares: pd.DataFrame, lanes: pd.DataFrame, names: list[str],
+                      wall: float) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Shares and lanes from the seconds per coded (label, kind, side) and per coded lane, each in the order the
+    keys first appear along the path."""
     shares = _named(shares, names, ["label", "kind", "side"])
     shares = shares.sort_values(["seconds", "label"], ascending=[False, True], kind="stable").reset_index(drop=True)
     shares["share"] = shares["seconds"] / wall if wall > 0 else 0.0
-    on = codes[codes["lane"].to_numpy() != names.index("")]
-    lanes = _named(on.groupby("lane", sort=False)["seconds"].sum().reset_index(), names, ["lane"])
+    lanes = _named(lanes, names, ["lane"])
     lanes = lanes.sort_values(["seconds", "lane"], ascending=[False, True], kind="stable").reset_index(drop=True)
     lanes["share"] = lanes["seconds"] / wall if wall > 0 else 0.0
     return shares, lanes

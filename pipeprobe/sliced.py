@@ -38,14 +38,19 @@ while holding the spans of one slice at a time. The steps:
     at a time (about :data:`pipeprobe._spill.GROUP_ROWS` rows), each stage's
     numbers read back in the whole run's order and laid out so that pandas
     adds them up as it adds the whole run's (:mod:`pipeprobe._grouplayout`):
-    the sums, percentiles and slowest samples are those of the whole run.
+    the sums, percentiles and slowest samples are those of the whole run. A
+    stage with more rows than a group is worked out a slice's part at a time
+    (:mod:`pipeprobe._bigstage`: sums carried with their compensation, exact
+    percentiles by selection, each sample's seconds a share of the samples
+    at a time).
 
 What is kept in memory across slices: the per-batch tables (waits, steps;
 the membership rows, about 28 bytes a sample, until the walk ends) and the
 index of the files. The dependency timeline (its nodes and edges, several
 hundred bytes a span) exists for one slice at a time; the stage table's
-numbers for one group of stages at a time (a stage larger than a group:
-all its numbers at once). The path's files stay until the analysis is
+numbers for one group of stages at a time (a stage larger than a group: a
+slice's part of it, and its seconds per sample, 8 bytes each, for the sum of
+all samples largest first). The path's files stay until the analysis is
 closed (:meth:`SlicedAnalysis.close`, a ``with`` block) or garbage-collected:
 ``critical.path`` and ``critical.segments`` are built from them when read.
 """
@@ -62,6 +67,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from . import _spill
+from ._bigstage import piece_numbers, span_numbers
 from ._grouplayout import Blocks, PieceLayout
 from ._pathspill import NUMBERED, TEXT, PathStore
 from ._progress import progress, step
@@ -74,6 +81,7 @@ from .nesting import span_pieces
 from .stagestats import (
     SATURATED_FROM,
     StageStats,
+    _finish_table,
     _more_workers,
     _own_time,
     _slowest,
@@ -616,6 +624,11 @@ def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept, 
     for group in [*key_groups(rows, sorted(kept.pairs)), []]:
         if not group and tables:
             break  # the empty group gives the empty table's columns when there is no stage at all
+        big = _big_stage(kept, run, crit, critical.wall_s, group, names, labels, stages_rising)
+        if big is not None:  # one stage larger than a group: its numbers a slice's part at a time
+            tables.append(big[0])
+            slowest.append(big[1])
+            continue
         pieces = _group_pieces(kept, group, names, labels, stages_rising)
         own, slow = _own_time(pieces), _slowest(pieces)
         del pieces  # the spans' numbers are read once the pieces' are freed: one of the two in memory at a time
@@ -632,6 +645,35 @@ def _stage_table(run: Run, critical: CriticalPath, stalls: Stalls, kept: _Kept, 
     more, why = _more_workers(run, stalls, input_on, busy, cores, table, inputs)
     return StageStats(table=table, slowest=slow, cores=cores, core_busy_in_stalls=busy,
                       cores_saturated=saturated, more_workers=more, more_workers_reason=why)
+
+
+def _big_stage(kept: _Kept, run: Run, crit: pd.Series | None, wall_s: float, group: list[int], names: np.ndarray,
+               labels: tuple[np.ndarray, list[str]], stages_rising: bool) -> tuple[pd.DataFrame, pd.DataFrame] | None:
+    """The stage table's row and the slowest samples of a group that is one stage with more rows than a group
+    holds, worked out a part at a time (:mod:`pipeprobe._bigstage`); None where pandas would add the whole run's
+    numbers of it the other way (its stage one block of rising group ids) or its pieces are not in time order
+    part by part: then it is built all at once."""
+    if len(group) != 1 or kept.span_blocks.rising or stages_rising:
+        return None
+    stage = group[0]
+    if kept.spans.counts().get(stage, 0) + kept.pieces.counts().get(stage, 0) <= _spill.GROUP_ROWS:
+        return None
+    recode, categories = labels
+    own = _own_time(pd.DataFrame({"stage": pd.Series(dtype=object), "dur_s": pd.Series(dtype=float),
+                                  "label": pd.Series(dtype=object)}))
+    slow = _slowest(pd.DataFrame())
+    if kept.pieces.counts().get(stage, 0):
+        mine = [label for s, label in kept.pairs if s == stage]
+        label = categories[int(recode[mine[0]])]
+        got = piece_numbers(kept.pieces, stage, kept.layout.key_split, kept.pieces.folder, label)
+        if got is None:
+            return None
+        at = pd.Index([str(names[stage])], dtype=object)
+        own = pd.DataFrame({"own_s": pd.Series([got[0]], index=at), "label": pd.Series([label], index=at, dtype=object)})
+        slow = got[1]
+    t = pd.DataFrame(span_numbers(lambda: kept.spans.key_parts(stage, ("dur_s", "cpu_s"))),
+                     index=pd.Index([str(names[stage])], dtype=object))
+    return _finish_table(t, crit, wall_s, own), slow
 
 
 def _label_codes(kept: _Kept, names: np.ndarray) -> tuple[np.ndarray, list[str]]:

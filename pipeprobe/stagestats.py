@@ -139,7 +139,8 @@ def critical_seconds(segments: pd.DataFrame) -> pd.Series | None:
 
 def input_stage_labels(segments: pd.DataFrame) -> set[str]:
     """Labels of the input-side stages on the critical path."""
-    return set(segments.loc[(segments["side"] == "input") & (segments["kind"] == "stage"), "label"])
+    # the distinct labels first: iterating the text of every piece costs seconds at millions of pieces
+    return set(segments.loc[(segments["side"] == "input") & (segments["kind"] == "stage"), "label"].unique().tolist())
 
 
 def _table(run: Run, crit: pd.Series | None, wall_s: float, pieces: pd.DataFrame | None,
@@ -148,17 +149,22 @@ def _table(run: Run, crit: pd.Series | None, wall_s: float, pieces: pd.DataFrame
     :func:`_own_time` of ``pieces`` when worked out before (the pieces then freed: None)."""
     sp = run.spans
     key = _stage_key(sp, "wait")
-    cols = list(STAGE_COLUMNS)
     if not (key.codes >= 0).any():
-        return pd.DataFrame({c: pd.Series(dtype=object if c in ("stage", "label") else float) for c in cols})
+        return pd.DataFrame({c: pd.Series(dtype=object if c in ("stage", "label") else float) for c in STAGE_COLUMNS})
     g = sp["dur_s"].groupby(key, sort=False, observed=True)
     t = g.agg(count="size", total_s="sum", mean_s="mean", max_s="max")
     q = g.quantile([0.5, 0.95, 0.99]).unstack()
     t["p50_s"], t["p95_s"], t["p99_s"] = q[0.5], q[0.95], q[0.99]
     t["cpu_s"] = sp["cpu_s"].groupby(key, sort=False, observed=True).sum(min_count=1)
     t = t.set_axis(pd.Index(t.index.astype(str), dtype=object))
+    return _finish_table(t, crit, wall_s, _own_time(pieces) if own is None else own)
+
+
+def _finish_table(t: pd.DataFrame, crit: pd.Series | None, wall_s: float, own: pd.DataFrame) -> pd.DataFrame:
+    """The stage table from its span numbers ``t`` (count, total_s, mean_s, max_s, p50_s, p95_s, p99_s, cpu_s; one
+    row per stage name) and the stages' own time (:func:`_own_time`)."""
+    cols = list(STAGE_COLUMNS)
     t["cpu_ratio"] = (t["cpu_s"] / t["total_s"].where(t["total_s"] > 0)).astype(float)
-    own = _own_time(pieces) if own is None else own
     t["own_s"] = own["own_s"].reindex(t.index).fillna(t["total_s"])
     t["label"] = own["label"].reindex(t.index).fillna(pd.Series(t.index, index=t.index))
     if crit is not None:
@@ -253,8 +259,13 @@ def _slowest(pieces: pd.DataFrame) -> pd.DataFrame:
     top = cand[rank < k[g]]
     g = np.searchsorted(labels, code[top])
     names = np.array([str(x) for x in pieces["label"].cat.categories], dtype=object)
-    top = pd.DataFrame({"stage": names[code[top]], "sample_id": sample[top], "dur_s": dur[top],
-                        "n": n[g], "k": k[g], "total": total[g]})
+    return _slowest_frame(pd.DataFrame({"stage": names[code[top]], "sample_id": sample[top], "dur_s": dur[top],
+                                        "n": n[g], "k": k[g], "total": total[g]}))
+
+
+def _slowest_frame(top: pd.DataFrame) -> pd.DataFrame:
+    """:data:`SLOWEST_COLUMNS` from each label's slowest samples (``stage, sample_id, dur_s``, slowest first, then
+    by sample id) with the label's samples ``n``, listed ``k`` and ``total`` seconds."""
     out = top.groupby("stage", sort=True).agg(
         samples=("k", "first"), of_samples=("n", "first"), sample_ids=("sample_id", list),
         seconds=("dur_s", "sum"), total=("total", "first"))

@@ -268,9 +268,16 @@ def _blame(b: pd.DataFrame, pairs_of: PairsOf | None, per_batch: set[str] = froz
 
 def _blamed_samples(pairs: pd.DataFrame, top: pd.DataFrame, per_batch: set[str], ids: list[list[int]],
                     counts: np.ndarray) -> None:
-    """Fill ``ids`` (first :data:`BLAME_IDS` per stalled batch, in the order worked on) and ``counts``."""
+    """Fill ``ids`` (first :data:`BLAME_IDS` per stalled batch, in the order worked on) and ``counts``.
+
+    ``pairs`` may carry a column ``more``: samples of the pair's group not among its rows (the sliced analysis
+    keeps the first :data:`BLAME_IDS` of each group and counts the rest)."""
     named = pairs.merge(top[["row", "label", "lane"]], on=["row", "label", "lane"])
-    named = named[(named["sample"] >= 0) & ~named["label"].isin(list(per_batch))]
+    named = named[~named["label"].isin(list(per_batch))]
+    if "more" in named and named["more"].any():
+        more = named.groupby("row", sort=True)["more"].sum()
+        counts[more.index.to_numpy(np.int64)] += more.to_numpy(np.int64)
+    named = named[named["sample"] >= 0]
     named = named.sort_values(["row", "order"], kind="stable").drop_duplicates(["row", "sample"])
     if named.empty:
         return
@@ -278,7 +285,7 @@ def _blamed_samples(pairs: pd.DataFrame, top: pd.DataFrame, per_batch: set[str],
     sample = named["sample"].to_numpy(np.int64)
     starts = np.flatnonzero(np.r_[True, row[1:] != row[:-1]])
     ends = np.r_[starts[1:], len(row)]
-    counts[row[starts]] = ends - starts
+    counts[row[starts]] += ends - starts
     for a, b in zip(starts.tolist(), ends.tolist(), strict=True):  # one per stalled batch, not per span
         ids[int(row[a])] = sample[a:min(b, a + BLAME_IDS)].tolist()
 
