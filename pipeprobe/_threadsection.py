@@ -87,4 +87,5 @@ def threads_data(c: ThreadCheck) -> dict[str, Any]:
         "oversubscribed": c.oversubscribed, "busy_steps": c.busy_steps, "idle_steps": c.idle_steps,
         "busy_step_s": c.busy_step_s, "idle_step_s": c.idle_step_s, "slowdown": c.slowdown,
         "explained_slowdown": c.explained_slowdown, "unexplained": c.unexplained, "cost_s": c.cost_s,
-        "advice": c.advice, "background_cores": c.background_cores, "spin_s": c.spin_s})}
+        "advice": c.advice, "background_cores": c.background_cores, "spin_s": c.spin_s,
+        "spin_share": c.spin_share, "spins": c.spins})}

@@ -316,7 +316,7 @@ JSON_SCHEMA: dict[str, str] = {
            "more_workers_reason}; with a replay, the same answer as ceilings.advice",
     "threads": "{skipped: null or why, cores, step_threads, step_cores, pools: list of {api, library, threads}, "
                "workers, worker_load, oversubscribed, busy_steps, idle_steps, busy_step_s, idle_step_s, slowdown, "
-               "explained_slowdown, unexplained, cost_s, advice, background_cores, spin_s}: the step's threads against the "
+               "explained_slowdown, unexplained, cost_s, advice, background_cores, spin_s, spin_share, spins}: the step's threads against the "
                "loader workers",
     "recording_cost": "{spans, measured, processes: list of {pid, rank, role, spans, span_cost_ns, added_s, "
                       "wall_share}, too_short: list of {stage, p50_s, limit_s}}; span_cost_ns null when the run "

@@ -51,9 +51,11 @@ IDLE_LOAD = 0.1
 MIN_STEPS = 3
 #: Observed over explained slow-down above which the recording shows contention the model misses.
 UNEXPLAINED_MARGIN = 1.10
-#: Spin after a step that counts as a spinning pool (our choice: below it, the CPU of the probe's own threads and
-#: of the loader's queue feeders).
+#: Spin after a step that counts as a spinning pool, and the share of the waits it must cover (our choices: below
+#: them, the CPU of the probe's own threads and of the loader's queue feeders, about 1 % of the waits on our
+#: machine).
 SPIN_MIN_S = 0.0005
+SPIN_MIN_SHARE = 0.1
 #: Cores the step keeps however busy the machine was (as the replay's plan does).
 MIN_CORES_LEFT = 0.25
 #: A run without workers counts as oversubscribed when the step's threads and the other processes' busy
@@ -112,6 +114,9 @@ class ThreadCheck:
         after a step, while the loop waited for its next batch (OpenMP
         pools spin before they sleep): the mean over the run's waits; 0
         when none ran.
+    spin_share : float
+        The share of the loop's waiting those threads ran (their CPU
+        seconds over the waits' seconds).
     """
 
     skipped: str | None
@@ -134,6 +139,7 @@ class ThreadCheck:
     advice: str = ""
     background_cores: float = 0.0
     spin_s: float = 0.0
+    spin_share: float = 0.0
 
     @property
     def step_width(self) -> float:
@@ -146,7 +152,7 @@ class ThreadCheck:
     def spins(self) -> bool:
         """The step's pool has several threads and they ran on after the steps (:attr:`spin_s`): its
         threads spin at barriers, so they make progress only while all of them have a core."""
-        return self.step_threads > 1 and self.spin_s >= SPIN_MIN_S
+        return self.step_threads > 1 and self.spin_s >= SPIN_MIN_S and self.spin_share >= SPIN_MIN_SHARE
 
     @property
     def is_unexplained(self) -> bool:
@@ -402,7 +408,7 @@ def _passive_hint(pools: list[dict[str, Any]]) -> str:
             "spinning while a partner waits for a core")
 
 
-def _spin_after_steps(run: Run, k: int) -> float:
+def _spin_after_steps(run: Run, k: int) -> tuple[float, float]:
     """CPU seconds each of the step's ``k - 1`` other pool threads ran on after a step (see :attr:`ThreadCheck.spin_s`).
 
     A wait records the CPU the process's other threads used during it (the
@@ -412,22 +418,28 @@ def _spin_after_steps(run: Run, k: int) -> float:
     only as long as they were: a lower bound of the library's spin. The
     kernel adds a running thread's CPU time to its process's clock at its
     scheduler ticks, so single waits read in steps of a few milliseconds;
-    their mean does not.)
+    their mean does not.) Returns that mean and the share of the waits' time
+    it covers (:attr:`ThreadCheck.spin_share`).
 
     Examples
     --------
     >>> import pipeprobe, tempfile
     >>> from pipeprobe._example_runs import write_example_run
     >>> _spin_after_steps(pipeprobe.load(write_example_run(tempfile.mkdtemp(), batches=4)), 2)
-    0.0
+    (0.0, 0.0)
     """
     b = run.batches
     if "others_cpu_s" not in b or not len(b):
-        return 0.0
+        return 0.0, 0.0
     b = b[b["rank"] == b["rank"].min()]
     others = b["others_cpu_s"].to_numpy(np.float64)[1:] / max(1, k - 1)  # the first wait follows no step
-    others = others[np.isfinite(others)]
-    return float(others.mean()) if len(others) else 0.0
+    wait = b["wait_s"].to_numpy(np.float64)[1:]
+    ok = np.isfinite(others)
+    others, wait = others[ok], wait[ok]
+    if not len(others):
+        return 0.0, 0.0
+    waited = float(wait.sum())
+    return float(others.mean()), (float(others.sum()) / waited if waited > 0 else 0.0)
 
 
 def check_threads(run: Run, background_cores: float = 0.0) -> ThreadCheck:
@@ -465,17 +477,17 @@ def check_threads(run: Run, background_cores: float = 0.0) -> ThreadCheck:
     steps = _steps_under_load(run)
     if not len(steps.dur_s):
         return ThreadCheck(skipped="the run has no training steps (probe.step())", wall_s=float(run.wall_s))
-    spin = _spin_after_steps(run, k)
+    spin, share = _spin_after_steps(run, k)
     if steps.workers == 0:  # nothing to compare, but the step's cores say how wide a replay with workers runs it
         alone, bg = _cores_alone(steps), float(background_cores)
         if k > 1 and k + bg > cores + BESIDE_OTHERS_MARGIN:  # the step's pool beside other processes' work
             return ThreadCheck(skipped=None, cores=cores, step_threads=k, step_cores=alone, pools=tuple(pools),
                                oversubscribed=True, wall_s=float(run.wall_s), background_cores=bg,
-                               advice=_advice_beside_others(cores, k, bg, pools), spin_s=spin)
+                               advice=_advice_beside_others(cores, k, bg, pools), spin_s=spin, spin_share=share)
         return ThreadCheck(skipped="the loader ran no worker processes", cores=cores, step_threads=k,
-                           step_cores=alone, pools=tuple(pools), wall_s=float(run.wall_s), spin_s=spin)
+                           step_cores=alone, pools=tuple(pools), wall_s=float(run.wall_s), spin_s=spin, spin_share=share)
     found = _compare(steps, cores, k, float(background_cores))
     return ThreadCheck(skipped=None, cores=cores, step_threads=k, pools=tuple(pools), workers=steps.workers,
                        wall_s=float(run.wall_s), **found,
                        advice=_advice(cores, k, steps.workers, found["oversubscribed"], pools),
-                       background_cores=float(background_cores), spin_s=spin)
+                       background_cores=float(background_cores), spin_s=spin, spin_share=share)

@@ -104,6 +104,14 @@ class TestEstimate:
         plan = build_plan(pipeprobe.load(_spin_run(tmp_path, 20.0, 4.0)))
         assert (0.004, 1.0, 2.0) == (pytest.approx(plan.spin_s, abs=1e-9), plan.spin_threads, plan.step_together)
 
+    def test_probe_threads_in_long_waits_are_no_spin(self, tmp_path: Path) -> None:
+        """1 ms of other threads' CPU in each 100 ms wait (1 % of the waiting, as the resource sampler takes):
+        the pool does not count as spinning, and the replay shares the cores evenly."""
+        from pipeprobe.whatif.plan import build_plan
+
+        plan = build_plan(pipeprobe.load(_spin_run(tmp_path, 100.0, 1.0)))
+        assert (False, 0.0, 1.0) == (plan.threads.spins, plan.spin_s, plan.step_together)
+
     def test_pool_that_sleeps_shares_the_cores(self, tmp_path: Path) -> None:
         """A pool whose threads ran nothing after the steps (a passive wait policy) is replayed under plain
         processor sharing."""
