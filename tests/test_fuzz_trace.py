@@ -574,7 +574,9 @@ class TestHostileFolders:
         body = head + ', "x": [' + ", ".join([filler] * ((tf.MAX_JSON_BYTES - 4096 - len(head)) // 4)) + "]}"
         path.write_text(body)
         (run, error, ours), peak = _load_traced(root)
-        assert peak < 3 * tf.MAX_JSON_BYTES
+        # the check reads the text and scans a copy with its strings blanked (a third copy while the regex joins
+        # its pieces); 1 MiB over that for the rest of the load; parsing it would take hundreds of MiB
+        assert peak < 3 * path.stat().st_size + 2**20
         assert [m for m in [error, *ours] if str(path) in m and "more than a pipeprobe header has" in m]
 
     def test_future_file_time_does_not_admit_a_fifty_year_span(self, work) -> None:
