@@ -258,7 +258,7 @@ class PathStore:
         :func:`pipeprobe.stalls._stall_pairs` of the whole path does, in a few rows per stall (:class:`_StallSums`).
         """
         ready = b["ready_s"].to_numpy(np.float64)
-        sums = _StallSums()
+        sums = _StallSums(sorted({str(x) for x in self.names.names}))
         waiting: list[pd.DataFrame] = []
         offset = 0
         for p in self.pieces():
@@ -434,7 +434,10 @@ class _StallSums:
     rest (column ``more``).
     """
 
-    def __init__(self) -> None:
+    def __init__(self, names: list[str] | None = None) -> None:
+        #: the text of labels and lanes, sorted: kept as categories in that order (a code a row, not an object;
+        #: they sort as the text does, as the blame sorts them)
+        self.names = names
         self.groups: list[pd.DataFrame] = []
         self.samples: list[pd.DataFrame] = []
         self.blocks = True
@@ -442,6 +445,9 @@ class _StallSums:
 
     def add(self, pairs: pd.DataFrame) -> None:
         """The pairs of whole stalls, sorted by stall, each stall's in the path's order."""
+        if self.names is not None:
+            pairs = pairs.assign(**{c: pd.Categorical(pairs[c].to_numpy(object), categories=self.names)
+                                    for c in ("label", "lane")})
         if self.empty is None:
             self.empty = pairs.iloc[:0]
         if not len(pairs):
