@@ -166,7 +166,8 @@ class PathStore:
         without pieces) and the labels of its input stages: the sums of the whole path's pieces, in its order.
 
         Each sum is carried from part to part (:class:`_RunningSums`); where pandas would add the whole path's
-        pieces one value after another (each key one block of rows), all pieces are read again and summed at once.
+        pieces one value after another (each key one block of rows), the pieces are read again and added up as
+        numpy adds one block (:class:`_BlockSum`).
         """
         names = self.names.names
         wide = len(names) + 1
@@ -187,31 +188,33 @@ class PathStore:
             inputs |= set(np.unique(label[(kind == self._code("stage")) & (side == self._code("input"))]).tolist())
         if not self.piece_count or not stage.state:
             return self._attribution_at_once()
-        keys, sums = shares.result() if shares.compensated else self._summed_at_once("shares", wide, rank)
+        keys, sums = shares.result() if shares.compensated else self._summed_in_blocks("shares", wide, rank, shares)
         by_key = pd.DataFrame({"label": keys // (wide * wide), "kind": keys // wide % wide, "side": keys % wide,
                                "seconds": sums})
-        keys, sums = lanes.result() if lanes.compensated else self._summed_at_once("lanes", wide, rank)
+        keys, sums = lanes.result() if lanes.compensated else self._summed_in_blocks("lanes", wide, rank, lanes)
         shares_, lanes_ = _shares_and_lanes(by_key, pd.DataFrame({"lane": keys, "seconds": sums}), names,
                                             self.end_s - self.origin_s)
-        keys, sums = stage.result() if stage.compensated else self._summed_at_once("stage", wide, rank)
+        keys, sums = stage.result() if stage.compensated else self._summed_in_blocks("stage", wide, rank, stage)
         text = np.array(names, dtype=object)[np.argsort(rank)[keys]]
         crit = pd.Series(sums, index=pd.Index([str(x) for x in text]), name="seconds").rename_axis("label")
         return shares_, lanes_, crit, {str(names[c]) for c in inputs}
 
-    def _summed_at_once(self, which: str, wide: int, rank: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """The keys and sums of one of :meth:`attribution`'s groupings (``shares``, ``lanes``, ``stage``) from all
-        the path's pieces at once (a key and a number each): pandas adds them one value after another."""
-        keys, values = [], []
+    def _summed_in_blocks(self, which: str, wide: int, rank: np.ndarray,
+                          sums: _RunningSums) -> tuple[np.ndarray, np.ndarray]:
+        """The keys and sums of one of :meth:`attribution`'s groupings (``shares``, ``lanes``, ``stage``) whose
+        keys are each one block of pieces, as pandas adds them then (:class:`_BlockSum`), read again part by part."""
+        blocks = {k: _BlockSum(n) for k, n in sums.count.items()}
         for p in self.pieces():
             label, kind, side, lane = (p[c].astype(np.int64) for c in ("label", "kind", "side", "lane"))
             take = {"shares": np.ones(len(label), bool), "lanes": lane != self._code(""),
                     "stage": np.isin(kind, [self._code("stage"), self._code("step")])}[which]
             key = {"shares": (label * wide + kind) * wide + side, "lanes": lane,
-                   "stage": rank[label] if len(label) else label}[which]
-            keys.append(key[take])
-            values.append(p["seconds"][take])
-        sums = pd.Series(np.concatenate(values)).groupby(np.concatenate(keys), sort=which == "stage").sum()
-        return sums.index.to_numpy(np.int64), sums.to_numpy(np.float64)
+                   "stage": rank[label] if len(label) else label}[which][take]
+            values = p["seconds"][take]
+            for k in np.unique(key).tolist():
+                blocks[k].add(values[key == k])
+        keys, _ = sums.result()
+        return keys, np.array([blocks[k].result() for k in keys.tolist()], np.float64)
 
     def _attribution_at_once(self) -> tuple[pd.DataFrame, pd.DataFrame, pd.Series | None, set[str]]:
         """:meth:`attribution` from all the path's pieces at once (a label code and a number each)."""
@@ -255,7 +258,7 @@ class PathStore:
         :func:`pipeprobe.stalls._stall_pairs` of the whole path does, in a few rows per stall (:class:`_StallSums`).
         """
         ready = b["ready_s"].to_numpy(np.float64)
-        sums = _StallSums()
+        sums = _StallSums(sorted({str(x) for x in self.names.names}))
         waiting: list[pd.DataFrame] = []
         offset = 0
         for p in self.pieces():
@@ -304,6 +307,7 @@ class _RunningSums:
     def __init__(self, sorted_keys: bool = False) -> None:
         self.sorted_keys = sorted_keys
         self.state: dict[int, tuple[float, float]] = {}
+        self.count: dict[int, int] = {}
         self.blocks = True
         self.nan = False
         self._last: int | None = None
@@ -322,7 +326,9 @@ class _RunningSums:
         self._last = int(key[-1])
         uniq, first = np.unique(key, return_index=True)
         for k in uniq[np.argsort(first)].tolist():
-            self.state[k] = kahan(values[key == k], self.state.get(k, (0.0, 0.0)))
+            mine = values[key == k]
+            self.state[k] = kahan(mine, self.state.get(k, (0.0, 0.0)))
+            self.count[k] = self.count.get(k, 0) + len(mine)
 
     @property
     def compensated(self) -> bool:
@@ -332,6 +338,76 @@ class _RunningSums:
         """The keys (first seen first, or sorted) and their sums."""
         keys = sorted(self.state) if self.sorted_keys else list(self.state)
         return np.array(keys, np.int64), np.array([self.state[k][0] for k in keys], np.float64)
+
+
+#: Values numpy adds at once in a :class:`_BlockSum` (about 8 MB).
+BLOCK_LEAF = 1 << 20
+
+
+def _halves(n: int) -> tuple[int, int]:
+    """How numpy's pairwise summation splits ``n`` values: below the middle, at a multiple of 8."""
+    n2 = n // 2
+    return n2 - n2 % 8, n - (n2 - n2 % 8)
+
+
+def _leaves(n: int, leaf: int) -> list[int]:
+    """The lengths of the stretches of ``n`` values that numpy's pairwise summation splits down to ``leaf``."""
+    if n <= leaf:
+        return [n] if n else []
+    a, b = _halves(n)
+    return _leaves(a, leaf) + _leaves(b, leaf)
+
+
+def _joined(n: int, leaf: int, sums: Iterator[float]) -> float:
+    """The pairwise sum of ``n`` values from the sums of its :func:`_leaves`, added as numpy adds the halves."""
+    if n <= leaf:
+        return next(sums)
+    a, b = _halves(n)
+    left = _joined(a, leaf, sums)
+    return left + _joined(b, leaf, sums)
+
+
+class _BlockSum:
+    """numpy's ``add.reduceat`` over one block of ``n`` values (pandas' sum of a group that is one block of rising
+    group ids), the values given part by part: the first value plus the pairwise sum of the rest (numpy
+    ``pairwise_sum``: halves split below the middle at a multiple of 8), whose stretches of at most
+    :data:`BLOCK_LEAF` values numpy adds itself.
+
+    Examples
+    --------
+    >>> v = np.random.default_rng(1).random(1000)
+    >>> b = _BlockSum(1000)
+    >>> for part in np.array_split(v, 7):
+    ...     b.add(part)
+    >>> bool(b.result() == np.add.reduceat(v, np.zeros(1, np.intp))[0])
+    True
+    """
+
+    def __init__(self, n: int) -> None:
+        self.n, self.leaf = n, max(128, BLOCK_LEAF)
+        self.sizes = _leaves(n - 1, self.leaf) if n > 1 else []
+        self.first: float | None = None
+        self.sums: list[float] = []
+        self._held: list[np.ndarray] = []
+        self._have = 0
+
+    def add(self, values: np.ndarray) -> None:
+        """The next values of the block."""
+        if self.first is None and len(values):
+            self.first, values = float(values[0]), values[1:]
+        while len(values):
+            want = self.sizes[len(self.sums)]
+            take, values = values[:want - self._have], values[want - self._have:]
+            self._held.append(take)
+            self._have += len(take)
+            if self._have == want:
+                self.sums.append(float(np.add.reduceat(np.concatenate([[0.0], *self._held]), np.zeros(1, np.intp))[0]))
+                self._held, self._have = [], 0
+
+    def result(self) -> float:
+        if self.n <= 1:
+            return 0.0 if self.first is None else self.first
+        return self.first + _joined(self.n - 1, self.leaf, iter(self.sums))
 
 
 def _positive(pieces: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
@@ -358,7 +434,10 @@ class _StallSums:
     rest (column ``more``).
     """
 
-    def __init__(self) -> None:
+    def __init__(self, names: list[str] | None = None) -> None:
+        #: the text of labels and lanes, sorted: kept as categories in that order (a code a row, not an object;
+        #: they sort as the text does, as the blame sorts them)
+        self.names = names
         self.groups: list[pd.DataFrame] = []
         self.samples: list[pd.DataFrame] = []
         self.blocks = True
@@ -366,6 +445,9 @@ class _StallSums:
 
     def add(self, pairs: pd.DataFrame) -> None:
         """The pairs of whole stalls, sorted by stall, each stall's in the path's order."""
+        if self.names is not None:
+            pairs = pairs.assign(**{c: pd.Categorical(pairs[c].to_numpy(object), categories=self.names)
+                                    for c in ("label", "lane")})
         if self.empty is None:
             self.empty = pairs.iloc[:0]
         if not len(pairs):

@@ -18,6 +18,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import pipeprobe._bigstage
+import pipeprobe._pathspill
 import pipeprobe._spill
 import pipeprobe.sliced
 from pipeprobe._bigstage import kahan, order_statistics, piece_numbers, quantiles, span_numbers
@@ -202,20 +203,38 @@ class TestRunningSums:
 
 
 def test_the_path_shares_are_summed_part_by_part(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    """On the 4-worker run the path's shares and stage seconds come from the running sums (its lanes, each one
-    block, are added at once as pandas adds them) and equal the in-memory analysis' (pipeprobe.analyze, exact)."""
+    """On the 4-worker run the path's shares and stage seconds come from the running sums, its lanes (each one
+    block) from a second reading added up as numpy adds a block, and all equal the in-memory analysis'
+    (pipeprobe.analyze, exact)."""
     from _synth import write_many_spans
-
-    import pipeprobe._pathspill
 
     run = write_many_spans(tmp_path / "run", 1500, workers=4, batch_size=8)
     at_once = []
-    real = pipeprobe._pathspill.PathStore._summed_at_once
-    monkeypatch.setattr(pipeprobe._pathspill.PathStore, "_summed_at_once",
+    real = pipeprobe._pathspill.PathStore._summed_in_blocks
+    monkeypatch.setattr(pipeprobe._pathspill.PathStore, "_summed_in_blocks",
                         lambda self, which, *a: at_once.append(which) or real(self, which, *a))
+    monkeypatch.setattr(pipeprobe._pathspill, "BLOCK_LEAF", 128)
     s = pipeprobe.sliced.analyze_sliced(run, slice_batches=3)
     a = pipeprobe.analyze(run)
     assert ["lanes"] == at_once
     pd.testing.assert_frame_equal(a.critical.shares, s.critical.shares, check_exact=True)
     pd.testing.assert_frame_equal(a.critical.lanes, s.critical.lanes, check_exact=True)
     pd.testing.assert_frame_equal(a.stages.table, s.stages.table, check_exact=True)
+
+
+class TestBlockSum:
+    @settings(max_examples=200, deadline=None)
+    @given(st.integers(1, 3000), st.integers(0, 10_000), st.integers(1, 9), st.sampled_from([128, 200, 1000]))
+    def test_is_numpys_reduceat_of_the_whole_block(self, n: int, seed: int, parts: int, leaf: int) -> None:
+        """A block given part by part, numpy adding at most ``leaf`` values at once, sums as numpy's
+        ``add.reduceat`` of all of it (numpy pairwise summation; pandas 3.1 sums a rising group with it)."""
+        from pipeprobe._pathspill import _BlockSum
+
+        rng = np.random.default_rng(seed)
+        v = rng.exponential(1.0, n) * rng.choice([1e-6, 1.0, 1e4], n)
+        with pytest.MonkeyPatch.context() as mp:
+            mp.setattr(pipeprobe._pathspill, "BLOCK_LEAF", leaf)
+            b = _BlockSum(n)
+            for part in np.array_split(v, parts):
+                b.add(part)
+        assert np.add.reduceat(v, np.zeros(1, np.intp))[0] == b.result()

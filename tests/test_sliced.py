@@ -344,7 +344,8 @@ class TestStallSums:
     def test_few_rows_per_stall_blame_as_all_pairs(self, seed: int, rows: int, n: int, sets: int) -> None:
         """Stalls summed a set of whole stalls at a time give _blame's blame of all pairs at once, bit for bit, both
         when each (stall, label, lane) is one block of pairs (pandas adds with ufunc.reduceat) and when not
-        (compensated, Kahan 1965), and with more samples in a stall than the blame names (the rest counted)."""
+        (compensated, Kahan 1965), with more samples in a stall than the blame names (the rest counted), and
+        with labels and lanes kept as categories sorted as their text."""
         from pipeprobe._pathspill import _StallSums
 
         rng = np.random.default_rng(seed)
@@ -356,7 +357,8 @@ class TestStallSums:
                               "lane": rng.choice(["worker 1", "worker 2"], n).astype(object),
                               "sec": rng.choice([0.1, 0.7, 1e-3 / 3, 0.005000000000000001], n),
                               "sample": rng.integers(-1, 6 if seed % 3 else 40, n), "order": np.arange(n)})
-        sums = _StallSums()
+        text = sorted({*pairs["label"], *pairs["lane"], "unused"})
+        sums = _StallSums(text if seed % 4 < 2 else None)  # labels and lanes as sorted categories, or as text
         cuts = np.unique(np.r_[0, rng.integers(0, rows + 1, sets - 1), rows + 1])
         for lo, hi in zip(cuts[:-1], cuts[1:], strict=True):  # sets of whole stalls, in any order
             sums.add(pairs[(row >= lo) & (row < hi)])
