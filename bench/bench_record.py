@@ -92,6 +92,16 @@ def loop_step_of(probe: pipeprobe.Probe):
     return loop_step
 
 
+def loop_watch_of(probe: pipeprobe.Probe):
+    """The loader watch, per batch: its wait (with CPU time on, the CPU the process's other threads used)."""
+
+    def loop_watch(n: int) -> None:
+        for _ in probe.watch(range(n)):
+            pass
+
+    return loop_watch
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--spans", type=int, default=200_000)
@@ -112,6 +122,7 @@ def main() -> None:
                     measure(f"block form ({suffix})", loop_block)
                     measure(f"decorator form ({suffix})", loop_decorated)
                     measure(f"probe.step() ({suffix})", loop_step_of(probe))
+                    measure(f"probe.watch per batch ({suffix})", loop_watch_of(probe))
             with pipeprobe.Probe(os.path.join(d, f"w{rep}"), report=False, sample_interval_s=0,
                                  window="1000000:") as probe:  # no batch taken: outside the window throughout
                 measure("block form (outside window)", loop_block)
@@ -144,6 +155,9 @@ def main() -> None:
     print(f"  probe.step(): {med['probe.step() (cpu off)'] / bare:.2f}x the bare context manager with CPU time off, "
           f"{med['probe.step() (cpu on)'] / bare:.2f}x with it on (process CPU clock); the block form with thread "
           f"CPU time: {med['block form (cpu on)'] / bare:.2f}x")
+    w_off, w_on = med["probe.watch per batch (cpu off)"], med["probe.watch per batch (cpu on)"]
+    print(f"  probe.watch: {w_off - med['empty loop']:.0f} ns a batch net of the loop; CPU time adds "
+          f"{w_on - w_off:.0f} ns (the wait reads the process and thread CPU clocks at both ends)")
     print(f"bytes per span on disk: {size / spans:.1f} ({spans} spans, {size} bytes incl. headers)")
 
 
