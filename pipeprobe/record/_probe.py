@@ -293,7 +293,8 @@ class Probe:
             pipeprobe_version=__version__, python_version=platform.python_version(), platform=platform.platform(),
             pid=os.getpid(), rank=self.rank, world_size=self.world_size, cpu_time=bool(cpu_time),
             sample_interval_s=float(sample_interval_s), flush_interval_s=float(flush_interval_s),
-            extra={**_window.header_fields(parsed_window), **({"step_cpu": STEP_CPU_PROCESS, "wait_cpu": WAIT_CPU_OTHERS} if cpu_time else {})},
+            extra={**_window.header_fields(parsed_window),
+                   **({"step_cpu": STEP_CPU_PROCESS, "wait_cpu": WAIT_CPU_OTHERS} if cpu_time else {})},
         )
         rec.window, rec.spans_on = parsed_window, parsed_window is None  # a window opens at its first batch
         self._open_run(float(sample_interval_s))

@@ -70,10 +70,12 @@ def lockstep_speed(r: float, k: float, cores: float) -> float:
     0.166667
     >>> lockstep_speed(1.0, 2, 2)
     1.0
+    >>> lockstep_speed(0.5, 2, 0.75)  # fewer cores than one thread of the pool: it runs as one thread
+    0.5
     """
+    k = min(k, cores)
     if r >= 1.0 or k <= 1.0:
         return r
-    k = min(k, cores)
     n = cores / r
     lg = math.lgamma
     return math.exp(lg(cores + 1.0) - lg(cores - k + 1.0) - lg(n + 1.0) + lg(n - k + 1.0))
