@@ -99,17 +99,19 @@ class _Watched:
         # steps) hands in the instant its own next() began: the wait starts there.
         item = _kept = sent = None
         cpu = rec.cpu_time
+        c0 = 0
         while True:
             t0 = monotonic_ns() if sent is None else sent
-            # The CPU the process's other threads use while the loop waits: a math-library pool that
-            # keeps spinning after the step takes it from the workers (see _delivered).
-            c0 = process_time_ns() - thread_time_ns() if cpu else 0
             _kept = None  # the batch before last: freed here, inside the wait
             on = rec.on
             if on:
                 buf = rec.buffer()
                 bid = rec.next_batch
                 kept = _window.enter_batch(rec, bid)
+                # The CPU the process's other threads use while the loop waits (a math-library pool that
+                # keeps spinning after the step takes it from the workers; see _delivered), read only for a
+                # wait the window keeps.
+                c0 = process_time_ns() - thread_time_ns() if cpu and kept else 0
                 prev_ctx = buf.ctx
                 buf.ctx = bid
             try:

@@ -53,12 +53,12 @@ def _segments_mean_slowdown(starts: np.ndarray, ends: np.ndarray, weights: np.nd
             return np.where(dur > 0, (integral[i1] - integral[i0]) / dur, 1.0)
 
     out = mean_of(np.maximum(1.0, n / cores))
+    over = np.flatnonzero(n > cores)  # where the cores are oversubscribed; a pool runs at full speed elsewhere
     for k in np.unique(together[together > 1.0]) if together is not None else ():
-        with np.errstate(invalid="ignore", divide="ignore"):
-            r = np.where(n > cores, cores / n, 1.0)
-        speed = np.array([lockstep_speed(x, float(k), cores) for x in r.tolist()])
+        slow = np.ones(len(n))
+        slow[over] = [1.0 / lockstep_speed(cores / x, float(k), cores) for x in n[over].tolist()]
         mine = together == k
-        out[mine] = mean_of(1.0 / speed)[mine]
+        out[mine] = mean_of(slow)[mine]
     return out
 
 
